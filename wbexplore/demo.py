@@ -1,0 +1,531 @@
+"""The invented demo scenario: the Quessary uplands, with a known truth.
+
+Everything here is fictional: the region, its six basins and the eight gridded
+products. The region sits on the WGS84 grid from 7 W to 5 E and 6 N to 16 N, so
+a product stored with 0..360 longitudes really has to be read right.
+
+Truth
+-----
+A grid-cell water-balance model on a 0.05 degree grid, monthly steps, constant
+rates within a month. Each cell has a soil store (capacity 120..320 mm; ET is
+limited by energy, the potential ET, and by water, a linear stress below half
+capacity), a groundwater store fed by percolation and drained as baseflow, and
+a channel store that takes saturation excess and baseflow and releases a share
+of its content each month (a linear reservoir: slower on the flat northern
+plains, so Q lags in the large basins). Basins are unions of whole model cells,
+so basin truth is an exact area-weighted sum over member cells (cell areas from
+`pyproj.Geod`, independent of wbexplore's spatial engine), and for every basin
+and month ``P - ET - Q - dS = 0`` to round-off. TWSA is the monthly *mean* of
+total storage (soil + groundwater + channel; piecewise linear in time) minus its
+2001-2020 mean.
+
+Products and their errors (also written in the catalog's labels/descriptions)
+-----------------------------------------------------------------------------
+See `PRODUCTS` below; `wbexplore demo` writes the table into the study README.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["write_demo", "PRODUCTS", "BASINS", "SEED", "DemoInfo", "REGION"]
+
+SEED = 20260412
+REGION = dict(lon0=-7.0, lon1=5.0, lat0=6.0, lat1=16.0)
+RES = 0.05  # truth grid (degrees)
+YEARS = (2001, 2020)
+SPINUP_YEARS = 6
+
+# Basin blobs: (id, name, centre lon, centre lat, radius deg, shape seed, climate note)
+BASINS = [
+    ("VEL", "Velumbe", -3.2, 9.2, 2.95, 1, "humid south-west, large"),
+    ("VEU", "Upper Velumbe", -4.3, 10.1, 1.05, 2, "nested in Velumbe"),
+    ("OSK", "Oskadra", -1.0, 14.2, 1.75, 3, "semi-arid north"),
+    ("TIR", "Tiramo", 1.15, 7.2, 0.38, 4, "small, humid"),
+    ("ZEF", "Zefron", 2.6, 10.9, 1.25, 5, "straddles the edge of one ET product"),
+    ("ULK", "Ulkesh", 2.35, 14.4, 0.8, 6, "semi-arid north-east"),
+]
+
+# id, component, label, description (the error by construction), form
+PRODUCTS = [
+    ("kestrel", "P", "Kestrel merged rain (0.1 deg)",
+     "biased high by +15% south of 10 N, fading linearly to no bias at 12 N and north of it; "
+     "otherwise exact. netCDF, mm/day rates, mid-month stamps, descending latitudes",
+     "netCDF 0.1 deg"),
+    ("plover", "P", "Plover radar-satellite rain (0.1 deg)",
+     "unbiased but noisy: multiplicative log-normal noise, sd 0.35, spatially correlated over ~0.75 deg. "
+     "One GeoTIFF per month (mm per month), date in the file name",
+     "GeoTIFF series 0.1 deg"),
+    ("heron", "P", "Heron reanalysis rain (0.25 deg)",
+     "unbiased but smoothed: truth averaged to 0.25 deg then blurred (Gaussian, sd 0.5 deg), "
+     "so sharp gradients bleed across basin edges. netCDF, mm per month totals",
+     "netCDF 0.25 deg"),
+    ("sedge", "ET", "Sedge energy-balance ET (0.25 deg)",
+     "damped seasonal cycle: each month's departure from the cell's long-term mean is halved "
+     "(long-term mean kept). netCDF in kg m-2 s-1 with 0..360 longitudes",
+     "netCDF 0.25 deg"),
+    ("fennel", "ET", "Fennel land-model ET (0.1 deg)",
+     "biased low: 0.85 x truth everywhere; its extent stops at 3.5 E, cutting basin Zefron. "
+     "Multi-band GeoTIFF (one band per month), mm per month",
+     "GeoTIFF multi-band 0.1 deg"),
+    ("tansy", "ET", "Tansy daily ET (0.25 deg)",
+     "good but noisy: monthly totals multiplied by spatially correlated noise (sd 0.12), "
+     "spread over days; daily netCDF in mm/day (packed int16); one day (2009-03-14) missing",
+     "netCDF daily 0.25 deg"),
+    ("quarry", "TWSA", "Quarry gravimetric storage anomaly (0.5 deg)",
+     "truth averaged to 0.5 deg, then spatially smoothed (Gaussian, sd 1.2 cells: leakage "
+     "damps small basins). netCDF in cm",
+     "netCDF 0.5 deg"),
+    ("cairn", "TWSA", "Cairn gravimetric storage anomaly (1 deg)",
+     "truth averaged to 1 deg plus white noise (sd 12 mm per cell and month); "
+     "an 11-month gap 2012-06..2013-04. zarr store in kg m-2",
+     "zarr 1 deg"),
+]
+
+
+@dataclass
+class DemoInfo:
+    folder: Path
+    catalog: Path
+    truth: Path
+    n_bytes: int
+
+
+# --------------------------------------------------------------------------- helpers
+def _smooth_noise(rng, shape, sigma_cells, n):
+    """``n`` fields of unit-variance Gaussian noise smoothed over ``sigma_cells``."""
+    from scipy.ndimage import gaussian_filter
+
+    out = np.empty((n,) + shape)
+    for i in range(n):
+        f = gaussian_filter(rng.standard_normal(shape), sigma_cells, mode="wrap")
+        out[i] = f / f.std()
+    return out
+
+
+def _cell_areas_geod(lat_edges, dlon):
+    """Cell areas (m2) per row with pyproj.Geod (independent of wbexplore.spatial)."""
+    from pyproj import Geod
+
+    g = Geod(ellps="WGS84")
+    out = []
+    for a, b in zip(lat_edges[:-1], lat_edges[1:]):
+        lo, hi = min(a, b), max(a, b)
+        # densified rectangle: edges along parallels are not geodesics
+        n = 64
+        lons = np.concatenate([np.linspace(0, dlon, n), np.full(n, dlon), np.linspace(dlon, 0, n), np.zeros(n)])
+        lats = np.concatenate([np.full(n, lo), np.linspace(lo, hi, n), np.full(n, hi), np.linspace(hi, lo, n)])
+        area, _ = g.polygon_area_perimeter(lons, lats)
+        out.append(abs(area))
+    return np.asarray(out)
+
+
+def _block_mean(field, k, row_w):
+    """Area-weighted block mean of (t, ny, nx) by k x k cells (row weights ``row_w``)."""
+    t, ny, nx = field.shape
+    w = row_w[:, None] * np.ones(nx)[None, :]
+    fw = (field * w[None]).reshape(t, ny // k, k, nx // k, k).sum(axis=(2, 4))
+    ww = w.reshape(ny // k, k, nx // k, k).sum(axis=(1, 3))
+    return fw / ww[None]
+
+
+def _basin_masks(lon_c, lat_c, rng):
+    """Rasterised star-shaped blobs, largest connected part, nested basin clipped to its parent."""
+    from scipy.ndimage import label
+
+    LON, LAT = np.meshgrid(lon_c, lat_c)
+    masks = {}
+    for bid, _name, cx, cy, rad, sseed, _note in BASINS:
+        r2 = np.random.default_rng(SEED + sseed)
+        k = np.arange(2, 7)
+        amp = r2.uniform(0.03, 0.12, k.size) / k * 2
+        ph = r2.uniform(0, 2 * np.pi, k.size)
+        dx = (LON - cx) * np.cos(np.radians(cy))
+        dy = LAT - cy
+        th = np.arctan2(dy, dx)
+        rr = np.hypot(dx, dy)
+        rmax = rad * (1 + (amp[:, None, None] * np.cos(k[:, None, None] * th + ph[:, None, None])).sum(0))
+        m = rr <= rmax
+        lab, n = label(m)
+        if n > 1:
+            sizes = np.bincount(lab.ravel())[1:]
+            m = lab == (1 + int(np.argmax(sizes)))
+        masks[bid] = m
+    masks["VEU"] &= masks["VEL"]
+    return masks
+
+
+def _mask_polygon(mask, lon_edges, lat_edges):
+    """Exact outline (union of cell squares) of a boolean mask on the truth grid."""
+    import rasterio.features
+    import shapely
+    from affine import Affine
+
+    tr = Affine(RES, 0, lon_edges[0], 0, RES, lat_edges[0])  # rows south to north
+    shapes = [shapely.geometry.shape(g) for g, v in rasterio.features.shapes(mask.astype(np.uint8), mask=mask, transform=tr)
+              if v == 1]
+    geom = shapely.union_all(shapes)
+    return shapely.set_precision(geom, 1e-9)
+
+
+# --------------------------------------------------------------------------- truth model
+def _run_model(rng, lon_c, lat_c, months):
+    ny, nx = lat_c.size, lon_c.size
+    LON, LAT = np.meshgrid(lon_c, lat_c)
+    nt = len(months)
+    spin = SPINUP_YEARS * 12
+    ntot = nt + spin
+    # climate: humid south to semi-arid north, a little wetter in the west
+    yfrac = (LAT - REGION["lat0"]) / (REGION["lat1"] - REGION["lat0"])
+    p_ann = 2300.0 * np.exp(-2.05 * yfrac) * (1.0 + 0.08 * (-(LON + 1.0) / 6.0))
+    p_ann *= np.exp(0.18 * _smooth_noise(rng, (ny, nx), 30, 1)[0])
+    pet_ann = 1250.0 + 800.0 * yfrac
+    kappa = 0.7 + 2.2 * yfrac  # seasonality sharpness
+    moy = np.concatenate([np.tile(np.arange(1, 13), SPINUP_YEARS), months.month.values])
+    shape = np.exp(kappa[None] * np.cos(2 * np.pi * (moy[:, None, None] - 8.0) / 12.0))
+    shape /= np.mean(np.exp(kappa[None] * np.cos(2 * np.pi * (np.arange(1, 13)[:, None, None] - 8.0) / 12.0)), axis=0)[None]
+    years = np.concatenate([np.full(spin, months.year[0]), months.year.values])
+    uy = np.unique(years)
+    ann_noise = _smooth_noise(rng, (ny, nx), 40, uy.size)
+    ann = np.exp(0.16 * ann_noise - 0.5 * 0.16**2)
+    yi = np.searchsorted(uy, years)
+    wx = np.exp(0.30 * _smooth_noise(rng, (ny, nx), 16, ntot) - 0.5 * 0.30**2)
+    P = p_ann[None] / 12.0 * shape * ann[yi] * wx
+    P[:spin] = P[spin:spin + 12][np.arange(spin) % 12]  # spin-up repeats the first year
+    PET = pet_ann[None] / 12.0 * (1.0 + 0.28 * np.cos(2 * np.pi * (moy[:, None, None] - 4.5) / 12.0))
+    wmax = 120.0 + 200.0 * (1 - yfrac) + 20 * _smooth_noise(rng, (ny, nx), 25, 1)[0]
+    kd, kg = 0.06, 0.05
+    kc = 0.65 - 0.40 * yfrac  # channel release per month
+    W = 0.5 * wmax
+    G = np.full((ny, nx), 150.0)
+    C = np.zeros((ny, nx))
+    out_p, out_et, out_q, out_s = (np.empty((nt, ny, nx)) for _ in range(4))
+    s_prev = W + G + C
+    s_start = None
+    for i in range(ntot):
+        p = P[i]
+        fast = 0.10 * p * (0.3 + 0.7 * np.minimum(1.0, W / wmax) ** 2)  # direct runoff (more from wet soils)
+        w1 = W + p - fast
+        et = np.minimum(PET[i] * np.minimum(1.0, w1 / (0.5 * wmax)), w1)
+        w2 = w1 - et
+        excess = np.maximum(0.0, w2 - wmax)
+        w3 = w2 - excess
+        d = kd * w3
+        W = w3 - d
+        g2 = G + d
+        b = kg * g2
+        G = g2 - b
+        c2 = C + excess + b + fast
+        q = kc * c2
+        C = c2 - q
+        s = W + G + C
+        j = i - spin
+        if j == -1:
+            s_start = s.copy()
+        if j >= 0:
+            out_p[j], out_et[j], out_q[j], out_s[j] = p, et, q, s
+        s_prev = s
+    del s_prev
+    return out_p, out_et, out_q, out_s, s_start
+
+
+# --------------------------------------------------------------------------- writers
+def _nc(ds, path):
+    enc = {v: {"zlib": True, "complevel": 4, "shuffle": True} for v in ds.data_vars}
+    for v in ds.data_vars:
+        enc[v].update(ds[v].encoding)
+    ds.to_netcdf(path, encoding=enc, format="NETCDF4")
+
+
+def _lonlat_coords(lon, lat):
+    import xarray as xr
+
+    return {
+        "lat": xr.DataArray(lat, dims="lat", attrs={"units": "degrees_north", "standard_name": "latitude", "axis": "Y"}),
+        "lon": xr.DataArray(lon, dims="lon", attrs={"units": "degrees_east", "standard_name": "longitude", "axis": "X"}),
+    }
+
+
+def _write_geotiff(path, arr, lon_edges_w, lat_edge_n, res, *, descriptions=None, units="mm"):
+    import rasterio
+    from rasterio.transform import from_origin
+
+    arr = np.asarray(arr, dtype=np.float32)
+    if arr.ndim == 2:
+        arr = arr[None]
+    profile = dict(driver="GTiff", width=arr.shape[2], height=arr.shape[1], count=arr.shape[0], dtype="float32",
+                   crs="EPSG:4326", transform=from_origin(lon_edges_w, lat_edge_n, res, res), nodata=np.nan,
+                   compress="deflate", predictor=3, tiled=arr.shape[1] >= 256 and arr.shape[2] >= 256)
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(arr)
+        for b in range(arr.shape[0]):
+            dst.set_band_unit(b + 1, units)
+        dst.update_tags(units=units)
+
+
+def write_demo(out: str | Path, *, overwrite: bool = False, progress: bool = False) -> DemoInfo:
+    """Write the complete demo study folder (deterministic: fixed seed).
+
+    Writes ``catalog.yaml``, ``basins.geojson``, ``discharge.csv``, ``grids/`` (the
+    eight products), ``truth.nc`` (true basin series) and ``README.md`` (the error table).
+    """
+    import xarray as xr
+    import yaml
+
+    from .io.writers import CAUTION
+
+    out = Path(out)
+    if out.exists() and any(out.iterdir()):
+        if not overwrite:
+            from .errors import InputError
+
+            raise InputError(f"{out}: folder exists and is not empty (use --force to overwrite)")
+        shutil.rmtree(out)
+    tmp = out.with_name(out.name + ".partial")
+    if tmp.exists():
+        shutil.rmtree(tmp)
+    (tmp / "grids" / "plover").mkdir(parents=True)
+    try:
+        info = _write(tmp, progress=progress)
+        tmp.rename(out) if not out.exists() else (shutil.rmtree(out), tmp.rename(out))
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    del info, xr, yaml, CAUTION
+    total = sum(p.stat().st_size for p in out.rglob("*") if p.is_file())
+    return DemoInfo(folder=out, catalog=out / "catalog.yaml", truth=out / "truth.nc", n_bytes=total)
+
+
+def _write(folder: Path, *, progress: bool):
+    import geopandas as gpd
+    import xarray as xr
+    import yaml
+
+    from .io.writers import CAUTION
+
+    steps = iter(["climate and truth model", "basins", "truth series", "products", "catalog"])
+    bar = None
+    if progress:
+        from tqdm.auto import tqdm
+
+        bar = tqdm(total=5, desc="demo", unit="step")
+
+    def tick():
+        if bar is not None:
+            bar.set_postfix_str(next(steps))
+            bar.update(1)
+
+    rng = np.random.default_rng(SEED)
+    lon_e = np.round(np.arange(REGION["lon0"], REGION["lon1"] + RES / 2, RES), 6)
+    lat_e = np.round(np.arange(REGION["lat0"], REGION["lat1"] + RES / 2, RES), 6)
+    lon_c = np.round(0.5 * (lon_e[:-1] + lon_e[1:]), 6)
+    lat_c = np.round(0.5 * (lat_e[:-1] + lat_e[1:]), 6)  # south to north
+    months = pd.date_range(f"{YEARS[0]}-01-01", f"{YEARS[1]}-12-01", freq="MS")
+    nt = len(months)
+    P, ET, Q, S, s0 = _run_model(rng, lon_c, lat_c, months)
+    tick()
+
+    # --- basins
+    masks = _basin_masks(lon_c, lat_c, rng)
+    row_area = _cell_areas_geod(lat_e, RES)  # per row, south to north
+    records, geoms = [], []
+    for bid, name, *_rest in BASINS:
+        geoms.append(_mask_polygon(masks[bid], lon_e, lat_e))
+        records.append({"basin_id": bid, "name": name, "note": _rest[-1]})
+    gdf = gpd.GeoDataFrame(records, geometry=geoms, crs="EPSG:4326")
+    gdf.to_file(folder / "basins.geojson", driver="GeoJSON", COORDINATE_PRECISION=9)
+    tick()
+
+    # --- truth basin series: exact sums over member cells
+    dS = np.diff(np.concatenate([s0[None], S], axis=0), axis=0)
+    Sprev = np.concatenate([s0[None], S[:-1]], axis=0)
+    M = 0.5 * (Sprev + S)  # monthly mean of a piecewise-linear storage
+    area2d = np.broadcast_to(row_area[:, None], masks["VEL"].shape)
+    truth = {k: np.empty((len(BASINS), nt)) for k in ("P", "ET", "Q", "dS", "TWSA", "S_mean")}
+    basin_area = []
+    for i, (bid, *_r) in enumerate(BASINS):
+        w = np.where(masks[bid], area2d, 0.0)
+        wsum = w.sum()
+        basin_area.append(wsum)
+        for k, f in (("P", P), ("ET", ET), ("Q", Q), ("dS", dS), ("S_mean", M)):
+            truth[k][i] = np.tensordot(f, w, axes=([1, 2], [0, 1])) / wsum
+        truth["TWSA"][i] = truth["S_mean"][i] - truth["S_mean"][i].mean()
+    basin_area = np.asarray(basin_area)
+    tds = xr.Dataset(
+        {k: (("basin", "time"), v, {"units": "mm" if k in ("TWSA", "S_mean") else "mm/month"})
+         for k, v in truth.items()},
+        coords={"basin": [b[0] for b in BASINS], "time": months,
+                "basin_area_km2": ("basin", basin_area / 1e6, {"units": "km2"})},
+        attrs={"title": "Quessary uplands demo: true basin series (invented data)",
+               "note": "P - ET - Q - dS = 0 per basin and month; TWSA = monthly-mean storage minus its mean"},
+    )
+    tds.to_netcdf(folder / "truth.nc")
+    tick()
+
+    # --- products
+    g = folder / "grids"
+    lon_r = lon_c
+    anom = M - M.mean(axis=0, keepdims=True)
+    yfrac_c = (lat_c - REGION["lat0"]) / (REGION["lat1"] - REGION["lat0"])
+    del yfrac_c
+    prng = np.random.default_rng(SEED + 100)
+
+    # kestrel: 0.1 deg, +15% south of 10N fading to 1.0 at 12N, mm/day, mid-month, descending lat
+    k01 = 2
+    P01 = _block_mean(P, k01, row_area)
+    lat01 = lat_e[::k01][:-1] + RES * k01 / 2
+    lon01 = lon_e[::k01][:-1] + RES * k01 / 2
+    fac = np.interp(lat01, [10.0, 12.0], [1.15, 1.0])
+    kest = P01 * fac[None, :, None] / months.days_in_month.values[:, None, None]
+    mid = months + pd.to_timedelta(months.days_in_month.values / 2.0 - 0.5, unit="D")
+    c = _lonlat_coords(np.round(lon01, 6), np.round(lat01, 6))
+    da = xr.DataArray(kest[:, ::-1, :].astype(np.float32), dims=("time", "lat", "lon"),
+                      coords={"time": mid, "lat": c["lat"][::-1], "lon": c["lon"]},
+                      attrs={"units": "mm/day", "long_name": "precipitation rate (monthly mean)"})
+    _nc(xr.Dataset({"precip": da}, attrs={"title": "Kestrel merged rain (invented demo product)"}),
+        g / "kestrel_p_0p1.nc")
+
+    # plover: 0.1 deg GeoTIFF per month, noisy
+    noise = np.exp(0.35 * _smooth_noise(prng, P01.shape[1:], 7.5, nt) - 0.5 * 0.35**2)
+    plov = P01 * noise
+    for i, m in enumerate(months):
+        _write_geotiff(g / "plover" / f"plover_rain_{m:%Y-%m}.tif", plov[i][::-1], lon_e[0], lat_e[-1], 0.1)
+
+    # heron: 0.25 deg, blurred, mm per month totals
+    from scipy.ndimage import gaussian_filter
+
+    k25 = 5
+    P25 = _block_mean(P, k25, row_area)
+    her = np.stack([gaussian_filter(f, 2.0, mode="nearest") for f in P25])
+    lat25 = lat_e[::k25][:-1] + 0.125
+    lon25 = lon_e[::k25][:-1] + 0.125
+    c = _lonlat_coords(np.round(lon25, 6), np.round(lat25, 6))
+    _nc(xr.Dataset({"tp": xr.DataArray(her.astype(np.float32), dims=("time", "lat", "lon"),
+                                       coords={"time": months, **c}, attrs={"units": "mm"})},
+                   attrs={"title": "Heron reanalysis rain (invented demo product)"}),
+        g / "heron_p_0p25.nc")
+
+    # sedge: 0.25 deg ET, damped cycle, kg m-2 s-1, 0..360 longitudes
+    ET25 = _block_mean(ET, k25, row_area)
+    mean25 = ET25.mean(axis=0, keepdims=True)
+    clim_mean = mean25
+    sed = clim_mean + 0.5 * (ET25 - clim_mean)
+    sed_rate = sed / (months.days_in_month.values[:, None, None] * 86400.0)
+    lon360 = np.mod(lon25, 360.0)
+    order = np.argsort(lon360)
+    c = _lonlat_coords(np.round(lon360[order], 6), np.round(lat25, 6))
+    _nc(xr.Dataset({"evap": xr.DataArray(sed_rate[:, :, order].astype(np.float32), dims=("time", "lat", "lon"),
+                                         coords={"time": months, **c}, attrs={"units": "kg m-2 s-1"})},
+                   attrs={"title": "Sedge energy-balance ET (invented demo product)"}),
+        g / "sedge_et_0p25.nc")
+
+    # fennel: 0.1 deg multi-band GeoTIFF, 0.85 x truth, extent -7..3.5 E
+    ET01 = _block_mean(ET, k01, row_area)
+    ncol = int(round((3.5 - REGION["lon0"]) / 0.1))
+    fen = 0.85 * ET01[:, :, :ncol]  # extent -7..3.5 E
+    _write_geotiff(g / "fennel_et_0p1.tif", fen[:, ::-1, :], lon_e[0], lat_e[-1], 0.1, units="mm")
+
+    # tansy: 0.25 deg daily, monthly noise, mm/day packed int16, one missing day
+    tn = np.exp(0.12 * _smooth_noise(prng, ET25.shape[1:], 3.0, nt) - 0.5 * 0.12**2)
+    tan_m = ET25 * tn
+    days = pd.date_range(months[0], months[-1] + pd.offsets.MonthEnd(0), freq="D")
+    mi = (days.year - months[0].year) * 12 + days.month - 1
+    dom = days.day.values
+    ndm = days.days_in_month.values
+    wday = 1.0 + 0.25 * np.sin(2 * np.pi * (dom - 0.5) / ndm)  # sums to ndm within each month
+    daily = tan_m[mi] / ndm[:, None, None] * wday[:, None, None]
+    keep = days != pd.Timestamp("2009-03-14")
+    c = _lonlat_coords(np.round(lon25, 6), np.round(lat25, 6))
+    da = xr.DataArray(daily[keep].astype(np.float32), dims=("time", "lat", "lon"),
+                      coords={"time": days[keep], **c}, attrs={"units": "mm/day"})
+    da.encoding = {"dtype": "int16", "scale_factor": 0.005, "add_offset": 0.0, "_FillValue": -32768}
+    _nc(xr.Dataset({"ET": da}, attrs={"title": "Tansy daily ET (invented demo product)"}), g / "tansy_et_daily_0p25.nc")
+
+    # quarry: 0.5 deg, smoothed (leakage), cm, mid-month
+    k50 = 10
+    A50 = _block_mean(anom, k50, row_area)
+    qua = np.stack([gaussian_filter(f, 1.2, mode="nearest") for f in A50]) / 10.0
+    lat50 = lat_e[::k50][:-1] + 0.25
+    lon50 = lon_e[::k50][:-1] + 0.25
+    c = _lonlat_coords(np.round(lon50, 6), np.round(lat50, 6))
+    _nc(xr.Dataset({"lwe_thickness": xr.DataArray(qua.astype(np.float32), dims=("time", "lat", "lon"),
+                                                  coords={"time": mid, **c}, attrs={"units": "cm"})},
+                   attrs={"title": "Quarry gravimetric storage anomaly (invented demo product)"}),
+        g / "quarry_twsa_0p5.nc")
+
+    # cairn: 1 deg, noise, gap, kg m-2, zarr
+    k100 = 20
+    A100 = _block_mean(anom, k100, row_area) + prng.normal(0.0, 12.0, (nt, (lat_c.size // k100), (lon_c.size // k100)))
+    gap = (months >= "2012-06-01") & (months <= "2013-04-01")
+    lat100 = lat_e[::k100][:-1] + 0.5
+    lon100 = lon_e[::k100][:-1] + 0.5
+    c = _lonlat_coords(np.round(lon100, 6), np.round(lat100, 6))
+    ds = xr.Dataset({"twsa": xr.DataArray(A100[~gap].astype(np.float32), dims=("time", "lat", "lon"),
+                                          coords={"time": months[~gap], **c}, attrs={"units": "kg m-2"})},
+                    attrs={"title": "Cairn gravimetric storage anomaly (invented demo product)"})
+    ds.to_zarr(g / "cairn_twsa_1deg.zarr", mode="w", consolidated=False)
+
+    # discharge: m3/s with gauge error and missing months
+    qrng = np.random.default_rng(SEED + 200)
+    rows = []
+    secs = months.days_in_month.values * 86400.0
+    for i, (bid, *_r) in enumerate(BASINS):
+        flow = truth["Q"][i] / 1000.0 * basin_area[i] / secs
+        flow = flow * qrng.normal(1.0, 0.03, nt)
+        miss = set(qrng.choice(nt, 5, replace=False).tolist())
+        for j, m in enumerate(months):
+            if j in miss:
+                continue
+            rows.append((f"{m:%Y-%m}", bid, f"{flow[j]:.4f}"))
+    pd.DataFrame(rows, columns=["date", "basin_id", "q_m3s"]).to_csv(folder / "discharge.csv", index=False)
+    tick()
+
+    # --- catalog
+    form = {
+        "kestrel": {"path": "grids/kestrel_p_0p1.nc", "variable": "precip"},
+        "plover": {"path": "grids/plover/plover_rain_*.tif", "units": "mm", "date_format": "%Y-%m"},
+        "heron": {"path": "grids/heron_p_0p25.nc", "variable": "tp"},
+        "sedge": {"path": "grids/sedge_et_0p25.nc", "variable": "evap"},
+        "fennel": {"path": "grids/fennel_et_0p1.tif", "units": "mm", "time_start": "2001-01"},
+        "tansy": {"path": "grids/tansy_et_daily_0p25.nc", "variable": "ET"},
+        "quarry": {"path": "grids/quarry_twsa_0p5.nc", "variable": "lwe_thickness"},
+        "cairn": {"path": "grids/cairn_twsa_1deg.zarr", "variable": "twsa"},
+    }
+    sources = []
+    for sid, comp, label, desc, _f in PRODUCTS:
+        sources.append({"id": sid, "component": comp, **form[sid], "label": label, "description": desc})
+    catalog = {
+        "catalog_version": 1,
+        "title": "Quessary uplands demo study (invented data)",
+        "description": "Six fictional basins, three P, three ET and two TWSA products with known errors. " + CAUTION,
+        "basins": {"path": "basins.geojson", "id_field": "basin_id", "name_field": "name"},
+        "discharge": {"path": "discharge.csv", "time_field": "date", "basin_field": "basin_id",
+                      "value_field": "q_m3s", "units": "m3/s"},
+        "sources": sources,
+    }
+    (folder / "catalog.yaml").write_text(
+        "# wbexplore catalog, written by `wbexplore demo` (invented scenario; fixed seed %d)\n" % SEED
+        + yaml.safe_dump(catalog, sort_keys=False, width=100, allow_unicode=True))
+    lines = ["# Quessary uplands demo study", "", "Invented data: fictional region, basins and products.", "",
+             CAUTION, "", "## Basins", "", "| id | name | area (km2) | character |", "|---|---|---:|---|"]
+    for i, (bid, name, *_r) in enumerate(BASINS):
+        lines.append(f"| {bid} | {name} | {basin_area[i] / 1e6:,.0f} | {_r[-1]} |")
+    lines += ["", "## Products and their errors (by construction)", "", "| id | component | form | error |",
+              "|---|---|---|---|"]
+    for sid, comp, label, desc, f in PRODUCTS:
+        lines.append(f"| {sid} | {comp} | {f} | {desc} |")
+    lines += ["", "Discharge: m3/s at each outlet, multiplicative gauge error (sd 3%), 5 missing months per gauge.",
+              "", "`truth.nc` holds the true basin series (P, ET, Q, dS, TWSA) for checking."]
+    (folder / "README.md").write_text("\n".join(lines) + "\n")
+    (folder / "scenario.json").write_text(json.dumps({"seed": SEED, "region": REGION, "truth_resolution_deg": RES,
+                                                      "years": list(YEARS)}, indent=1))
+    tick()
+    if bar is not None:
+        bar.close()
+    return True

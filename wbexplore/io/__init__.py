@@ -1,0 +1,1 @@
+"""File formats: catalog, grids, basins, discharge, atomic writers."""

@@ -1,0 +1,327 @@
+"""The catalog (YAML, version 1): the one module that knows its schema.
+
+A catalog names the basins, the gauged discharge and every gridded product an
+analyst wants to compare. It is validated completely, before any data is read:
+unknown keys (typos), missing required fields, duplicate ids, unknown
+components, paths that match no file, units of the wrong dimension and a
+``catalog_version`` other than 1 are each refused with one line naming the
+catalog file, the source id and the field.
+"""
+
+from __future__ import annotations
+
+import difflib
+import glob as _glob
+import hashlib
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from ..errors import CatalogError, UnitError
+from ..units import parse_discharge_unit, parse_flux_unit, parse_storage_unit
+
+__all__ = [
+    "COMPONENTS",
+    "Catalog",
+    "SourceSpec",
+    "BasinSpec",
+    "DischargeSpec",
+    "open_catalog",
+    "file_sha256",
+]
+
+COMPONENTS = ("P", "ET", "TWSA")
+RESERVED_IDS = {"discharge", "Q", "basin", "time"}
+
+_TOP_KEYS = {"catalog_version": True, "title": False, "description": False, "basins": True,
+             "discharge": False, "sources": True}
+_BASIN_KEYS = {"path": True, "id_field": True, "name_field": False, "crs": False, "layer": False}
+_DISCHARGE_KEYS = {"path": True, "time_field": True, "basin_field": True, "value_field": True,
+                   "units": True}
+# Extensions to version 1 (optional): description, date_format, time_start, time_step,
+# relative_error, absolute_error_mm.
+_SOURCE_KEYS = {"id": True, "component": True, "path": True, "variable": False, "units": False,
+                "crs": False, "label": False, "description": False, "date_format": False,
+                "time_start": False, "time_step": False, "relative_error": False,
+                "absolute_error_mm": False}
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """SHA-256 of a file, or of every file of a directory store (zarr) in sorted order."""
+    h = hashlib.sha256()
+    p = Path(path)
+    files = [p] if p.is_file() else sorted(q for q in p.rglob("*") if q.is_file())
+    for f in files:
+        if p.is_dir():
+            h.update(str(f.relative_to(p)).encode())
+        with open(f, "rb") as fh:
+            for chunk in iter(lambda: fh.read(1 << 20), b""):
+                h.update(chunk)
+    return h.hexdigest()
+
+
+@dataclass(frozen=True)
+class BasinSpec:
+    path: Path
+    id_field: str
+    name_field: str | None = None
+    crs: str | None = None
+    layer: str | None = None
+
+
+@dataclass(frozen=True)
+class DischargeSpec:
+    path: Path
+    time_field: str
+    basin_field: str
+    value_field: str
+    units: str
+
+
+@dataclass(frozen=True)
+class SourceSpec:
+    """One gridded product as the catalog describes it."""
+
+    id: str
+    component: str
+    path_pattern: str
+    paths: tuple[Path, ...]
+    variable: str | None = None
+    units: str | None = None
+    crs: str | None = None
+    label: str | None = None
+    description: str | None = None
+    date_format: str | None = None
+    time_start: str | None = None
+    time_step: str = "month"
+    relative_error: float | None = None
+    absolute_error_mm: float | None = None
+
+    @property
+    def display(self) -> str:
+        return self.label or self.id
+
+    @property
+    def format(self) -> str:
+        p = self.paths[0]
+        suffix = p.suffix.lower()
+        if suffix in (".tif", ".tiff"):
+            return "geotiff"
+        if suffix == ".zarr" or (p.is_dir() and (p / ".zgroup").exists() or (p / "zarr.json").exists()):
+            return "zarr"
+        return "netcdf"
+
+
+@dataclass(frozen=True)
+class Catalog:
+    path: Path
+    title: str
+    basins: BasinSpec
+    discharge: DischargeSpec | None
+    sources: tuple[SourceSpec, ...]
+    description: str = ""
+    sha256: str = ""
+    raw: dict = field(default_factory=dict, repr=False, compare=False)
+
+    def source(self, source_id: str) -> SourceSpec:
+        for s in self.sources:
+            if s.id == source_id:
+                return s
+        known = ", ".join(s.id for s in self.sources)
+        raise CatalogError(f"{self.path}: no source {source_id!r} (known: {known})")
+
+    def by_component(self, component: str) -> list[SourceSpec]:
+        return [s for s in self.sources if s.component == component]
+
+
+def _fail(cat: Path, where: str, msg: str) -> None:
+    raise CatalogError(f"{cat}: {where}{msg}")
+
+
+def _check_keys(cat: Path, where: str, data: Any, schema: dict[str, bool]) -> None:
+    if not isinstance(data, dict):
+        _fail(cat, where, f"expected a mapping, got {type(data).__name__}")
+    for key in data:
+        if key not in schema:
+            close = difflib.get_close_matches(str(key), list(schema), n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            _fail(cat, where, f"field {key!r} is not a known field{hint}")
+    for key, required in schema.items():
+        if required and (key not in data or data[key] in (None, "")):
+            _fail(cat, where, f"required field {key!r} is missing")
+
+
+def _str(cat: Path, where: str, data: dict, key: str, default=None) -> str | None:
+    val = data.get(key, default)
+    if val is None:
+        return None
+    if not isinstance(val, (str, int, float)) or isinstance(val, bool):
+        _fail(cat, where, f"field {key!r} must be text, got {val!r}")
+    return str(val)
+
+
+def _resolve(cat: Path, where: str, key: str, pattern: str, *, allow_glob: bool) -> tuple[Path, ...]:
+    base = cat.parent
+    full = pattern if os.path.isabs(pattern) else str(base / pattern)
+    if allow_glob and _glob.has_magic(full):
+        found = tuple(sorted(Path(p) for p in _glob.glob(full)))
+    else:
+        found = (Path(full),) if os.path.exists(full) else ()
+    if not found:
+        _fail(cat, where, f"field {key!r}: path {pattern!r} matches no file")
+    return found
+
+
+def open_catalog(path: str | os.PathLike) -> Catalog:
+    """Read and validate a catalog file (YAML, version 1).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The catalog file. Paths inside it are relative to its folder.
+
+    Returns
+    -------
+    Catalog
+
+    Raises
+    ------
+    CatalogError
+        With one line naming the catalog file, the source id and the field at fault.
+
+    Examples
+    --------
+    >>> cat = open_catalog("demo/catalog.yaml")        # doctest: +SKIP
+    >>> [s.id for s in cat.by_component("P")]          # doctest: +SKIP
+    """
+    cat = Path(path).resolve()
+    if not cat.is_file():
+        raise CatalogError(f"{path}: catalog file not found")
+    text = cat.read_bytes()
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        line = f" at line {mark.line + 1}" if mark is not None else ""
+        raise CatalogError(f"{cat}: not valid YAML{line}") from None
+    if not isinstance(data, dict):
+        raise CatalogError(f"{cat}: expected a mapping at the top level")
+    version = data.get("catalog_version")
+    if version is None:
+        _fail(cat, "", "required field 'catalog_version' is missing")
+    if version != 1:
+        _fail(cat, "", f"field 'catalog_version': version {version!r} is not supported (this wbexplore reads 1)")
+    _check_keys(cat, "", data, _TOP_KEYS)
+
+    b = data["basins"]
+    _check_keys(cat, "basins: ", b, _BASIN_KEYS)
+    basins = BasinSpec(
+        path=_resolve(cat, "basins: ", "path", _str(cat, "basins: ", b, "path"), allow_glob=False)[0],
+        id_field=_str(cat, "basins: ", b, "id_field"),
+        name_field=_str(cat, "basins: ", b, "name_field"),
+        crs=_str(cat, "basins: ", b, "crs"),
+        layer=_str(cat, "basins: ", b, "layer"),
+    )
+    if basins.crs is not None:
+        _check_crs(cat, "basins: ", basins.crs)
+
+    discharge = None
+    if data.get("discharge") is not None:
+        d = data["discharge"]
+        _check_keys(cat, "discharge: ", d, _DISCHARGE_KEYS)
+        units = _str(cat, "discharge: ", d, "units")
+        try:
+            parse_discharge_unit(units, where="discharge")
+        except UnitError as exc:
+            _fail(cat, "discharge: ", f"field 'units': {exc}")
+        discharge = DischargeSpec(
+            path=_resolve(cat, "discharge: ", "path", _str(cat, "discharge: ", d, "path"), allow_glob=False)[0],
+            time_field=_str(cat, "discharge: ", d, "time_field"),
+            basin_field=_str(cat, "discharge: ", d, "basin_field"),
+            value_field=_str(cat, "discharge: ", d, "value_field"),
+            units=units,
+        )
+
+    raw_sources = data["sources"]
+    if not isinstance(raw_sources, list) or not raw_sources:
+        _fail(cat, "", "field 'sources' must be a non-empty list")
+    sources: list[SourceSpec] = []
+    seen: set[str] = set()
+    for i, s in enumerate(raw_sources):
+        sid = s.get("id") if isinstance(s, dict) else None
+        where = f"source {sid!r}: " if sid else f"source #{i + 1}: "
+        _check_keys(cat, where, s, _SOURCE_KEYS)
+        sid = _str(cat, where, s, "id")
+        if sid in seen:
+            _fail(cat, where, f"field 'id': duplicate source id {sid!r}")
+        if sid in RESERVED_IDS or not sid.replace("_", "a").replace("-", "a").isalnum():
+            _fail(cat, where, f"field 'id': {sid!r} is reserved or not a simple name (letters, digits, _ and -)")
+        seen.add(sid)
+        comp = _str(cat, where, s, "component")
+        if comp not in COMPONENTS:
+            _fail(cat, where, f"field 'component': unknown component {comp!r} (one of {', '.join(COMPONENTS)})")
+        pattern = _str(cat, where, s, "path")
+        paths = _resolve(cat, where, "path", pattern, allow_glob=True)
+        units = _str(cat, where, s, "units")
+        if units is not None:
+            try:
+                if comp == "TWSA":
+                    parse_storage_unit(units, source=sid)
+                else:
+                    parse_flux_unit(units, source=sid, component=comp)
+            except UnitError as exc:
+                _fail(cat, where, f"field 'units': {exc}")
+        crs = _str(cat, where, s, "crs")
+        if crs is not None:
+            _check_crs(cat, where, crs)
+        step = _str(cat, where, s, "time_step", "month")
+        if step not in ("month", "day"):
+            _fail(cat, where, f"field 'time_step': {step!r} is not 'month' or 'day'")
+        tstart = _str(cat, where, s, "time_start")
+        if tstart is not None:
+            import pandas as pd
+
+            try:
+                pd.Timestamp(tstart)
+            except Exception:
+                _fail(cat, where, f"field 'time_start': {tstart!r} is not a date (YYYY-MM or YYYY-MM-DD)")
+        errs = {}
+        for key in ("relative_error", "absolute_error_mm"):
+            if s.get(key) is not None:
+                val = s[key]
+                if not isinstance(val, (int, float)) or isinstance(val, bool) or not val > 0:
+                    _fail(cat, where, f"field {key!r}: {val!r} must be a positive number")
+                errs[key] = float(val)
+        fmt_paths = paths
+        date_format = _str(cat, where, s, "date_format")
+        if len(fmt_paths) > 1 and Path(fmt_paths[0]).suffix.lower() in (".tif", ".tiff") and not date_format:
+            _fail(cat, where, "field 'date_format' is required for a glob of GeoTIFF files (e.g. '%Y-%m')")
+        sources.append(SourceSpec(
+            id=sid, component=comp, path_pattern=pattern, paths=paths,
+            variable=_str(cat, where, s, "variable"), units=units, crs=crs,
+            label=_str(cat, where, s, "label"), description=_str(cat, where, s, "description"),
+            date_format=date_format, time_start=tstart, time_step=step, **errs,
+        ))
+    return Catalog(
+        path=cat,
+        title=str(data.get("title") or cat.stem),
+        basins=basins,
+        discharge=discharge,
+        sources=tuple(sources),
+        description=str(data.get("description") or ""),
+        sha256=hashlib.sha256(text).hexdigest(),
+        raw=data,
+    )
+
+
+def _check_crs(cat: Path, where: str, text: str) -> None:
+    from pyproj import CRS
+    from pyproj.exceptions import CRSError
+
+    try:
+        CRS.from_user_input(text)
+    except CRSError:
+        _fail(cat, where, f"field 'crs': {text!r} is not a CRS pyproj understands")
