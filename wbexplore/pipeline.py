@@ -31,7 +31,7 @@ from .io.grids import SourceGrid, open_source
 from .spatial.grid import describe_grid
 from .spatial.zonal import Weights, build_weights, zonal_mean
 
-__all__ = ["extract", "weights_for", "CoverageWarning", "LOW_COVERAGE", "source_vars", "valid_var",
+__all__ = ["extract", "load_series", "weights_for", "CoverageWarning", "LOW_COVERAGE", "source_vars", "valid_var",
            "default_cache_dir", "load_basins"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
@@ -270,4 +270,40 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta) -> xr.Dataset:
                    "rates converted to calendar-month totals with the true number of days"),
         "history": f"{pd.Timestamp.now(tz='UTC'):%Y-%m-%dT%H:%M:%SZ} wbexplore extract",
     }
+    return ds
+
+
+def _inputs_signature(cat: Catalog) -> str:
+    """Cheap signature of every input file (size and modification time) plus the catalog text."""
+    h = hashlib.sha256(cat.sha256.encode())
+    files = [cat.basins.path] + ([cat.discharge.path] if cat.discharge else [])
+    for s in cat.sources:
+        files.extend(s.paths)
+    for f in files:
+        p = Path(f)
+        items = [p] if p.is_file() else sorted(q for q in p.rglob("*") if q.is_file())
+        for q in items:
+            st = q.stat()
+            h.update(f"{q}:{st.st_size}:{st.st_mtime_ns}".encode())
+    return h.hexdigest()[:24]
+
+
+def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.PathLike | None = None,
+                use_cache: bool = True, progress: bool = False, **kwargs) -> xr.Dataset:
+    """`extract` with the result cached on disk (keyed by the catalog and its files' sizes and times)."""
+    cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
+    root = Path(cache_dir or default_cache_dir())
+    path = root / f"series-{_inputs_signature(cat)}.nc"
+    if use_cache and path.is_file():
+        try:
+            with xr.open_dataset(path) as ds:
+                return ds.load()
+        except Exception:
+            pass
+    ds = extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, **kwargs)
+    if use_cache:
+        root.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_suffix(f".{os.getpid()}.tmp")
+        ds.to_netcdf(tmp)
+        os.replace(tmp, path)
     return ds

@@ -218,8 +218,11 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
 
     def _one(path: Path, *, band_chunks):
         try:
-            da = rioxarray.open_rasterio(path, chunks={"band": band_chunks, "y": -1, "x": -1},
-                                         mask_and_scale=True, lock=False)
+            with warnings.catch_warnings():
+                # rioxarray multiplies affine transforms with `*` (deprecated in affine 3)
+                warnings.filterwarnings("ignore", category=PendingDeprecationWarning)
+                da = rioxarray.open_rasterio(path, chunks={"band": band_chunks, "y": -1, "x": -1},
+                                             mask_and_scale=True, lock=False)
         except Exception as exc:
             _fail(spec, f"cannot be opened as GeoTIFF ({exc.__class__.__name__})", path)
         return da

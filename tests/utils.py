@@ -1,0 +1,83 @@
+"""Small synthetic inputs the tests write themselves."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+import yaml
+
+
+def lonlat_grid(lon0, lon1, lat0, lat1, res):
+    lon = np.round(np.arange(lon0 + res / 2, lon1, res), 9)
+    lat = np.round(np.arange(lat0 + res / 2, lat1, res), 9)
+    return lon, lat
+
+
+def write_nc(path, values, lon, lat, times, *, var="v", units="mm/day", descending=False, lon360=False,
+             attrs=None):
+    lat_c = lat[::-1] if descending else lat
+    vals = values[:, ::-1, :] if descending else values
+    lon_c = lon
+    if lon360:
+        lon_c = np.mod(lon, 360.0)
+        order = np.argsort(lon_c)
+        lon_c = lon_c[order]
+        vals = vals[:, :, order]
+    da = xr.DataArray(vals.astype(np.float32), dims=("time", "lat", "lon"),
+                      coords={"time": times, "lat": lat_c, "lon": lon_c}, attrs={"units": units, **(attrs or {})})
+    da["lat"].attrs = {"units": "degrees_north", "standard_name": "latitude"}
+    da["lon"].attrs = {"units": "degrees_east", "standard_name": "longitude"}
+    xr.Dataset({var: da}).to_netcdf(path)
+    return path
+
+
+def write_tif(path, values, lon, lat, *, units="mm", crs="EPSG:4326"):
+    import rasterio
+    from rasterio.transform import from_origin
+
+    res = float(lon[1] - lon[0])
+    arr = np.asarray(values, dtype=np.float32)
+    if arr.ndim == 2:
+        arr = arr[None]
+    arr = arr[:, ::-1, :]  # north first
+    with rasterio.open(path, "w", driver="GTiff", width=arr.shape[2], height=arr.shape[1], count=arr.shape[0],
+                       dtype="float32", crs=crs, transform=from_origin(lon[0] - res / 2, lat[-1] + res / 2, res, res),
+                       nodata=np.nan) as dst:
+        dst.write(arr)
+        dst.update_tags(units=units)
+    return path
+
+
+def box_basins(path, boxes, *, crs="EPSG:4326", ids=None):
+    import geopandas as gpd
+    import shapely
+
+    ids = ids or [f"B{i}" for i in range(len(boxes))]
+    gdf = gpd.GeoDataFrame({"basin_id": ids, "name": [f"Basin {i}" for i in ids]},
+                           geometry=[shapely.box(*b) for b in boxes], crs=crs)
+    gdf.to_file(path, driver="GeoJSON")
+    return path
+
+
+def write_catalog(folder: Path, sources, *, basins="basins.geojson", discharge=None, extra=None, name="catalog.yaml"):
+    cat = {"catalog_version": 1, "title": "test", "basins": {"path": basins, "id_field": "basin_id",
+                                                              "name_field": "name"}, "sources": sources}
+    if discharge:
+        cat["discharge"] = discharge
+    if extra:
+        cat.update(extra)
+    p = Path(folder) / name
+    p.write_text(yaml.safe_dump(cat, sort_keys=False))
+    return p
+
+
+def monthly(start, n, how="start"):
+    m = pd.date_range(start, periods=n, freq="MS")
+    if how == "mid":
+        return m + pd.to_timedelta(14, unit="D")
+    if how == "end":
+        return m + pd.offsets.MonthEnd(0)
+    return m

@@ -1,0 +1,53 @@
+"""Triple collocation: error variances of three products without knowing the truth.
+
+Covariance form (Stoffelen 1998, J. Geophys. Res. 103:7755; extended by McColl et al.
+2014, GRL 41:6229): for products x, y, z measuring one truth with independent,
+zero-mean errors and linear scalings, with sample covariances Q,
+
+    var(e_x) = Qxx - Qxy Qxz / Qyz
+    rho_x^2  = Qxy Qxz / (Qxx Qyz)          (correlation of x with the truth, squared)
+
+and cyclically for y and z.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import InputError
+
+__all__ = ["triple_collocation"]
+
+
+def triple_collocation(*series, names=None, min_samples: int = 10) -> dict:
+    """Error variance (units of the data, squared) and correlation with truth of three products.
+
+    Parameters
+    ----------
+    *series : three 1-D arrays (NaN allowed; only common valid samples are used)
+    names : optional three names for the result keys
+
+    Returns
+    -------
+    dict name -> {"error_variance", "error_sd", "rho", "n"}
+    """
+    if len(series) < 3:
+        raise InputError(f"triple collocation needs three products of one component, got {len(series)}")
+    if len(series) > 3:
+        raise InputError("triple collocation takes exactly three products; pick three")
+    arr = np.vstack([np.asarray(s, dtype=np.float64) for s in series])
+    ok = np.all(np.isfinite(arr), axis=0)
+    n = int(ok.sum())
+    if n < min_samples:
+        raise InputError(f"triple collocation needs at least {min_samples} common valid samples, got {n}")
+    Q = np.cov(arr[:, ok])
+    names = list(names) if names is not None else ["x", "y", "z"]
+    out = {}
+    for i in range(3):
+        j, k = [m for m in range(3) if m != i]
+        ev = Q[i, i] - Q[i, j] * Q[i, k] / Q[j, k]
+        with np.errstate(invalid="ignore"):
+            rho2 = Q[i, j] * Q[i, k] / (Q[i, i] * Q[j, k])
+        out[names[i]] = {"error_variance": float(ev), "error_sd": float(np.sqrt(ev)) if ev > 0 else float("nan"),
+                         "rho": float(np.sqrt(rho2)) if rho2 > 0 else float("nan"), "n": n}
+    return out

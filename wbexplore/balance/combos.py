@@ -1,0 +1,126 @@
+"""Every P x ET x TWSA combination, scored and ranked (vectorised over combinations)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from ..errors import InputError
+from .closure import (ENSEMBLE_PREFIX, Selection, _basin_index, _valid, month_labels, period_mask, source_ids,
+                      water_year, with_ensembles)
+from .metrics import METRICS, check_metric, compute_metrics, sort_key
+from .storage import METHODS, match_window, storage_change
+
+__all__ = ["rank", "rank_all", "combination_terms"]
+
+
+def _stack(ds, ids, b, min_vf):
+    return np.stack([np.where(_valid(ds, s, b, min_vf), ds[s].values[b].astype(np.float64), np.nan) for s in ids])
+
+
+def combination_terms(ds: xr.Dataset, basin: str, *, storage_change_method: str = "central", matched: bool = True,
+                      lag: int = 0, min_valid_fraction: float = 0.5, ensemble: bool = False):
+    """Arrays for all combinations: P (nP, T), ET (nE, T), dS (nS, T), Q (T) and the id lists."""
+    if storage_change_method not in METHODS:
+        raise InputError(f"storage-change method {storage_change_method!r} is not one of {', '.join(METHODS)}")
+    if "discharge" not in ds:
+        raise InputError("the series hold no discharge: add 'discharge' to the catalog")
+    if ensemble:
+        ds = with_ensembles(ds)
+    b = _basin_index(ds, basin)
+    ids = {c: [s for s in source_ids(ds, c) if ensemble or not s.startswith(ENSEMBLE_PREFIX)] for c in ("P", "ET", "TWSA")}
+    for c, v in ids.items():
+        if not v:
+            raise InputError(f"the series hold no {c} source")
+    P = _stack(ds, ids["P"], b, min_valid_fraction)
+    ET = _stack(ds, ids["ET"], b, min_valid_fraction)
+    M = _stack(ds, ids["TWSA"], b, min_valid_fraction)
+    dS = storage_change(M, storage_change_method)
+    Q = ds["discharge"].values[b].astype(np.float64)
+    if lag:
+        q2 = np.full_like(Q, np.nan)
+        q2[:-lag] = Q[lag:]
+        Q = q2
+    if matched:
+        P, ET, Q = (match_window(a, storage_change_method) for a in (P, ET, Q))
+    return ids, P, ET, dS, Q
+
+
+def rank(ds: xr.Dataset, basin: str, *, start: str | None = None, end: str | None = None,
+         storage_change: str = "central", matched: bool = True, by: str = "rmse", ensemble: bool = False,
+         min_valid: int = 24, lag: int = 0, min_valid_fraction: float = 0.5,
+         water_year_start: int = 1) -> pd.DataFrame:
+    """Score every P x ET x TWSA combination for one basin and period, best first.
+
+    Ties keep the catalog order of the sources (stable sort). Combinations with fewer than
+    ``min_valid`` valid months are listed after the scored ones with ``scored = False`` and
+    NaN metrics.
+
+    Returns
+    -------
+    pandas.DataFrame with columns rank, P, ET, TWSA, scored and every metric of `METRICS`.
+    """
+    check_metric(by)
+    ids, P, ET, dS, Q = combination_terms(ds, basin, storage_change_method=storage_change, matched=matched,
+                                          lag=lag, min_valid_fraction=min_valid_fraction, ensemble=ensemble)
+    months = month_labels(ds)
+    mask = period_mask(months, start, end)
+    pm = months[mask]
+    m = compute_metrics(P[:, None, None, mask], ET[None, :, None, mask], Q[None, None, None, mask],
+                        dS[None, None, :, mask], month_of_year=pm.month.values,
+                        water_year=water_year(pm, water_year_start), min_valid=min_valid)
+    nP, nE, nS = len(ids["P"]), len(ids["ET"]), len(ids["TWSA"])
+    shape = (nP, nE, nS)
+    pi, ei, si = np.meshgrid(np.arange(nP), np.arange(nE), np.arange(nS), indexing="ij")
+    df = pd.DataFrame({
+        "P": np.asarray(ids["P"])[pi.ravel()],
+        "ET": np.asarray(ids["ET"])[ei.ravel()],
+        "TWSA": np.asarray(ids["TWSA"])[si.ravel()],
+    })
+    for k in METRICS:
+        df[k] = np.broadcast_to(m[k], shape).ravel()
+    df["n_valid"] = df["n_valid"].astype(int)
+    if (df["n_valid"] == 0).all():
+        from .closure import _span
+
+        qok = np.isfinite(Q)
+        raise InputError(
+            f"no month in {pm[0]:%Y-%m}..{pm[-1]:%Y-%m} has P, ET, storage change and discharge together for basin "
+            f"{basin!r}: discharge covers {_span(months, qok)}, " +
+            ", ".join(f"{s} {_span(months, np.isfinite(a))}" for s, a in
+                      zip(ids["P"] + ids["ET"] + ids["TWSA"], list(P) + list(ET) + list(dS))))
+    df["scored"] = df["n_valid"] >= min_valid
+    key = np.where(df["scored"], sort_key(by, df[by].values), np.inf)
+    order = np.argsort(key, kind="stable")
+    df = df.iloc[order].reset_index(drop=True)
+    df.insert(0, "rank", np.where(df["scored"], np.arange(1, len(df) + 1), 0))
+    df.attrs = {"basin": basin, "by": by, "start": f"{pm[0]:%Y-%m}", "end": f"{pm[-1]:%Y-%m}",
+                "storage_change": storage_change, "matched": matched, "lag": lag}
+    return df
+
+
+def rank_all(ds: xr.Dataset, *, by: str = "rmse", **kwargs) -> pd.DataFrame:
+    """`rank` for every basin: a long table basin x combination x metric (best first within basin)."""
+    parts = []
+    for b in ds["basin"].values:
+        try:
+            r = rank(ds, str(b), by=by, **kwargs)
+        except InputError as exc:
+            if "no month" in str(exc):
+                continue
+            raise
+        r.insert(0, "basin", str(b))
+        parts.append(r)
+    if not parts:
+        raise InputError("no basin has a valid month for any combination")
+    return pd.concat(parts, ignore_index=True)
+
+
+def best_selection(ds: xr.Dataset, basin: str, **kwargs) -> Selection:
+    """The first-ranked combination as a `Selection` (same options as `rank`)."""
+    r = rank(ds, basin, **kwargs)
+    row = r.iloc[0]
+    return Selection(basin=basin, P=row["P"], ET=row["ET"], TWSA=row["TWSA"], start=kwargs.get("start"),
+                     end=kwargs.get("end"), storage_change=kwargs.get("storage_change", "central"),
+                     matched=kwargs.get("matched", True), lag=kwargs.get("lag", 0))

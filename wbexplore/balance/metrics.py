@@ -1,0 +1,194 @@
+"""Closure metrics, vectorised over any leading axes (time on the last axis).
+
+All metrics use the months where every term is valid. With residual
+``r = P - ET - Q - dS`` and the balance estimate of discharge ``Qhat = P - ET - dS``
+(so ``r = Qhat - Q``):
+
+bias            mean r (mm/month)
+rmse            sqrt(mean r^2) (mm/month)
+mae             mean |r| (mm/month)
+rel_imbalance   100 * mean r / mean P (%); mean-based ratios are never taken of dS or r
+nse             Nash and Sutcliffe (1970): 1 - sum (Qhat - Q)^2 / sum (Q - mean Q)^2
+nse_cyclo       cyclostationary NSE (Lehmann et al. 2022, HESS 26:35): the denominator is
+                taken about the monthly climatology of Q, so the seasonal cycle earns no credit
+kge             Gupta et al. (2009): 1 - sqrt((r-1)^2 + (alpha-1)^2 + (beta-1)^2),
+                alpha = sd(Qhat)/sd(Q), beta = mean(Qhat)/mean(Q)
+kge_prime       Kling et al. (2012): gamma = CV(Qhat)/CV(Q) replaces alpha
+r               Pearson correlation of Qhat and Q
+pbias           Moriasi et al. (2007): 100 * sum(Q - Qhat) / sum Q (positive = underestimate)
+annual_bias     mean residual of complete (water) years, mm/year
+annual_rmse     RMSE of the residual totals of complete (water) years, mm/year
+n_valid         number of valid months
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+
+from ..errors import InputError
+
+__all__ = ["METRICS", "compute_metrics", "sort_key", "kge", "kge_prime", "nse", "pbias", "check_metric"]
+
+# name -> (higher is better | "abs" for closest to zero, units, short description)
+METRICS = {
+    "rmse": ("lower", "mm/month", "root-mean-square residual"),
+    "mae": ("lower", "mm/month", "mean absolute residual"),
+    "bias": ("abs", "mm/month", "mean residual"),
+    "rel_imbalance": ("abs", "%", "mean residual / mean P"),
+    "nse": ("higher", "-", "Nash-Sutcliffe efficiency of P-ET-dS vs Q"),
+    "nse_cyclo": ("higher", "-", "cyclostationary NSE (about the monthly climatology)"),
+    "kge": ("higher", "-", "Kling-Gupta efficiency (2009)"),
+    "kge_prime": ("higher", "-", "modified KGE (2012)"),
+    "r": ("higher", "-", "correlation of P-ET-dS with Q"),
+    "pbias": ("abs", "%", "percent bias of P-ET-dS vs Q (positive = underestimate)"),
+    "annual_bias": ("abs", "mm/year", "mean residual of complete years"),
+    "annual_rmse": ("lower", "mm/year", "RMSE of annual residual totals"),
+    "n_valid": ("higher", "months", "valid months"),
+}
+
+
+def check_metric(name: str) -> str:
+    if name not in METRICS:
+        raise InputError(f"metric {name!r} does not exist; valid metrics: {', '.join(METRICS)}")
+    return name
+
+
+def sort_key(name: str, values) -> np.ndarray:
+    """Values mapped so that smaller is better (NaN sorts last)."""
+    check_metric(name)
+    v = np.asarray(values, dtype=float)
+    kind = METRICS[name][0]
+    key = v if kind == "lower" else (np.abs(v) if kind == "abs" else -v)
+    return np.where(np.isfinite(key), key, np.inf)
+
+
+def _nanmean(a, axis=-1):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(a, axis=axis)
+
+
+def _moments(sim, obs):
+    ms, mo = _nanmean(sim), _nanmean(obs)
+    ds = sim - ms[..., None]
+    do = obs - mo[..., None]
+    n = np.sum(np.isfinite(sim), axis=-1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        vs = np.nansum(ds * ds, axis=-1) / n
+        vo = np.nansum(do * do, axis=-1) / n
+        cov = np.nansum(ds * do, axis=-1) / n
+        r = cov / np.sqrt(vs * vo)
+    return ms, mo, np.sqrt(vs), np.sqrt(vo), r
+
+
+def kge(sim, obs):
+    """Kling-Gupta efficiency (Gupta et al. 2009, J. Hydrol. 377:80)."""
+    sim, obs = _mask(sim, obs)
+    ms, mo, ss, so, r = _moments(sim, obs)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return 1 - np.sqrt((r - 1) ** 2 + (ss / so - 1) ** 2 + (ms / mo - 1) ** 2)
+
+
+def kge_prime(sim, obs):
+    """Modified KGE (Kling et al. 2012, J. Hydrol. 424:264): variability as the ratio of CVs."""
+    sim, obs = _mask(sim, obs)
+    ms, mo, ss, so, r = _moments(sim, obs)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        gamma = (ss / ms) / (so / mo)
+        return 1 - np.sqrt((r - 1) ** 2 + (gamma - 1) ** 2 + (ms / mo - 1) ** 2)
+
+
+def nse(sim, obs):
+    """Nash-Sutcliffe efficiency (Nash and Sutcliffe 1970, J. Hydrol. 10:282)."""
+    sim, obs = _mask(sim, obs)
+    mo = _nanmean(obs)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return 1 - np.nansum((sim - obs) ** 2, axis=-1) / np.nansum((obs - mo[..., None]) ** 2, axis=-1)
+
+
+def pbias(sim, obs):
+    """Percent bias, Moriasi et al. (2007) sign convention: positive = model underestimates."""
+    sim, obs = _mask(sim, obs)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return 100.0 * np.nansum(obs - sim, axis=-1) / np.nansum(obs, axis=-1)
+
+
+def _mask(*arrays):
+    arrs = np.broadcast_arrays(*[np.asarray(a, dtype=np.float64) for a in arrays])
+    ok = np.ones(arrs[0].shape, dtype=bool)
+    for a in arrs:
+        ok &= np.isfinite(a)
+    return tuple(np.where(ok, a, np.nan) for a in arrs)
+
+
+def compute_metrics(P, ET, Q, dS, *, month_of_year=None, water_year=None, min_valid: int = 1) -> dict:
+    """All closure metrics for series with time on the last axis (any leading axes broadcast).
+
+    Parameters
+    ----------
+    P, ET, Q, dS : array-like, mm/month
+    month_of_year : array of ints 1..12 (time axis), for ``nse_cyclo``
+    water_year : array of ints (time axis), the water year of each month, for annual metrics
+    min_valid : int
+        Below this many valid months every metric but ``n_valid`` is NaN.
+
+    Returns
+    -------
+    dict of metric name -> array over the leading axes
+    """
+    P, ET, Q, dS = _mask(P, ET, Q, dS)
+    res = P - ET - Q - dS
+    qhat = P - ET - dS
+    n = np.sum(np.isfinite(res), axis=-1)
+    out = {}
+    mr = _nanmean(res)
+    out["bias"] = mr
+    out["rmse"] = np.sqrt(_nanmean(res * res))
+    out["mae"] = _nanmean(np.abs(res))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out["rel_imbalance"] = 100.0 * mr / _nanmean(P)
+    ms, mo, ss, so, r = _moments(qhat, Q)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        den = np.nansum((Q - mo[..., None]) ** 2, axis=-1)
+        num = np.nansum((qhat - Q) ** 2, axis=-1)
+        out["nse"] = 1 - num / den
+        if month_of_year is not None:
+            moy = np.asarray(month_of_year)
+            clim = np.full(Q.shape, np.nan)
+            for m in range(1, 13):
+                sel = moy == m
+                if sel.any():
+                    clim[..., sel] = _nanmean(Q[..., sel])[..., None]
+            out["nse_cyclo"] = 1 - num / np.nansum((Q - clim) ** 2, axis=-1)
+        else:
+            out["nse_cyclo"] = np.full(n.shape, np.nan)
+        out["kge"] = 1 - np.sqrt((r - 1) ** 2 + (ss / so - 1) ** 2 + (ms / mo - 1) ** 2)
+        gamma = (ss / ms) / (so / mo)
+        out["kge_prime"] = 1 - np.sqrt((r - 1) ** 2 + (gamma - 1) ** 2 + (ms / mo - 1) ** 2)
+        out["r"] = r
+        out["pbias"] = 100.0 * np.nansum(Q - qhat, axis=-1) / np.nansum(Q, axis=-1)
+    if water_year is not None:
+        wy = np.asarray(water_year)
+        totals = []
+        for y in np.unique(wy):
+            sel = wy == y
+            if sel.sum() != 12:
+                continue
+            blk = res[..., sel]
+            complete = np.all(np.isfinite(blk), axis=-1)
+            totals.append(np.where(complete, np.sum(blk, axis=-1), np.nan))
+        if totals:
+            tot = np.stack(totals, axis=-1)
+            out["annual_bias"] = _nanmean(tot)
+            out["annual_rmse"] = np.sqrt(_nanmean(tot * tot))
+        else:
+            out["annual_bias"] = out["annual_rmse"] = np.full(n.shape, np.nan)
+    else:
+        out["annual_bias"] = out["annual_rmse"] = np.full(n.shape, np.nan)
+    few = n < max(1, min_valid)
+    for k in list(out):
+        out[k] = np.where(few, np.nan, out[k])
+    out["n_valid"] = n
+    return out

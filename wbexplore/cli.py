@@ -1,0 +1,289 @@
+"""Command line: ``wbexplore demo | check | extract | rank | export | replay | report | serve``.
+
+Exit status 0 on success, 2 on bad input (one line naming the file, field or value),
+1 when ``replay`` finds different numbers. No partial output file is left behind.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import warnings
+from pathlib import Path
+
+from . import __version__
+from .errors import InputError, ReplayMismatch
+
+__all__ = ["main"]
+
+
+def _add_selection_args(p, *, sources: bool):
+    p.add_argument("catalog", help="catalog YAML file")
+    p.add_argument("--basin", required=True, help="basin id")
+    if sources:
+        p.add_argument("--P", required=True, metavar="SRC", help="precipitation source id")
+        p.add_argument("--ET", required=True, metavar="SRC", help="evapotranspiration source id")
+        p.add_argument("--TWSA", required=True, metavar="SRC", help="storage-anomaly source id")
+    p.add_argument("--start", metavar="YYYY-MM", help="first month of the period")
+    p.add_argument("--end", metavar="YYYY-MM", help="last month of the period")
+    p.add_argument("--storage-change", default="central", choices=["central", "backward", "forward"],
+                   help="difference of TWSA monthly means (default central)")
+    p.add_argument("--unmatched", action="store_true",
+                   help="compare the storage difference with raw monthly fluxes (default: window-matched)")
+    p.add_argument("--lag", type=int, default=0, metavar="K", help="compare gauged Q K months later (default 0)")
+    p.add_argument("--cache-dir", metavar="DIR", help="weights and series cache (default ~/.cache/wbexplore)")
+
+
+def _parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(
+        prog="wbexplore",
+        description="Basin water-balance closure explorer: which P, ET and TWSA products close "
+                    "P - ET - Q - dS against gauged discharge. Screening-level analysis.")
+    ap.add_argument("--version", action="version", version=f"wbexplore {__version__}")
+    sub = ap.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("demo", help="write the invented demo study and open the explorer notebook")
+    p.add_argument("--out", default="wbexplore-demo", metavar="DIR", help="study folder (default ./wbexplore-demo)")
+    p.add_argument("--no-launch", action="store_true", help="do not start JupyterLab")
+    p.add_argument("--force", action="store_true", help="replace an existing, non-empty folder")
+
+    p = sub.add_parser("check", help="validate a catalog and summarise its sources")
+    p.add_argument("catalog")
+
+    p = sub.add_parser("extract", help="basin means of every source into one netCDF file")
+    p.add_argument("catalog")
+    p.add_argument("--out", required=True, metavar="FILE.nc")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--scheduler", metavar="ADDRESS", help="a running dask.distributed scheduler")
+    g.add_argument("--workers", type=int, metavar="N", help="start a local cluster of N worker processes")
+    p.add_argument("--cache-dir", metavar="DIR")
+    p.add_argument("--force", action="store_true", help="overwrite FILE")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    p = sub.add_parser("rank", help="rank every P x ET x TWSA combination for a basin")
+    _add_selection_args(p, sources=False)
+    p.add_argument("--by", default="rmse", metavar="METRIC", help="ranking metric (default rmse)")
+    p.add_argument("--format", default="table", choices=["table", "csv", "json"])
+    p.add_argument("--ensemble", action="store_true", help="add the per-component ensemble mean as a source")
+    p.add_argument("--min-valid", type=int, default=24, metavar="N", help="months needed to score (default 24)")
+
+    p = sub.add_parser("export", help="write the selection file of one combination")
+    _add_selection_args(p, sources=True)
+    p.add_argument("--out", required=True, metavar="FILE.yaml")
+    p.add_argument("--series", metavar="FILE", help="also write the series (.csv or .nc)")
+    p.add_argument("--units", default="mm", choices=["mm", "m3", "m3/s"], help="unit system of a CSV series")
+    p.add_argument("--force", action="store_true")
+
+    p = sub.add_parser("replay", help="recompute a selection file and compare every metric")
+    p.add_argument("selection", metavar="FILE.yaml")
+    p.add_argument("--cache-dir", metavar="DIR")
+
+    p = sub.add_parser("report", help="self-contained HTML report of one combination")
+    _add_selection_args(p, sources=False)
+    p.add_argument("--P", metavar="SRC")
+    p.add_argument("--ET", metavar="SRC")
+    p.add_argument("--TWSA", metavar="SRC")
+    p.add_argument("--by", default="rmse", metavar="METRIC")
+    p.add_argument("--out", required=True, metavar="FILE.html")
+    p.add_argument("--force", action="store_true")
+
+    p = sub.add_parser("serve", help="the explorer as a web page")
+    p.add_argument("catalog")
+    p.add_argument("--port", type=int, default=5006)
+    p.add_argument("--address", default="127.0.0.1")
+    p.add_argument("--show", action="store_true", help="open a browser")
+    p.add_argument("--cache-dir", metavar="DIR")
+    return ap
+
+
+def _cmd_check(args) -> int:
+    from .io.catalog import open_catalog
+    from .io.grids import open_source
+    from .pipeline import load_basins
+
+    cat = open_catalog(args.catalog)
+    basins = load_basins(cat)
+    print(f"{cat.title}\n{cat.path}")
+    print(f"basins: {len(basins)} in {cat.basins.path.name} "
+          f"({basins['area_km2'].min():,.0f} to {basins['area_km2'].max():,.0f} km2)")
+    if cat.discharge:
+        from .io.discharge import read_discharge
+
+        q = read_discharge(cat.discharge, basins["area_km2"])
+        print(f"discharge: {cat.discharge.path.name}, {int(q.notnull().sum())} basin-months, "
+              f"{q.time.values[0].astype('datetime64[M]')}..{q.time.values[-1].astype('datetime64[M]')}, "
+              f"units {cat.discharge.units}")
+    else:
+        print("discharge: none (closure metrics need it)")
+    rows = [open_source(s).summary() for s in cat.sources]
+    cols = ["id", "component", "units", "step", "grid", "period", "crs", "label"]
+    width = {c: max(len(c), *(len(str(r[c])) for r in rows)) for c in cols}
+    print("  ".join(c.ljust(width[c]) for c in cols))
+    for r in rows:
+        print("  ".join(str(r[c]).ljust(width[c]) for c in cols))
+    print(f"ok: {len(rows)} sources validate")
+    return 0
+
+
+def _cmd_extract(args) -> int:
+    from .io.writers import atomic_path, check_output
+    from .pipeline import extract
+
+    check_output(args.out, overwrite=args.force)
+    ds = extract(args.catalog, scheduler=args.scheduler, workers=args.workers, progress=not args.quiet,
+                 cache_dir=args.cache_dir)
+    with atomic_path(args.out, overwrite=args.force) as tmp:
+        ds.to_netcdf(tmp, format="NETCDF4")
+    print(f"wrote {args.out}: {ds.sizes['basin']} basins x {ds.sizes['time']} months, "
+          f"{len([v for v in ds.data_vars if ds[v].attrs.get('role') == 'source'])} sources")
+    return 0
+
+
+def _series(args):
+    from .pipeline import load_series
+
+    return load_series(args.catalog, cache_dir=getattr(args, "cache_dir", None), progress=sys.stderr.isatty())
+
+
+def _cmd_rank(args) -> int:
+    from .balance import rank
+    from .balance.metrics import check_metric
+
+    check_metric(args.by)
+    ds = _series(args)
+    df = rank(ds, args.basin, start=args.start, end=args.end, storage_change=args.storage_change,
+              matched=not args.unmatched, by=args.by, ensemble=args.ensemble, min_valid=args.min_valid,
+              lag=args.lag)
+    if args.format == "csv":
+        df.to_csv(sys.stdout, index=False, float_format="%.6g")
+    elif args.format == "json":
+        json.dump({"basin": args.basin, "by": args.by, "period": [df.attrs["start"], df.attrs["end"]],
+                   "storage_change": args.storage_change, "matched": not args.unmatched,
+                   "rows": json.loads(df.to_json(orient="records"))}, sys.stdout, indent=1)
+        print()
+    else:
+        cols = ["rank", "P", "ET", "TWSA", "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid"]
+        show = df[cols].copy()
+        show["rank"] = [str(r) if s else "-" for r, s in zip(df["rank"], df["scored"])]
+        print(f"basin {args.basin}, {df.attrs['start']}..{df.attrs['end']}, storage change {args.storage_change}"
+              f"{' (unmatched)' if args.unmatched else ' (window-matched)'}, ranked by {args.by}")
+        print(show.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+        print("rmse, bias in mm/month; rel_imbalance in %; '-' = too few valid months to score")
+    return 0
+
+
+def _selection_from_args(args, P=None, ET=None, TWSA=None):
+    from .balance import Selection
+
+    return Selection(basin=args.basin, P=P or args.P, ET=ET or args.ET, TWSA=TWSA or args.TWSA, start=args.start,
+                     end=args.end, storage_change=args.storage_change, matched=not args.unmatched, lag=args.lag)
+
+
+def _cmd_export(args) -> int:
+    from .selection import export_selection
+
+    sel = _selection_from_args(args)
+    out = export_selection(args.catalog, sel, args.out, overwrite=args.force, series=args.series,
+                           unit_system=args.units, cache_dir=args.cache_dir)
+    print(f"wrote {out['selection']}" + (f" and {out['series']}" if out.get("series") else ""))
+    return 0
+
+
+def _cmd_replay(args) -> int:
+    from .selection import replay
+
+    try:
+        res = replay(args.selection, cache_dir=args.cache_dir)
+    except ReplayMismatch as exc:
+        print(f"wbexplore replay: {exc}", file=sys.stderr)
+        if exc.table:
+            print(exc.table)
+        return 1
+    print(f"replay ok: {res['n_metrics']} metrics reproduced to 1e-9 ({args.selection})")
+    return 0
+
+
+def _cmd_report(args) -> int:
+    from .balance import best_selection
+    from .report import write_report
+
+    ds = _series(args)
+    if args.P and args.ET and args.TWSA:
+        sel = _selection_from_args(args)
+    elif args.P or args.ET or args.TWSA:
+        raise InputError("give all of --P, --ET and --TWSA, or none (then the best-ranked combination is used)")
+    else:
+        sel = best_selection(ds, args.basin, start=args.start, end=args.end, storage_change=args.storage_change,
+                             matched=not args.unmatched, lag=args.lag, by=args.by)
+    out = write_report(args.catalog, ds, sel, args.out, overwrite=args.force, by=args.by)
+    print(f"wrote {out}")
+    return 0
+
+
+def _cmd_serve(args) -> int:
+    from .explorer.app import serve
+
+    serve(args.catalog, port=args.port, address=args.address, show=args.show, cache_dir=args.cache_dir)
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from .demo import write_demo
+
+    out = Path(args.out)
+    info = write_demo(out, overwrite=args.force, progress=sys.stderr.isatty())
+    nb = _copy_templates(out)
+    print(f"wrote the demo study to {out} ({info.n_bytes / 1e6:.0f} MB, invented data)")
+    _cmd_check(argparse.Namespace(catalog=str(info.catalog)))
+    print("\nnext:")
+    print(f"  wbexplore rank {info.catalog} --basin VEL")
+    print(f"  wbexplore serve {info.catalog}")
+    if args.no_launch:
+        print(f"  jupyter lab {nb}")
+        return 0
+    import subprocess
+
+    return subprocess.call([sys.executable, "-m", "jupyterlab", str(nb)])
+
+
+def _copy_templates(out: Path) -> Path:
+    import shutil
+    from importlib import resources
+
+    first = None
+    tdir = resources.files("wbexplore") / "templates"
+    for item in sorted(tdir.iterdir(), key=lambda p: p.name):
+        if item.name.endswith(".ipynb"):
+            dest = out / item.name
+            with resources.as_file(item) as src:
+                shutil.copyfile(src, dest)
+            first = first or dest
+    return first or out
+
+
+_COMMANDS = {"demo": _cmd_demo, "check": _cmd_check, "extract": _cmd_extract, "rank": _cmd_rank,
+             "export": _cmd_export, "replay": _cmd_replay, "report": _cmd_report, "serve": _cmd_serve}
+
+
+def main(argv=None) -> int:
+    ap = _parser()
+    args = ap.parse_args(argv)
+    if not args.command:
+        ap.print_help()
+        return 2
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("default")
+            warnings.formatwarning = lambda m, c, *a, **k: f"wbexplore: warning: {m}\n"
+            return _COMMANDS[args.command](args)
+    except InputError as exc:
+        print(f"wbexplore: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("wbexplore: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
