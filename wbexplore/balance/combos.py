@@ -84,12 +84,12 @@ def rank(ds: xr.Dataset, basin: str, *, start: str | None = None, end: str | Non
     if (df["n_valid"] == 0).all():
         from .closure import _span
 
-        qok = np.isfinite(Q)
+        b = _basin_index(ds, basin)
+        spans = [f"{v} {_span(months, np.isfinite(ds[v].values[b]))}"
+                 for v in ["discharge"] + ids["P"] + ids["ET"] + ids["TWSA"] if v in ds]
         raise InputError(
             f"no month in {pm[0]:%Y-%m}..{pm[-1]:%Y-%m} has P, ET, storage change and discharge together for basin "
-            f"{basin!r}: discharge covers {_span(months, qok)}, " +
-            ", ".join(f"{s} {_span(months, np.isfinite(a))}" for s, a in
-                      zip(ids["P"] + ids["ET"] + ids["TWSA"], list(P) + list(ET) + list(dS))))
+            f"{basin!r}; data cover: " + ", ".join(spans).replace("discharge ", "discharge covers ", 1))
     df["scored"] = df["n_valid"] >= min_valid
     key = np.where(df["scored"], sort_key(by, df[by].values), np.inf)
     order = np.argsort(key, kind="stable")

@@ -1,0 +1,327 @@
+"""Area-true extraction checked against outside references: Snyder's formula values, pyproj.Geod, exactextract."""
+
+import warnings
+
+import numpy as np
+import pytest
+import shapely
+import xarray as xr
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from pyproj import CRS, Geod, Transformer
+
+from wbexplore.errors import InputError
+from wbexplore.spatial import GridError, build_weights, cell_areas_m2, describe_grid, geographic_cell_areas_m2
+from wbexplore.spatial.coverage import coverage_matrix
+from wbexplore.spatial.zonal import apply_weights_numpy, zonal_mean
+
+GEOD = Geod(ellps="WGS84")
+
+
+def geod_area_lonlat(geom, step=0.01):
+    """pyproj geodesic area of a lon/lat polygon with edges densified (straight in lon/lat)."""
+    g = shapely.segmentize(shapely.geometry.polygon.orient(geom, 1.0), step)
+    return abs(GEOD.geometry_area_perimeter(g)[0])
+
+
+def cell_polygon_area(lon0, lon1, lat0, lat1):
+    return geod_area_lonlat(shapely.box(lon0, lat0, lon1, lat1), 0.001)
+
+
+# --------------------------------------------------------------------------- cell areas
+def test_one_degree_cells_snyder_values():
+    # values derived from Snyder (1987, USGS PP 1395) authalic-latitude formula, as quoted in the issue
+    a = geographic_cell_areas_m2(np.array([0.0, 1.0]), 1.0)[0] / 1e6
+    b = geographic_cell_areas_m2(np.array([60.0, 61.0]), 1.0)[0] / 1e6
+    assert a == pytest.approx(12308.5, abs=0.05)
+    assert b == pytest.approx(6123.1, abs=0.05)
+    # cross-check: pyproj.Geod (Karney 2013) on a densified cell polygon
+    assert a * 1e6 == pytest.approx(cell_polygon_area(0, 1, 0, 1), rel=1e-6)
+    assert b * 1e6 == pytest.approx(cell_polygon_area(0, 1, 60, 61), rel=1e-6)
+
+
+def test_global_grid_sums_to_wgs84_surface():
+    # WGS84 ellipsoid surface area 510,065,622 km2 (e.g. NGA TR8350.2 derived constants, from memory)
+    lon = np.arange(-179.5, 180, 1.0)
+    lat = np.arange(-89.5, 90, 1.0)
+    g = describe_grid(lon, lat, "EPSG:4326")
+    assert cell_areas_m2(g).sum() / 1e6 == pytest.approx(510_065_622, rel=1e-6)
+
+
+def test_projected_cell_areas_are_ellipsoidal():
+    # UTM is conformal, not equal-area: true cell areas differ from dx*dy by the scale factor squared
+    crs = CRS.from_epsg(32631)
+    x = 300000 + 10000 * (np.arange(6) + 0.5)
+    y = 5000000 + 10000 * (np.arange(4) + 0.5)
+    g = describe_grid(x, y, crs)
+    A = cell_areas_m2(g)
+    tr = Transformer.from_crs(crs, "EPSG:4326", always_xy=True)
+    # reference: pyproj.Geod on the cell outline densified in UTM and mapped to lon/lat
+    i, j = 1, 2  # normalised row 1 (north first), column 2
+    x0, x1 = g.xmin + j * g.dx, g.xmin + (j + 1) * g.dx
+    y1, y0 = g.ymax - i * g.dy, g.ymax - (i + 1) * g.dy
+    n = 200
+    xs = np.concatenate([np.linspace(x0, x1, n), np.full(n, x1), np.linspace(x1, x0, n), np.full(n, x0)])
+    ys = np.concatenate([np.full(n, y0), np.linspace(y0, y1, n), np.full(n, y1), np.linspace(y1, y0, n)])
+    lo, la = tr.transform(xs, ys)
+    ref = abs(GEOD.polygon_area_perimeter(lo, la)[0])
+    assert A[i, j] == pytest.approx(ref, rel=1e-6)
+    assert abs(A[i, j] / 1e8 - 1) > 1e-5  # not the planar area (4.7e-5 off here, 47x the tolerance)
+
+
+def test_equal_area_crs_keeps_planar_area():
+    crs = CRS.from_proj4("+proj=laea +lat_0=45 +lon_0=10 +ellps=WGS84 +units=m")
+    g = describe_grid(np.arange(5) * 1000.0, np.arange(3) * 1000.0, crs)
+    np.testing.assert_allclose(cell_areas_m2(g), 1e6)
+
+
+def test_irregular_grid_refused():
+    with pytest.raises(GridError, match="irregular"):
+        describe_grid(np.array([0, 1, 2, 4.0]), np.array([0, 1.0]), "EPSG:4326")
+
+
+# --------------------------------------------------------------------------- coverage
+def test_cell_ids_follow_file_order():
+    # a basin covering exactly one cell must land on that cell, whatever the file's orientation
+    lon = np.arange(0.5, 5, 1.0)
+    lat = np.arange(10.5, 14, 1.0)
+    poly = shapely.box(2, 12, 3, 13)  # cell lon 2.5, lat 12.5
+    for lat_order in (lat, lat[::-1]):
+        for lon_order in (lon, np.mod(lon - 3, 360)):
+            g = describe_grid(lon_order, lat_order, "EPSG:4326")
+            m = coverage_matrix(g, [poly if lon_order is lon else shapely.affinity.translate(poly, -3)])
+            (idx,) = m.indices
+            r, c = divmod(int(idx), lon.size)
+            assert lat_order[r] == 12.5
+            assert (lon_order[c] if lon_order is lon else (lon_order[c] + 3) % 360) == 2.5
+            assert m.data[0] == pytest.approx(1.0)
+
+
+def random_star(rng, cx, cy, radius, n=14):
+    th = np.sort(rng.uniform(0, 2 * np.pi, n))
+    r = radius * rng.uniform(0.45, 1.0, n)
+    return shapely.Polygon(np.c_[cx + r * np.cos(th), cy + r * np.sin(th)]).buffer(0)
+
+
+def test_exactextract_and_shapely_engines_agree():
+    rng = np.random.default_rng(3)
+    lon = np.arange(-4.95, 5, 0.1)
+    lat = np.arange(40.05, 45, 0.1)
+    g = describe_grid(lon, lat[::-1], "EPSG:4326")
+    polys = [random_star(rng, rng.uniform(-3, 3), rng.uniform(41, 44), 0.8) for _ in range(5)]
+    polys.append(shapely.MultiPolygon([shapely.box(-4, 41, -3.5, 41.5), shapely.box(3, 43, 3.3, 43.4)]))
+    polys.append(shapely.box(-2, 41, 2, 44).difference(shapely.box(-1, 42, 1, 43)))  # a hole
+    a = coverage_matrix(g, polys, engine="exactextract").toarray()
+    b = coverage_matrix(g, polys, engine="shapely").toarray()
+    np.testing.assert_allclose(a, b, atol=1e-9)
+
+
+@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(lat=st.sampled_from([-62.0, -30.0, 0.0, 25.0, 48.0, 71.0]), seed=st.integers(0, 10_000),
+       radius=st.floats(0.8, 3.0))
+def test_basin_area_matches_geodesic_area(lat, seed, radius):
+    # reference: pyproj.Geod geodesic polygon area (Karney 2013), edges densified in lon/lat
+    rng = np.random.default_rng(seed)
+    poly = random_star(rng, 10.0, lat, radius)
+    res = 0.1
+    lon_c = np.arange(10 - 4 + res / 2, 10 + 4, res)
+    lat_c = np.arange(lat - 4 + res / 2, lat + 4, res)
+    g = describe_grid(lon_c, lat_c, "EPSG:4326")
+    ref = geod_area_lonlat(poly)
+    w = build_weights(g, [poly], ["b"], [ref])
+    assert w.matrix.nnz >= 100
+    assert w.covered_area_m2[0] == pytest.approx(ref, rel=1e-3)
+
+
+# --------------------------------------------------------------------------- zonal means
+@pytest.fixture(scope="module")
+def stack():
+    rng = np.random.default_rng(11)
+    res = 0.05
+    lon = np.round(np.arange(-3 + res / 2, 3, res), 6)
+    lat = np.round(np.arange(20 + res / 2, 27, res), 6)
+    T = 6
+    LON, LAT = np.meshgrid(lon, lat)
+    data = np.stack([np.sin(LON + t) + 0.3 * LAT + rng.normal(0, 0.1, LAT.shape) for t in range(T)])
+    polys = [random_star(rng, rng.uniform(-2, 2), rng.uniform(21.5, 25.5), rng.uniform(0.3, 1.4)) for _ in range(8)]
+    return lon, lat, data, polys
+
+
+def _exactextract_weighted(lon, lat, data, polys, weight_raster):
+    import geopandas as gpd
+    from exactextract import exact_extract
+    from exactextract.raster import NumPyRasterSource
+
+    res = lon[1] - lon[0]
+    ext = (lon[0] - res / 2, lat[0] - res / 2, lon[-1] + res / 2, lat[-1] + res / 2)
+    gdf = gpd.GeoDataFrame({"i": range(len(polys))}, geometry=polys, crs="EPSG:4326")
+    out = []
+    for t in range(data.shape[0]):
+        v = NumPyRasterSource(data[t][::-1].copy(), *ext, srs_wkt=CRS.from_epsg(4326).to_wkt())
+        w = NumPyRasterSource(weight_raster[::-1].copy(), *ext, srs_wkt=CRS.from_epsg(4326).to_wkt())
+        r = exact_extract(v, gdf, "weighted_mean", weights=w, output="pandas")
+        out.append(r["weighted_mean"].to_numpy())
+    return np.array(out).T
+
+
+def test_means_match_exactextract_weighted_mean(stack):
+    # reference: exactextract (PyPI) weighted_mean with wbexplore's ellipsoidal cell areas as its weight raster
+    lon, lat, data, polys = stack
+    g = describe_grid(lon, lat, "EPSG:4326")
+    area_rows = cell_areas_m2(g)[::-1]  # file order (south first)
+    w = build_weights(g, polys, [f"b{i}" for i in range(len(polys))], [geod_area_lonlat(p) for p in polys])
+    ours, vf = apply_weights_numpy(data, w)
+    ref = _exactextract_weighted(lon, lat, data, polys, area_rows)
+    np.testing.assert_allclose(ours, ref, rtol=1e-6)
+    np.testing.assert_allclose(vf, 1.0, atol=2e-3)
+
+
+def test_spherical_and_unweighted_means_differ(stack):
+    """Show the size of two common shortcuts against area-true means."""
+    lon, lat, data, polys = stack
+    g = describe_grid(lon, lat, "EPSG:4326")
+    ells = cell_areas_m2(g)[::-1]
+    # exactextract's area_spherical_m2 uses a sphere of radius 6378137 m
+    R = 6378137.0
+    dl = np.radians(lon[1] - lon[0])
+    edges = np.radians(np.r_[lat - 0.025, lat[-1] + 0.025])
+    sph = np.broadcast_to((R * R * dl * np.diff(np.sin(edges)))[:, None], ells.shape)
+    a = _exactextract_weighted(lon, lat, data[:1], polys, ells)
+    b = _exactextract_weighted(lon, lat, data[:1], polys, np.ascontiguousarray(sph))
+    rel = np.max(np.abs(a - b) / np.abs(a))
+    assert 0 < rel < 1e-4  # sphere vs ellipsoid: shape of the weights barely changes
+    # a basin spanning 5 degrees of latitude: unweighted-by-area mean vs area-true mean of a field = latitude
+    tall = shapely.box(-1, 21, 1, 26)
+    w = build_weights(g, [tall], ["t"], [geod_area_lonlat(tall)])
+    LAT = np.broadcast_to(lat[:, None], (lat.size, lon.size))[None]
+    true_mean, _ = apply_weights_numpy(LAT, w)
+    plain = LAT[0][(lat > 21) & (lat < 26)].mean()
+    diff = plain - true_mean[0, 0]
+    # reference: on a sphere the area-true mean of latitude over 21..26 N is
+    # int(phi cos phi) / int(cos phi) (scipy.integrate.quad); the ellipsoid changes it by < 1%
+    from scipy.integrate import quad
+
+    phi0, phi1 = np.radians(21), np.radians(26)
+    sph_mean = np.degrees(quad(lambda p: p * np.cos(p), phi0, phi1)[0] / quad(np.cos, phi0, phi1)[0])
+    assert diff == pytest.approx(23.5 - sph_mean, rel=0.03)  # about 0.016 degree of latitude
+    assert diff > 0.01
+
+
+def test_orientation_invariance_and_nan_renormalisation(stack):
+    lon, lat, data, polys = stack
+    ids = [f"b{i}" for i in range(len(polys))]
+    areas = [geod_area_lonlat(p) for p in polys]
+    g1 = describe_grid(lon, lat, "EPSG:4326")
+    m1, _ = apply_weights_numpy(data, build_weights(g1, polys, ids, areas))
+    g2 = describe_grid(np.mod(lon, 360.0)[np.argsort(np.mod(lon, 360))], lat[::-1], "EPSG:4326")
+    d2 = data[:, ::-1, :][:, :, np.argsort(np.mod(lon, 360))]
+    m2, _ = apply_weights_numpy(d2, build_weights(g2, polys, ids, areas))
+    np.testing.assert_allclose(m1, m2, rtol=1e-12)
+    # NaN cells drop out; a field constant on valid cells keeps its value, valid_fraction falls
+    field = np.full(data.shape, 7.0)
+    field[:, :, : lon.size // 2] = np.nan
+    w = build_weights(g1, polys, ids, areas)
+    m, vf = apply_weights_numpy(field, w)
+    ok = np.isfinite(m)
+    np.testing.assert_allclose(m[ok], 7.0)
+    assert (vf < 0.999).any() and (vf > 0).any()
+
+
+def test_dask_equals_numpy(stack):
+    lon, lat, data, polys = stack
+    g = describe_grid(lon, lat, "EPSG:4326")
+    w = build_weights(g, polys, [f"b{i}" for i in range(len(polys))], [geod_area_lonlat(p) for p in polys])
+    da = xr.DataArray(data, dims=("time", "y", "x"), coords={"time": np.arange(data.shape[0])})
+    ref = zonal_mean(da, w)
+    lazy = zonal_mean(da.chunk({"time": 2}), w)
+    import dask.array as dsa
+
+    assert isinstance(lazy["mean"].data, dsa.Array)
+    xr.testing.assert_allclose(lazy.compute(), ref, rtol=1e-13)
+
+
+@pytest.mark.cluster
+def test_local_cluster_equals_local(tmp_path, demo_dir):
+    from distributed import Client, LocalCluster
+
+    from wbexplore.pipeline import CoverageWarning, extract
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", CoverageWarning)
+        warnings.simplefilter("ignore", ResourceWarning)
+        warnings.simplefilter("ignore", DeprecationWarning)
+        local = extract(demo_dir / "catalog.yaml", sources=["kestrel", "tansy", "cairn"], cache_dir=tmp_path)
+        with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cl, \
+                Client(cl) as client:
+            dist = extract(demo_dir / "catalog.yaml", sources=["kestrel", "tansy", "cairn"], client=client,
+                           cache_dir=tmp_path)
+    for v in ("kestrel", "tansy", "cairn"):
+        np.testing.assert_allclose(dist[v].values, local[v].values, rtol=1e-12, equal_nan=True)
+
+
+# --------------------------------------------------------------------------- cache and bad input
+def test_weights_cache_is_keyed_by_geometry(tmp_path):
+    from utils import box_basins, lonlat_grid, monthly, write_catalog, write_nc
+    from wbexplore.pipeline import extract
+
+    lon, lat = lonlat_grid(0, 4, 0, 4, 0.25)
+    write_nc(tmp_path / "p.nc", np.ones((3, lat.size, lon.size)), lon, lat, monthly("2001-01", 3), var="p",
+             units="mm")
+    box_basins(tmp_path / "basins.geojson", [(1, 1, 2, 2)])
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.nc", "variable": "p"}])
+    cache = tmp_path / "cache"
+    a = extract(cat, cache_dir=cache)
+    assert len(list(cache.glob("*.npz"))) == 1
+    box_basins(tmp_path / "basins.geojson", [(1, 1, 3, 3)])  # the basin file changes
+    b = extract(cat, cache_dir=cache)
+    assert len(list(cache.glob("*.npz"))) == 2
+    assert float(b.basin_area_km2[0]) == pytest.approx(4 * float(a.basin_area_km2[0]), rel=2e-3)
+
+
+def test_basin_outside_grid_refused(tmp_path, capsys):
+    from utils import box_basins, lonlat_grid, monthly, write_catalog, write_nc
+    from wbexplore.cli import main
+
+    lon, lat = lonlat_grid(0, 4, 0, 4, 0.5)
+    write_nc(tmp_path / "p.nc", np.ones((3, lat.size, lon.size)), lon, lat, monthly("2001-01", 3), var="p",
+             units="mm")
+    box_basins(tmp_path / "basins.geojson", [(1, 1, 2, 2), (20, 20, 21, 21)], ids=["in", "far"])
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.nc", "variable": "p"}])
+    rc = main(["extract", str(cat), "--out", str(tmp_path / "o.nc"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "basin 'far'" in err and "outside" in err and "p.nc" in err
+    assert not (tmp_path / "o.nc").exists()
+
+
+def test_scheduler_that_does_not_answer(tmp_path, capsys):
+    from utils import box_basins, lonlat_grid, monthly, write_catalog, write_nc
+    from wbexplore.cli import main
+
+    lon, lat = lonlat_grid(0, 4, 0, 4, 0.5)
+    write_nc(tmp_path / "p.nc", np.ones((3, lat.size, lon.size)), lon, lat, monthly("2001-01", 3), var="p",
+             units="mm")
+    box_basins(tmp_path / "basins.geojson", [(1, 1, 2, 2)])
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.nc", "variable": "p"}])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        rc = main(["extract", str(cat), "--out", str(tmp_path / "o.nc"), "--quiet",
+                   "--scheduler", "tcp://127.0.0.1:1"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "tcp://127.0.0.1:1" in err and "does not answer" in err
+    assert not (tmp_path / "o.nc").exists()
+
+
+def test_extract_cli_writes_canonical_netcdf(demo_dir, tmp_path, capsys):
+    from wbexplore.cli import main
+
+    out = tmp_path / "series.nc"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["extract", str(demo_dir / "catalog.yaml"), "--out", str(out), "--quiet"]) == 0
+    ds = xr.open_dataset(out)
+    assert ds["kestrel"].dims == ("basin", "time")
+    assert ds["kestrel"].attrs["units"] == "mm/month" and ds["kestrel"].attrs["component"] == "P"
+    assert ds["quarry"].attrs["units"] == "mm"
+    assert "valid_fraction_fennel" in ds and "basin_area_km2" in ds.coords
+    assert "history" in ds.attrs and "method" in ds.attrs
+    ds.close()
