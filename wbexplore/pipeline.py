@@ -224,7 +224,7 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta) -> xr.Dataset:
         months.update(pd.DatetimeIndex(zm["time"].values))
     q = None
     if cat.discharge is not None:
-        q = read_discharge(cat.discharge, gdf["area_km2"]).reindex(basin=gdf.index.values)
+        q = read_discharge(cat.discharge, load_basins(cat)["area_km2"]).reindex(basin=gdf.index.values)
         months.update(pd.DatetimeIndex(q["time"].values))
     full = pd.date_range(min(months), max(months), freq="MS") if months else pd.DatetimeIndex([])
     ds = xr.Dataset(coords={"basin": ("basin", gdf.index.values.astype(str)), "time": ("time", full)})

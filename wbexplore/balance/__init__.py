@@ -3,7 +3,7 @@
 from .closure import (UNIT_SYSTEMS, Selection, SelectionResult, component_terms, compute_selection, to_unit_system,
                       with_ensembles)
 from .collocation import triple_collocation
-from .combos import best_selection, rank, rank_all
+from .combos import best_selection, long_term_all, rank, rank_all
 from .correction import constrained_correction, correct_frame
 from .lag import discharge_lag
 from .metrics import METRICS, compute_metrics, kge, kge_prime, nse, pbias
@@ -12,7 +12,7 @@ from .unknown import by_difference
 
 __all__ = [
     "Selection", "SelectionResult", "compute_selection", "component_terms", "to_unit_system", "UNIT_SYSTEMS",
-    "with_ensembles", "rank", "rank_all", "best_selection", "METRICS", "compute_metrics", "kge", "kge_prime", "nse",
+    "with_ensembles", "rank", "rank_all", "best_selection", "long_term_all", "METRICS", "compute_metrics", "kge", "kge_prime", "nse",
     "pbias", "METHODS", "storage_change", "match_window", "fill_gaps", "window_closure", "by_difference",
     "constrained_correction", "correct_frame", "triple_collocation", "discharge_lag",
 ]

@@ -12,7 +12,7 @@ from .closure import (ENSEMBLE_PREFIX, Selection, _basin_index, _valid, month_la
 from .metrics import METRICS, check_metric, compute_metrics, sort_key
 from .storage import METHODS, match_window, storage_change
 
-__all__ = ["rank", "rank_all", "combination_terms"]
+__all__ = ["rank", "rank_all", "combination_terms", "best_selection", "long_term_all"]
 
 
 def _stack(ds, ids, b, min_vf):
@@ -124,3 +124,31 @@ def best_selection(ds: xr.Dataset, basin: str, **kwargs) -> Selection:
     return Selection(basin=basin, P=row["P"], ET=row["ET"], TWSA=row["TWSA"], start=kwargs.get("start"),
                      end=kwargs.get("end"), storage_change=kwargs.get("storage_change", "central"),
                      matched=kwargs.get("matched", True), lag=kwargs.get("lag", 0))
+
+
+def long_term_all(ds: xr.Dataset, template: Selection) -> pd.DataFrame:
+    """Long-term means over complete years of P - ET, Q and dS (mm/year) for every basin with the
+    sources of ``template`` (one row per basin; basins without complete years get NaN)."""
+    from .closure import compute_selection
+
+    rows = []
+    for b in ds["basin"].values:
+        sel = template.replace(basin=str(b))
+        try:
+            res = compute_selection(ds, sel, min_valid=1)
+        except InputError:
+            continue
+        f = res.frame
+        t = pd.DatetimeIndex(f.index)
+        wy = water_year(t, sel.water_year_start)
+        tot = []
+        for y in np.unique(wy):
+            m = wy == y
+            if m.sum() == 12 and f["valid"].values[m].all():
+                tot.append((f["P"].values[m].sum() - f["ET"].values[m].sum(), f["Q"].values[m].sum(),
+                            f["dS"].values[m].sum()))
+        arr = np.array(tot) if tot else np.full((1, 3), np.nan)
+        rows.append({"basin": str(b), "name": res.basin_name, "area_km2": res.area_km2,
+                     "P_minus_ET": float(np.mean(arr[:, 0])), "Q": float(np.mean(arr[:, 1])),
+                     "dS": float(np.mean(arr[:, 2])), "years": len(tot)})
+    return pd.DataFrame(rows)

@@ -1,0 +1,281 @@
+"""The explorer page: controls that write to one `ClosureState`, views that read from it.
+
+``explore(catalog_or_path)`` returns the app for a JupyterLab cell; ``serve(catalog)`` serves
+the same app as a web page (panel serve). A catalog that fails validation shows its message
+in the page instead of a traceback.
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..errors import InputError
+from ..io.writers import CAUTION
+from . import views
+from .state import ClosureState
+
+__all__ = ["Explorer", "explore", "serve", "load_state"]
+
+_DEPS = ("basin", "P", "ET", "TWSA", "period", "storage_change", "matched", "unit_system", "metric")
+
+
+def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureState:
+    """Open a catalog, extract (or reuse cached) series and build the shared state."""
+    from ..io.catalog import open_catalog
+    from ..pipeline import CoverageWarning, load_basins, load_series
+
+    if hasattr(catalog, "data_vars"):  # already a canonical Dataset
+        return ClosureState(catalog)
+    cat = open_catalog(catalog)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", CoverageWarning)  # shown per basin in the page instead
+        ds = load_series(cat, cache_dir=cache_dir, progress=progress)
+    return ClosureState(ds, basins=load_basins(cat), catalog_path=str(cat.path))
+
+
+class Explorer:
+    """Widgets and views around one `ClosureState`."""
+
+    def __init__(self, state: ClosureState, *, export_dir: str | os.PathLike | None = None):
+        import panel as pn
+
+        self.state = state
+        s = state
+        self.export_dir = Path(export_dir) if export_dir else (
+            Path(s.catalog_path).parent / "exports" if s.catalog_path else Path.cwd() / "exports")
+        names = s.series["basin_name"].values if "basin_name" in s.series.coords else s.param.basin.objects
+        self._basin_opts = {f"{b} - {n}": b for b, n in zip(s.param.basin.objects, names)}
+        self.w_basin = pn.widgets.Select(name="Basin", options=self._basin_opts, value=s.basin, width=260)
+        self.w_search = pn.widgets.AutocompleteInput(name="Find basin", options=list(self._basin_opts),
+                                                     case_sensitive=False, search_strategy="includes",
+                                                     min_characters=1, placeholder="type an id or a name", width=260)
+        self.w_src = {}
+        for comp in ("P", "ET", "TWSA"):
+            opts = {f"{s.labels.get(i, i)} [{i}]": i for i in getattr(s.param, comp).objects}
+            self.w_src[comp] = pn.widgets.Select(name=getattr(s.param, comp).label, options=opts,
+                                                 value=getattr(s, comp), width=260)
+        m = s.months
+        self.w_period = pn.widgets.DateRangeSlider(name="Period", start=m[0].to_pydatetime(), end=m[-1].to_pydatetime(),
+                                                   value=(m[s.period[0]].to_pydatetime(), m[s.period[1]].to_pydatetime()),
+                                                   step=1, format="%Y-%m", width=260)
+        self.w_method = pn.widgets.RadioButtonGroup(name="Storage change", options=list(s.param.storage_change.objects),
+                                                    value=s.storage_change, width=260)
+        self.w_matched = pn.widgets.Checkbox(name="window-matched fluxes", value=s.matched)
+        self.w_units = pn.widgets.RadioButtonGroup(name="Units", options={"mm/month": "mm", "m3": "m3", "m3/s": "m3/s"},
+                                                   value=s.unit_system, width=260)
+        self.w_metric = pn.widgets.Select(name="Rank by", options=list(s.param.metric.objects), value=s.metric, width=260)
+        self.w_best = pn.widgets.Button(name="Best combination", button_type="primary", width=260)
+        self._wire()
+        self.table = pn.widgets.Tabulator(self._rank_view(), disabled=True, show_index=False, height=330,
+                                          sizing_mode="stretch_width", selectable=False,
+                                          css_classes=["wbx-ranking"])
+        self.table.on_click(self._on_row)
+        self.w_export_dir = pn.widgets.TextInput(name="Export folder", value=str(self.export_dir), width=260)
+        self.w_export = pn.widgets.Button(name="Export selection + CSV", button_type="success", width=260)
+        self.w_export.on_click(self._on_export)
+        self.export_msg = pn.pane.Markdown("", css_classes=["wbx-export-msg"], width=260)
+        self.w_download = pn.widgets.FileDownload(callback=self._csv_bytes, filename="series.csv",
+                                                  label="Download series CSV", width=260, button_type="light")
+        s.param.watch(self._refresh_table, list(_DEPS))
+        s.param.watch(lambda e: setattr(self.w_download, "filename", self._csv_name()), ["basin", "P", "ET", "TWSA"])
+
+    # ----------------------------------------------------------------- wiring widgets <-> state
+    def _wire(self):
+        s = self.state
+        self.w_basin.param.watch(lambda e: setattr(s, "basin", e.new), "value")
+        s.param.watch(lambda e: setattr(self.w_basin, "value", e.new), "basin")
+
+        def on_search(e):
+            if e.new in self._basin_opts:
+                s.basin = self._basin_opts[e.new]
+
+        self.w_search.param.watch(on_search, "value")
+        for comp, w in self.w_src.items():
+            w.param.watch(lambda e, c=comp: setattr(s, c, e.new), "value")
+            s.param.watch(lambda e, w=w: setattr(w, "value", e.new), comp)
+
+        def on_period(e):
+            lo, hi = (pd.Timestamp(v).to_period("M").to_timestamp() for v in e.new)
+            i0 = int(np.clip(s.months.searchsorted(lo), 0, len(s.months) - 1))
+            i1 = int(np.clip(s.months.searchsorted(hi), 0, len(s.months) - 1))
+            s.period = (min(i0, i1), max(i0, i1))
+
+        self.w_period.param.watch(on_period, "value_throttled")
+        self.w_method.param.watch(lambda e: setattr(s, "storage_change", e.new), "value")
+        self.w_matched.param.watch(lambda e: setattr(s, "matched", e.new), "value")
+        self.w_units.param.watch(lambda e: setattr(s, "unit_system", e.new), "value")
+        self.w_metric.param.watch(lambda e: setattr(s, "metric", e.new), "value")
+        self.w_best.on_click(lambda e: s.select_best())
+
+    def _rank_view(self) -> pd.DataFrame:
+        r = self.state.ranking()
+        cols = ["rank", "P", "ET", "TWSA", "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid"]
+        metric = self.state.metric
+        if metric not in cols:
+            cols.insert(4, metric)
+        if not len(r):
+            return pd.DataFrame(columns=cols)
+        out = r[cols].copy()
+        out["rank"] = [str(v) if sc else "not scored" for v, sc in zip(r["rank"], r["scored"])]
+        for c in cols[4:]:
+            if c != "n_valid":
+                out[c] = out[c].astype(float).round(3)
+        return out
+
+    def _refresh_table(self, *events):
+        if any(e.name in ("basin", "period", "storage_change", "matched", "metric") for e in events):
+            self.table.value = self._rank_view()
+
+    def _on_row(self, event):
+        row = self.table.value.iloc[event.row]
+        self.state.param.update(P=row["P"], ET=row["ET"], TWSA=row["TWSA"])
+
+    def _csv_name(self):
+        s = self.state
+        return f"series_{s.basin}_{s.P}_{s.ET}_{s.TWSA}.csv"
+
+    def _csv_bytes(self):
+        from ..selection import _series_frame
+
+        f = _series_frame(self.state.result(), self.state.unit_system)
+        buf = io.StringIO()
+        buf.write(f"# {CAUTION}\n")
+        f.to_csv(buf, float_format="%.17g")
+        return io.BytesIO(buf.getvalue().encode())
+
+    def _on_export(self, event):
+        from ..selection import export_selection
+
+        s = self.state
+        folder = Path(self.w_export_dir.value)
+        try:
+            if not s.catalog_path:
+                raise InputError("export needs the explorer to be opened on a catalog file")
+            folder.mkdir(parents=True, exist_ok=True)
+            stem = f"selection_{s.basin}_{s.P}_{s.ET}_{s.TWSA}_{s.start}_{s.end}"
+            out = export_selection(s.catalog_path, s.selection(), folder / f"{stem}.yaml", overwrite=True,
+                                   series=str(folder / f"{stem}.csv"), unit_system=s.unit_system, ds=s.series)
+            self.export_msg.object = f"Wrote `{out['selection']}` and `{out['series']}`"
+        except (InputError, OSError) as exc:
+            self.export_msg.object = f"**Export failed:** {exc}"
+
+    # ----------------------------------------------------------------- views
+    def _bound(self, fn):
+        import panel as pn
+
+        s = self.state
+        return pn.bind(lambda *a: fn(), *[s.param[d] for d in _DEPS])
+
+    def _map(self):
+        import holoviews as hv
+
+        s = self.state
+        dmap = hv.DynamicMap(self._bound(lambda: views.basin_map(s.basins, s.basin_scores(), s.basin, s.metric)))
+        tap = hv.streams.Tap(source=dmap)
+
+        def on_tap(*_):
+            if tap.x is not None and tap.y is not None:
+                s.pick_basin_at(tap.x, tap.y)
+
+        tap.param.watch(on_tap, ["x", "y"])
+        self._tap = tap
+        return dmap
+
+    def panel(self):
+        """The page layout (a panel object)."""
+        import panel as pn
+
+        s = self.state
+        res = lambda: s.result()  # noqa: E731
+        bars = pn.pane.HoloViews(self._bound(lambda: views.component_bars(res(), s.unit_system)),
+                                 sizing_mode="stretch_width", css_classes=["wbx-bars"])
+        resid = pn.pane.HoloViews(self._bound(lambda: views.residual_series(res(), s.unit_system)),
+                                  sizing_mode="stretch_width", css_classes=["wbx-residual"])
+        scatter = pn.pane.HoloViews(self._bound(lambda: views.balance_scatter(res(), s.unit_system)),
+                                    sizing_mode="stretch_width", css_classes=["wbx-scatter"])
+        summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric)),
+                               css_classes=["wbx-summary-pane"], width=260)
+        warn = pn.pane.Markdown(self._bound(lambda: "\n".join(f"- {w}" for w in views.warnings_for(res(), s.series))
+                                            or "No warnings for this selection."),
+                                css_classes=["wbx-warnings"], width=260)
+        multi = pn.pane.HoloViews(self._bound(lambda: views.multi_basin(s.multi_basin())),
+                                  sizing_mode="stretch_width", css_classes=["wbx-multi"])
+        controls = pn.Column(
+            pn.pane.Markdown("### Selection"), self.w_basin, self.w_search, self.w_src["P"], self.w_src["ET"],
+            self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
+            self.w_matched, pn.pane.Markdown("Units"), self.w_units, self.w_metric, self.w_best,
+            pn.pane.Markdown("### Summary"), summary, warn,
+            pn.pane.Markdown("### Export"), self.w_export_dir, self.w_export, self.export_msg, self.w_download,
+            width=290)
+        views_col = pn.Column(
+            pn.Row(pn.pane.HoloViews(self._map(), sizing_mode="stretch_width", css_classes=["wbx-map"]), bars,
+                   sizing_mode="stretch_width"),
+            resid,
+            pn.Row(scatter, multi, sizing_mode="stretch_width"),
+            pn.pane.Markdown("### Every combination for this basin and period (click a row to select it)"),
+            self.table,
+            sizing_mode="stretch_width")
+        header = pn.pane.Markdown(
+            f"## wbexplore: water-balance closure\n*{CAUTION}*", sizing_mode="stretch_width",
+            css_classes=["wbx-header"])
+        return pn.Column(header, pn.Row(controls, views_col, sizing_mode="stretch_width"),
+                         sizing_mode="stretch_width")
+
+    def __panel__(self):
+        return self.panel()
+
+
+def _error_page(message: str):
+    import panel as pn
+
+    return pn.Column(pn.pane.Markdown("## wbexplore"),
+                     pn.pane.Alert(f"**The catalog could not be opened.** {message}", alert_type="danger",
+                                   css_classes=["wbx-error"]),
+                     pn.pane.Markdown(f"*{CAUTION}*"))
+
+
+def explore(catalog_or_path, *, cache_dir=None, export_dir=None):
+    """The explorer app for a JupyterLab cell (also works in a script with ``.servable()``).
+
+    Parameters
+    ----------
+    catalog_or_path : catalog path, `Catalog`, or canonical series (xarray.Dataset)
+    """
+    import panel as pn
+
+    if not pn.extension._loaded if hasattr(pn.extension, "_loaded") else False:  # pragma: no cover
+        pn.extension("tabulator")
+    try:
+        state = load_state(catalog_or_path, cache_dir=cache_dir)
+    except InputError as exc:
+        return _error_page(str(exc))
+    return Explorer(state, export_dir=export_dir).panel()
+
+
+def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool = False, cache_dir=None,
+          export_dir=None):
+    """Serve the explorer as a web page (blocks)."""
+    import panel as pn
+
+    pn.extension("tabulator")
+    try:  # extract once, before the first page is requested; each session gets its own state
+        base = load_state(catalog, cache_dir=cache_dir, progress=True)
+        err = None
+    except InputError as exc:
+        base, err = None, str(exc)
+
+    def page():
+        if err:
+            return _error_page(err)
+        st = ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path)
+        return Explorer(st, export_dir=export_dir).panel()
+
+    print(f"wbexplore explorer on http://{address}:{port}/  (Ctrl+C to stop)", flush=True)
+    pn.serve({"/": page}, port=port, address=address, show=show, title="wbexplore",
+             websocket_origin=[f"{address}:{port}", f"localhost:{port}", f"127.0.0.1:{port}"])

@@ -1,0 +1,151 @@
+"""The one shared state of the explorer (a `param.Parameterized`).
+
+Widgets write to it, views read from it, nothing else holds state. Every number it
+hands out comes from `wbexplore.balance` (memoised per selection, so switching back
+and forth costs nothing and never re-reads grids: the series are extracted once).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import param
+
+from ..balance import METHODS, METRICS, UNIT_SYSTEMS, Selection, compute_selection, long_term_all, rank
+from ..balance.closure import source_ids
+from ..errors import InputError
+
+__all__ = ["ClosureState"]
+
+
+class ClosureState(param.Parameterized):
+    """Basin, sources, period and options of the closure being explored."""
+
+    series = param.Parameter(precedence=-1, doc="canonical basin series (xarray.Dataset)")
+    basins = param.Parameter(precedence=-1, doc="basin outlines (GeoDataFrame, EPSG:4326)")
+    catalog_path = param.String(default="", precedence=-1)
+
+    basin = param.Selector(objects=[], doc="basin id")
+    P = param.Selector(objects=[], label="Precipitation (P)")
+    ET = param.Selector(objects=[], label="Evapotranspiration (ET)")
+    TWSA = param.Selector(objects=[], label="Storage anomaly (TWSA)")
+    period = param.Range(default=(0, 1), bounds=(0, 1), doc="first and last month index (inclusive)")
+    storage_change = param.Selector(objects=list(METHODS), default="central", label="Storage change")
+    matched = param.Boolean(default=True, label="Window-matched fluxes")
+    unit_system = param.Selector(objects=list(UNIT_SYSTEMS), default="mm", label="Units")
+    metric = param.Selector(objects=[m for m in METRICS if m != "n_valid"], default="rmse", label="Rank by")
+    min_valid = param.Integer(default=24, bounds=(1, None), precedence=-1)
+
+    def __init__(self, series, basins=None, **params):
+        super().__init__(series=series, basins=basins, **params)
+        self._memo: dict = {}
+        ids = [str(b) for b in series["basin"].values]
+        self.param.basin.objects = ids
+        labels = {}
+        for comp in ("P", "ET", "TWSA"):
+            opts = source_ids(series, comp)
+            if not opts:
+                raise InputError(f"the series hold no {comp} source")
+            getattr(self.param, comp).objects = opts
+            labels.update({s: str(series[s].attrs.get("long_name", s)) for s in opts})
+        self.labels = labels
+        n = series.sizes["time"]
+        self.months = pd.DatetimeIndex(series["time"].values)
+        self.param.period.bounds = (0, n - 1)
+        with param.parameterized.discard_events(self):
+            self.period = params.get("period", (0, n - 1))
+            self.basin = params.get("basin", ids[0])
+            for comp in ("P", "ET", "TWSA"):
+                if comp not in params:
+                    setattr(self, comp, getattr(self.param, comp).objects[0])
+        if "P" not in params:
+            self.select_best()
+
+    # ----------------------------------------------------------------- derived selection
+    @property
+    def start(self) -> str:
+        return f"{self.months[int(self.period[0])]:%Y-%m}"
+
+    @property
+    def end(self) -> str:
+        return f"{self.months[int(self.period[1])]:%Y-%m}"
+
+    def selection(self) -> Selection:
+        return Selection(basin=self.basin, P=self.P, ET=self.ET, TWSA=self.TWSA, start=self.start, end=self.end,
+                         storage_change=self.storage_change, matched=self.matched)
+
+    def _cached(self, key, fn):
+        if key not in self._memo:
+            if len(self._memo) > 512:
+                self._memo.clear()
+            self._memo[key] = fn()
+        return self._memo[key]
+
+    def result(self):
+        """`SelectionResult` of the current selection."""
+        sel = self.selection()
+        return self._cached(("result", sel, self.min_valid),
+                            lambda: compute_selection(self.series, sel, min_valid=self.min_valid))
+
+    def ranking(self) -> pd.DataFrame:
+        """All combinations for the basin and period, best first."""
+        key = ("rank", self.basin, self.start, self.end, self.storage_change, self.matched, self.metric, self.min_valid)
+
+        def run():
+            try:
+                return rank(self.series, self.basin, start=self.start, end=self.end,
+                            storage_change=self.storage_change, matched=self.matched, by=self.metric,
+                            min_valid=self.min_valid)
+            except InputError as exc:
+                df = pd.DataFrame(columns=["rank", "P", "ET", "TWSA", "scored", *METRICS])
+                df.attrs["message"] = str(exc)
+                return df
+
+        return self._cached(key, run)
+
+    def basin_scores(self) -> pd.Series:
+        """Best score of the ranking metric per basin (for the map)."""
+        key = ("scores", self.start, self.end, self.storage_change, self.matched, self.metric, self.min_valid)
+
+        def run():
+            out = {}
+            for b in self.param.basin.objects:
+                try:
+                    r = rank(self.series, b, start=self.start, end=self.end, storage_change=self.storage_change,
+                             matched=self.matched, by=self.metric, min_valid=self.min_valid)
+                    out[b] = float(r.iloc[0][self.metric]) if r.iloc[0]["scored"] else np.nan
+                except InputError:
+                    out[b] = np.nan
+            return pd.Series(out)
+
+        return self._cached(key, run)
+
+    def multi_basin(self) -> pd.DataFrame:
+        sel = self.selection()
+        return self._cached(("multi", sel.replace(basin="")), lambda: long_term_all(self.series, sel))
+
+    def select_best(self) -> None:
+        """Set P, ET and TWSA to the first-ranked combination for the basin and period."""
+        r = self.ranking()
+        if len(r) and bool(r.iloc[0]["scored"]):
+            self.param.update(P=r.iloc[0]["P"], ET=r.iloc[0]["ET"], TWSA=r.iloc[0]["TWSA"])
+
+    def pick_basin_at(self, lon: float, lat: float) -> str | None:
+        """The smallest basin containing a point (so nested basins stay clickable)."""
+        if self.basins is None:
+            return None
+        import shapely
+
+        pt = shapely.Point(lon, lat)
+        hits = [(row["area_km2"], bid) for bid, row in self.basins.iterrows() if row.geometry.covers(pt)]
+        if not hits:
+            return None
+        bid = str(min(hits)[1])
+        if bid in self.param.basin.objects:
+            self.basin = bid
+        return bid
+
+    def view_data(self) -> dict:
+        """Everything the views draw, computed from `balance/` (used by tests and benchmarks)."""
+        return {"result": self.result(), "ranking": self.ranking(), "scores": self.basin_scores(),
+                "multi": self.multi_basin()}

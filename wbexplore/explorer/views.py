@@ -1,0 +1,209 @@
+"""Views: pure drawing functions (holoviews, bokeh backend) of numbers computed in `balance/`.
+
+Nothing here computes a balance term: every function takes a `SelectionResult`, a ranking
+table or a per-basin table and draws it. Colours: the Okabe-Ito colour-blind-safe palette,
+one fixed colour per component throughout.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pandas as pd
+
+from ..balance.closure import to_unit_system
+
+if TYPE_CHECKING:  # pragma: no cover
+    import holoviews as hv
+
+__all__ = ["COLORS", "SEASON_COLORS", "UNIT_LABEL", "component_bars", "residual_series", "balance_scatter",
+           "basin_map", "multi_basin", "summary_html", "warnings_for", "explain"]
+
+COLORS = {"P": "#0072B2", "ET": "#009E73", "Q": "#56B4E9", "dS": "#CC79A7", "residual": "#D55E00",
+          "band": "#E69F00", "gap": "#BBBBBB"}
+SEASON_COLORS = {"DJF": "#0072B2", "MAM": "#009E73", "JJA": "#E69F00", "SON": "#CC79A7"}
+UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s"}
+GRAVIMETRY_MIN_KM2 = 200_000  # rule of thumb for satellite-gravimetry storage (e.g. Longuevergne et al. 2010, WRR)
+
+
+def _hv():
+    import holoviews as hv
+
+    if not hv.Store.current_backend or "bokeh" not in hv.Store.renderers:
+        hv.extension("bokeh", logo=False)
+    return hv
+
+
+def explain(message: str, *, title: str = ""):
+    """A placeholder view that says why there is nothing to draw."""
+    hv = _hv()
+    return hv.Text(0.5, 0.5, message).opts(xaxis=None, yaxis=None, toolbar=None, responsive=True, height=260, shared_axes=False,
+                                            title=title, fontsize={"text": 11}, show_frame=False)
+
+
+def component_bars(result, unit_system: str = "mm"):
+    """Period means of P (in), ET, Q, dS (out) and the residual."""
+    hv = _hv()
+    f = to_unit_system(result.frame, result.area_km2, unit_system)
+    ok = result.frame["valid"].values
+    if not ok.any():
+        return explain(result.messages[0] if result.messages else "no valid month", title="Component means")
+    rows = [(k, float(f.loc[ok, k].mean()), k) for k in ("P", "ET", "Q", "dS", "residual")]
+    df = pd.DataFrame(rows, columns=["term", "value", "color_key"])
+    df["color"] = df["color_key"].map(COLORS)
+    df["role"] = ["inflow", "outflow", "outflow", "storage", "imbalance"]
+    unit = UNIT_LABEL[unit_system]
+    bars = hv.Bars(df, kdims=["term"], vdims=["value", "color", "role"]).opts(
+        color="color", responsive=True, height=280, shared_axes=False, ylabel=f"mean over valid months ({unit})", xlabel="",
+        title=f"Component means, {result.n_valid} valid months", tools=["hover"], line_color=None)
+    return bars * hv.HLine(0).opts(color="black", line_width=1)
+
+
+def _runs(mask: np.ndarray):
+    idx = np.flatnonzero(mask)
+    if idx.size == 0:
+        return []
+    splits = np.flatnonzero(np.diff(idx) > 1) + 1
+    return [(r[0], r[-1]) for r in np.split(idx, splits)]
+
+
+def residual_series(result, unit_system: str = "mm"):
+    """Residual per month with a +/- 2 sigma band, gaps shaded, months beyond 2 sigma marked."""
+    hv = _hv()
+    f = to_unit_system(result.frame, result.area_km2, unit_system)
+    if not result.frame["valid"].any():
+        return explain(result.messages[0] if result.messages else "no valid month", title="Residual")
+    t = pd.DatetimeIndex(f.index)
+    unit = UNIT_LABEL[unit_system]
+    r = f["residual"].values
+    s = f["sigma_residual"].values
+    df = pd.DataFrame({"month": t, "residual": r, "lo": r - 2 * s, "hi": r + 2 * s})
+    band = hv.Area(df, "month", ["lo", "hi"], label="± 2 sigma").opts(color=COLORS["band"], alpha=0.3, line_width=0)
+    curve = hv.Curve(df, "month", "residual", label="residual").opts(color=COLORS["residual"], line_width=2,
+                                                                      tools=["hover"])
+    flag = result.frame["beyond_2sigma"].values
+    pts = hv.Scatter(df[flag], "month", "residual", label="beyond 2 sigma").opts(
+        color="black", marker="x", size=9, line_width=2)
+    gaps = ~result.frame["valid"].values
+    spans = [hv.VSpan(t[a] - pd.Timedelta(days=15), t[b] + pd.Timedelta(days=15)).opts(
+        color=COLORS["gap"], alpha=0.45, line_width=0) for a, b in _runs(gaps)]
+    overlay = band * curve * pts * hv.HLine(0).opts(color="black", line_width=1)
+    for sp in spans:
+        overlay = overlay * sp
+    sel = result.selection
+    return overlay.opts(responsive=True, height=300, shared_axes=False, ylabel=f"P - ET - Q - dS ({unit})", xlabel="month",
+                        title=f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)", legend_position="top_left",
+                        show_grid=True)
+
+
+def _season(month: np.ndarray) -> np.ndarray:
+    return np.array(["DJF", "DJF", "MAM", "MAM", "MAM", "JJA", "JJA", "JJA", "SON", "SON", "SON", "DJF"])[month - 1]
+
+
+def balance_scatter(result, unit_system: str = "mm"):
+    """P - ET - dS against gauged Q: months coloured by season, complete years as large marks, 1:1 line."""
+    hv = _hv()
+    fr = result.frame
+    if not fr["valid"].any():
+        return explain(result.messages[0] if result.messages else "no valid month", title="Balance vs gauge")
+    f = to_unit_system(fr, result.area_km2, unit_system)
+    ok = fr["valid"].values
+    t = pd.DatetimeIndex(f.index)
+    df = pd.DataFrame({"Q": f["Q"].values, "Qhat": f["Qhat"].values, "season": _season(t.month.values),
+                       "month": [f"{m:%Y-%m}" for m in t]})[ok]
+    unit = UNIT_LABEL[unit_system]
+    pts = hv.Scatter(df, "Q", ["Qhat", "season", "month"]).opts(
+        color="season", cmap=SEASON_COLORS, size=5, alpha=0.8, tools=["hover"], legend_position="bottom_right")
+    years = t.year.values
+    ann = []
+    for y in np.unique(years):
+        m = (years == y)
+        if m.sum() == 12 and ok[m].all():
+            ann.append((y, fr["Q"].values[m].sum(), fr["Qhat"].values[m].sum()))
+    overlay = pts
+    lim = [float(np.nanmin(df[["Q", "Qhat"]].values)), float(np.nanmax(df[["Q", "Qhat"]].values))]
+    if ann:
+        a = pd.DataFrame(ann, columns=["year", "Q", "Qhat"])
+        # annual totals drawn on the monthly axes as monthly means, so both share one scale
+        a_mm = a.assign(Q=a["Q"] / 12, Qhat=a["Qhat"] / 12)
+        if unit_system != "mm":
+            scale = float(np.nanmedian(f["Q"].values[ok] / fr["Q"].values[ok]))
+            a_mm = a_mm.assign(Q=a_mm["Q"] * scale, Qhat=a_mm["Qhat"] * scale)
+        overlay = overlay * hv.Scatter(a_mm, "Q", ["Qhat", "year"], label="year (mean month)").opts(
+            color="black", marker="square", size=11, fill_alpha=0.15, line_width=1.5, tools=["hover"])
+        lim = [min(lim[0], a_mm[["Q", "Qhat"]].values.min()), max(lim[1], a_mm[["Q", "Qhat"]].values.max())]
+    line = hv.Curve([(lim[0], lim[0]), (lim[1], lim[1])], label="1:1").opts(color="grey", line_dash="dashed")
+    m = result.metrics
+    title = f"KGE {m['kge']:.2f}  NSE {m['nse']:.2f}  r {m['r']:.2f}  PBIAS {m['pbias']:.1f}%"
+    return (overlay * line).opts(responsive=True, height=320, shared_axes=False, xlabel=f"gauged Q ({unit})",
+                                 ylabel=f"P - ET - dS ({unit})", title=title, show_grid=True)
+
+
+def basin_map(basins, scores: pd.Series, selected: str | None = None, metric: str = "rmse"):
+    """Basin outlines on lon/lat axes (no tiles) coloured by their best closure score; the selected one outlined."""
+    hv = _hv()
+    polys = []
+    order = basins.sort_values("area_km2", ascending=False)  # small (nested) basins drawn last, on top
+    for bid, row in order.iterrows():
+        geoms = getattr(row.geometry, "geoms", [row.geometry])
+        for g in geoms:
+            x, y = g.exterior.coords.xy
+            polys.append({"x": np.asarray(x), "y": np.asarray(y), "basin": str(bid), "name": row["name"],
+                          "score": float(scores.get(bid, np.nan)), "area_km2": float(row["area_km2"]),
+                          "lw": 3.0 if str(bid) == selected else 0.8})
+    p = hv.Polygons(polys, vdims=["score", "basin", "name", "area_km2", "lw"]).opts(
+        color="score", cmap="viridis_r" if metric in ("rmse", "mae", "annual_rmse") else "viridis",
+        colorbar=True, clabel=f"best {metric}", line_color="black", line_width="lw", alpha=0.85,
+        tools=["hover", "tap"], responsive=True, height=360, shared_axes=False, xlabel="longitude (deg E)", ylabel="latitude (deg N)",
+        title="Basins (click to select)", data_aspect=1, nonselection_alpha=0.85)
+    return p
+
+
+def multi_basin(table: pd.DataFrame, unit: str = "mm/year"):
+    """Long-term P - ET against Q for every basin with the chosen combination."""
+    hv = _hv()
+    if table.empty or table[["P_minus_ET", "Q"]].isna().all().all():
+        return explain("no basin has complete years for this combination", title="All basins")
+    lim = [0.0, float(np.nanmax(table[["P_minus_ET", "Q"]].values)) * 1.1]
+    pts = hv.Scatter(table, "Q", ["P_minus_ET", "basin", "name", "years"]).opts(
+        size=10, color=COLORS["P"], tools=["hover"])
+    labels = hv.Labels(table, ["Q", "P_minus_ET"], "basin").opts(text_font_size="9pt", yoffset=lim[1] * 0.03)
+    line = hv.Curve([(lim[0], lim[0]), (lim[1], lim[1])]).opts(color="grey", line_dash="dashed")
+    return (pts * labels * line).opts(responsive=True, height=300, shared_axes=False, xlabel=f"gauged Q ({unit})",
+                                      ylabel=f"P - ET ({unit})", title="All basins, long-term means (complete years)",
+                                      show_grid=True)
+
+
+def warnings_for(result, series) -> list[str]:
+    """Reader-facing warnings for a selection (size vs storage resolution, coverage, gaps)."""
+    out = []
+    if np.isfinite(result.area_km2) and result.area_km2 < GRAVIMETRY_MIN_KM2:
+        out.append(f"Basin area {result.area_km2:,.0f} km2 is below the ~{GRAVIMETRY_MIN_KM2:,} km2 that satellite-"
+                   "gravimetry storage resolves (rule of thumb, e.g. Longuevergne et al. 2010): treat dS with care.")
+    f = result.frame
+    for comp in ("P", "ET", "TWSA"):
+        vf = f[f"valid_fraction_{comp}"].replace(0, np.nan).mean()
+        if np.isfinite(vf) and vf < 0.9:
+            out.append(f"{comp} product covers only {vf:.0%} of the basin on average.")
+    out.extend(m for m in result.messages if not m.startswith("uncertainty"))
+    return out
+
+
+def summary_html(result, *, metric: str = "rmse") -> str:
+    m = result.metrics
+    sel = result.selection
+
+    def fmt(v, spec):
+        return "n/a" if v is None or not np.isfinite(v) else format(v, spec)
+
+    rows = [("relative imbalance", f"{fmt(m['rel_imbalance'], '.1f')} %"),
+            ("mean residual", f"{fmt(m['bias'], '.2f')} mm/month"),
+            ("RMSE", f"{fmt(m['rmse'], '.2f')} mm/month"),
+            ("KGE", fmt(m["kge"], ".3f")), ("NSE", fmt(m["nse"], ".3f")),
+            ("valid months", str(m["n_valid"])), ("basin area", f"{result.area_km2:,.0f} km2")]
+    cells = "".join(f"<tr><td>{k}</td><td style='text-align:right'><b class='wbx-{k.replace(' ', '-')}'>{v}</b></td></tr>"
+                    for k, v in rows)
+    return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{result.basin_name} ({sel.basin})</h4>"
+            f"<div>{sel.P} / {sel.ET} / {sel.TWSA}, {sel.storage_change} difference"
+            f"{', window-matched' if sel.matched else ''}</div><table>{cells}</table></div>")
