@@ -1,0 +1,108 @@
+"""Self-contained HTML report of one selection (no network needed to view it).
+
+Bokeh figures rendered from the explorer's views with their JavaScript inlined, plus
+the selection's metrics, the ranking table, method notes and the caution.
+"""
+
+from __future__ import annotations
+
+import html
+import re
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .balance import compute_selection, rank
+from .io.catalog import Catalog, open_catalog
+from .io.writers import CAUTION, atomic_path, check_output
+
+__all__ = ["write_report", "report_html"]
+
+METHOD_NOTES = """
+<ul>
+<li>Basin means are area-weighted with exact cell coverage fractions (exactextract) and WGS84 ellipsoidal cell
+areas (Snyder 1987 authalic formula); cells without data drop out and the valid share of basin area is recorded.</li>
+<li>Rates are converted to totals per calendar month with the true number of days; daily data are summed to months
+and a month with a missing day is left empty.</li>
+<li>TWSA products give monthly <em>mean</em> storage. The storage change is a {method} difference of monthly means;
+{matched}</li>
+<li>Residual r = P - ET - Q - dS (mm/month). KGE (Gupta et al. 2009), KGE' (Kling et al. 2012), NSE (Nash and
+Sutcliffe 1970), cyclostationary NSE (Lehmann et al. 2022) and PBIAS (Moriasi et al. 2007) compare
+P - ET - dS with gauged Q.</li>
+<li>Uncertainty: per component from stated product errors or the spread of the available products; Q from a
+relative gauge error; residual sigma by propagation of independent errors.</li>
+</ul>
+"""
+
+
+def _fmt(v, spec=".3f"):
+    try:
+        return "n/a" if v is None or not np.isfinite(float(v)) else format(float(v), spec)
+    except (TypeError, ValueError):
+        return str(v)
+
+
+def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
+    import holoviews as hv
+    from bokeh.embed import file_html
+    from bokeh.layouts import column
+    from bokeh.models import Div
+    from bokeh.resources import INLINE
+
+    from .explorer import views
+    from .pipeline import load_basins
+
+    hv.extension("bokeh", logo=False)
+    res = compute_selection(ds, sel)
+    ranking = rank(ds, sel.basin, start=sel.start, end=sel.end, storage_change=sel.storage_change,
+                   matched=sel.matched, lag=sel.lag, by=by)
+    basins = load_basins(cat)
+    import pandas as pd
+
+    from .balance import rank_all
+
+    best = rank_all(ds, by=by, start=sel.start, end=sel.end, storage_change=sel.storage_change,
+                    matched=sel.matched)
+    scores = best[best["rank"] == 1].set_index("basin")[by] if len(best) else pd.Series(dtype=float)
+    figs = []
+    bmap = views.basin_map(basins, scores, sel.basin, by).opts(title=f"Basins coloured by best {by}; {sel.basin} outlined")
+    for obj in (bmap, views.component_bars(res),
+                views.residual_series(res), views.balance_scatter(res)):
+        o = obj.opts(responsive=False, width=950, clone=True)
+        figs.append(hv.render(o, backend="bokeh"))
+    m = res.metrics
+    mrows = "".join(f"<tr><td>{k}</td><td style='text-align:right'>{_fmt(v, '.4g')}</td></tr>" for k, v in m.items())
+    cols = ["rank", "P", "ET", "TWSA", "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid"]
+    trows = "".join("<tr>" + "".join(f"<td>{html.escape(_fmt(r[c], '.3f') if isinstance(r[c], float) else str(r[c]))}</td>"
+                                     for c in cols) + "</tr>" for _, r in ranking.iterrows())
+    head = (f"<h1>wbexplore report: {html.escape(res.basin_name)} ({html.escape(sel.basin)})</h1>"
+            f"<p class='caution' style='border:2px solid #D55E00;padding:8px'><b>Caution.</b> {html.escape(CAUTION)}</p>"
+            f"<p>Catalog: {html.escape(cat.title)} ({html.escape(cat.path.name)}, sha256 {cat.sha256[:16]}...). "
+            f"Period {res.frame.index[0]:%Y-%m}..{res.frame.index[-1]:%Y-%m}. Sources: P = {html.escape(sel.P)}, "
+            f"ET = {html.escape(sel.ET)}, TWSA = {html.escape(sel.TWSA)}. Basin area {res.area_km2:,.0f} km2. "
+            f"wbexplore {__version__}.</p>")
+    warn = "".join(f"<li>{html.escape(w)}</li>" for w in views.warnings_for(res, ds))
+    notes = METHOD_NOTES.format(method=sel.storage_change,
+                                matched="P, ET and Q are filtered with the same window (window-matched)."
+                                if sel.matched else "fluxes are compared as monthly totals (not window-matched).")
+    tail = (f"<h2>Selection metrics</h2><table class='metrics'>{mrows}</table>"
+            f"<h2>Warnings</h2><ul>{warn or '<li>none</li>'}</ul>"
+            f"<h2>Every combination (ranked by {html.escape(by)})</h2><table class='ranking' border='1' "
+            f"style='border-collapse:collapse'><tr>{''.join(f'<th>{c}</th>' for c in cols)}</tr>{trows}</table>"
+            f"<h2>Method notes</h2>{notes}")
+    layout = column(Div(text=head, width=950), *figs, Div(text=tail, width=950))
+    out = file_html(layout, resources=INLINE, title=f"wbexplore report {sel.basin}")
+    # panel (imported by holoviews) registers a server-relative module shim that a standalone
+    # file cannot load and does not need: drop it so the file makes no request at all
+    return re.sub(r'<script src="static/extensions/[^"]*"></script>\n?', "", out)
+
+
+def write_report(catalog, ds, sel, out, *, overwrite: bool = False, by: str = "rmse") -> Path:
+    """Write the HTML report atomically (refuses to overwrite unless asked)."""
+    cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
+    check_output(out, overwrite=overwrite)
+    text = report_html(cat, ds, sel, by=by)
+    with atomic_path(out, overwrite=overwrite) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return Path(out)
