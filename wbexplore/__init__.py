@@ -19,5 +19,26 @@ def extract(catalog, **kwargs):
     return _extract(catalog, **kwargs)
 
 
-__all__ = ["__version__", "open_catalog", "Catalog", "extract", "InputError", "CatalogError",
+def explore(catalog_or_path, **kwargs):
+    """The live closure explorer for a JupyterLab cell. See `wbexplore.explorer.app.explore`."""
+    from .explorer.app import explore as _explore
+
+    return _explore(catalog_or_path, **kwargs)
+
+
+def export_selection(catalog, selection, out, **kwargs):
+    """Write a selection file that `wbexplore replay` reproduces. See `wbexplore.selection.export_selection`."""
+    from .selection import export_selection as _export
+
+    return _export(catalog, selection, out, **kwargs)
+
+
+def load_series(catalog, **kwargs):
+    """Canonical basin series of a catalog, cached on disk. See `wbexplore.pipeline.load_series`."""
+    from .pipeline import load_series as _load
+
+    return _load(catalog, **kwargs)
+
+
+__all__ = ["__version__", "explore", "export_selection", "load_series", "open_catalog", "Catalog", "extract", "InputError", "CatalogError",
            "UnitError", "SelectionError"]

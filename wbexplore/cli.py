@@ -258,7 +258,8 @@ def _copy_templates(out: Path) -> Path:
             dest = out / item.name
             with resources.as_file(item) as src:
                 shutil.copyfile(src, dest)
-            first = first or dest
+            if item.name == "explore_basin.ipynb":
+                first = dest
     return first or out
 
 

@@ -73,6 +73,11 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
         spec = cat.source(getattr(sel, comp))
         sources[comp] = {"id": spec.id, "label": spec.display, "files": _file_entries(spec.paths, cat.path.parent)}
     inputs = {"basins": _file_entries([cat.basins.path], cat.path.parent)[0]}
+    # the other products of each component set the uncertainty (their spread): record them too
+    spread = {}
+    for spec in cat.sources:
+        if spec.id not in (sel.P, sel.ET, sel.TWSA):
+            spread[spec.id] = _file_entries(spec.paths, cat.path.parent)
     if cat.discharge:
         inputs["discharge"] = _file_entries([cat.discharge.path], cat.path.parent)[0]
     return {
@@ -84,6 +89,7 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
         "period": {"start": f"{result.frame.index[0]:%Y-%m}", "end": f"{result.frame.index[-1]:%Y-%m}"},
         "sources": sources,
         "inputs": inputs,
+        "uncertainty_sources": spread,
         "storage_change": {"method": sel.storage_change, "window_matched": bool(sel.matched),
                            "fill_gaps": bool(sel.fill_gaps)},
         "discharge_lag_months": int(sel.lag),
@@ -151,7 +157,8 @@ def _extract_for(cat: Catalog, sel: Selection, cache_dir):
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CoverageWarning)
-        return extract(cat, sources=[sel.P, sel.ET, sel.TWSA], basins=[sel.basin], cache_dir=cache_dir)
+        # every source: the spread of each component's products is its uncertainty
+        return extract(cat, basins=[sel.basin], cache_dir=cache_dir)
 
 
 def load_selection(path) -> tuple[dict, Selection, Path]:
@@ -218,6 +225,16 @@ def replay(path, *, cache_dir=None) -> dict:
                 raise SelectionError(f"{path}: source {getattr(sel, comp)!r} file {str(fp)!r} is missing")
             if file_sha256(fp) != f.get("sha256"):
                 rows.append((f"source {getattr(sel, comp)}", f["path"], "sha256 changed"))
+    for sid, files in (doc.get("uncertainty_sources") or {}).items():
+        if sid not in known:
+            rows.append((f"source {sid}", "(uncertainty)", "no longer in the catalog"))
+            continue
+        for f in files:
+            fp = (cat.path.parent / f["path"]).resolve()
+            if not fp.exists():
+                raise SelectionError(f"{path}: source {sid!r} file {str(fp)!r} is missing")
+            if file_sha256(fp) != f.get("sha256"):
+                rows.append((f"source {sid} (uncertainty)", f["path"], "sha256 changed"))
     for key, entry in (doc.get("inputs") or {}).items():
         fp = (cat.path.parent / entry["path"]).resolve()
         if not fp.exists():

@@ -83,7 +83,7 @@ class Explorer:
         self.w_download = pn.widgets.FileDownload(callback=self._csv_bytes, filename="series.csv",
                                                   label="Download series CSV", width=260, button_type="light")
         s.param.watch(self._refresh_table, list(_DEPS))
-        s.param.watch(lambda e: setattr(self.w_download, "filename", self._csv_name()), ["basin", "P", "ET", "TWSA"])
+        s.param.watch(lambda *e: setattr(self.w_download, "filename", self._csv_name()), ["basin", "P", "ET", "TWSA"])
 
     # ----------------------------------------------------------------- wiring widgets <-> state
     def _wire(self):
@@ -249,8 +249,8 @@ def explore(catalog_or_path, *, cache_dir=None, export_dir=None):
     """
     import panel as pn
 
-    if not pn.extension._loaded if hasattr(pn.extension, "_loaded") else False:  # pragma: no cover
-        pn.extension("tabulator")
+    if "tabulator" not in pn.extension._loaded_extensions if hasattr(pn.extension, "_loaded_extensions") else True:
+        pn.extension("tabulator", inline=True)  # inline resources: the notebook page needs no network
     try:
         state = load_state(catalog_or_path, cache_dir=cache_dir)
     except InputError as exc:

@@ -1,0 +1,309 @@
+"""The explorer in a real browser: Debian's chromium driven by Playwright against `wbexplore serve`."""
+
+import os
+import re
+import shutil
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+import warnings
+from pathlib import Path
+
+import pytest
+
+from conftest import copy_demo
+
+pytestmark = pytest.mark.browser
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
+        "--disable-component-update", "--disable-sync"]
+
+
+def _free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _wait_http(url, proc, timeout=180):
+    t0 = time.time()
+    while time.time() - t0 < timeout:
+        if proc.poll() is not None:
+            raise RuntimeError(f"server exited: {proc.stdout.read() if proc.stdout else ''}")
+        try:
+            with urllib.request.urlopen(url, timeout=5) as r:
+                if r.status == 200:
+                    return
+        except OSError:
+            time.sleep(0.5)
+    raise TimeoutError(url)
+
+
+def _stop(proc):
+    proc.terminate()
+    try:
+        proc.wait(20)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait(5)
+    if proc.stdout:
+        proc.stdout.close()
+
+
+@pytest.fixture(scope="module")
+def study(demo_dir, tmp_path_factory):
+    return copy_demo(demo_dir, tmp_path_factory.mktemp("browser"))
+
+
+@pytest.fixture(scope="module")
+def server(study, _cache_dir):
+    port = _free_port()
+    env = dict(os.environ, WBEXPLORE_CACHE=str(_cache_dir), PYTHONWARNINGS="ignore")
+    proc = subprocess.Popen([sys.executable, "-m", "wbexplore.cli", "serve", str(study / "catalog.yaml"),
+                             "--port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+                            env=env)
+    url = f"http://127.0.0.1:{port}/"
+    try:
+        _wait_http(url, proc)
+        yield url
+    finally:
+        _stop(proc)
+
+
+@pytest.fixture(scope="module")
+def browser():
+    assert CHROMIUM, "Debian's chromium is required (.ci/run installs it)"
+    from playwright.sync_api import sync_playwright
+
+    with sync_playwright() as p:
+        b = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
+        yield b
+        b.close()
+
+
+@pytest.fixture(scope="module")
+def page(browser, server):
+    pg = browser.new_page(viewport={"width": 1500, "height": 1700})
+    pg.errors = []
+    pg.on("pageerror", lambda e: pg.errors.append(str(e)))
+    pg.on("console", lambda m: pg.errors.append(m.text) if m.type == "error" else None)
+    pg.goto(server)
+    pg.wait_for_selector(".wbx-summary", timeout=90_000)
+    pg.wait_for_timeout(1500)
+    yield pg
+    pg.close()
+
+
+_DEEP = ("el => { const f = n => (n.shadowRoot ? f(n.shadowRoot) : '') + Array.from(n.childNodes).map("
+         "c => c.nodeType === 3 ? c.textContent : f(c)).join(' '); return f(el); }")
+
+
+def _deep_text(page, css):
+    """Text of an element including its shadow roots (panel panes render inside them)."""
+    return page.locator(css).first.evaluate(_DEEP)
+
+
+def _row(page, i):
+    """Cells of ranking row i by column name."""
+    row = page.locator(".wbx-ranking .tabulator-row").nth(i)
+    out = {}
+    for c in row.locator(".tabulator-cell").all():
+        f = c.get_attribute("tabulator-field")
+        if f:
+            out[f] = c.inner_text()
+    return out
+
+
+def _summary(page, key):
+    return page.locator(f".wbx-{key}").first.inner_text()
+
+
+def _selects(page):
+    return page.locator("select")
+
+
+def _series(study):
+    from wbexplore.pipeline import load_series
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return load_series(study / "catalog.yaml")
+
+
+def _wait_text_change(page, key, before, timeout=15):
+    t0 = time.time()
+    while time.time() - t0 < timeout:
+        now = _summary(page, key)
+        if now != before:
+            return now
+        page.wait_for_timeout(200)
+    return _summary(page, key)
+
+
+def test_page_renders_without_errors(page, artifacts):
+    page.screenshot(path=str(artifacts / "explorer_start.png"), full_page=True)
+    assert page.errors == []
+    assert "Screening-level" in _deep_text(page, ".wbx-header")
+    assert page.locator(".wbx-ranking .tabulator-row").count() >= 10
+
+
+def test_changing_et_updates_views_to_engine_values(page, study, artifacts):
+    from wbexplore.balance import Selection, compute_selection
+
+    before_rmse = _summary(page, "RMSE")
+    before_img = page.locator(".wbx-residual").screenshot()
+    et = _selects(page).nth(2)
+    target = next(o for o in et.locator("option").all_inner_texts() if "[sedge]" in o)
+    et.select_option(label=target)
+    now = _wait_text_change(page, "RMSE", before_rmse)
+    page.wait_for_timeout(1200)
+    after_img = page.locator(".wbx-residual").screenshot()
+    page.screenshot(path=str(artifacts / "explorer_et_sedge.png"), full_page=True)
+    sel_texts = [s.locator("option:checked").inner_text() for s in _selects(page).all()[:4]]
+    basin = sel_texts[0].split(" - ")[0]
+    P = re.search(r"\[(\w+)\]", sel_texts[1]).group(1)
+    TW = re.search(r"\[(\w+)\]", sel_texts[3]).group(1)
+    ref = compute_selection(_series(study), Selection(basin, P, "sedge", TW))
+    assert now == f"{ref.metrics['rmse']:.2f} mm/month"
+    assert _summary(page, "KGE") == f"{ref.metrics['kge']:.3f}"
+    assert before_img != after_img  # the residual view was redrawn
+
+
+def test_period_slider_changes_ranking(page, study, artifacts):
+    from wbexplore.balance import rank
+
+    first_before = page.locator(".wbx-ranking .tabulator-row").first.inner_text()
+    handle = page.locator(".noUi-handle-lower").first
+    box = handle.bounding_box()
+    page.mouse.move(box["x"] + box["width"] / 2, box["y"] + box["height"] / 2)
+    page.mouse.down()
+    page.mouse.move(box["x"] + 120, box["y"] + box["height"] / 2, steps=8)
+    page.mouse.up()
+    t0 = time.time()
+    while time.time() - t0 < 15 and page.locator(".wbx-ranking .tabulator-row").first.inner_text() == first_before:
+        page.wait_for_timeout(200)
+    page.wait_for_timeout(800)
+    page.screenshot(path=str(artifacts / "explorer_period.png"), full_page=True)
+    label = page.locator(".bk-slider-title").first.inner_text()
+    m = re.search(r"Period:\s*(\d{4}-\d{2})\s*\.\.\.?\s*(\d{4}-\d{2})", label)
+    assert m, label[:500]
+    start, end = m.groups()
+    assert start != "2001-01"
+    basin = _selects(page).nth(0).locator("option:checked").inner_text().split(" - ")[0]
+    ref = rank(_series(study), basin, start=start, end=end)
+    cells = _row(page, 0)
+    assert [cells[c] for c in ("P", "ET", "TWSA")] == list(ref.iloc[0][["P", "ET", "TWSA"]])
+    assert float(cells["rmse"]) == pytest.approx(round(ref.iloc[0]["rmse"], 3), abs=1.5e-3)
+
+
+def test_clicking_a_ranking_row_moves_the_selectors(page):
+    cells = _row(page, 4)
+    page.locator(".wbx-ranking .tabulator-row").nth(4).locator('.tabulator-cell[tabulator-field="P"]').click()
+    t0 = time.time()
+    want = [f"[{cells[c]}]" for c in ("P", "ET", "TWSA")]
+    while time.time() - t0 < 15:
+        got = [s.locator("option:checked").inner_text() for s in _selects(page).all()[1:4]]
+        if all(w in g for w, g in zip(want, got)):
+            break
+        page.wait_for_timeout(200)
+    assert all(w in g for w, g in zip(want, got)), (want, got)
+
+
+def test_export_writes_a_replayable_file(page, study, artifacts):
+    from wbexplore.cli import main
+
+    page.get_by_text("Export selection + CSV").click()
+    t0 = time.time()
+    while time.time() - t0 < 60 and not list((study / "exports").glob("selection_*.yaml")):
+        page.wait_for_timeout(300)
+    files = list((study / "exports").glob("selection_*.yaml"))
+    assert len(files) == 1 and list((study / "exports").glob("selection_*.csv"))
+    page.wait_for_timeout(500)
+    assert "Wrote" in _deep_text(page, ".wbx-export-msg")
+    page.screenshot(path=str(artifacts / "explorer_export.png"), full_page=True)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["replay", str(files[0])]) == 0
+    assert page.errors == []
+
+
+def test_report_opens_offline(browser, study, tmp_path, artifacts):
+    from wbexplore.cli import main
+
+    out = tmp_path / "report.html"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["report", str(study / "catalog.yaml"), "--basin", "VEL", "--out", str(out)]) == 0
+    pg = browser.new_page(viewport={"width": 1100, "height": 1200})
+    requests, errors = [], []
+    pg.on("request", lambda r: requests.append(r.url))
+    pg.on("pageerror", lambda e: errors.append(str(e)))
+    pg.goto(out.as_uri())
+    pg.wait_for_selector("canvas", timeout=30_000)
+    pg.wait_for_timeout(1500)
+    pg.screenshot(path=str(artifacts / "report.png"), full_page=True)
+    assert [r for r in requests if r != out.as_uri()] == []  # nothing leaves the file
+    assert errors == []
+    assert pg.locator("canvas").count() >= 4
+    pg.close()
+
+
+def test_bad_catalog_page(browser, tmp_path, _cache_dir, artifacts):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("catalog_version: 1\nbasins: {path: nowhere.geojson, id_field: id}\nsources: []\n")
+    port = _free_port()
+    proc = subprocess.Popen([sys.executable, "-m", "wbexplore.cli", "serve", str(bad), "--port", str(port)],
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+                            env=dict(os.environ, PYTHONWARNINGS="ignore"))
+    try:
+        _wait_http(f"http://127.0.0.1:{port}/", proc)
+        pg = browser.new_page()
+        pg.goto(f"http://127.0.0.1:{port}/")
+        pg.wait_for_selector(".wbx-error", timeout=30_000)
+        text = _deep_text(pg, ".wbx-error")
+        pg.screenshot(path=str(artifacts / "explorer_bad_catalog.png"))
+        assert "nowhere.geojson" in text and "Traceback" not in _deep_text(pg, "body")
+        pg.close()
+    finally:
+        _stop(proc)
+
+
+@pytest.mark.slow
+def test_template_notebook_in_jupyterlab(browser, study, _cache_dir, artifacts):
+    from wbexplore.cli import _copy_templates
+
+    nb = _copy_templates(study)
+    port = _free_port()
+    env = dict(os.environ, WBEXPLORE_CACHE=str(_cache_dir), PYTHONWARNINGS="ignore")
+    proc = subprocess.Popen([sys.executable, "-m", "jupyterlab", "--no-browser", f"--port={port}",
+                             "--ServerApp.token=", "--ServerApp.password=", "--allow-root",
+                             "--ServerApp.disable_check_xsrf=True", f"--ServerApp.root_dir={study}",
+                             "--LabApp.news_url=", "--LabServerApp.extension_manager=readonly"],
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, env=env)
+    try:
+        _wait_http(f"http://127.0.0.1:{port}/api", proc)
+        pg = browser.new_page(viewport={"width": 1500, "height": 1200})
+        errors, failed = [], []
+        pg.on("pageerror", lambda e: errors.append(str(e)))
+        pg.on("requestfailed", lambda r: failed.append(r.url))
+        pg.goto(f"http://127.0.0.1:{port}/lab/tree/{nb.name}?reset")
+        pg.locator(".jp-Notebook").first.wait_for(timeout=90_000)
+        pg.wait_for_timeout(3000)
+        pg.locator(".lm-MenuBar-itemLabel", has_text="Run").first.click()
+        pg.locator(".lm-Menu-itemLabel", has_text="Run All Cells").first.click()
+        try:
+            pg.locator(".wbx-summary").first.wait_for(timeout=240_000)
+        finally:
+            pg.screenshot(path=str(artifacts / "jupyterlab_template.png"), full_page=False)
+        pg.wait_for_timeout(4000)
+        pg.screenshot(path=str(artifacts / "jupyterlab_template.png"), full_page=False)
+        assert errors == [], errors  # no uncaught JavaScript error
+        # panel asks its CDN for optional stylesheets in a notebook; this machine has no network, and the
+        # app renders without them. Nothing else may fail to load.
+        assert [u for u in failed if not u.startswith("https://cdn.holoviz.org/")] == [], failed
+        assert pg.locator(".wbx-ranking .tabulator-row").count() >= 10
+        pg.close()
+    finally:
+        _stop(proc)
