@@ -79,8 +79,14 @@ class SelectionResult:
 
 
 def source_ids(ds: xr.Dataset, component: str) -> list[str]:
-    return [str(n) for n, v in ds.data_vars.items()
-            if v.attrs.get("role") == "source" and v.attrs.get("component") == component]
+    """Source variables of one component, in dataset order (uses Variables, not DataArrays: fast)."""
+    names = ds.data_vars
+    return [str(n) for n, v in ds.variables.items()
+            if n in names and v.attrs.get("role") == "source" and v.attrs.get("component") == component]
+
+
+def _values(ds: xr.Dataset, name: str) -> np.ndarray:
+    return ds.variables[name].values
 
 
 def with_ensembles(ds: xr.Dataset) -> xr.Dataset:
@@ -130,26 +136,26 @@ def period_mask(months: pd.DatetimeIndex, start: str | None, end: str | None) ->
 
 
 def _basin_index(ds: xr.Dataset, basin: str) -> int:
-    ids = [str(b) for b in ds["basin"].values]
+    ids = [str(b) for b in ds.variables["basin"].values]
     if str(basin) not in ids:
         raise InputError(f"basin {basin!r} is not in the series (known: {', '.join(ids)})")
     return ids.index(str(basin))
 
 
 def _source(ds: xr.Dataset, sid: str, component: str) -> xr.DataArray:
-    if sid not in ds.data_vars or ds[sid].attrs.get("role") != "source":
+    if sid not in ds.data_vars or ds.variables[sid].attrs.get("role") != "source":
         if sid.startswith(ENSEMBLE_PREFIX):
             raise InputError(f"source {sid!r} needs ensembles enabled (at least two {component} products)")
         raise InputError(f"source {sid!r} is not in the series (known {component}: {', '.join(source_ids(ds, component))})")
-    if ds[sid].attrs.get("component") != component:
-        raise InputError(f"source {sid!r} is a {ds[sid].attrs.get('component')} product, not {component}")
-    return ds[sid]
+    comp = ds.variables[sid].attrs.get("component")
+    if comp != component:
+        raise InputError(f"source {sid!r} is a {comp} product, not {component}")
 
 
 def _valid(ds, sid, b, min_vf):
     name = f"valid_fraction_{sid}"
-    if name in ds:
-        return ds[name].values[b] >= min_vf
+    if name in ds.variables:
+        return _values(ds, name)[b] >= min_vf
     return np.ones(ds.sizes["time"], dtype=bool)
 
 
@@ -167,10 +173,11 @@ def component_terms(ds: xr.Dataset, sel: Selection) -> dict:
     out = {}
     for comp in ("P", "ET", "TWSA"):
         sid = getattr(sel, comp)
-        v = _source(ds, sid, comp).values[b].astype(np.float64)
+        _source(ds, sid, comp)
+        v = _values(ds, sid)[b].astype(np.float64)
         v = np.where(_valid(ds, sid, b, sel.min_valid_fraction), v, np.nan)
         out[comp] = v
-    q = ds["discharge"].values[b].astype(np.float64)
+    q = _values(ds, "discharge")[b].astype(np.float64)
     if sel.lag:
         if not 0 <= sel.lag <= 12:
             raise InputError(f"lag {sel.lag} must be between 0 and 12 months")
@@ -193,14 +200,14 @@ def component_terms(ds: xr.Dataset, sel: Selection) -> dict:
 def _sigma_component(ds, sel, comp, b, values):
     """Per-month standard error (mm) of one component: stated error, else product spread."""
     sid = getattr(sel, comp)
-    attrs = ds[sid].attrs
+    attrs = ds.variables[sid].attrs
     if attrs.get("relative_error") is not None or attrs.get("absolute_error_mm") is not None:
         rel = float(attrs.get("relative_error") or 0.0)
         ab = float(attrs.get("absolute_error_mm") or 0.0)
         return np.sqrt((rel * np.abs(values)) ** 2 + ab**2), "stated"
     ids = [s for s in source_ids(ds, comp) if not s.startswith(ENSEMBLE_PREFIX)]
     if len(ids) >= 2:
-        stack = np.stack([np.where(_valid(ds, s, b, sel.min_valid_fraction), ds[s].values[b], np.nan) for s in ids])
+        stack = np.stack([np.where(_valid(ds, s, b, sel.min_valid_fraction), _values(ds, s)[b], np.nan) for s in ids])
         n = np.sum(np.isfinite(stack), axis=0)
         with np.errstate(invalid="ignore"):
             mean = np.nanmean(np.where(n >= 2, stack, 0.0), axis=0)
@@ -288,7 +295,7 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     }, index=pd.Index(months, name="month"))
     for comp in ("P", "ET", "TWSA"):
         name = f"valid_fraction_{getattr(sel, comp)}"
-        frame[f"valid_fraction_{comp}"] = ds[name].values[b] if name in ds else np.nan
+        frame[f"valid_fraction_{comp}"] = _values(ds, name)[b] if name in ds.variables else np.nan
     frame = frame.loc[mask]
     pm = months[mask]
     wy = water_year(pm, sel.water_year_start)

@@ -16,7 +16,8 @@ __all__ = ["rank", "rank_all", "combination_terms", "best_selection", "long_term
 
 
 def _stack(ds, ids, b, min_vf):
-    return np.stack([np.where(_valid(ds, s, b, min_vf), ds[s].values[b].astype(np.float64), np.nan) for s in ids])
+    return np.stack([np.where(_valid(ds, s, b, min_vf), ds.variables[s].values[b].astype(np.float64), np.nan)
+                     for s in ids])
 
 
 def combination_terms(ds: xr.Dataset, basin: str, *, storage_change_method: str = "central", matched: bool = True,
@@ -37,7 +38,7 @@ def combination_terms(ds: xr.Dataset, basin: str, *, storage_change_method: str 
     ET = _stack(ds, ids["ET"], b, min_valid_fraction)
     M = _stack(ds, ids["TWSA"], b, min_valid_fraction)
     dS = storage_change(M, storage_change_method)
-    Q = ds["discharge"].values[b].astype(np.float64)
+    Q = ds.variables["discharge"].values[b].astype(np.float64)
     if lag:
         q2 = np.full_like(Q, np.nan)
         q2[:-lag] = Q[lag:]
@@ -128,27 +129,24 @@ def best_selection(ds: xr.Dataset, basin: str, **kwargs) -> Selection:
 
 def long_term_all(ds: xr.Dataset, template: Selection) -> pd.DataFrame:
     """Long-term means over complete years of P - ET, Q and dS (mm/year) for every basin with the
-    sources of ``template`` (one row per basin; basins without complete years get NaN)."""
-    from .closure import compute_selection
+    sources and options of ``template`` (one row per basin; basins without complete years get NaN)."""
+    from .closure import component_terms
 
+    months = month_labels(ds)
+    mask = period_mask(months, template.start, template.end)
+    wy = water_year(months[mask], template.water_year_start)
+    years = [y for y in np.unique(wy) if (wy == y).sum() == 12]
     rows = []
-    for b in ds["basin"].values:
-        sel = template.replace(basin=str(b))
-        try:
-            res = compute_selection(ds, sel, min_valid=1)
-        except InputError:
-            continue
-        f = res.frame
-        t = pd.DatetimeIndex(f.index)
-        wy = water_year(t, sel.water_year_start)
-        tot = []
-        for y in np.unique(wy):
-            m = wy == y
-            if m.sum() == 12 and f["valid"].values[m].all():
-                tot.append((f["P"].values[m].sum() - f["ET"].values[m].sum(), f["Q"].values[m].sum(),
-                            f["dS"].values[m].sum()))
+    names = ds["basin_name"].values if "basin_name" in ds.coords else ds["basin"].values
+    areas = ds["basin_area_km2"].values if "basin_area_km2" in ds.coords else np.full(ds.sizes["basin"], np.nan)
+    for i, b in enumerate(ds["basin"].values):
+        t = component_terms(ds, template.replace(basin=str(b)))
+        P, ET, Q, dS = (t[k][mask] for k in ("P_w", "ET_w", "Q_w", "dS"))
+        ok = np.isfinite(P) & np.isfinite(ET) & np.isfinite(Q) & np.isfinite(dS)
+        tot = [(P[m].sum() - ET[m].sum(), Q[m].sum(), dS[m].sum()) for y in years
+               for m in [wy == y] if ok[m].all()]
         arr = np.array(tot) if tot else np.full((1, 3), np.nan)
-        rows.append({"basin": str(b), "name": res.basin_name, "area_km2": res.area_km2,
+        rows.append({"basin": str(b), "name": str(names[i]), "area_km2": float(areas[i]),
                      "P_minus_ET": float(np.mean(arr[:, 0])), "Q": float(np.mean(arr[:, 1])),
                      "dS": float(np.mean(arr[:, 2])), "years": len(tot)})
     return pd.DataFrame(rows)

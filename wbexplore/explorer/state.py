@@ -87,13 +87,12 @@ class ClosureState(param.Parameterized):
         return self._cached(("result", sel, self.min_valid),
                             lambda: compute_selection(self.series, sel, min_valid=self.min_valid))
 
-    def ranking(self) -> pd.DataFrame:
-        """All combinations for the basin and period, best first."""
-        key = ("rank", self.basin, self.start, self.end, self.storage_change, self.matched, self.metric, self.min_valid)
+    def _rank_for(self, basin: str) -> pd.DataFrame:
+        key = ("rank", basin, self.start, self.end, self.storage_change, self.matched, self.metric, self.min_valid)
 
         def run():
             try:
-                return rank(self.series, self.basin, start=self.start, end=self.end,
+                return rank(self.series, basin, start=self.start, end=self.end,
                             storage_change=self.storage_change, matched=self.matched, by=self.metric,
                             min_valid=self.min_valid)
             except InputError as exc:
@@ -103,6 +102,10 @@ class ClosureState(param.Parameterized):
 
         return self._cached(key, run)
 
+    def ranking(self) -> pd.DataFrame:
+        """All combinations for the basin and period, best first."""
+        return self._rank_for(self.basin)
+
     def basin_scores(self) -> pd.Series:
         """Best score of the ranking metric per basin (for the map)."""
         key = ("scores", self.start, self.end, self.storage_change, self.matched, self.metric, self.min_valid)
@@ -110,12 +113,8 @@ class ClosureState(param.Parameterized):
         def run():
             out = {}
             for b in self.param.basin.objects:
-                try:
-                    r = rank(self.series, b, start=self.start, end=self.end, storage_change=self.storage_change,
-                             matched=self.matched, by=self.metric, min_valid=self.min_valid)
-                    out[b] = float(r.iloc[0][self.metric]) if r.iloc[0]["scored"] else np.nan
-                except InputError:
-                    out[b] = np.nan
+                r = self._rank_for(b)
+                out[b] = float(r.iloc[0][self.metric]) if len(r) and r.iloc[0]["scored"] else np.nan
             return pd.Series(out)
 
         return self._cached(key, run)

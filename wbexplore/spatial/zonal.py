@@ -43,6 +43,7 @@ class Weights:
     grid_signature: str = ""
     engine: str = ""
     _window: tuple | None = field(default=None, repr=False)
+    _full: tuple | None = field(default=None, repr=False)
 
     @property
     def covered_area_m2(self) -> np.ndarray:
@@ -103,6 +104,16 @@ def _has_ee():
 
 def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray) -> np.ndarray:
     """(t, wy, wx) block -> (t, basins, 2) array of [sum W x, sum W valid]."""
+    from ._kernel import HAVE_NUMBA, accumulate
+
+    t = X.shape[0]
+    if HAVE_NUMBA and X.dtype.kind == "f":
+        return accumulate(np.ascontiguousarray(X).reshape(t, -1), used, wu_t)
+    return _block_scipy(X, wu_t, used)
+
+
+def _block_scipy(X: np.ndarray, wu_t, used: np.ndarray) -> np.ndarray:
+    """The same with scipy.sparse only (several passes; see `_kernel`)."""
     t = X.shape[0]
     Xu = X.reshape(t, -1)[:, used]  # gather: a copy we may modify
     nan = np.isnan(Xu)
@@ -117,7 +128,16 @@ def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray) -> np.ndarray:
 
 
 def apply_weights_numpy(X: np.ndarray, weights: Weights) -> tuple[np.ndarray, np.ndarray]:
-    """In-memory form: X (time, ny, nx) -> (mean, valid_fraction), each (basins, time)."""
+    """In-memory form: X (time, ny, nx) -> (mean, valid_fraction), each (basins, time).
+
+    Indexes the full grid directly (no window copy) when X is C-contiguous.
+    """
+    if X.flags.c_contiguous:
+        if weights._full is None:
+            used = np.unique(weights.matrix.indices)
+            weights._full = (sp.csr_array(weights.matrix[:, used].T), used)
+        wu_t, used = weights._full
+        return _finish(_block(X, wu_t, used), weights)
     rs, cs, wu_t, used = weights.window()
     blk = _block(np.ascontiguousarray(X[:, rs, cs]), wu_t, used)
     return _finish(blk, weights)

@@ -1,0 +1,242 @@
+"""Extraction benchmark: wbexplore's weights + sparse apply against exactextract and the I/O floor.
+
+Raster: 240 monthly bands of 600 x 600 cells of 0.05 degree (0 to 30 N), float32, about 6% NaN;
+100 random star-shaped polygons 0.5 to 5 degrees across. Everything is measured side by side in
+one run, as medians; the ratios are what to read (the machine is small and noisy).
+
+    python benchmarks/extract.py            # full size (writes ~0.7 GB of test files in a temp dir)
+    python benchmarks/extract.py --quick    # 60 bands, for a smoke test
+    python benchmarks/extract.py --scale    # 1,000 basins on a 400 x 700 continent, streamed, + LocalCluster
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import tempfile
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import PeakRSS, median_time, star_polygons  # noqa: E402
+
+warnings.simplefilter("ignore")
+
+
+def make_stack(nt, ny, nx, rng):
+    t = np.arange(nt, dtype=np.float32)[:, None, None]
+    yy = np.linspace(0, 1, ny, dtype=np.float32)[None, :, None]
+    xx = np.linspace(0, 1, nx, dtype=np.float32)[None, None, :]
+    X = (50 + 30 * np.sin(t / 2 + 3 * xx) + 20 * yy).astype(np.float32)
+    X += rng.normal(0, 5, X.shape).astype(np.float32)
+    mask = rng.random((ny, nx)) < 0.06
+    X[:, mask] = np.nan
+    return X
+
+
+def main():
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--quick", action="store_true")
+    ap.add_argument("--scale", action="store_true")
+    ap.add_argument("--repeat", type=int, default=5)
+    a = ap.parse_args()
+    if a.scale:
+        return scale_run()
+    import geopandas as gpd
+    from exactextract import exact_extract
+    from exactextract.raster import NumPyRasterSource
+
+    from wbexplore.spatial import build_weights, cell_areas_m2, describe_grid
+    from wbexplore.spatial.zonal import apply_weights_numpy
+
+    rng = np.random.default_rng(42)
+    nt = 60 if a.quick else 240
+    ny = nx = 600
+    res = 0.05
+    X = make_stack(nt, ny, nx, rng)  # rows south -> north
+    lon = np.round(np.arange(res / 2, 30, res), 6)
+    lat = np.round(np.arange(res / 2, 30, res), 6)
+    polys = star_polygons(rng, 100, 0, 30, 0, 30, 0.5, 5.0)
+    ids = [f"b{i}" for i in range(len(polys))]
+    from wbexplore.io.basins import geodesic_area_m2
+
+    areas = geodesic_area_m2(np.array(polys, dtype=object))
+    grid = describe_grid(lon, lat, "EPSG:4326")
+    print(f"raster {nt} x {ny} x {nx} float32 ({X.nbytes / 2**20:.0f} MiB), {len(polys)} polygons, "
+          f"{np.isnan(X[0]).mean():.1%} NaN")
+
+    t_build, W = median_time(lambda: build_weights(grid, polys, ids, areas), repeat=a.repeat)
+    t_apply, (ours, _) = median_time(lambda: apply_weights_numpy(X, W), repeat=a.repeat)
+    t_sum, _ = median_time(lambda: X.sum(), repeat=a.repeat)
+
+    gdf = gpd.GeoDataFrame({"id": ids}, geometry=polys, crs="EPSG:4326")
+    ext = (0.0, 0.0, 30.0, 30.0)
+    Xn = X[:, ::-1, :].copy()  # north first, as a raster
+
+    def ee_mem():
+        bands = [NumPyRasterSource(Xn[i], *ext, nodata=np.nan, name=f"b{i}") for i in range(nt)]
+        return exact_extract(bands, gdf, ["mean(coverage_weight=area_spherical_m2)"], output="pandas")
+
+    t_ee, ee_sph = median_time(ee_mem, repeat=max(1, a.repeat // 2))
+
+    # accuracy: exactextract weighted_mean with wbexplore's ellipsoidal areas as the weight raster
+    area_r = cell_areas_m2(grid)  # north first already
+    k = min(12, nt)
+
+    def ee_weighted():
+        vals = [NumPyRasterSource(Xn[i], *ext, nodata=np.nan, name=f"b{i}") for i in range(k)]
+        wr = NumPyRasterSource(area_r, *ext, name="area")
+        return exact_extract(vals, gdf, ["weighted_mean"], weights=wr, output="pandas")
+
+    ref = ee_weighted()
+    ref = np.stack([ref[f"b{i}_area_weighted_mean"].to_numpy() for i in range(k)], axis=1)
+    rel = np.nanmax(np.abs(ours[:, :k] - ref) / np.abs(ref))
+    sph = np.stack([ee_sph[f"b{i}_mean"].to_numpy() for i in range(k)], axis=1)
+    rel_sph = np.nanmax(np.abs(ours[:, :k] - sph) / np.abs(sph))
+
+    # float32 accumulation drift (why wbexplore accumulates in float64)
+    rs, cs, wu_t, used = W.window()
+    Xu = np.nan_to_num(X[:k, rs, cs].reshape(k, -1)[:, used])
+    f32 = np.asarray(Xu @ wu_t.astype(np.float32)) / np.asarray((~np.isnan(X[:k, rs, cs].reshape(k, -1)[:, used])).astype(np.float32) @ wu_t.astype(np.float32))
+    drift = np.nanmax(np.abs(f32.T - ours[:, :k]) / np.abs(ours[:, :k]))
+
+    print("\nin memory (median of runs)")
+    print(f"  wbexplore weights build        {t_build:8.3f} s")
+    print(f"  wbexplore apply                {t_apply:8.3f} s")
+    print(f"  exactextract mean (in memory)  {t_ee:8.3f} s")
+    print(f"  numpy arr.sum() (the floor)    {t_sum:8.3f} s")
+    print(f"  ratio (build + apply) / exactextract  {(t_build + t_apply) / t_ee:6.3f}   target <= 0.25")
+    print(f"  ratio apply / numpy pass              {t_apply / t_sum:6.2f}   target <= 3")
+    print(f"  max rel. difference vs exactextract weighted_mean (same areas): {rel:.2e}  target <= 1e-6")
+    print(f"  max rel. difference vs exactextract area_spherical_m2 mean:     {rel_sph:.2e}  (sphere vs ellipsoid)")
+    print(f"  float32 accumulation drift (not used):                          {drift:.2e}")
+
+    with tempfile.TemporaryDirectory() as d:
+        file_runs(Path(d), X, lon, lat, polys, gdf, ids, areas, a.repeat)
+
+
+def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
+    import pandas as pd
+    import rasterio
+    import xarray as xr
+    from exactextract import exact_extract
+    from rasterio.transform import from_origin
+
+    from wbexplore.io.catalog import open_catalog
+    from wbexplore.io.grids import open_source
+    from wbexplore.pipeline import weights_for
+    from wbexplore.spatial.zonal import zonal_mean
+
+    nt, ny, nx = X.shape
+    tif = d / "stack.tif"
+    with rasterio.open(tif, "w", driver="GTiff", width=nx, height=ny, count=nt, dtype="float32", crs="EPSG:4326",
+                       transform=from_origin(0, 30, 0.05, 0.05), nodata=np.nan, tiled=True, blockxsize=256,
+                       blockysize=256, interleave="band") as dst:
+        dst.write(X[:, ::-1, :])
+    nc = d / "stack.nc"
+    months = pd.date_range("2001-01-01", periods=nt, freq="MS")
+    xr.Dataset({"v": (("time", "lat", "lon"), X, {"units": "mm"})},
+               coords={"time": months, "lat": lat, "lon": lon}).to_netcdf(
+        nc, encoding={"v": {"chunksizes": (12, ny, nx)}})
+    gdf.assign(basin_id=ids, name=ids).to_file(d / "b.geojson")
+    import yaml
+
+    (d / "c.yaml").write_text(yaml.safe_dump({
+        "catalog_version": 1, "basins": {"path": "b.geojson", "id_field": "basin_id"},
+        "sources": [{"id": "t", "component": "P", "path": "stack.tif", "units": "mm", "time_start": "2001-01"},
+                    {"id": "n", "component": "P", "path": "stack.nc", "variable": "v"}]}))
+    cat = open_catalog(d / "c.yaml")
+    from wbexplore.pipeline import load_basins
+
+    basins = load_basins(cat)
+    print(f"\nfrom a file ({tif.stat().st_size / 2**20:.0f} MiB GeoTIFF, {nc.stat().st_size / 2**20:.0f} MiB netCDF)")
+
+    def bare_tif():
+        with rasterio.open(tif) as s:
+            return s.read()
+
+    def bare_nc():
+        with xr.open_dataset(nc) as ds:
+            return ds["v"].values
+
+    def ours(spec_id):
+        def run():
+            src = open_source(cat.source(spec_id))
+            w = weights_for(src, basins, cache_dir=d / "cache")
+            return zonal_mean(src.data, w).compute(scheduler="threads")
+        return run
+
+    def ee_file():
+        return exact_extract(str(tif), gdf, ["mean(coverage_weight=area_spherical_m2)"], output="pandas",
+                             strategy="raster-sequential")
+
+    r = max(1, repeat // 2)
+    t_rt, _ = median_time(bare_tif, repeat=r)
+    t_rn, _ = median_time(bare_nc, repeat=r)
+    with PeakRSS() as mem_t:
+        t_ot, _ = median_time(ours("t"), repeat=r)
+    with PeakRSS() as mem_n:
+        t_on, _ = median_time(ours("n"), repeat=r)
+    t_ee, _ = median_time(ee_file, repeat=1, warmup=0)
+    print(f"  bare read GeoTIFF (rasterio)            {t_rt:8.3f} s")
+    print(f"  bare read netCDF (xarray .values)       {t_rn:8.3f} s")
+    print(f"  wbexplore end to end, GeoTIFF           {t_ot:8.3f} s   peak RSS {mem_t.peak_gib:.2f} GiB")
+    print(f"  wbexplore end to end, netCDF            {t_on:8.3f} s   peak RSS {mem_n.peak_gib:.2f} GiB")
+    print(f"  exactextract raster-sequential, GeoTIFF {t_ee:8.3f} s")
+    print(f"  ratio wbexplore GeoTIFF / exactextract file   {t_ot / t_ee:6.3f}   target <= 0.5")
+    print(f"  ratio wbexplore GeoTIFF / bare read           {t_ot / t_rt:6.2f}   target <= 1.3")
+    print(f"  ratio wbexplore netCDF / bare read            {t_on / t_rn:6.2f}   target <= 1.3")
+
+
+def scale_run():
+    import pandas as pd
+    import xarray as xr
+    import yaml
+    import geopandas as gpd
+
+    from wbexplore.pipeline import extract
+
+    rng = np.random.default_rng(7)
+    nt, ny, nx, res = 240, 400, 700, 0.1
+    lon = np.round(-10 + res / 2 + res * np.arange(nx), 6)
+    lat = np.round(30 + res / 2 + res * np.arange(ny), 6)
+    with tempfile.TemporaryDirectory() as dd:
+        d = Path(dd)
+        months = pd.date_range("2001-01-01", periods=nt, freq="MS")
+        v = xr.Dataset({"v": (("time", "lat", "lon"), np.zeros((nt, ny, nx), np.float32), {"units": "mm"})},
+                       coords={"time": months, "lat": lat, "lon": lon})
+        v.to_netcdf(d / "c.nc", encoding={"v": {"chunksizes": (12, ny, nx)}}, compute=True)
+        import netCDF4
+
+        with netCDF4.Dataset(d / "c.nc", "a") as nc:
+            for i in range(0, nt, 12):
+                nc["v"][i:i + 12] = make_stack(12, ny, nx, rng)
+        polys = star_polygons(rng, 1000, -10, 60, 30, 70, 0.3, 3.0)
+        gpd.GeoDataFrame({"basin_id": [f"b{i}" for i in range(1000)]}, geometry=polys, crs=4326).to_file(d / "b.geojson")
+        (d / "c.yaml").write_text(yaml.safe_dump({
+            "catalog_version": 1, "basins": {"path": "b.geojson", "id_field": "basin_id"},
+            "sources": [{"id": "n", "component": "P", "path": "c.nc", "variable": "v"}]}))
+        print(f"scale run: {nt} x {ny} x {nx} float32 ({nt * ny * nx * 4 / 2**30:.2f} GiB), 1000 basins")
+        with PeakRSS() as m1:
+            t = time.perf_counter()
+            a = extract(d / "c.yaml", cache_dir=d / "cache")
+            t1 = time.perf_counter() - t
+        print(f"  local threads: {t1:7.2f} s, peak RSS {m1.peak_gib:.2f} GiB (target <= 2 GiB)")
+        from distributed import Client, LocalCluster
+
+        with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None, memory_limit="2GiB") as cl, \
+                Client(cl) as client:
+            t = time.perf_counter()
+            b = extract(d / "c.yaml", cache_dir=d / "cache", client=client)
+            t2 = time.perf_counter() - t
+            wmem = max(w["metrics"]["memory"] for w in client.scheduler_info()["workers"].values()) / 2**30
+        same = np.nanmax(np.abs(a["n"].values - b["n"].values) / np.abs(a["n"].values))
+        print(f"  LocalCluster 2 workers: {t2:7.2f} s, largest worker {wmem:.2f} GiB, max rel. diff {same:.1e}")
+
+
+if __name__ == "__main__":
+    main()
