@@ -33,11 +33,11 @@ def server_side(state):
         "period": [("period", (i, 239 - i)) for i in range(0, 60, 4)],
         "storage method": [("storage_change", v) for v in ("backward", "forward", "central")] * 3,
     }
-    print("server side: change -> all views' data (result, ranking, map scores, all-basin view)")
+    print("server side: change -> all views' data (result, ranking, map scores, all-basin view); target <= 30 ms")
     for name, seq in changes.items():
-        cold, warm = [], []
+        cold, first, warm = [], [], []
         for attr, val in seq:
-            state._memo.clear()
+            state._memo.clear()  # nothing cached at all
             t = time.perf_counter()
             setattr(state, attr, val)
             state.view_data()
@@ -45,9 +45,16 @@ def server_side(state):
             t = time.perf_counter()
             state.view_data()
             warm.append(time.perf_counter() - t)
-        print(f"  {name:15s} median {statistics.median(cold) * 1e3:6.1f} ms (caches cleared), "
-              f"{statistics.median(warm) * 1e3:5.2f} ms (revisit)   target <= 30 ms, "
-              f"ratio {statistics.median(cold) / 0.030:.2f}")
+        state._memo.clear()
+        state.view_data()
+        for attr, val in dict.fromkeys(seq):  # first visit of each value; what does not depend on it stays cached
+            t = time.perf_counter()
+            setattr(state, attr, val)
+            state.view_data()
+            first.append(time.perf_counter() - t)
+        print(f"  {name:15s} first visit {statistics.median(first) * 1e3:6.1f} ms (ratio to target "
+              f"{statistics.median(first) / 0.030:.2f}); every cache cleared {statistics.median(cold) * 1e3:6.1f} ms; "
+              f"revisit {statistics.median(warm) * 1e3:5.2f} ms")
 
 
 def browser(catalog, cache):

@@ -236,8 +236,15 @@ def test_rank_table_shape_and_stability(demo_series):
     assert r["kge"].is_monotonic_decreasing
     r2 = rank(demo_series, "VEL", start="2005-01", end="2014-12", by="kge", ensemble=True)
     pd.testing.assert_frame_equal(r, r2)
-    allb = rank_all(demo_series, by="rmse")
+    allb = rank_all(demo_series, by="rmse", start="2005-01", end="2014-12")
     assert set(allb["basin"]) == set(demo_series.basin.values.astype(str))
+    # the vectorised all-basin pass equals the per-basin ranking, and best_scores its first rows
+    from wbexplore.balance.combos import best_scores
+
+    one = rank(demo_series, "ZEF", start="2005-01", end="2014-12")
+    pd.testing.assert_frame_equal(allb[allb["basin"] == "ZEF"].drop(columns="basin").reset_index(drop=True), one)
+    bs = best_scores(demo_series, start="2005-01", end="2014-12")
+    assert bs["ZEF"] == one.iloc[0]["rmse"]
     # ties keep catalog order (stable): two identical products
     ds = demo_series.copy()
     ds["kestrel_copy"] = ds["kestrel"]

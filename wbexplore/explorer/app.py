@@ -23,6 +23,9 @@ from .state import ClosureState
 __all__ = ["Explorer", "explore", "serve", "load_state"]
 
 _DEPS = ("basin", "P", "ET", "TWSA", "period", "storage_change", "matched", "unit_system", "metric")
+_SEL_DEPS = ("basin", "P", "ET", "TWSA", "period", "storage_change", "matched", "unit_system")
+_MAP_DEPS = ("basin", "period", "storage_change", "matched", "metric")
+_MULTI_DEPS = ("P", "ET", "TWSA", "period", "storage_change", "matched")
 
 
 def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureState:
@@ -166,17 +169,23 @@ class Explorer:
             self.export_msg.object = f"**Export failed:** {exc}"
 
     # ----------------------------------------------------------------- views
-    def _bound(self, fn):
+    def _bound(self, fn, deps=_DEPS):
         import panel as pn
 
         s = self.state
-        return pn.bind(lambda *a: fn(), *[s.param[d] for d in _DEPS])
+        return pn.bind(lambda *a: fn(), *[s.param[d] for d in deps])
+
+    def _dmap(self, fn, deps=_DEPS):
+        """A DynamicMap: later changes update the plot's data in place instead of re-rendering it."""
+        import holoviews as hv
+
+        return hv.DynamicMap(self._bound(fn, deps))
 
     def _map(self):
         import holoviews as hv
 
         s = self.state
-        dmap = hv.DynamicMap(self._bound(lambda: views.basin_map(s.basins, s.basin_scores(), s.basin, s.metric)))
+        dmap = self._dmap(lambda: views.basin_map(s.basins, s.basin_scores(), s.basin, s.metric), _MAP_DEPS)
         tap = hv.streams.Tap(source=dmap)
 
         def on_tap(*_):
@@ -193,18 +202,18 @@ class Explorer:
 
         s = self.state
         res = lambda: s.result()  # noqa: E731
-        bars = pn.pane.HoloViews(self._bound(lambda: views.component_bars(res(), s.unit_system)),
+        bars = pn.pane.HoloViews(self._dmap(lambda: views.component_bars(res(), s.unit_system), _SEL_DEPS),
                                  sizing_mode="stretch_width", css_classes=["wbx-bars"])
-        resid = pn.pane.HoloViews(self._bound(lambda: views.residual_series(res(), s.unit_system)),
+        resid = pn.pane.HoloViews(self._dmap(lambda: views.residual_series(res(), s.unit_system), _SEL_DEPS),
                                   sizing_mode="stretch_width", css_classes=["wbx-residual"])
-        scatter = pn.pane.HoloViews(self._bound(lambda: views.balance_scatter(res(), s.unit_system)),
+        scatter = pn.pane.HoloViews(self._dmap(lambda: views.balance_scatter(res(), s.unit_system), _SEL_DEPS),
                                     sizing_mode="stretch_width", css_classes=["wbx-scatter"])
-        summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric)),
+        summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
                                css_classes=["wbx-summary-pane"], width=260)
         warn = pn.pane.Markdown(self._bound(lambda: "\n".join(f"- {w}" for w in views.warnings_for(res(), s.series))
-                                            or "No warnings for this selection."),
+                                            or "No warnings for this selection.", _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
-        multi = pn.pane.HoloViews(self._bound(lambda: views.multi_basin(s.multi_basin())),
+        multi = pn.pane.HoloViews(self._dmap(lambda: views.multi_basin(s.multi_basin()), _MULTI_DEPS),
                                   sizing_mode="stretch_width", css_classes=["wbx-multi"])
         controls = pn.Column(
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search, self.w_src["P"], self.w_src["ET"],

@@ -12,6 +12,7 @@ import pandas as pd
 import param
 
 from ..balance import METHODS, METRICS, UNIT_SYSTEMS, Selection, compute_selection, long_term_all, rank
+from ..balance.combos import best_scores
 from ..balance.closure import source_ids
 from ..errors import InputError
 
@@ -111,11 +112,11 @@ class ClosureState(param.Parameterized):
         key = ("scores", self.start, self.end, self.storage_change, self.matched, self.metric, self.min_valid)
 
         def run():
-            out = {}
-            for b in self.param.basin.objects:
-                r = self._rank_for(b)
-                out[b] = float(r.iloc[0][self.metric]) if len(r) and r.iloc[0]["scored"] else np.nan
-            return pd.Series(out)
+            try:
+                return best_scores(self.series, by=self.metric, start=self.start, end=self.end,
+                                   storage_change=self.storage_change, matched=self.matched, min_valid=self.min_valid)
+            except InputError:
+                return pd.Series(np.nan, index=self.param.basin.objects)
 
         return self._cached(key, run)
 

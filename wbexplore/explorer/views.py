@@ -35,11 +35,25 @@ def _hv():
     return hv
 
 
+def _short(message: str, n: int = 110) -> str:
+    return message if len(message) <= n else message[: n - 3] + "..."
+
+
 def explain(message: str, *, title: str = ""):
-    """A placeholder view that says why there is nothing to draw."""
+    """A standalone placeholder that says why there is nothing to draw."""
     hv = _hv()
-    return hv.Text(0.5, 0.5, message).opts(xaxis=None, yaxis=None, toolbar=None, responsive=True, height=260, shared_axes=False,
-                                            title=title, fontsize={"text": 11}, show_frame=False)
+    return hv.Text(0.5, 0.5, message).opts(xaxis=None, yaxis=None, toolbar=None, responsive=True, height=260,
+                                            shared_axes=False, title=title, fontsize={"text": 11}, show_frame=False)
+
+
+def _nodata(result) -> str | None:
+    if result.frame["valid"].any():
+        return None
+    return "No valid month: " + _short(result.messages[0] if result.messages else "nothing to compare")
+
+
+# Every view returns the same element structure with or without data (an empty frame carries the
+# explanation in its title), so the explorer can update them in place as DynamicMaps.
 
 
 def component_bars(result, unit_system: str = "mm"):
@@ -47,17 +61,17 @@ def component_bars(result, unit_system: str = "mm"):
     hv = _hv()
     f = to_unit_system(result.frame, result.area_km2, unit_system)
     ok = result.frame["valid"].values
-    if not ok.any():
-        return explain(result.messages[0] if result.messages else "no valid month", title="Component means")
-    rows = [(k, float(f.loc[ok, k].mean()), k) for k in ("P", "ET", "Q", "dS", "residual")]
-    df = pd.DataFrame(rows, columns=["term", "value", "color_key"])
-    df["color"] = df["color_key"].map(COLORS)
-    df["role"] = ["inflow", "outflow", "outflow", "storage", "imbalance"]
+    terms = ["P", "ET", "Q", "dS", "residual"]
+    vals = [float(f.loc[ok, k].mean()) if ok.any() else 0.0 for k in terms]
+    df = pd.DataFrame({"term": terms, "value": vals, "color": [COLORS[k] for k in terms],
+                       "role": ["inflow", "outflow", "outflow", "storage", "imbalance"]})
     unit = UNIT_LABEL[unit_system]
+    msg = _nodata(result)
     bars = hv.Bars(df, kdims=["term"], vdims=["value", "color", "role"]).opts(
-        color="color", responsive=True, height=280, shared_axes=False, ylabel=f"mean over valid months ({unit})", xlabel="",
-        title=f"Component means, {result.n_valid} valid months", tools=["hover"], line_color=None)
-    return bars * hv.HLine(0).opts(color="black", line_width=1)
+        color="color", responsive=True, height=280, shared_axes=False, framewise=True,
+        ylabel=f"mean over valid months ({unit})", xlabel="", tools=["hover"], line_color=None)
+    return (bars * hv.HLine(0).opts(color="black", line_width=1)).opts(
+        title=msg or f"Component means, {result.n_valid} valid months")
 
 
 def _runs(mask: np.ndarray):
@@ -72,29 +86,30 @@ def residual_series(result, unit_system: str = "mm"):
     """Residual per month with a +/- 2 sigma band, gaps shaded, months beyond 2 sigma marked."""
     hv = _hv()
     f = to_unit_system(result.frame, result.area_km2, unit_system)
-    if not result.frame["valid"].any():
-        return explain(result.messages[0] if result.messages else "no valid month", title="Residual")
     t = pd.DatetimeIndex(f.index)
     unit = UNIT_LABEL[unit_system]
     r = f["residual"].values
     s = f["sigma_residual"].values
     df = pd.DataFrame({"month": t, "residual": r, "lo": r - 2 * s, "hi": r + 2 * s})
-    band = hv.Area(df, "month", ["lo", "hi"], label="± 2 sigma").opts(color=COLORS["band"], alpha=0.3, line_width=0)
+    band = hv.Area(df, "month", ["lo", "hi"], label="± 2 sigma").opts(color=COLORS["band"], alpha=0.3,
+                                                                      line_width=0, framewise=True)
     curve = hv.Curve(df, "month", "residual", label="residual").opts(color=COLORS["residual"], line_width=2,
-                                                                      tools=["hover"])
+                                                                      tools=["hover"], framewise=True)
     flag = result.frame["beyond_2sigma"].values
     pts = hv.Scatter(df[flag], "month", "residual", label="beyond 2 sigma").opts(
-        color="black", marker="x", size=9, line_width=2)
+        color="black", marker="x", size=9, line_width=2, framewise=True)
     gaps = ~result.frame["valid"].values
-    spans = [hv.VSpan(t[a] - pd.Timedelta(days=15), t[b] + pd.Timedelta(days=15)).opts(
-        color=COLORS["gap"], alpha=0.45, line_width=0) for a, b in _runs(gaps)]
-    overlay = band * curve * pts * hv.HLine(0).opts(color="black", line_width=1)
-    for sp in spans:
-        overlay = overlay * sp
+    spans = pd.DataFrame([(t[a] - pd.Timedelta(days=15), t[b] + pd.Timedelta(days=15)) for a, b in _runs(gaps)],
+                         columns=["x0", "x1"])
+    if spans.empty:
+        spans = pd.DataFrame({"x0": pd.to_datetime([]), "x1": pd.to_datetime([])})
+    vsp = hv.VSpans(spans, kdims=["x0", "x1"]).opts(color=COLORS["gap"], alpha=0.45, line_width=0)
     sel = result.selection
-    return overlay.opts(responsive=True, height=300, shared_axes=False, ylabel=f"P - ET - Q - dS ({unit})", xlabel="month",
-                        title=f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)", legend_position="top_left",
-                        show_grid=True)
+    msg = _nodata(result)
+    overlay = vsp * band * curve * pts * hv.HLine(0).opts(color="black", line_width=1)
+    return overlay.opts(responsive=True, height=300, shared_axes=False, ylabel=f"P - ET - Q - dS ({unit})",
+                        xlabel="month", title=msg or f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)",
+                        legend_position="top_left", show_grid=True)
 
 
 def _season(month: np.ndarray) -> np.ndarray:
@@ -105,8 +120,6 @@ def balance_scatter(result, unit_system: str = "mm"):
     """P - ET - dS against gauged Q: months coloured by season, complete years as large marks, 1:1 line."""
     hv = _hv()
     fr = result.frame
-    if not fr["valid"].any():
-        return explain(result.messages[0] if result.messages else "no valid month", title="Balance vs gauge")
     f = to_unit_system(fr, result.area_km2, unit_system)
     ok = fr["valid"].values
     t = pd.DatetimeIndex(f.index)
@@ -114,30 +127,26 @@ def balance_scatter(result, unit_system: str = "mm"):
                        "month": [f"{m:%Y-%m}" for m in t]})[ok]
     unit = UNIT_LABEL[unit_system]
     pts = hv.Scatter(df, "Q", ["Qhat", "season", "month"]).opts(
-        color="season", cmap=SEASON_COLORS, size=5, alpha=0.8, tools=["hover"], legend_position="bottom_right")
+        color="season", cmap=SEASON_COLORS, size=5, alpha=0.8, tools=["hover"], legend_position="bottom_right",
+        framewise=True)
     years = t.year.values
     ann = []
     for y in np.unique(years):
-        m = (years == y)
+        m = years == y
         if m.sum() == 12 and ok[m].all():
-            ann.append((y, fr["Q"].values[m].sum(), fr["Qhat"].values[m].sum()))
-    overlay = pts
-    lim = [float(np.nanmin(df[["Q", "Qhat"]].values)), float(np.nanmax(df[["Q", "Qhat"]].values))]
-    if ann:
-        a = pd.DataFrame(ann, columns=["year", "Q", "Qhat"])
-        # annual totals drawn on the monthly axes as monthly means, so both share one scale
-        a_mm = a.assign(Q=a["Q"] / 12, Qhat=a["Qhat"] / 12)
-        if unit_system != "mm":
-            scale = float(np.nanmedian(f["Q"].values[ok] / fr["Q"].values[ok]))
-            a_mm = a_mm.assign(Q=a_mm["Q"] * scale, Qhat=a_mm["Qhat"] * scale)
-        overlay = overlay * hv.Scatter(a_mm, "Q", ["Qhat", "year"], label="year (mean month)").opts(
-            color="black", marker="square", size=11, fill_alpha=0.15, line_width=1.5, tools=["hover"])
-        lim = [min(lim[0], a_mm[["Q", "Qhat"]].values.min()), max(lim[1], a_mm[["Q", "Qhat"]].values.max())]
-    line = hv.Curve([(lim[0], lim[0]), (lim[1], lim[1])], label="1:1").opts(color="grey", line_dash="dashed")
+            ann.append((y, f["Q"].values[m].mean(), f["Qhat"].values[m].mean()))
+    a = pd.DataFrame(ann, columns=["year", "Q", "Qhat"])  # annual totals drawn as their monthly mean
+    yr = hv.Scatter(a, "Q", ["Qhat", "year"], label="year (mean month)").opts(
+        color="black", marker="square", size=11, fill_alpha=0.15, line_width=1.5, tools=["hover"], framewise=True)
+    vals = df[["Q", "Qhat"]].values
+    lim = [float(np.nanmin(vals)), float(np.nanmax(vals))] if len(df) else [0.0, 1.0]
+    line = hv.Curve([(lim[0], lim[0]), (lim[1], lim[1])], label="1:1").opts(color="grey", line_dash="dashed",
+                                                                             framewise=True)
     m = result.metrics
-    title = f"KGE {m['kge']:.2f}  NSE {m['nse']:.2f}  r {m['r']:.2f}  PBIAS {m['pbias']:.1f}%"
-    return (overlay * line).opts(responsive=True, height=320, shared_axes=False, xlabel=f"gauged Q ({unit})",
-                                 ylabel=f"P - ET - dS ({unit})", title=title, show_grid=True)
+    msg = _nodata(result)
+    title = msg or f"KGE {m['kge']:.2f}  NSE {m['nse']:.2f}  r {m['r']:.2f}  PBIAS {m['pbias']:.1f}%"
+    return (pts * yr * line).opts(responsive=True, height=320, shared_axes=False, xlabel=f"gauged Q ({unit})",
+                                  ylabel=f"P - ET - dS ({unit})", title=title, show_grid=True)
 
 
 def basin_map(basins, scores: pd.Series, selected: str | None = None, metric: str = "rmse"):
@@ -155,24 +164,24 @@ def basin_map(basins, scores: pd.Series, selected: str | None = None, metric: st
     p = hv.Polygons(polys, vdims=["score", "basin", "name", "area_km2", "lw"]).opts(
         color="score", cmap="viridis_r" if metric in ("rmse", "mae", "annual_rmse") else "viridis",
         colorbar=True, clabel=f"best {metric}", line_color="black", line_width="lw", alpha=0.85,
-        tools=["hover", "tap"], responsive=True, height=360, shared_axes=False, xlabel="longitude (deg E)", ylabel="latitude (deg N)",
-        title="Basins (click to select)", data_aspect=1, nonselection_alpha=0.85)
+        tools=["hover", "tap"], responsive=True, height=360, shared_axes=False, xlabel="longitude (deg E)",
+        ylabel="latitude (deg N)", title="Basins (click to select)", data_aspect=1, nonselection_alpha=0.85)
     return p
 
 
 def multi_basin(table: pd.DataFrame, unit: str = "mm/year"):
     """Long-term P - ET against Q for every basin with the chosen combination."""
     hv = _hv()
-    if table.empty or table[["P_minus_ET", "Q"]].isna().all().all():
-        return explain("no basin has complete years for this combination", title="All basins")
-    lim = [0.0, float(np.nanmax(table[["P_minus_ET", "Q"]].values)) * 1.1]
-    pts = hv.Scatter(table, "Q", ["P_minus_ET", "basin", "name", "years"]).opts(
-        size=10, color=COLORS["P"], tools=["hover"])
-    labels = hv.Labels(table, ["Q", "P_minus_ET"], "basin").opts(text_font_size="9pt", yoffset=lim[1] * 0.03)
-    line = hv.Curve([(lim[0], lim[0]), (lim[1], lim[1])]).opts(color="grey", line_dash="dashed")
+    t = table.dropna(subset=["P_minus_ET", "Q"]) if len(table) else table
+    top = float(np.nanmax(t[["P_minus_ET", "Q"]].values)) * 1.1 if len(t) else 1.0
+    pts = hv.Scatter(t, "Q", ["P_minus_ET", "basin", "name", "years"]).opts(
+        size=10, color=COLORS["P"], tools=["hover"], framewise=True)
+    labels = hv.Labels(t, ["Q", "P_minus_ET"], "basin").opts(text_font_size="9pt", yoffset=top * 0.03)
+    line = hv.Curve([(0.0, 0.0), (top, top)]).opts(color="grey", line_dash="dashed", framewise=True)
+    title = ("All basins, long-term means (complete years)" if len(t)
+             else "No basin has complete years for this combination")
     return (pts * labels * line).opts(responsive=True, height=300, shared_axes=False, xlabel=f"gauged Q ({unit})",
-                                      ylabel=f"P - ET ({unit})", title="All basins, long-term means (complete years)",
-                                      show_grid=True)
+                                      ylabel=f"P - ET ({unit})", title=title, show_grid=True)
 
 
 def warnings_for(result, series) -> list[str]:
