@@ -108,3 +108,15 @@ def test_best_combination_differs_between_basins(demo_series):
 
     best = {b: tuple(rank(demo_series, b).iloc[0][["P", "ET", "TWSA"]]) for b in ("VEL", "ULK")}
     assert best["VEL"] != best["ULK"]
+
+
+def test_demo_data_record_matches_the_generator():
+    import json
+    from pathlib import Path
+
+    from wbexplore import demo
+
+    rec = json.loads((Path(__file__).resolve().parent.parent / "demo_data" / "scenario.json").read_text())
+    assert rec["seed"] == demo.SEED and rec["region"] == demo.REGION
+    assert [b["id"] for b in rec["basins"]] == [b[0] for b in demo.BASINS]
+    assert [(p["id"], p["error"]) for p in rec["products"]] == [(p[0], p[3]) for p in demo.PRODUCTS]
