@@ -105,3 +105,19 @@ def test_app_builds_and_row_click_selects(state):
     ex._on_row(ev)
     assert (state.P, state.ET, state.TWSA) == (target["P"], target["ET"], target["TWSA"])
     assert ex.w_src["ET"].value == target["ET"]
+
+
+def test_export_and_report_buttons_write_files(state, tmp_path):
+    from wbexplore.explorer.app import Explorer
+    from wbexplore.selection import replay
+
+    ex = Explorer(state, export_dir=tmp_path / "out")
+    ex._on_export(None)
+    ex._on_report(None)
+    sel = list((tmp_path / "out").glob("selection_*.yaml"))
+    rep = list((tmp_path / "out").glob("report_*.html"))
+    assert len(sel) == 1 and len(rep) == 1 and "Wrote" in ex.export_msg.object
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert replay(sel[0])["n_metrics"] > 10
+    assert "Screening-level" in rep[0].read_text()

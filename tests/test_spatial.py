@@ -325,3 +325,20 @@ def test_extract_cli_writes_canonical_netcdf(demo_dir, tmp_path, capsys):
     assert "valid_fraction_fennel" in ds and "basin_area_km2" in ds.coords
     assert "history" in ds.attrs and "method" in ds.attrs
     ds.close()
+
+
+def test_irregular_grid_in_catalog_names_the_file(tmp_path, capsys):
+    from utils import box_basins, monthly, write_catalog
+    from wbexplore.cli import main
+
+    lon = np.array([0.25, 0.75, 1.25, 2.0, 2.5])  # one uneven step
+    lat = np.array([0.25, 0.75, 1.25])
+    ds = xr.Dataset({"p": (("time", "lat", "lon"), np.ones((3, 3, 5)), {"units": "mm"})},
+                    coords={"time": monthly("2001-01", 3), "lat": lat, "lon": lon})
+    ds.to_netcdf(tmp_path / "p.nc")
+    box_basins(tmp_path / "basins.geojson", [(0.2, 0.2, 1.0, 1.0)])
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.nc", "variable": "p"}])
+    rc = main(["extract", str(cat), "--out", str(tmp_path / "o.nc"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "p.nc" in err and "source 'p'" in err and "irregular" in err
+    assert not (tmp_path / "o.nc").exists()

@@ -83,7 +83,12 @@ def _geom_hash(geoms) -> str:
 def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None = None,
                 use_cache: bool = True, engine: str = "auto") -> Weights:
     """Weights of ``basins`` (GeoDataFrame in EPSG:4326) on the grid of ``src``, cached on disk."""
-    grid = describe_grid(src.data["x"].values, src.data["y"].values, src.crs)
+    from .spatial.grid import GridError
+
+    try:
+        grid = describe_grid(src.data["x"].values, src.data["y"].values, src.crs)
+    except GridError as exc:
+        raise InputError(f"{src.spec.paths[0]}: source {src.spec.id!r}: {exc}") from None
     geoms = basins.to_crs(src.crs).geometry.values if not src.crs.equals("EPSG:4326") else basins.geometry.values
     key = f"{grid.signature()}-{_geom_hash(geoms)}-{engine}"
     path = Path(cache_dir or default_cache_dir()) / f"{key}.npz"

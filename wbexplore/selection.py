@@ -218,29 +218,26 @@ def replay(path, *, cache_dir=None) -> dict:
         sid = getattr(sel, comp)
         if sid not in known:
             raise SelectionError(f"{path}: source id {sid!r} ({comp}) is not in catalog {cat_path}")
-    for comp in ("P", "ET", "TWSA"):
-        for f in doc["sources"][comp].get("files", []):
-            fp = (cat.path.parent / f["path"]).resolve()
+    base = cat.path.parent
+
+    def check(files, label, missing_label):
+        for f in files:
+            fp = (base / f["path"]).resolve()
             if not fp.exists():
-                raise SelectionError(f"{path}: source {getattr(sel, comp)!r} file {str(fp)!r} is missing")
+                raise SelectionError(f"{path}: {missing_label} file {str(fp)!r} is missing")
             if file_sha256(fp) != f.get("sha256"):
-                rows.append((f"source {getattr(sel, comp)}", f["path"], "sha256 changed"))
+                rows.append((label, f["path"], "sha256 changed"))
+
+    for comp in ("P", "ET", "TWSA"):
+        sid = getattr(sel, comp)
+        check(doc["sources"][comp].get("files", []), f"source {sid}", f"source {sid!r}")
     for sid, files in (doc.get("uncertainty_sources") or {}).items():
         if sid not in known:
             rows.append((f"source {sid}", "(uncertainty)", "no longer in the catalog"))
             continue
-        for f in files:
-            fp = (cat.path.parent / f["path"]).resolve()
-            if not fp.exists():
-                raise SelectionError(f"{path}: source {sid!r} file {str(fp)!r} is missing")
-            if file_sha256(fp) != f.get("sha256"):
-                rows.append((f"source {sid} (uncertainty)", f["path"], "sha256 changed"))
+        check(files, f"source {sid} (uncertainty)", f"source {sid!r}")
     for key, entry in (doc.get("inputs") or {}).items():
-        fp = (cat.path.parent / entry["path"]).resolve()
-        if not fp.exists():
-            raise SelectionError(f"{path}: {key} file {str(fp)!r} is missing")
-        if file_sha256(fp) != entry.get("sha256"):
-            rows.append((key, entry["path"], "sha256 changed"))
+        check([entry], key, key)
     ds = _extract_for(cat, sel, cache_dir)
     res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)))
     new = _clean_metrics(res.metrics)

@@ -82,6 +82,8 @@ class Explorer:
         self.w_export_dir = pn.widgets.TextInput(name="Export folder", value=str(self.export_dir), width=260)
         self.w_export = pn.widgets.Button(name="Export selection + CSV", button_type="success", width=260)
         self.w_export.on_click(self._on_export)
+        self.w_report = pn.widgets.Button(name="Write HTML report", button_type="default", width=260)
+        self.w_report.on_click(self._on_report)
         self.export_msg = pn.pane.Markdown("", css_classes=["wbx-export-msg"], width=260)
         self.w_download = pn.widgets.FileDownload(callback=self._csv_bytes, filename="series.csv",
                                                   label="Download series CSV", width=260, button_type="light")
@@ -152,21 +154,38 @@ class Explorer:
         f.to_csv(buf, float_format="%.17g")
         return io.BytesIO(buf.getvalue().encode())
 
-    def _on_export(self, event):
-        from ..selection import export_selection
-
+    def _write_to_folder(self, what: str, write) -> None:
+        """Run ``write(state, folder)`` (returns the message) and show the outcome under the buttons."""
         s = self.state
         folder = Path(self.w_export_dir.value)
         try:
             if not s.catalog_path:
-                raise InputError("export needs the explorer to be opened on a catalog file")
+                raise InputError(f"{what} needs the explorer to be opened on a catalog file")
             folder.mkdir(parents=True, exist_ok=True)
-            stem = f"selection_{s.basin}_{s.P}_{s.ET}_{s.TWSA}_{s.start}_{s.end}"
-            out = export_selection(s.catalog_path, s.selection(), folder / f"{stem}.yaml", overwrite=True,
-                                   series=str(folder / f"{stem}.csv"), unit_system=s.unit_system, ds=s.series)
-            self.export_msg.object = f"Wrote `{out['selection']}` and `{out['series']}`"
+            self.export_msg.object = write(s, folder, f"{s.basin}_{s.P}_{s.ET}_{s.TWSA}_{s.start}_{s.end}")
         except (InputError, OSError) as exc:
-            self.export_msg.object = f"**Export failed:** {exc}"
+            self.export_msg.object = f"**{what.capitalize()} failed:** {exc}"
+
+    def _on_export(self, event):
+        from ..selection import export_selection
+
+        def write(s, folder, stem):
+            out = export_selection(s.catalog_path, s.selection(), folder / f"selection_{stem}.yaml", overwrite=True,
+                                   series=str(folder / f"selection_{stem}.csv"), unit_system=s.unit_system,
+                                   ds=s.series)
+            return f"Wrote `{out['selection']}` and `{out['series']}`"
+
+        self._write_to_folder("export", write)
+
+    def _on_report(self, event):
+        from ..report import write_report
+
+        def write(s, folder, stem):
+            out = write_report(s.catalog_path, s.series, s.selection(), folder / f"report_{stem}.html",
+                               overwrite=True, by=s.metric)
+            return f"Wrote `{out}`"
+
+        self._write_to_folder("the report", write)
 
     # ----------------------------------------------------------------- views
     def _bound(self, fn, deps=_DEPS):
@@ -220,7 +239,7 @@ class Explorer:
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
             self.w_matched, pn.pane.Markdown("Units"), self.w_units, self.w_metric, self.w_best,
             pn.pane.Markdown("### Summary"), summary, warn,
-            pn.pane.Markdown("### Export"), self.w_export_dir, self.w_export, self.export_msg, self.w_download,
+            pn.pane.Markdown("### Export"), self.w_export_dir, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
         views_col = pn.Column(
             pn.Row(pn.pane.HoloViews(self._map(), sizing_mode="stretch_width", css_classes=["wbx-map"]), bars,
