@@ -174,13 +174,22 @@ def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
         return exact_extract(str(tif), gdf, ["mean(coverage_weight=area_spherical_m2)"], output="pandas",
                              strategy="raster-sequential")
 
-    r = max(1, repeat // 2)
-    t_rt, _ = median_time(bare_tif, repeat=r)
-    t_rn, _ = median_time(bare_nc, repeat=r)
-    with PeakRSS() as mem_t:
-        t_ot, _ = median_time(ours("t"), repeat=r)
-    with PeakRSS() as mem_n:
-        t_on, _ = median_time(ours("n"), repeat=r)
+    # interleaved, so that page-cache and machine drift hit both sides alike; medians
+    import statistics
+
+    runs = {"bare_tif": bare_tif, "ours_tif": ours("t"), "bare_nc": bare_nc, "ours_nc": ours("n")}
+    times = {k: [] for k in runs}
+    for fn in runs.values():
+        fn()  # warm-up (numba compile, weights cache, page cache)
+    with PeakRSS() as mem:
+        for _ in range(max(3, repeat)):
+            for k, fn in runs.items():
+                t = time.perf_counter()
+                fn()
+                times[k].append(time.perf_counter() - t)
+    med = {k: statistics.median(v) for k, v in times.items()}
+    t_rt, t_ot, t_rn, t_on = med["bare_tif"], med["ours_tif"], med["bare_nc"], med["ours_nc"]
+    mem_t = mem_n = mem
     t_ee, _ = median_time(ee_file, repeat=1, warmup=0)
     print(f"  bare read GeoTIFF (rasterio)            {t_rt:8.3f} s")
     print(f"  bare read netCDF (xarray .values)       {t_rn:8.3f} s")
