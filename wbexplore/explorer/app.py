@@ -222,18 +222,18 @@ class Explorer:
         s = self.state
         res = lambda: s.result()  # noqa: E731
         bars = pn.pane.HoloViews(self._dmap(lambda: views.component_bars(res(), s.unit_system), _SEL_DEPS),
-                                 sizing_mode="stretch_width", css_classes=["wbx-bars"])
+                                 linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-bars"])
         resid = pn.pane.HoloViews(self._dmap(lambda: views.residual_series(res(), s.unit_system), _SEL_DEPS),
-                                  sizing_mode="stretch_width", css_classes=["wbx-residual"])
+                                  linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-residual"])
         scatter = pn.pane.HoloViews(self._dmap(lambda: views.balance_scatter(res(), s.unit_system), _SEL_DEPS),
-                                    sizing_mode="stretch_width", css_classes=["wbx-scatter"])
+                                    linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-scatter"])
         summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
                                css_classes=["wbx-summary-pane"], width=260)
         warn = pn.pane.Markdown(self._bound(lambda: "\n".join(f"- {w}" for w in views.warnings_for(res(), s.series))
                                             or "No warnings for this selection.", _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
         multi = pn.pane.HoloViews(self._dmap(lambda: views.multi_basin(s.multi_basin()), _MULTI_DEPS),
-                                  sizing_mode="stretch_width", css_classes=["wbx-multi"])
+                                  linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-multi"])
         controls = pn.Column(
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search, self.w_src["P"], self.w_src["ET"],
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
@@ -242,7 +242,7 @@ class Explorer:
             pn.pane.Markdown("### Export"), self.w_export_dir, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
         views_col = pn.Column(
-            pn.Row(pn.pane.HoloViews(self._map(), sizing_mode="stretch_width", css_classes=["wbx-map"]), bars,
+            pn.Row(pn.pane.HoloViews(self._map(), linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-map"]), bars,
                    sizing_mode="stretch_width"),
             resid,
             pn.Row(scatter, multi, sizing_mode="stretch_width"),

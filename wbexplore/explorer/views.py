@@ -43,7 +43,7 @@ def explain(message: str, *, title: str = ""):
     """A standalone placeholder that says why there is nothing to draw."""
     hv = _hv()
     return hv.Text(0.5, 0.5, message).opts(xaxis=None, yaxis=None, toolbar=None, responsive=True, height=260,
-                                            shared_axes=False, title=title, fontsize={"text": 11}, show_frame=False)
+                                            title=title, fontsize={"text": 11}, show_frame=False)
 
 
 def _nodata(result) -> str | None:
@@ -68,7 +68,7 @@ def component_bars(result, unit_system: str = "mm"):
     unit = UNIT_LABEL[unit_system]
     msg = _nodata(result)
     bars = hv.Bars(df, kdims=["term"], vdims=["value", "color", "role"]).opts(
-        color="color", responsive=True, height=280, shared_axes=False, framewise=True,
+        color="color", responsive=True, height=280, framewise=True,
         ylabel=f"mean over valid months ({unit})", xlabel="", tools=["hover"], line_color=None)
     return (bars * hv.HLine(0).opts(color="black", line_width=1)).opts(
         title=msg or f"Component means, {result.n_valid} valid months")
@@ -103,11 +103,12 @@ def residual_series(result, unit_system: str = "mm"):
                          columns=["x0", "x1"])
     if spans.empty:
         spans = pd.DataFrame({"x0": pd.to_datetime([]), "x1": pd.to_datetime([])})
-    vsp = hv.VSpans(spans, kdims=["x0", "x1"]).opts(color=COLORS["gap"], alpha=0.45, line_width=0)
+    vsp = hv.VSpans(spans, kdims=["x0", "x1"]).opts(color=COLORS["gap"], alpha=0.45, line_width=0,
+                                                    framewise=True)
     sel = result.selection
     msg = _nodata(result)
     overlay = vsp * band * curve * pts * hv.HLine(0).opts(color="black", line_width=1)
-    return overlay.opts(responsive=True, height=300, shared_axes=False, ylabel=f"P - ET - Q - dS ({unit})",
+    return overlay.opts(responsive=True, height=300, ylabel=f"P - ET - Q - dS ({unit})",
                         xlabel="month", title=msg or f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)",
                         legend_position="top_left", show_grid=True)
 
@@ -145,7 +146,7 @@ def balance_scatter(result, unit_system: str = "mm"):
     m = result.metrics
     msg = _nodata(result)
     title = msg or f"KGE {m['kge']:.2f}  NSE {m['nse']:.2f}  r {m['r']:.2f}  PBIAS {m['pbias']:.1f}%"
-    return (pts * yr * line).opts(responsive=True, height=320, shared_axes=False, xlabel=f"gauged Q ({unit})",
+    return (pts * yr * line).opts(responsive=True, height=320, xlabel=f"gauged Q ({unit})",
                                   ylabel=f"P - ET - dS ({unit})", title=title, show_grid=True)
 
 
@@ -164,7 +165,7 @@ def basin_map(basins, scores: pd.Series, selected: str | None = None, metric: st
     p = hv.Polygons(polys, vdims=["score", "basin", "name", "area_km2", "lw"]).opts(
         color="score", cmap="viridis_r" if metric in ("rmse", "mae", "annual_rmse") else "viridis",
         colorbar=True, clabel=f"best {metric}", line_color="black", line_width="lw", alpha=0.85,
-        tools=["hover", "tap"], responsive=True, height=360, shared_axes=False, xlabel="longitude (deg E)",
+        tools=["hover", "tap"], responsive=True, height=360, xlabel="longitude (deg E)",
         ylabel="latitude (deg N)", title="Basins (click to select)", data_aspect=1, nonselection_alpha=0.85)
     return p
 
@@ -176,11 +177,12 @@ def multi_basin(table: pd.DataFrame, unit: str = "mm/year"):
     top = float(np.nanmax(t[["P_minus_ET", "Q"]].values)) * 1.1 if len(t) else 1.0
     pts = hv.Scatter(t, "Q", ["P_minus_ET", "basin", "name", "years"]).opts(
         size=10, color=COLORS["P"], tools=["hover"], framewise=True)
-    labels = hv.Labels(t, ["Q", "P_minus_ET"], "basin").opts(text_font_size="9pt", yoffset=top * 0.03)
+    labels = hv.Labels(t, ["Q", "P_minus_ET"], "basin").opts(text_font_size="9pt", yoffset=top * 0.03,
+                                                             framewise=True)
     line = hv.Curve([(0.0, 0.0), (top, top)]).opts(color="grey", line_dash="dashed", framewise=True)
     title = ("All basins, long-term means (complete years)" if len(t)
              else "No basin has complete years for this combination")
-    return (pts * labels * line).opts(responsive=True, height=300, shared_axes=False, xlabel=f"gauged Q ({unit})",
+    return (pts * labels * line).opts(responsive=True, height=300, xlabel=f"gauged Q ({unit})",
                                       ylabel=f"P - ET ({unit})", title=title, show_grid=True)
 
 
