@@ -102,13 +102,13 @@ def _has_ee():
     return _has_exactextract()
 
 
-def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray) -> np.ndarray:
+def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray, threads: bool = True) -> np.ndarray:
     """(t, wy, wx) block -> (t, basins, 2) array of [sum W x, sum W valid]."""
     from ._kernel import HAVE_NUMBA, accumulate
 
     t = X.shape[0]
     if HAVE_NUMBA and X.dtype.kind == "f":
-        return accumulate(np.ascontiguousarray(X).reshape(t, -1), used, wu_t)
+        return accumulate(np.ascontiguousarray(X).reshape(t, -1), used, wu_t, threads=threads)
     return _block_scipy(X, wu_t, used)
 
 
@@ -193,7 +193,7 @@ def zonal_mean(data: xr.DataArray, weights: Weights) -> xr.Dataset:
         arr = arr.rechunk({1: -1, 2: -1})
     w_d = dask.delayed(wu_t, pure=True)
     u_d = dask.delayed(used, pure=True)
-    parts = [dask.delayed(_block, pure=True)(blk, w_d, u_d) for blk in arr.to_delayed().ravel()]
+    parts = [dask.delayed(_block, pure=True)(blk, w_d, u_d, False) for blk in arr.to_delayed().ravel()]
     # one small task finishes everything: fewer graph operations than elementwise dask arrays
     both = dask.delayed(_finish_parts, pure=True)(parts, weights.covered_area_m2, weights.grid_coverage)
     nt = int(sum(arr.chunks[0]))
