@@ -39,7 +39,7 @@ def test_region_basins_and_sizes(demo_series, demo_dir):
     assert len(area) >= 5
     assert area.min() < 8000 and area.max() > 250_000
     b = gpd.read_file(demo_dir / "basins.geojson").set_index("basin_id")
-    # nested basin inside its parent; the region straddles Greenwich (the longitude convention matters)
+    # nested basin inside its parent; the region straddles the prime meridian (the longitude convention matters)
     assert b.loc["VEL", "geometry"].buffer(1e-9).contains(b.loc["VEU", "geometry"])
     minx, _, maxx, _ = b.total_bounds
     assert minx < 0 < maxx

@@ -134,7 +134,7 @@ def describe_grid(x, y, crs) -> GridSpec:
             except GridError:
                 if step is None:
                     raise
-                lon_offset = 360.0  # stays 0..360: basins west of Greenwich are shifted east
+                lon_offset = 360.0  # stays 0..360: basins west of the prime meridian are shifted east
         xn = xw if xw is not None else x
     else:
         xn = x
