@@ -193,7 +193,7 @@ def zonal_mean(data: xr.DataArray, weights: Weights) -> xr.Dataset:
         arr = arr.rechunk({1: -1, 2: -1})
     w_d = dask.delayed(wu_t, pure=True)
     u_d = dask.delayed(used, pure=True)
-    parts = [dask.delayed(_block, pure=True)(blk, w_d, u_d, False) for blk in arr.to_delayed().ravel()]
+    parts = [dask.delayed(_block, pure=True)(blk, w_d, u_d, False) for blk in arr.to_delayed(optimize_graph=False).ravel()]
     # one small task finishes everything: fewer graph operations than elementwise dask arrays
     both = dask.delayed(_finish_parts, pure=True)(parts, weights.covered_area_m2, weights.grid_coverage)
     nt = int(sum(arr.chunks[0]))
