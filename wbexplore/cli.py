@@ -277,6 +277,10 @@ def main(argv=None) -> int:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("default")
+            # library deprecation notices (e.g. rioxarray's use of affine) are not the user's business
+            warnings.filterwarnings("ignore", category=PendingDeprecationWarning)
+            warnings.filterwarnings("ignore", category=DeprecationWarning)
+            warnings.filterwarnings("ignore", category=FutureWarning)
             warnings.formatwarning = lambda m, c, *a, **k: f"wbexplore: warning: {m}\n"
             return _COMMANDS[args.command](args)
     except InputError as exc:
