@@ -16,7 +16,8 @@ import xarray as xr
 from ..errors import InputError
 from ..units import mm_per_month_to_flow_m3s, mm_to_m3
 from .metrics import compute_metrics
-from .storage import KERNELS, METHODS, fill_gaps, match_window, storage_change
+from .storage import (METHODS, fill_gaps, match_window, match_window_variance, shift_later, storage_change,
+                      storage_change_variance)
 
 __all__ = [
     "Selection", "SelectionResult", "compute_selection", "component_terms", "period_mask",
@@ -181,9 +182,7 @@ def component_terms(ds: xr.Dataset, sel: Selection) -> dict:
     if sel.lag:
         if not 0 <= sel.lag <= 12:
             raise InputError(f"lag {sel.lag} must be between 0 and 12 months")
-        shifted = np.full_like(q, np.nan)
-        shifted[:-sel.lag] = q[sel.lag:]
-        q = shifted
+        q = shift_later(q, sel.lag)
     out["Q"] = q
     twsa = out["TWSA"]
     filled = np.zeros(twsa.shape, dtype=bool)
@@ -214,28 +213,6 @@ def _sigma_component(ds, sel, comp, b, values):
             sd = np.sqrt(np.nansum((stack - mean) ** 2, axis=0) / np.maximum(n - 1, 1))
         return np.where(n >= 2, sd, np.nan), "spread"
     return np.full(values.shape, np.nan), "none"
-
-
-def _filter_var(var, method, matched):
-    if not matched:
-        return var
-    a, b, c = KERNELS[method]
-    out = b * b * var
-    if a:
-        out = out + a * a * np.concatenate([[np.nan], var[:-1]])
-    if c:
-        out = out + c * c * np.concatenate([var[1:], [np.nan]])
-    return out
-
-
-def _ds_var(var_m, method):
-    prev = np.concatenate([[np.nan], var_m[:-1]])
-    nxt = np.concatenate([var_m[1:], [np.nan]])
-    if method == "central":
-        return 0.25 * (prev + nxt)
-    if method == "backward":
-        return var_m + prev
-    return var_m + nxt
 
 
 def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float = Q_RELATIVE_ERROR,
@@ -270,10 +247,11 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     sE, srcE = _sigma_component(ds, sel, "ET", b, terms["ET"])
     sM, srcM = _sigma_component(ds, sel, "TWSA", b, terms["TWSA_used"])
     sQ = q_relative_error * np.abs(terms["Q"])
-    vP = _filter_var(sP**2, sel.storage_change, sel.matched)
-    vE = _filter_var(sE**2, sel.storage_change, sel.matched)
-    vQ = _filter_var(sQ**2, sel.storage_change, sel.matched)
-    vS = _ds_var(sM**2, sel.storage_change)
+    def flux_var(sd):
+        return match_window_variance(sd**2, sel.storage_change) if sel.matched else sd**2
+
+    vP, vE, vQ = flux_var(sP), flux_var(sE), flux_var(sQ)
+    vS = storage_change_variance(sM**2, sel.storage_change)
     sig = np.sqrt(np.stack([vP, vE, vQ, vS]))
     g = np.array([1.0, -1.0, -1.0, -1.0])
     if covariance is None:

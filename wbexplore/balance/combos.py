@@ -10,7 +10,7 @@ from ..errors import InputError
 from .closure import (ENSEMBLE_PREFIX, Selection, _basin_index, _valid, month_labels, period_mask, source_ids,
                       water_year, with_ensembles)
 from .metrics import METRICS, check_metric, compute_metrics, sort_key
-from .storage import METHODS, match_window, storage_change
+from .storage import METHODS, match_window, shift_later, storage_change
 
 __all__ = ["rank", "rank_all", "combination_terms", "best_selection", "long_term_all"]
 
@@ -59,9 +59,7 @@ def combination_terms(ds: xr.Dataset, basin: str | None, *, storage_change_metho
         Q = Q[b]
     dS = storage_change(M, storage_change_method)
     if lag:
-        q2 = np.full_like(Q, np.nan)
-        q2[..., :-lag] = Q[..., lag:]
-        Q = q2
+        Q = shift_later(Q, lag)
     if matched:
         P, ET, Q = (match_window(a, storage_change_method) for a in (P, ET, Q))
     return ids, P, ET, dS, Q

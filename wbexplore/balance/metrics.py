@@ -83,21 +83,23 @@ def _moments(sim, obs):
     return ms, mo, np.sqrt(vs), np.sqrt(vo), r
 
 
+def _kge_terms(ms, mo, ss, so, r):
+    """KGE (Gupta 2009) and KGE' (Kling 2012) from the moments of sim and obs."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        k = 1 - np.sqrt((r - 1) ** 2 + (ss / so - 1) ** 2 + (ms / mo - 1) ** 2)
+        gamma = (ss / ms) / (so / mo)
+        kp = 1 - np.sqrt((r - 1) ** 2 + (gamma - 1) ** 2 + (ms / mo - 1) ** 2)
+    return k, kp
+
+
 def kge(sim, obs):
     """Kling-Gupta efficiency (Gupta et al. 2009, J. Hydrol. 377:80)."""
-    sim, obs = _mask(sim, obs)
-    ms, mo, ss, so, r = _moments(sim, obs)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return 1 - np.sqrt((r - 1) ** 2 + (ss / so - 1) ** 2 + (ms / mo - 1) ** 2)
+    return _kge_terms(*_moments(*_mask(sim, obs)))[0]
 
 
 def kge_prime(sim, obs):
     """Modified KGE (Kling et al. 2012, J. Hydrol. 424:264): variability as the ratio of CVs."""
-    sim, obs = _mask(sim, obs)
-    ms, mo, ss, so, r = _moments(sim, obs)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        gamma = (ss / ms) / (so / mo)
-        return 1 - np.sqrt((r - 1) ** 2 + (gamma - 1) ** 2 + (ms / mo - 1) ** 2)
+    return _kge_terms(*_moments(*_mask(sim, obs)))[1]
 
 
 def nse(sim, obs):
@@ -164,11 +166,9 @@ def compute_metrics(P, ET, Q, dS, *, month_of_year=None, water_year=None, min_va
             out["nse_cyclo"] = 1 - num / np.nansum((Q - clim) ** 2, axis=-1)
         else:
             out["nse_cyclo"] = np.full(n.shape, np.nan)
-        out["kge"] = 1 - np.sqrt((r - 1) ** 2 + (ss / so - 1) ** 2 + (ms / mo - 1) ** 2)
-        gamma = (ss / ms) / (so / mo)
-        out["kge_prime"] = 1 - np.sqrt((r - 1) ** 2 + (gamma - 1) ** 2 + (ms / mo - 1) ** 2)
+        out["kge"], out["kge_prime"] = _kge_terms(ms, mo, ss, so, r)
         out["r"] = r
-        out["pbias"] = 100.0 * np.nansum(Q - qhat, axis=-1) / np.nansum(Q, axis=-1)
+    out["pbias"] = pbias(qhat, Q)
     if water_year is not None:
         wy = np.asarray(water_year)
         totals = []

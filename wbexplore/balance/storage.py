@@ -36,7 +36,8 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["METHODS", "KERNELS", "storage_change", "match_window", "fill_gaps", "window_closure"]
+__all__ = ["METHODS", "KERNELS", "storage_change", "match_window", "apply_kernel", "match_window_variance",
+           "storage_change_variance", "shift_later", "fill_gaps", "window_closure"]
 
 METHODS = ("central", "backward", "forward")
 # weights on F[i-1], F[i], F[i+1]
@@ -79,17 +80,43 @@ def storage_change(twsa_mm, method: str = "central") -> np.ndarray:
     return _shift(m, -1) - m
 
 
-def match_window(flux, method: str = "central") -> np.ndarray:
-    """Filter monthly flux totals (mm/month) with the kernel the storage difference implies."""
-    _check(method)
-    f = np.asarray(flux, dtype=np.float64)
-    a, b, c = KERNELS[method]
+# weights on var(M[i-1]), var(M[i]), var(M[i+1]) of the difference, for independent monthly errors
+_DS_VARIANCE_KERNELS = {"central": (0.25, 0.0, 0.25), "backward": (1.0, 1.0, 0.0), "forward": (0.0, 1.0, 1.0)}
+
+
+def apply_kernel(values, weights) -> np.ndarray:
+    """sum_k w_k * values[..., i + k - 1] for weights (w_prev, w_same, w_next); NaN at missing neighbours."""
+    f = np.asarray(values, dtype=np.float64)
+    a, b, c = weights
     out = b * f
     if a:
         out = out + a * _shift(f, 1)
     if c:
         out = out + c * _shift(f, -1)
     return out
+
+
+def match_window(flux, method: str = "central") -> np.ndarray:
+    """Filter monthly flux totals (mm/month) with the kernel the storage difference implies."""
+    _check(method)
+    return apply_kernel(flux, KERNELS[method])
+
+
+def match_window_variance(variance, method: str = "central") -> np.ndarray:
+    """Variance (mm2) of window-matched fluxes, for errors independent between months."""
+    _check(method)
+    return apply_kernel(variance, [w * w for w in KERNELS[method]])
+
+
+def storage_change_variance(variance, method: str = "central") -> np.ndarray:
+    """Variance (mm2) of `storage_change` from the monthly TWSA error variances (independent months)."""
+    _check(method)
+    return apply_kernel(variance, _DS_VARIANCE_KERNELS[method])
+
+
+def shift_later(values, months: int) -> np.ndarray:
+    """out[..., i] = values[..., i + months]: compare a series ``months`` later (NaN past the end)."""
+    return _shift(np.asarray(values, dtype=np.float64), -months)
 
 
 def fill_gaps(twsa_mm, *, max_gap: int | None = None) -> tuple[np.ndarray, np.ndarray]:

@@ -43,38 +43,14 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                             out[i, b, 1] += w
         return out
 
-    # the same without threads, for dask tasks (dask already runs one task per core)
-    @numba.njit(cache=True, nogil=True, parallel=False)
-    def _accumulate_seq(X, cells, indptr, indices, data, nb):  # noqa: D401
-        t = X.shape[0]
-        out = np.zeros((t, nb, 2))
-        ntile = (t + _TB - 1) // _TB
-        for tile in range(ntile):
-            t0 = tile * _TB
-            t1 = min(t, t0 + _TB)
-            for j in range(cells.size):
-                c = cells[j]
-                lo = indptr[j]
-                hi = indptr[j + 1]
-                for k in range(lo, hi):
-                    w = data[k]
-                    b = indices[k]
-                    for i in range(t0, t1):
-                        v = X[i, c]
-                        if v == v:
-                            out[i, b, 0] += w * np.float64(v)
-                            out[i, b, 1] += w
-        return out
-
     HAVE_NUMBA = True
 except ImportError:  # pragma: no cover
     HAVE_NUMBA = False
-    _accumulate = _accumulate_seq = None
+    _accumulate = None
 
 
-def accumulate(X2: np.ndarray, used: np.ndarray, wu_t, *, threads: bool = True) -> np.ndarray:
+def accumulate(X2: np.ndarray, used: np.ndarray, wu_t) -> np.ndarray:
     """(t, cells) block -> (t, basins, 2) of [sum W x, sum W valid] over the used cells."""
     wu_t = wu_t.tocsr() if hasattr(wu_t, "tocsr") else wu_t
-    fn = _accumulate if threads else _accumulate_seq
-    return fn(X2, used.astype(np.int64), wu_t.indptr.astype(np.int64), wu_t.indices.astype(np.int64),
+    return _accumulate(X2, used.astype(np.int64), wu_t.indptr.astype(np.int64), wu_t.indices.astype(np.int64),
                        wu_t.data.astype(np.float64), wu_t.shape[1])

@@ -102,13 +102,13 @@ def _has_ee():
     return _has_exactextract()
 
 
-def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray, threads: bool = True) -> np.ndarray:
+def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray) -> np.ndarray:
     """(t, wy, wx) block -> (t, basins, 2) array of [sum W x, sum W valid]."""
     from ._kernel import HAVE_NUMBA, accumulate
 
     t = X.shape[0]
     if HAVE_NUMBA and X.dtype.kind == "f":
-        return accumulate(np.ascontiguousarray(X).reshape(t, -1), used, wu_t, threads=threads)
+        return accumulate(np.ascontiguousarray(X).reshape(t, -1), used, wu_t)
     return _block_scipy(X, wu_t, used)
 
 
@@ -144,11 +144,7 @@ def apply_weights_numpy(X: np.ndarray, weights: Weights) -> tuple[np.ndarray, np
 
 
 def _finish(blk: np.ndarray, weights: Weights):
-    num, den = blk[:, :, 0].T, blk[:, :, 1].T
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(den > 0, num / den, np.nan)
-        covered = weights.covered_area_m2[:, None]
-        vf = np.where(covered > 0, den / covered, 0.0) * weights.grid_coverage[:, None]
+    mean, vf = _finish_parts([blk], weights.covered_area_m2, weights.grid_coverage)
     return mean, vf
 
 
@@ -193,7 +189,7 @@ def zonal_mean(data: xr.DataArray, weights: Weights) -> xr.Dataset:
         arr = arr.rechunk({1: -1, 2: -1})
     w_d = dask.delayed(wu_t, pure=True)
     u_d = dask.delayed(used, pure=True)
-    parts = [dask.delayed(_block, pure=True)(blk, w_d, u_d, False) for blk in arr.to_delayed(optimize_graph=False).ravel()]
+    parts = [dask.delayed(_block, pure=True)(blk, w_d, u_d) for blk in arr.to_delayed(optimize_graph=False).ravel()]
     # one small task finishes everything: fewer graph operations than elementwise dask arrays
     both = dask.delayed(_finish_parts, pure=True)(parts, weights.covered_area_m2, weights.grid_coverage)
     nt = int(sum(arr.chunks[0]))
