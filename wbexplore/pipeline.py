@@ -29,9 +29,9 @@ from .io.catalog import Catalog, SourceSpec, open_catalog
 from .io.discharge import read_discharge
 from .io.grids import SourceGrid, open_source
 from .spatial.grid import describe_grid
-from .spatial.zonal import Weights, build_weights, zonal_mean
+from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
 
-__all__ = ["extract", "load_series", "weights_for", "CoverageWarning", "LOW_COVERAGE", "source_vars", "valid_var",
+__all__ = ["extract", "load_series", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE", "source_vars", "valid_var",
            "default_cache_dir", "load_basins"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
@@ -93,13 +93,19 @@ def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None 
     key = f"{grid.signature()}-{_geom_hash(geoms)}-{engine}"
     path = Path(cache_dir or default_cache_dir()) / f"{key}.npz"
     if use_cache and path.is_file():
+        st = path.stat()
+        memo = _WEIGHTS_MEMO.get(str(path))
+        if memo is not None and memo[0] == (st.st_ino, st.st_size, st.st_mtime_ns):
+            return memo[1]  # same cache file as last time: keep its derived kernel arrays too
         try:
             z = np.load(path, allow_pickle=False)
             if str(z["format"]) == _WEIGHTS_FORMAT:
                 m = sp.csr_matrix((z["data"], z["indices"], z["indptr"]), shape=tuple(z["mshape"]))
-                return Weights(matrix=m, basin=z["basin"].astype(str), basin_area_m2=z["area"],
-                               shape=tuple(int(v) for v in z["shape"]), grid_signature=str(z["signature"]),
-                               engine=str(z["engine"]))
+                w = Weights(matrix=m, basin=z["basin"].astype(str), basin_area_m2=z["area"],
+                            shape=tuple(int(v) for v in z["shape"]), grid_signature=str(z["signature"]),
+                            engine=str(z["engine"]))
+                _remember(path, st, w)
+                return w
         except Exception:
             pass  # a damaged cache file is rebuilt
     w = build_weights(grid, geoms, basins.index.values.astype(str), basins["area_km2"].values * 1e6, engine=engine)
@@ -110,7 +116,25 @@ def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None 
                  indptr=w.matrix.indptr, mshape=np.array(w.matrix.shape), basin=w.basin.astype(str),
                  area=w.basin_area_m2, shape=np.array(w.shape), signature=w.grid_signature, engine=w.engine)
         os.replace(tmp, path)
+        _remember(path, path.stat(), w)
     return w
+
+
+_WEIGHTS_MEMO: dict = {}
+
+
+def _remember(path: Path, st, w: Weights) -> None:
+    if len(_WEIGHTS_MEMO) >= 32:
+        _WEIGHTS_MEMO.pop(next(iter(_WEIGHTS_MEMO)))
+    _WEIGHTS_MEMO[str(path)] = ((st.st_ino, st.st_size, st.st_mtime_ns), w)
+
+
+def source_means(src: SourceGrid, weights: Weights) -> xr.Dataset:
+    """Lazy basin means of one source: streamed from its stored blocks where a direct reader
+    decodes it exactly (`SourceGrid.blocks`), else through its xarray/dask array."""
+    if src.blocks is not None:
+        return zonal_mean_blocks(src.blocks, weights, src.data["time"].values)
+    return zonal_mean(src.data, weights)
 
 
 @contextmanager
@@ -188,7 +212,7 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
         for i in np.flatnonzero(cover < LOW_COVERAGE):
             warnings.warn(f"source {spec.id!r} covers only {cover[i]:.0%} of basin {str(w.basin[i])!r}",
                           CoverageWarning, stacklevel=2)
-        zm = zonal_mean(src.data, w)
+        zm = source_means(src, w)
         lazy[spec.id] = zm
         meta[spec.id] = (src, w)
     computed = _compute(lazy, scheduler=scheduler, workers=workers, client=client, progress=progress)

@@ -26,6 +26,7 @@ from pyproj import CRS
 
 from ..errors import InputError, UnitError
 from ..units import parse_flux_unit, parse_storage_unit
+from .blocks import BlockReader, GeoTIFFBlocks, NetCDFBlocks
 from .catalog import SourceSpec
 
 __all__ = ["SourceGrid", "open_source", "month_index", "TARGET_CHUNK_BYTES"]
@@ -47,6 +48,7 @@ class SourceGrid:
     native_units: str
     native_step: str  # "month" or "day"
     incomplete_months: int = 0  # months with missing days (daily data)
+    blocks: BlockReader | None = None  # direct reader of the stored values, when it decodes exactly like `data`
 
     @property
     def months(self) -> pd.DatetimeIndex:
@@ -189,12 +191,81 @@ def _open_netcdf_or_zarr(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.Dateti
         lo = _to_datetime_index(spec, b[:, 0])
         hi = _to_datetime_index(spec, b[:, 1])
         bounds_month = lo + (hi - lo) / 2
+    blocks = _netcdf_blocks(spec, da, (tdim, yd, xd)) if fmt != "zarr" and len(spec.paths) == 1 else None
     da = da.transpose(tdim, yd, xd).rename({tdim: "time", yd: "y", xd: "x"})
     da = da.drop_vars([c for c in da.coords if c not in ("time", "y", "x")])
     ny, nx = da.sizes["y"], da.sizes["x"]
     tc = _time_chunk(ny, nx, da.dtype.itemsize)
     da = da.chunk({"time": tc, "y": -1, "x": -1})
-    return da, crs, bounds_month
+    return da, crs, bounds_month, blocks
+
+
+def _packing(enc: dict) -> tuple[float, float, float] | None:
+    """(nodata, scale, offset) of xarray's CF decoding of one variable, or None where the
+    block reader would not reproduce it exactly (unsigned flags, several fill values)."""
+    if enc.get("_Unsigned") is not None:
+        return None
+    stored = np.dtype(enc.get("dtype", "float64"))
+    if stored.kind not in "fiu":
+        return None
+    fills = []
+    for key in ("_FillValue", "missing_value"):
+        v = enc.get(key)
+        if v is None:
+            continue
+        v = np.atleast_1d(np.asarray(v))
+        if v.size != 1:
+            return None
+        fills.append(float(v.astype(stored)[0]))  # the comparison happens in the stored type
+    fills = [f for f in dict.fromkeys(fills) if not np.isnan(f)]
+    if len(fills) > 1:
+        return None
+    nodata = fills[0] if fills else float("nan")
+    return nodata, float(enc.get("scale_factor", 1.0)), float(enc.get("add_offset", 0.0))
+
+
+def _netcdf_blocks(spec: SourceSpec, da: xr.DataArray, dims: tuple[str, str, str]) -> BlockReader | None:
+    if tuple(da.dims) != dims:
+        return None
+    pk = _packing(da.encoding)
+    if pk is None:
+        return None
+    enc = da.encoding
+    chunks = enc.get("chunksizes")
+    if not chunks or enc.get("contiguous", False):
+        chunks = (1, 0, 0)
+    # a compressed chunk is decoded whole for any part of it: read whole chunks only
+    filtered = any(enc.get(k) for k in ("zlib", "szip", "zstd", "bzip2", "blosc", "shuffle", "compression"))
+    return NetCDFBlocks(shape=tuple(int(n) for n in da.shape), dtype=np.dtype(enc["dtype"]).str,
+                        nodata=pk[0], scale=pk[1], offset=pk[2], time_align=int(chunks[0]) if filtered else 1,
+                        block_rows=int(chunks[1]), block_cols=int(chunks[2]),
+                        path=str(spec.paths[0]), variable=str(da.name))
+
+
+def _geotiff_blocks(paths, arrays) -> BlockReader | None:
+    """Reader for one multi-band file or single-band files in time order; None if their packing differs."""
+    import rasterio
+
+    pks = {_packing(a.encoding) for a in arrays}
+    dtypes = {np.dtype(a.encoding.get("rasterio_dtype", a.encoding.get("dtype", "float32"))).str for a in arrays}
+    if len(pks) != 1 or None in pks or len(dtypes) != 1:
+        return None
+    (nodata, scale, offset), = pks
+    interleaved = False
+    with rasterio.open(paths[0]) as s:
+        if s.count > 1 and s.interleaving is not None and s.interleaving.name.lower() == "pixel":
+            interleaved = True  # every block holds all bands: read all steps of a strip at once
+        if len(set(s.dtypes)) != 1:
+            return None
+        brow, bcol = s.block_shapes[0]
+    if len(paths) == 1:
+        nt = int(arrays[0].sizes["band"])
+    else:
+        nt = len(paths)
+    ny, nx = int(arrays[0].sizes["y"]), int(arrays[0].sizes["x"])
+    return GeoTIFFBlocks(shape=(nt, ny, nx), dtype=dtypes.pop(), nodata=nodata, scale=scale, offset=offset,
+                         time_align=1, block_rows=int(brow), block_cols=int(bcol), interleaved=interleaved,
+                         paths=[str(p) for p in paths])
 
 
 _DATE_TOKENS = {"%Y": r"\d{4}", "%m": r"\d{2}", "%d": r"\d{2}", "%j": r"\d{3}", "%y": r"\d{2}", "%b": r"[A-Za-z]{3}"}
@@ -244,6 +315,7 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
             if times is None:
                 _fail(spec, "field 'time_start' is required: the GeoTIFF's bands carry no dates")
         da = da.assign_coords(band=times)
+        blocks = _geotiff_blocks(spec.paths, [da])
     else:
         rx = _date_regex(spec.date_format or "%Y-%m")
         items = []
@@ -267,6 +339,7 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
             elif a.shape != first.shape or not np.allclose(a.x.values, first.x.values) or not np.allclose(a.y.values, first.y.values):
                 _fail(spec, "grid differs from the series' first file", p)
             arrays.append(a.isel(band=0, drop=True))
+        blocks = _geotiff_blocks([p for _, p in items], arrays)
         da = xr.concat(arrays, dim=pd.Index([t for t, _ in items], name="band"), coords="minimal",
                        compat="override", join="override")
         da.attrs = first.attrs
@@ -285,7 +358,7 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
         da.attrs["units"] = units
     ny, nx = da.sizes["y"], da.sizes["x"]
     da = da.chunk({"time": _time_chunk(ny, nx, da.dtype.itemsize), "y": -1, "x": -1})
-    return da, crs, None
+    return da, crs, None, blocks
 
 
 def _infer_step(spec: SourceSpec, times: pd.DatetimeIndex) -> str:
@@ -306,9 +379,9 @@ def open_source(spec: SourceSpec) -> SourceGrid:
     variable, no CRS, units missing or of the wrong dimension, or duplicate months.
     """
     if spec.format == "geotiff":
-        da, crs, bounds_mid = _open_geotiff(spec)
+        da, crs, bounds_mid, blocks = _open_geotiff(spec)
     else:
-        da, crs, bounds_mid = _open_netcdf_or_zarr(spec)
+        da, crs, bounds_mid, blocks = _open_netcdf_or_zarr(spec)
     units = spec.units or da.attrs.get("units")
     if not units:
         _fail(spec, "field 'units' is required: the file's variable has no units attribute")
@@ -333,11 +406,13 @@ def open_source(spec: SourceSpec) -> SourceGrid:
         if not months.is_monotonic_increasing:
             da = da.sortby("time")
             months = pd.DatetimeIndex(da["time"].values)
+            blocks = None  # stored order is not month order: the xarray path reorders
         if spec.component == "TWSA":
             factor = np.full(len(months), twsa_factor)
         else:
             factor = flux.monthly_factor(months)
     else:
+        blocks = None  # daily values are summed to months cell by cell first: the xarray path does that
         days = times.normalize()
         if days.has_duplicates:
             _fail(spec, f"two time steps fall on the same day {days[days.duplicated()][0]:%Y-%m-%d}")
@@ -366,7 +441,7 @@ def open_source(spec: SourceSpec) -> SourceGrid:
     da.name = spec.id
     da.attrs = {"units": units}
     return SourceGrid(spec=spec, data=da, crs=crs, factor=np.asarray(factor, float), native_units=units,
-                      native_step=step, incomplete_months=incomplete)
+                      native_step=step, incomplete_months=incomplete, blocks=blocks)
 
 
 def _days_chunks(full: pd.DatetimeIndex) -> tuple[int, ...]:
