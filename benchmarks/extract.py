@@ -128,6 +128,7 @@ def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
 
     from wbexplore.io.catalog import open_catalog
     from wbexplore.io.grids import open_source
+    from wbexplore.io.blocks import release_handles
     from wbexplore.pipeline import source_means, weights_for
     from wbexplore.spatial.zonal import zonal_mean
 
@@ -169,7 +170,9 @@ def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
             src = open_source(cat.source(spec_id))
             w = weights_for(src, basins, cache_dir=d / "cache")
             zm = source_means(src, w) if streamed else zonal_mean(src.data, w)
-            return zm.compute(scheduler="threads")
+            out = zm.compute(scheduler="threads")
+            release_handles()  # as extract does: every run opens its file again
+            return out
         return run
 
     def ee_file():

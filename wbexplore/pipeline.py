@@ -10,6 +10,7 @@ share of basin area with data as ``valid_fraction_<id>``, and coordinates
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import os
 import warnings
@@ -27,6 +28,7 @@ from .errors import InputError
 from .io.basins import read_basins
 from .io.catalog import Catalog, SourceSpec, open_catalog
 from .io.discharge import read_discharge
+from .io.blocks import release_handles
 from .io.grids import SourceGrid, open_source
 from .spatial.grid import describe_grid
 from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
@@ -129,11 +131,17 @@ def _remember(path: Path, st, w: Weights) -> None:
     _WEIGHTS_MEMO[str(path)] = ((st.st_ino, st.st_size, st.st_mtime_ns), w)
 
 
-def source_means(src: SourceGrid, weights: Weights) -> xr.Dataset:
+def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True) -> xr.Dataset:
     """Lazy basin means of one source: streamed from its stored blocks where a direct reader
-    decodes it exactly (`SourceGrid.blocks`), else through its xarray/dask array."""
+    decodes it exactly (`SourceGrid.blocks`), else through its xarray/dask array.
+
+    ``keep_open=False`` opens the file in every task (for workers of a distributed cluster, which
+    would otherwise hold product files open after the run); locally the handles are kept until
+    `wbexplore.io.blocks.release_handles`.
+    """
     if src.blocks is not None:
-        return zonal_mean_blocks(src.blocks, weights, src.data["time"].values)
+        blocks = src.blocks if keep_open else dataclasses.replace(src.blocks, keep_open=False)
+        return zonal_mean_blocks(blocks, weights, src.data["time"].values)
     return zonal_mean(src.data, weights)
 
 
@@ -197,6 +205,7 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
     specs: list[SourceSpec] = [cat.source(s) for s in sources] if sources else list(cat.sources)
     lazy = {}
     meta = {}
+    remote = client is not None or scheduler is not None or workers is not None
     iterator = specs
     if progress:
         from tqdm.auto import tqdm
@@ -212,10 +221,13 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
         for i in np.flatnonzero(cover < LOW_COVERAGE):
             warnings.warn(f"source {spec.id!r} covers only {cover[i]:.0%} of basin {str(w.basin[i])!r}",
                           CoverageWarning, stacklevel=2)
-        zm = source_means(src, w)
+        zm = source_means(src, w, keep_open=not remote)
         lazy[spec.id] = zm
         meta[spec.id] = (src, w)
-    computed = _compute(lazy, scheduler=scheduler, workers=workers, client=client, progress=progress)
+    try:
+        computed = _compute(lazy, scheduler=scheduler, workers=workers, client=client, progress=progress)
+    finally:
+        release_handles()  # leave no product file open (HDF5 would refuse to rewrite it)
     return _assemble(cat, gdf, specs, computed, meta)
 
 

@@ -220,7 +220,7 @@ def _packing(enc: dict) -> tuple[float, float, float] | None:
     fills = [f for f in dict.fromkeys(fills) if not np.isnan(f)]
     if len(fills) > 1:
         return None
-    nodata = fills[0] if fills else float("nan")
+    nodata = fills[0] if fills else None
     return nodata, float(enc.get("scale_factor", 1.0)), float(enc.get("add_offset", 0.0))
 
 
@@ -246,11 +246,12 @@ def _geotiff_blocks(paths, arrays) -> BlockReader | None:
     """Reader for one multi-band file or single-band files in time order; None if their packing differs."""
     import rasterio
 
-    pks = {_packing(a.encoding) for a in arrays}
+    pks = [_packing(a.encoding) for a in arrays]
+    kinds = set(pks)
     dtypes = {np.dtype(a.encoding.get("rasterio_dtype", a.encoding.get("dtype", "float32"))).str for a in arrays}
-    if len(pks) != 1 or None in pks or len(dtypes) != 1:
+    if len(kinds) != 1 or None in kinds or len(dtypes) != 1:
         return None
-    (nodata, scale, offset), = pks
+    nodata, scale, offset = pks[0]
     interleaved = False
     with rasterio.open(paths[0]) as s:
         if s.count > 1 and s.interleaving is not None and s.interleaving.name.lower() == "pixel":
