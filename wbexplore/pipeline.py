@@ -162,8 +162,6 @@ def _client(scheduler: str | None, workers: int | None):
         finally:
             client.close()
         return
-    if workers < 1:
-        raise InputError(f"--workers must be at least 1, got {workers}")
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None) as cl, \
             Client(cl) as client:
         yield client
@@ -203,9 +201,22 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
             raise InputError(f"{cat.basins.path}: basin {missing[0]!r} not found")
         gdf = gdf.loc[list(basins)]
     specs: list[SourceSpec] = [cat.source(s) for s in sources] if sources else list(cat.sources)
+    if workers is not None and workers < 1:
+        raise InputError(f"--workers must be at least 1, got {workers}")
+    from contextlib import ExitStack
+
+    with ExitStack() as stack:
+        if client is None and (scheduler is not None or workers is not None):
+            # connect (or start the cluster) first: a scheduler that does not answer fails fast
+            client = stack.enter_context(_client(scheduler, workers))
+        return _extract(cat, gdf, specs, client=client, progress=progress, cache_dir=cache_dir,
+                        use_cache=use_cache, engine=engine)
+
+
+def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine) -> xr.Dataset:
     lazy = {}
     meta = {}
-    remote = client is not None or scheduler is not None or workers is not None
+    remote = client is not None
     iterator = specs
     if progress:
         from tqdm.auto import tqdm
@@ -225,30 +236,26 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
         lazy[spec.id] = zm
         meta[spec.id] = (src, w)
     try:
-        computed = _compute(lazy, scheduler=scheduler, workers=workers, client=client, progress=progress)
+        computed = _compute(lazy, client=client, progress=progress)
     finally:
         release_handles()  # leave no product file open (HDF5 would refuse to rewrite it)
     return _assemble(cat, gdf, specs, computed, meta)
 
 
-def _compute(lazy: dict, *, scheduler, workers, client, progress):
+def _compute(lazy: dict, *, client, progress):
     import dask
 
     keys = list(lazy)
     objs = [lazy[k] for k in keys]
-    if client is not None or scheduler is not None or workers is not None:
-        from contextlib import nullcontext
+    if client is not None:
+        futures = client.compute(objs)
+        if progress:
+            from distributed import as_completed
+            from tqdm.auto import tqdm
 
-        ctx = nullcontext(client) if client is not None else _client(scheduler, workers)
-        with ctx as cl:
-            futures = cl.compute(objs)
-            if progress:
-                from distributed import as_completed
-                from tqdm.auto import tqdm
-
-                for _ in tqdm(as_completed(futures), total=len(futures), desc="extract", unit="source"):
-                    pass
-            results = cl.gather(futures)
+            for _ in tqdm(as_completed(futures), total=len(futures), desc="extract", unit="source"):
+                pass
+        results = client.gather(futures)
     elif progress:
         from tqdm.dask import TqdmCallback
 
