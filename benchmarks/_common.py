@@ -49,11 +49,6 @@ class PeakRSS:
     def peak_gib(self):
         return self.peak / 2**30
 
-    @property
-    def rise_gib(self):
-        """Peak above the resident memory at entry (what the block itself needed)."""
-        return (self.peak - self.base) / 2**30
-
 
 def star_polygons(rng, n, lon0, lon1, lat0, lat1, dmin, dmax):
     import shapely

@@ -195,20 +195,24 @@ def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
             times[k].append(time.perf_counter() - t)
     med = {k: statistics.median(v) for k, v in times.items()}
     t_rt, t_ot, t_rn, t_on = med["bare_tif"], med["ours_tif"], med["bare_nc"], med["ours_nc"]
-    import gc
+    import tracemalloc
 
-    gc.collect()
-    with PeakRSS() as mem_t:  # what one streamed extraction needs on top of this process
-        runs["ours_tif"]()
-    gc.collect()
-    with PeakRSS() as mem_n:
-        runs["ours_nc"]()
+    def peak_alloc_mib(fn):
+        """Peak of the arrays and objects one streamed extraction allocates (tracemalloc sees numpy's
+        buffers; the process RSS would not show it, as freed arenas of earlier runs are reused)."""
+        tracemalloc.start()
+        fn()
+        peak = tracemalloc.get_traced_memory()[1]
+        tracemalloc.stop()
+        return peak / 2**20
+
+    mem_t, mem_n = peak_alloc_mib(runs["ours_tif"]), peak_alloc_mib(runs["ours_nc"])
     t_ee, _ = median_time(ee_file, repeat=1, warmup=0)
     t_een, _ = median_time(lambda: ee_file(nc), repeat=1, warmup=0)  # GDAL's netCDF driver
     print(f"  bare read GeoTIFF (rasterio)            {t_rt:8.3f} s")
     print(f"  bare read netCDF (xarray .values)       {t_rn:8.3f} s")
-    print(f"  wbexplore end to end, GeoTIFF           {t_ot:8.3f} s   peak memory +{mem_t.rise_gib * 1024:.0f} MiB")
-    print(f"  wbexplore end to end, netCDF            {t_on:8.3f} s   peak memory +{mem_n.rise_gib * 1024:.0f} MiB")
+    print(f"  wbexplore end to end, GeoTIFF           {t_ot:8.3f} s   peak allocations {mem_t:.0f} MiB")
+    print(f"  wbexplore end to end, netCDF            {t_on:8.3f} s   peak allocations {mem_n:.0f} MiB")
     print(f"  same through xarray + dask, GeoTIFF     {med['xr_tif']:8.3f} s   (the path for other formats)")
     print(f"  same through xarray + dask, netCDF      {med['xr_nc']:8.3f} s")
     print(f"  exactextract raster-sequential, GeoTIFF {t_ee:8.3f} s")
