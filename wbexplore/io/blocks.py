@@ -9,8 +9,8 @@ the file's own order, and the read of one block overlaps the accumulation of the
 
 Measured side by side (``benchmarks/extract.py``, 240 x 600 x 600 float32, 100 basins, file in
 the page cache, medians of 7 interleaved runs on this kind of 2-core machine): netCDF through
-xarray + dask 0.20 s, through this reader 0.157 s, bare ``xarray .values`` read 0.13 s; GeoTIFF
-0.69 s, 0.15 s and a bare rasterio read of 0.32 s.
+xarray + dask 0.29 s, through this reader 0.21 s, bare ``xarray .values`` read 0.21 s; GeoTIFF
+1.45 s, 0.26 s and a bare rasterio read of 0.50 s (the reader's two tasks read tiles in parallel).
 
 Readers are plain picklable descriptions (paths, variable, packing); open file handles live in
 a per-process cache keyed by the file's identity (inode, size, modification time), so a file
