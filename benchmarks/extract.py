@@ -143,13 +143,17 @@ def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
     xr.Dataset({"v": (("time", "lat", "lon"), X, {"units": "mm"})},
                coords={"time": months, "lat": lat, "lon": lon}).to_netcdf(
         nc, encoding={"v": {"chunksizes": (12, ny, nx)}})
+    zr = d / "stack.zarr"  # zarr goes through xarray + dask (no block reader): measured for orientation
+    xr.Dataset({"v": (("time", "lat", "lon"), X, {"units": "mm"})},
+               coords={"time": months, "lat": lat, "lon": lon}).to_zarr(zr, encoding={"v": {"chunks": (12, ny, nx)}})
     gdf.assign(basin_id=ids, name=ids).to_file(d / "b.geojson")
     import yaml
 
     (d / "c.yaml").write_text(yaml.safe_dump({
         "catalog_version": 1, "basins": {"path": "b.geojson", "id_field": "basin_id"},
         "sources": [{"id": "t", "component": "P", "path": "stack.tif", "units": "mm", "time_start": "2001-01"},
-                    {"id": "n", "component": "P", "path": "stack.nc", "variable": "v"}]}))
+                    {"id": "n", "component": "P", "path": "stack.nc", "variable": "v"},
+                    {"id": "z", "component": "P", "path": "stack.zarr", "variable": "v"}]}))
     cat = open_catalog(d / "c.yaml")
     from wbexplore.pipeline import load_basins
 
@@ -162,6 +166,10 @@ def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
 
     def bare_nc():
         with xr.open_dataset(nc) as ds:
+            return ds["v"].values
+
+    def bare_zarr():
+        with xr.open_zarr(zr) as ds:
             return ds["v"].values
 
     def ours(spec_id, streamed=True):
@@ -183,7 +191,8 @@ def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
     import statistics
 
     runs = {"bare_tif": bare_tif, "ours_tif": ours("t"), "bare_nc": bare_nc, "ours_nc": ours("n"),
-            "xr_tif": ours("t", streamed=False), "xr_nc": ours("n", streamed=False)}
+            "xr_tif": ours("t", streamed=False), "xr_nc": ours("n", streamed=False),
+            "bare_zarr": bare_zarr, "xr_zarr": ours("z")}
     assert all(open_source(cat.source(k)).blocks is not None for k in "tn")  # the streamed path is measured
     times = {k: [] for k in runs}
     for fn in runs.values():
@@ -215,6 +224,9 @@ def file_runs(d, X, lon, lat, polys, gdf, ids, areas, repeat):
     print(f"  wbexplore end to end, netCDF            {t_on:8.3f} s   peak allocations {mem_n:.0f} MiB")
     print(f"  same through xarray + dask, GeoTIFF     {med['xr_tif']:8.3f} s   (the path for other formats)")
     print(f"  same through xarray + dask, netCDF      {med['xr_nc']:8.3f} s")
+    print(f"  bare read zarr (xarray .values)         {med['bare_zarr']:8.3f} s")
+    print(f"  wbexplore end to end, zarr (dask)       {med['xr_zarr']:8.3f} s   ratio to bare read "
+          f"{med['xr_zarr'] / med['bare_zarr']:.2f}")
     print(f"  exactextract raster-sequential, GeoTIFF {t_ee:8.3f} s")
     print(f"  exactextract raster-sequential, netCDF  {t_een:8.3f} s")
     print(f"  ratio wbexplore GeoTIFF / exactextract file   {t_ot / t_ee:6.3f}   target <= 0.5")
