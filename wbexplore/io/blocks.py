@@ -24,6 +24,7 @@ from __future__ import annotations
 import os
 import threading
 from collections import OrderedDict
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -58,14 +59,16 @@ class _HandleCache:
         self._guard = threading.Lock()
         _ALL_CACHES.append(self)
 
+    def _close_quietly(self, h) -> None:
+        try:
+            self._close(h)
+        except Exception:  # pragma: no cover - closing a stale handle
+            pass
+
     def clear(self) -> None:
         with self._guard:
             while self._lru:
-                _, h = self._lru.popitem()
-                try:
-                    self._close(h)
-                except Exception:  # pragma: no cover
-                    pass
+                self._close_quietly(self._lru.popitem()[1])
 
     def get(self, path: str):
         key = _identity(path)
@@ -75,12 +78,20 @@ class _HandleCache:
                 h = self._open(path)
             self._lru[key] = h
             while len(self._lru) > _MAX_HANDLES:
-                _, old = self._lru.popitem(last=False)
-                try:
-                    self._close(old)
-                except Exception:  # pragma: no cover - closing a stale handle
-                    pass
+                self._close_quietly(self._lru.popitem(last=False)[1])
             return h
+
+    @contextmanager
+    def opened(self, path: str, keep_open: bool):
+        """A handle of ``path``: the cached one, or (``keep_open=False``) one closed on exit."""
+        if keep_open:
+            yield self.get(path)
+            return
+        h = self._open(path)
+        try:
+            yield h
+        finally:
+            self._close(h)
 
 
 @dataclass
@@ -151,16 +162,11 @@ class NetCDFBlocks(BlockReader):
     variable: str = ""
 
     def read(self, t0, t1, r0, r1, c0, c1):
-        with _nc_lock():
-            h = _NC_HANDLES.get(self.path) if self.keep_open else _nc_open(self.path)
-            try:
-                v = h[self.variable]
-                v.set_auto_maskandscale(False)
-                v.set_always_mask(False)
-                out = v[t0:t1, r0:r1, c0:c1]
-            finally:
-                if not self.keep_open:
-                    h.close()
+        with _nc_lock(), _NC_HANDLES.opened(self.path, self.keep_open) as h:
+            v = h[self.variable]
+            v.set_auto_maskandscale(False)
+            v.set_always_mask(False)
+            out = v[t0:t1, r0:r1, c0:c1]
         return np.ascontiguousarray(out)
 
 
@@ -184,18 +190,14 @@ class GeoTIFFBlocks(BlockReader):
     paths: list[str] = field(default_factory=list)
 
     def read(self, t0, t1, r0, r1, c0, c1):
+        import rasterio
         from rasterio.windows import Window
 
         win = Window(c0, r0, c1 - c0, r1 - r0)
         out = np.empty((t1 - t0, r1 - r0, c1 - c0), dtype=self.dtype)
-        import rasterio
-
         if len(self.paths) == 1:
-            if self.keep_open:
-                _tif_handles().get(self.paths[0]).read(list(range(t0 + 1, t1 + 1)), window=win, out=out)
-            else:
-                with rasterio.open(self.paths[0]) as src:
-                    src.read(list(range(t0 + 1, t1 + 1)), window=win, out=out)
+            with _tif_handles().opened(self.paths[0], self.keep_open) as src:
+                src.read(list(range(t0 + 1, t1 + 1)), window=win, out=out)
             return out
 
         for i, t in enumerate(range(t0, t1)):
