@@ -52,7 +52,7 @@ class Weights:
     engine: str = ""
     _window: tuple | None = field(default=None, repr=False)
     _full: tuple | None = field(default=None, repr=False)
-    _strips: dict = field(default_factory=dict, repr=False)
+    _args_cache: dict = field(default_factory=dict, repr=False)  # kernel arguments of the window and of strips
 
     @property
     def covered_area_m2(self) -> np.ndarray:
@@ -89,12 +89,18 @@ class Weights:
 
     def window_args(self) -> tuple:
         """`kernel_args` of the window (cached)."""
-        if "window" not in self._strips:
+        if "window" not in self._args_cache:
             from ._kernel import kernel_args
 
             _, _, wu_t, wused = self.window()
-            self._strips["window"] = kernel_args(wused, wu_t)
-        return self._strips["window"]
+            self._args_cache["window"] = kernel_args(wused, wu_t)
+        return self._args_cache["window"]
+
+    def used_rows_cols(self) -> tuple[np.ndarray, np.ndarray]:
+        """Grid row and column (file order) of each used cell, in the order of `window`'s rows."""
+        rs, cs, _, wused = self.window()
+        r, c = np.divmod(wused, max(1, cs.stop - cs.start))
+        return r + rs.start, c + cs.start
 
     def strips(self, rows: tuple[int, int], cols: tuple[int, int], rows_per_strip: int):
         """Kernel arguments per strip of rows for block reads: ``[(r0, r1, c0, c1, args), ...]``.
@@ -105,20 +111,16 @@ class Weights:
         basins' window); cells are numbered inside each (r1 - r0, c1 - c0) block.
         """
         key = (tuple(rows), tuple(cols), rows_per_strip)
-        if key not in self._strips:
+        if key not in self._args_cache:
             from ._kernel import kernel_args
 
-            rs, cs, wu_t, wused = self.window()
+            rs, cs, wu_t, _ = self.window()
             out = []
             if rs.stop > rs.start:
                 (ra, rb), (c0, c1) = rows, cols
                 if ra > rs.start or rb < rs.stop or c0 > cs.start or c1 < cs.stop:
                     raise ValueError("the read block must contain the basins' window")
-                wx = cs.stop - cs.start
-                r_used, c_used = np.divmod(wused, wx)
-                r_used = r_used + rs.start
-                c_used = c_used + cs.start
-                wu_t = sp.csr_array(wu_t)
+                r_used, c_used = self.used_rows_cols()
                 for g0 in range(ra - ra % rows_per_strip, rb, rows_per_strip):  # at fixed grid rows
                     r0, r1 = max(ra, g0), min(rb, g0 + rows_per_strip)
                     lo, hi = np.searchsorted(r_used, [r0, r1])  # used cells are sorted by row
@@ -126,8 +128,8 @@ class Weights:
                         continue
                     cells = (r_used[lo:hi] - r0) * (c1 - c0) + (c_used[lo:hi] - c0)
                     out.append((r0, r1, c0, c1, kernel_args(cells, wu_t[lo:hi])))
-            self._strips[key] = out
-        return self._strips[key]
+            self._args_cache[key] = out
+        return self._args_cache[key]
 
 
 def build_weights(grid: GridSpec, geoms, basin_ids, basin_area_m2, *, engine: str = "auto") -> Weights:
@@ -172,10 +174,10 @@ def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub) -> np.ndarray:
 
 
 def _accumulate_raw(X2, args, nodata) -> np.ndarray:
-    from ._kernel import HAVE_NUMBA, _accumulate
+    from ._kernel import HAVE_NUMBA, accumulate
 
     if HAVE_NUMBA:
-        return _accumulate(X2, *args, np.float64(nodata))
+        return accumulate(X2, None, None, nodata, args=args)
     cells, indptr, indices, data, nb = args  # pragma: no cover - without numba
     wu_t = sp.csr_array((data, indices, indptr), shape=(cells.size, nb))
     Xf = X2.astype(np.float64)
@@ -207,7 +209,6 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, task_bytes: int = TASK_
     the read of one block overlaps the accumulation of another. Stored fill values are
     skipped and packing is applied to the means; the result equals decoding every value first.
     """
-    import dask
     import dask.array as dsa
 
     nt, ny, nx = reader.shape
@@ -238,9 +239,8 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, task_bytes: int = TASK_
     # reads within a task: whole stored chunks when they are compressed, else cache-sized pieces
     sub = steps if reader.time_align > 1 else max(1, min(steps, round(read_bytes / step_bytes)))
     nb = len(weights.basin)
-    # the weights go into the graph once per strip, not hashed and copied into every task
-    # a plain task graph: the weights and the reader enter it once, nothing is hashed
-    # (dask.delayed spent 15 ms building the 20 tasks of the benchmark stack)
+    # a plain task graph: the reader and each strip's weights enter it once, nothing is hashed
+    # or copied into every task (dask.delayed spent 15 ms building the 20 tasks of the benchmark stack)
     name = f"wbx-zonal-{uuid.uuid4().hex}"
     dsk = {(name + "-reader",): reader}
     for i, (*_, args) in enumerate(strips):
@@ -302,8 +302,9 @@ def apply_weights_numpy(X: np.ndarray, weights: Weights) -> tuple[np.ndarray, np
         if weights._full is None:
             from ._kernel import kernel_args
 
-            rs, cs, wu_t, _ = weights.window()
-            used = np.flatnonzero(np.diff(weights.matrix.tocsc().indptr))  # file cell index of each CSR row
+            _, _, wu_t, _ = weights.window()
+            r, c = weights.used_rows_cols()
+            used = r * weights.shape[1] + c  # file cell index of each CSR row
             weights._full = (wu_t, used, kernel_args(used, wu_t))
         wu_t, used, args = weights._full
         return _finish(_block(X, wu_t, used, args), weights)
