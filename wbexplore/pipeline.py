@@ -147,9 +147,7 @@ def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True) -
 
 @contextmanager
 def _client(scheduler: str | None, workers: int | None):
-    if scheduler is None and workers is None:
-        yield None
-        return
+    """A client of the scheduler at ``scheduler``, else of a new LocalCluster of ``workers``."""
     from distributed import Client, LocalCluster
 
     if scheduler is not None:
