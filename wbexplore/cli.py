@@ -282,6 +282,10 @@ def main(argv=None) -> int:
             warnings.filterwarnings("ignore", category=DeprecationWarning)
             warnings.filterwarnings("ignore", category=FutureWarning)
             warnings.formatwarning = lambda m, c, *a, **k: f"wbexplore: warning: {m}\n"
+            if hasattr(args, "cache_dir"):  # an unusable cache folder is bad input, found before any work
+                from .cache import cache_root
+
+                cache_root(args.cache_dir)
             return _COMMANDS[args.command](args)
     except InputError as exc:
         print(f"wbexplore: error: {exc}", file=sys.stderr)

@@ -11,21 +11,18 @@ share of basin area with data as ``valid_fraction_<id>``, and coordinates
 from __future__ import annotations
 
 import dataclasses
-import hashlib
 import os
 import warnings
 from contextlib import contextmanager
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import scipy.sparse as sp
-import shapely
 import xarray as xr
 
 from . import __version__
+from . import cache as _cache
+from .cache import default_cache_dir, load_basins
 from .errors import InputError
-from .io.basins import read_basins
 from .io.catalog import Catalog, SourceSpec, open_catalog
 from .io.discharge import read_discharge
 from .io.blocks import release_handles
@@ -37,17 +34,10 @@ __all__ = ["extract", "load_series", "weights_for", "source_means", "CoverageWar
            "default_cache_dir", "load_basins"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
-_WEIGHTS_FORMAT = "wbx-weights-1"
 
 
 class CoverageWarning(UserWarning):
     """A product's grid covers too little of a basin."""
-
-
-def default_cache_dir() -> Path:
-    """Weights cache: ``$WBEXPLORE_CACHE`` or ``~/.cache/wbexplore``."""
-    env = os.environ.get("WBEXPLORE_CACHE")
-    return Path(env) if env else Path.home() / ".cache" / "wbexplore"
 
 
 def valid_var(source_id: str) -> str:
@@ -63,28 +53,10 @@ def source_vars(ds: xr.Dataset, component: str | None = None) -> list[str]:
     return out
 
 
-_BASIN_CACHE: dict = {}
-
-
-def load_basins(catalog: Catalog):
-    """Basins of a catalog (cached per basin file content)."""
-    key = (str(catalog.basins.path), catalog.basins.path.stat().st_mtime_ns, catalog.basins)
-    if key not in _BASIN_CACHE:
-        _BASIN_CACHE.clear()
-        _BASIN_CACHE[key] = read_basins(catalog.basins)
-    return _BASIN_CACHE[key]
-
-
-def _geom_hash(geoms) -> str:
-    h = hashlib.sha256()
-    for g in geoms:
-        h.update(shapely.to_wkb(g, output_dimension=2, byte_order=1))
-    return h.hexdigest()[:20]
-
-
 def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None = None,
                 use_cache: bool = True, engine: str = "auto") -> Weights:
-    """Weights of ``basins`` (GeoDataFrame in EPSG:4326) on the grid of ``src``, cached on disk."""
+    """Weights of ``basins`` (GeoDataFrame in EPSG:4326) on the grid of ``src``, cached on disk
+    under a key made of the grid, the basin ids, areas and geometries and the engine (`wbexplore.cache`)."""
     from .spatial.grid import GridError
 
     try:
@@ -92,43 +64,11 @@ def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None 
     except GridError as exc:
         raise InputError(f"{src.spec.paths[0]}: source {src.spec.id!r}: {exc}") from None
     geoms = basins.to_crs(src.crs).geometry.values if not src.crs.equals("EPSG:4326") else basins.geometry.values
-    key = f"{grid.signature()}-{_geom_hash(geoms)}-{engine}"
-    path = Path(cache_dir or default_cache_dir()) / f"{key}.npz"
-    if use_cache and path.is_file():
-        st = path.stat()
-        memo = _WEIGHTS_MEMO.get(str(path))
-        if memo is not None and memo[0] == (st.st_ino, st.st_size, st.st_mtime_ns):
-            return memo[1]  # same cache file as last time: keep its derived kernel arrays too
-        try:
-            z = np.load(path, allow_pickle=False)
-            if str(z["format"]) == _WEIGHTS_FORMAT:
-                m = sp.csr_matrix((z["data"], z["indices"], z["indptr"]), shape=tuple(z["mshape"]))
-                w = Weights(matrix=m, basin=z["basin"].astype(str), basin_area_m2=z["area"],
-                            shape=tuple(int(v) for v in z["shape"]), grid_signature=str(z["signature"]),
-                            engine=str(z["engine"]))
-                _remember(path, st, w)
-                return w
-        except Exception:
-            pass  # a damaged cache file is rebuilt
-    w = build_weights(grid, geoms, basins.index.values.astype(str), basins["area_km2"].values * 1e6, engine=engine)
-    if use_cache:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_suffix(f".{os.getpid()}.tmp.npz")
-        np.savez(tmp, format=_WEIGHTS_FORMAT, data=w.matrix.data, indices=w.matrix.indices,
-                 indptr=w.matrix.indptr, mshape=np.array(w.matrix.shape), basin=w.basin.astype(str),
-                 area=w.basin_area_m2, shape=np.array(w.shape), signature=w.grid_signature, engine=w.engine)
-        os.replace(tmp, path)
-        _remember(path, path.stat(), w)
-    return w
-
-
-_WEIGHTS_MEMO: dict = {}
-
-
-def _remember(path: Path, st, w: Weights) -> None:
-    if len(_WEIGHTS_MEMO) >= 32:
-        _WEIGHTS_MEMO.pop(next(iter(_WEIGHTS_MEMO)))
-    _WEIGHTS_MEMO[str(path)] = ((st.st_ino, st.st_size, st.st_mtime_ns), w)
+    ids = basins.index.values.astype(str)
+    areas_m2 = basins["area_km2"].values * 1e6
+    key = _cache.weights_key(grid.signature(), ids, geoms, areas_m2, engine)
+    return _cache.cached_weights(key, ids, lambda: build_weights(grid, geoms, ids, areas_m2, engine=engine),
+                                 cache_dir=cache_dir, use_cache=use_cache)
 
 
 def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True) -> xr.Dataset:
@@ -319,37 +259,13 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta) -> xr.Dataset:
     return ds
 
 
-def _inputs_signature(cat: Catalog) -> str:
-    """Cheap signature of every input file (size and modification time) plus the catalog text."""
-    h = hashlib.sha256(cat.sha256.encode())
-    files = [cat.basins.path] + ([cat.discharge.path] if cat.discharge else [])
-    for s in cat.sources:
-        files.extend(s.paths)
-    for f in files:
-        p = Path(f)
-        items = [p] if p.is_file() else sorted(q for q in p.rglob("*") if q.is_file())
-        for q in items:
-            st = q.stat()
-            h.update(f"{q}:{st.st_size}:{st.st_mtime_ns}".encode())
-    return h.hexdigest()[:24]
-
-
 def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.PathLike | None = None,
                 use_cache: bool = True, progress: bool = False, **kwargs) -> xr.Dataset:
-    """`extract` with the result cached on disk (keyed by the catalog and its files' sizes and times)."""
+    """`extract` with the result cached on disk, keyed by the catalog text and the content of every
+    input file (`wbexplore.cache`); a damaged cache file is rebuilt with a `CacheRebuiltWarning`."""
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
-    root = Path(cache_dir or default_cache_dir())
-    path = root / f"series-{_inputs_signature(cat)}.nc"
-    if use_cache and path.is_file():
-        try:
-            with xr.open_dataset(path) as ds:
-                return ds.load()
-        except Exception:
-            pass
-    ds = extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, **kwargs)
-    if use_cache:
-        root.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_suffix(f".{os.getpid()}.tmp")
-        ds.to_netcdf(tmp)
-        os.replace(tmp, path)
-    return ds
+    # options that change the result are part of the key; scheduler, workers, client do not
+    options = {"sources": kwargs.get("sources"), "basins": kwargs.get("basins"), "engine": kwargs.get("engine", "auto")}
+    return _cache.cached_series(
+        cat, lambda: extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, **kwargs),
+        cache_dir=cache_dir, use_cache=use_cache, options=options)

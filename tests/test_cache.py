@@ -1,0 +1,287 @@
+"""Caches that cannot lie: content keys, checked cache files, no temporary file left behind.
+
+Expected numbers come from a cold run (an empty cache folder) or from arithmetic on the invented
+inputs (P - ET - Q - dS closes exactly for the right source); what is checked is that a warm
+cache gives the same answer as no cache at all, which is the contract of any cache (common practice).
+"""
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+from utils import box_basins, lonlat_grid, monthly, write_catalog, write_nc
+
+NT = 36
+WEST, EAST = (0.5, 0.5, 1.5, 1.5), (2.5, 0.5, 3.5, 1.5)
+
+
+def _study(folder: Path, ids=("W", "E")) -> Path:
+    """Two basins; source p1 is right in the west and too wet in the east, p2 the reverse.
+
+    Truth (times a seasonal factor): P 100 mm/month in the west, 60 in the east; ET 70 in the
+    west, 10 in the east; no storage change; so Q = P - ET is 30 in the west and 50 in the east.
+    """
+    lon, lat = lonlat_grid(0, 4, 0, 2, 0.25)
+    season = 1 + 0.3 * np.sin(2 * np.pi * np.arange(NT) / 12)
+    west = (lon < 2)[None, None, :]
+    truth = np.where(west, 100.0, 60.0) * season[:, None, None] * np.ones((NT, lat.size, lon.size))
+    times = monthly("2001-01", NT)
+    write_nc(folder / "p1.nc", np.where(west, truth, truth * 100 / 60), lon, lat, times, var="p", units="mm")
+    write_nc(folder / "p2.nc", np.where(west, truth * 60 / 100, truth), lon, lat, times, var="p", units="mm")
+    write_nc(folder / "et.nc", np.where(west, 0.7, 1 / 6) * truth, lon, lat, times, var="e", units="mm")
+    write_nc(folder / "tws.nc", np.zeros_like(truth), lon, lat, times, var="s", units="mm")
+    _basins_and_q(folder, ids)
+    return write_catalog(folder, [
+        {"id": "p1", "component": "P", "path": "p1.nc", "variable": "p"},
+        {"id": "p2", "component": "P", "path": "p2.nc", "variable": "p"},
+        {"id": "et", "component": "ET", "path": "et.nc", "variable": "e"},
+        {"id": "tws", "component": "TWSA", "path": "tws.nc", "variable": "s"},
+    ], discharge={"path": "q.csv", "time_field": "date", "basin_field": "basin", "value_field": "q",
+                  "units": "mm/month"})
+
+
+def _basins_and_q(folder: Path, ids):
+    """Basin file (west box first) and discharge table labelled with ``ids`` = (west id, east id)."""
+    box_basins(folder / "basins.geojson", [WEST, EAST], ids=list(ids))
+    season = 1 + 0.3 * np.sin(2 * np.pi * np.arange(NT) / 12)
+    rows = []
+    for bid, q in zip(ids, (30.0, 50.0)):
+        for t, f in zip(monthly("2001-01", NT), season):
+            rows.append({"date": f"{t:%Y-%m-%d}", "basin": bid, "q": q * f})
+    pd.DataFrame(rows).to_csv(folder / "q.csv", index=False)
+
+
+def _rank(cat, basin, cache, capsys):
+    from wbexplore.cli import main
+
+    rc = main(["rank", str(cat), "--basin", basin, "--format", "json", "--cache-dir", str(cache)])
+    out = capsys.readouterr().out
+    assert rc == 0
+    return [(r["P"], r["ET"], r["TWSA"], r["rmse"], r["bias"]) for r in json.loads(out)["rows"]]
+
+
+def test_swapped_basin_ids_rank_on_warm_cache(tmp_path, capsys):
+    cat = _study(tmp_path)
+    cache = tmp_path / "cache"
+    # west: p1 closes exactly, east: p2 (arithmetic of the invented truth)
+    for basin, best in (("W", "p1"), ("E", "p2")):
+        top = _rank(cat, basin, cache, capsys)[0]
+        assert top[0] == best and top[3] == pytest.approx(0, abs=1e-3)
+    # the two basins swap ids in the basin file and in the discharge table (same geometries, same order)
+    _basins_and_q(tmp_path, ("E", "W"))
+    warm = _rank(cat, "W", cache, capsys)
+    cold = _rank(cat, "W", tmp_path / "cold", capsys)
+    assert warm == cold
+    # "W" is now the eastern box: p2 closes exactly (stale labels would pair western P and ET with
+    # eastern Q, and rank p1 first)
+    assert warm[0][0] == "p2" and warm[0][3] == pytest.approx(0, abs=1e-3)
+
+
+def _flip(path: Path, needle: bytes | None = None):
+    raw = bytearray(path.read_bytes())
+    at = raw.find(needle) if needle else -1
+    at = at + 7 if at >= 0 else len(raw) // 2  # a float64's sign/exponent byte (little endian) or the middle
+    raw[at] ^= 0x41
+    path.write_bytes(bytes(raw))
+
+
+def test_flipped_bits_in_series_cache_rebuilt(tmp_path):
+    from wbexplore.pipeline import load_series
+
+    cat = _study(tmp_path)
+    cache = tmp_path / "cache"
+    first = load_series(cat, cache_dir=cache)
+    (cached,) = [p for p in cache.iterdir() if p.name.startswith("series-")]
+    _flip(cached, np.ascontiguousarray(first["p1"].values[0]).tobytes())
+    with pytest.warns(UserWarning) as rec:
+        again = load_series(cat, cache_dir=cache)
+    notes = [str(r.message) for r in rec if r.category.__name__ == "CacheRebuiltWarning"]
+    assert len(notes) == 1 and cached.name in notes[0] and "\n" not in notes[0]
+    for v in ("p1", "p2", "et", "tws", "discharge"):
+        np.testing.assert_array_equal(again[v].values, first[v].values)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the rebuilt file reads cleanly
+        third = load_series(cat, cache_dir=cache)
+    np.testing.assert_array_equal(third["p1"].values, first["p1"].values)
+
+
+def test_flipped_bits_in_weights_cache_rebuilt(tmp_path):
+    """A fresh process (nothing remembered in memory) reads the damaged weights file."""
+    cat = _study(tmp_path)
+    cache = tmp_path / "cache"
+
+    def run(out):
+        return subprocess.run([sys.executable, "-m", "wbexplore.cli", "extract", str(cat), "--out", str(out),
+                               "--cache-dir", str(cache), "--quiet"], capture_output=True, text=True, timeout=300)
+
+    r = run(tmp_path / "a.nc")
+    assert r.returncode == 0, r.stderr
+    weights = sorted(p for p in cache.iterdir() if p.name.startswith("weights-") or p.suffix == ".npz")
+    assert weights
+    for p in weights:
+        _flip(p)
+    r = run(tmp_path / "b.nc")
+    assert r.returncode == 0, r.stderr
+    notes = [ln for ln in r.stderr.splitlines() if "rebuilt" in ln]
+    assert len(notes) == len(weights) and all(any(p.name in n for p in weights) for n in notes)
+    with xr.open_dataset(tmp_path / "a.nc") as a, xr.open_dataset(tmp_path / "b.nc") as b:
+        for v in ("p1", "p2", "et", "tws"):
+            np.testing.assert_array_equal(a[v].values, b[v].values)
+
+
+def test_product_edited_in_place_mtime_restored(tmp_path):
+    from wbexplore.pipeline import load_series
+
+    cat = _study(tmp_path)
+    time.sleep(2.2)  # old enough for their digests to be remembered (the warm path is the one under test)
+    cache = tmp_path / "cache"
+    first = load_series(cat, cache_dir=cache)
+    load_series(cat, cache_dir=cache)  # warm: digests from the memo
+    # edit p1.nc in place: same size, same layout, every value doubled; then restore its times
+    p1 = tmp_path / "p1.nc"
+    st = p1.stat()
+    with xr.open_dataset(p1) as d:
+        old = np.ascontiguousarray(d["p"].values)
+    raw = p1.read_bytes()
+    assert raw.count(old.tobytes()) == 1
+    p1.write_bytes(raw.replace(old.tobytes(), (old * 2).astype(np.float32).tobytes()))
+    os.utime(p1, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert p1.stat().st_size == st.st_size and p1.stat().st_mtime_ns == st.st_mtime_ns
+    again = load_series(cat, cache_dir=cache)
+    np.testing.assert_allclose(again["p1"].values, 2 * first["p1"].values, rtol=1e-6)
+    np.testing.assert_array_equal(again["p2"].values, first["p2"].values)
+
+
+_CHILD = textwrap.dedent("""
+    import sys, time
+    import xarray as xr
+    from wbexplore.pipeline import load_series
+
+    original = xr.Dataset.to_netcdf
+
+    def slow(self, path=None, *a, **k):  # write, say where, then linger as a large write would
+        out = original(self, path, *a, **k)
+        print("WRITING", path, flush=True)
+        time.sleep(120)
+        return out
+
+    xr.Dataset.to_netcdf = slow
+    load_series(sys.argv[1], cache_dir=sys.argv[2])
+""")
+
+
+def _interrupted_write(tmp_path, sig):
+    cat = _study(tmp_path)
+    cache = tmp_path / "cache"
+    script = tmp_path / "child.py"
+    script.write_text(_CHILD)
+    proc = subprocess.Popen([sys.executable, str(script), str(cat), str(cache)], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        line = proc.stdout.readline()
+        assert line.startswith("WRITING"), proc.stderr.read()
+        tmp = Path(line.split(None, 1)[1].strip())
+        assert tmp.exists() and tmp.parent == cache
+        proc.send_signal(sig)
+        proc.wait(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        proc.stdout.close()
+        proc.stderr.close()
+    return proc, tmp, cache
+
+
+def _leftovers(cache: Path):
+    return [p.name for p in cache.iterdir() if not (p.name.startswith(("weights-", "series-"))
+                                                    and p.suffix == ".wbxc") and p.name != "file-digests.json"]
+
+
+@pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGINT])
+def test_signal_during_write_leaves_no_temp(tmp_path, sig):
+    proc, tmp, cache = _interrupted_write(tmp_path, sig)
+    assert proc.returncode != 0
+    assert not tmp.exists()
+    assert _leftovers(cache) == []
+    assert not [p for p in cache.iterdir() if p.name.startswith("series-")]  # nothing half-written kept
+
+
+def test_stale_temp_removed_at_start(tmp_path):
+    """A write killed outright (SIGKILL cannot be caught) leaves its temporary file; the next run removes it."""
+    from wbexplore.pipeline import load_series
+
+    proc, tmp, cache = _interrupted_write(tmp_path, signal.SIGKILL)
+    assert proc.returncode == -signal.SIGKILL and tmp.exists()  # the dead writer's leftover
+    load_series(tmp_path / "catalog.yaml", cache_dir=cache)
+    assert not tmp.exists()
+    assert _leftovers(cache) == []
+
+
+def test_old_temp_of_a_live_pid_removed(tmp_path):
+    """Pids are reused: a temporary name older than the limit goes even if its pid runs (pid 1 here)."""
+    from wbexplore import cache as c
+
+    root = tmp_path / "cache"
+    root.mkdir()
+    old = root / f"{c.TMP_PREFIX}{c._HOST}-1-0000.part"
+    fresh = root / f"{c.TMP_PREFIX}{c._HOST}-1-0001.part"
+    for p in (old, fresh):
+        p.write_bytes(b"x")
+    t = time.time() - c.STALE_SECONDS - 60
+    os.utime(old, (t, t))
+    c.cache_root(root)
+    assert not old.exists() and fresh.exists()
+
+
+@pytest.mark.parametrize("command", ["extract", "rank", "export", "replay", "report", "serve"])
+@pytest.mark.parametrize("where", ["under-a-file", "a-file"])
+def test_unusable_cache_dir_exit_2(tmp_path, capsys, command, where):
+    from wbexplore.cli import main
+
+    cat = _study(tmp_path)
+    blocker = tmp_path / "blocker"
+    blocker.write_text("not a folder")
+    bad = blocker / "cache" if where == "under-a-file" else blocker
+    sel = ["--basin", "W"]
+    srcs = ["--P", "p1", "--ET", "et", "--TWSA", "tws"]
+    argv = {
+        "extract": ["extract", str(cat), "--out", str(tmp_path / "o.nc"), "--quiet"],
+        "rank": ["rank", str(cat), *sel],
+        "export": ["export", str(cat), *sel, *srcs, "--out", str(tmp_path / "o.yaml")],
+        "replay": ["replay", str(tmp_path / "s.yaml")],
+        "report": ["report", str(cat), *sel, "--out", str(tmp_path / "o.html")],
+        "serve": ["serve", str(cat), "--port", "1"],
+    }[command]
+    if command == "replay":
+        assert main(["export", str(cat), *sel, *srcs, "--out", str(tmp_path / "s.yaml"),
+                     "--cache-dir", str(tmp_path / "good")]) == 0
+        capsys.readouterr()
+    rc = main([*argv, "--cache-dir", str(bad)])
+    err = capsys.readouterr().err
+    assert rc == 2
+    assert len(err.strip().splitlines()) == 1 and str(bad) in err and "--cache-dir" in err
+    assert blocker.read_text() == "not a folder"
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith("o.")]
+
+
+def test_unusable_cache_dir_from_environment(tmp_path, monkeypatch):
+    from wbexplore.errors import InputError
+    from wbexplore.pipeline import load_series
+
+    cat = _study(tmp_path)
+    (tmp_path / "blocker").write_text("")
+    monkeypatch.setenv("WBEXPLORE_CACHE", str(tmp_path / "blocker" / "sub"))
+    with pytest.raises(InputError, match="WBEXPLORE_CACHE .*blocker"):
+        load_series(cat)
