@@ -237,12 +237,16 @@ def test_old_temp_of_a_live_pid_removed(tmp_path):
     root.mkdir()
     old = root / f"{c.TMP_PREFIX}{c._HOST}-1-0000.part"
     fresh = root / f"{c.TMP_PREFIX}{c._HOST}-1-0001.part"
-    for p in (old, fresh):
+    legacy = root / "series-0123abcd.999999999.tmp"  # an earlier version's name, its pid gone
+    mine = root / "notes.txt"  # not a name the cache writes: never touched
+    for p in (old, fresh, legacy, mine):
         p.write_bytes(b"x")
     t = time.time() - c.STALE_SECONDS - 60
     os.utime(old, (t, t))
+    os.utime(mine, (t, t))
     c.cache_root(root)
-    assert not old.exists() and fresh.exists()
+    assert not old.exists() and not legacy.exists()
+    assert fresh.exists() and mine.exists()
 
 
 @pytest.mark.parametrize("command", ["extract", "rank", "export", "replay", "report", "serve"])
