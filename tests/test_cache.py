@@ -21,6 +21,7 @@ import pytest
 import xarray as xr
 
 from utils import box_basins, lonlat_grid, monthly, write_catalog, write_nc
+from wbexplore.io.catalog import open_catalog
 
 NT = 36
 WEST, EAST = (0.5, 0.5, 1.5, 1.5), (2.5, 0.5, 3.5, 1.5)
@@ -289,3 +290,43 @@ def test_unusable_cache_dir_from_environment(tmp_path, monkeypatch):
     monkeypatch.setenv("WBEXPLORE_CACHE", str(tmp_path / "blocker" / "sub"))
     with pytest.raises(InputError, match="WBEXPLORE_CACHE .*blocker"):
         load_series(cat)
+
+
+def test_digest_memo_trusts_only_an_identical_fingerprint(tmp_path):
+    """The memo of content digests (hashlib.sha256 of the bytes is the reference) survives a new
+    process but never an in-place edit with the mtime restored, and never remembers a file
+    changed within the last `RACY_SECONDS` (its time stamps could still repeat)."""
+    import hashlib
+
+    from wbexplore import cache as c
+
+    old, fresh = tmp_path / "old.bin", tmp_path / "fresh.bin"
+    old.write_bytes(b"a" * 4096)
+    time.sleep(c.RACY_SECONDS + 0.2)
+    fresh.write_bytes(b"b" * 4096)
+    memo: dict = {}
+    assert c.file_digest(old, memo) == hashlib.sha256(b"a" * 4096).hexdigest()
+    assert c.file_digest(fresh, memo) == hashlib.sha256(b"b" * 4096).hexdigest()
+    assert str(old) in memo and str(fresh) not in memo  # fresh is too recent to be remembered
+    st = old.stat()
+    with open(old, "r+b") as fh:  # same size, one byte changed, times put back
+        fh.write(b"z")
+    os.utime(old, ns=(st.st_atime_ns, st.st_mtime_ns))
+    c.clear_memory()  # as a new process: only the memo is left
+    assert c.file_digest(old, memo) == hashlib.sha256(b"z" + b"a" * 4095).hexdigest()
+
+
+def test_memo_file_with_a_bad_checksum_is_ignored(tmp_path):
+    from wbexplore import cache as c
+
+    cat = _study(tmp_path)
+    root = tmp_path / "cache"
+    root.mkdir()
+    time.sleep(c.RACY_SECONDS + 0.2)
+    key = c.inputs_digest(open_catalog(cat), root=root)
+    memo = json.loads((root / c.MEMO_NAME).read_text())
+    some = next(iter(memo["entries"]))
+    memo["entries"][some][1] = "0" * 64  # a wrong digest with a stale checksum
+    (root / c.MEMO_NAME).write_text(json.dumps(memo))
+    c.clear_memory()
+    assert c.inputs_digest(open_catalog(cat), root=root) == key
