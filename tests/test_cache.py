@@ -236,18 +236,19 @@ def test_old_temp_of_a_live_pid_removed(tmp_path):
 
     root = tmp_path / "cache"
     root.mkdir()
-    old = root / f"{c.TMP_PREFIX}{c._HOST}-1-0000.part"
-    fresh = root / f"{c.TMP_PREFIX}{c._HOST}-1-0001.part"
-    legacy = root / "series-0123abcd.999999999.tmp"  # an earlier version's name, its pid gone
-    mine = root / "notes.txt"  # not a name the cache writes: never touched
-    for p in (old, fresh, legacy, mine):
+    old = root / f"{c.TMP_PREFIX}{c._HOST}-1-0123abcd.part"
+    fresh = root / f"{c.TMP_PREFIX}{c._HOST}-1-4567abcd.part"
+    legacy = root / f"series-{'0a' * 12}.999999999.tmp"  # the earlier cache layout's name, its pid gone
+    # not names the cache writes: never touched, however old
+    mine = [root / "notes.txt", root / "data.999999999.tmp", root / f"{c.TMP_PREFIX}notes.txt"]
+    for p in (old, fresh, legacy, *mine):
         p.write_bytes(b"x")
     t = time.time() - c.STALE_SECONDS - 60
-    os.utime(old, (t, t))
-    os.utime(mine, (t, t))
+    for p in (old, *mine):
+        os.utime(p, (t, t))
     c.cache_root(root)
     assert not old.exists() and not legacy.exists()
-    assert fresh.exists() and mine.exists()
+    assert fresh.exists() and all(p.exists() for p in mine)
 
 
 @pytest.mark.parametrize("command", ["extract", "rank", "export", "replay", "report", "serve"])

@@ -139,7 +139,9 @@ def cache_root(cache_dir: str | os.PathLike | None = None) -> Path:
 
 
 _HOST = hashlib.sha256(socket.gethostname().encode()).hexdigest()[:8]
-_LEGACY_TMP = re.compile(r"^(?:series-)?[0-9a-z-]+\.(\d+)\.tmp(?:\.npz)?$")
+# exactly the temporary names this module writes, and those of the cache layout before it (nothing else is removed)
+_TMP_NAME = re.compile(r"^" + re.escape(TMP_PREFIX) + r"([0-9a-f]{8})-(\d+)-[0-9a-f]{8}\.(?:part|nc|json)$")
+_LEGACY_TMP = re.compile(r"^(?:series-[0-9a-f]{24}\.(\d+)\.tmp|[0-9a-f]{20}-[0-9a-f]{20}-[a-z]+\.(\d+)\.tmp\.npz)$")
 
 
 def _pid_alive(pid: int) -> bool:
@@ -164,10 +166,11 @@ def sweep_stale(root: Path, *, now: float | None = None) -> list[Path]:
         return removed
     for e in entries:
         legacy = _LEGACY_TMP.match(e.name)
-        if legacy:  # written by wbexplore before this module: <name>.<pid>.tmp[.npz]
-            parts = [_HOST, legacy.group(1)]
-        elif e.name.startswith(TMP_PREFIX):
-            parts = e.name[len(TMP_PREFIX):].split("-")
+        ours = _TMP_NAME.match(e.name)
+        if legacy:  # written by wbexplore before this module: <key>.<pid>.tmp[.npz]
+            parts = [_HOST, legacy.group(1) or legacy.group(2)]
+        elif ours:
+            parts = [ours.group(1), ours.group(2)]
         else:
             continue
         try:
