@@ -331,3 +331,17 @@ def test_memo_file_with_a_bad_checksum_is_ignored(tmp_path):
     (root / c.MEMO_NAME).write_text(json.dumps(memo))
     c.clear_memory()
     assert c.inputs_digest(open_catalog(cat), root=root) == key
+
+
+def test_basins_reread_after_ids_swapped_with_mtime_restored(tmp_path):
+    """The in-process basin cache is keyed by content: same size, same mtime, different ids."""
+    from wbexplore.pipeline import load_basins
+
+    cat = _study(tmp_path)
+    path = tmp_path / "basins.geojson"
+    assert load_basins(open_catalog(cat)).index.tolist() == ["W", "E"]
+    st = path.stat()
+    _basins_and_q(tmp_path, ("E", "W"))
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert path.stat().st_size == st.st_size and path.stat().st_mtime_ns == st.st_mtime_ns
+    assert load_basins(open_catalog(cat)).index.tolist() == ["E", "W"]

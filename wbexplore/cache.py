@@ -21,7 +21,8 @@ Keys come from content
     store (then with relative paths, so an added or removed chunk changes it too). That is
     enough: the kernel sets ctime to the current time on every write and on every metadata
     change, including the ``utime`` call that restores an mtime, and user space cannot set it
-    back. So "edited in place with its mtime restored" still changes ctime. Timestamps are
+    back (short of setting the system clock back). So "edited in place with its mtime restored"
+    still changes ctime, and a file replaced by another (a rename) has another inode or ctime. Timestamps are
     coarse (a clock tick, a few ms), so a file changed within the same tick as it was hashed
     could keep its fingerprint: a digest is only remembered when the file's newest time stamp
     is more than `RACY_SECONDS` older than the moment it was hashed (as git does with "racily
