@@ -78,7 +78,7 @@ from . import __version__
 from .errors import InputError
 
 __all__ = ["CACHE_FORMAT", "CacheRebuiltWarning", "CacheWriteWarning", "default_cache_dir", "cache_root",
-           "file_digest", "input_files", "inputs_digest", "weights_key", "cached_weights", "cached_series",
+           "file_digest", "input_files", "inputs_digest", "sweep_stale", "weights_key", "cached_weights", "cached_series",
            "load_basins", "clear_memory"]
 
 CACHE_FORMAT = "wbx-cache-2"
