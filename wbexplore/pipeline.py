@@ -24,6 +24,7 @@ import shapely
 import xarray as xr
 
 from . import __version__
+from .balance.plausibility import ImplausibleValueWarning, screen_implausible
 from .errors import InputError
 from .io.basins import read_basins
 from .io.catalog import Catalog, SourceSpec, open_catalog
@@ -34,7 +35,7 @@ from .spatial.grid import describe_grid
 from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
 
 __all__ = ["extract", "load_series", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE", "source_vars", "valid_var",
-           "default_cache_dir", "load_basins"]
+           "default_cache_dir", "load_basins", "warn_implausible", "ImplausibleValueWarning"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
 _WEIGHTS_FORMAT = "wbx-weights-1"
@@ -237,7 +238,19 @@ def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine)
         computed = _compute(lazy, client=client, progress=progress)
     finally:
         release_handles()  # leave no product file open (HDF5 would refuse to rewrite it)
-    return _assemble(cat, gdf, specs, computed, meta)
+    ds, _ = screen_implausible(_assemble(cat, gdf, specs, computed, meta))
+    warn_implausible(ds)
+    return ds
+
+
+def warn_implausible(ds: xr.Dataset) -> None:
+    """One `ImplausibleValueWarning` per source (and for discharge) whose implausible months were masked
+    (`wbexplore.balance.plausibility.screen_implausible` left the note in the variable's attributes, so a
+    cached series warns again when it is loaded)."""
+    for v in ds.data_vars.values():
+        note = v.attrs.get("implausible_note")
+        if note:
+            warnings.warn(str(note), ImplausibleValueWarning, stacklevel=3)
 
 
 def _compute(lazy: dict, *, client, progress):
@@ -343,9 +356,12 @@ def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.Pat
     if use_cache and path.is_file():
         try:
             with xr.open_dataset(path) as ds:
-                return ds.load()
+                ds = ds.load()
         except Exception:
             pass
+        else:
+            warn_implausible(ds)
+            return ds
     ds = extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, **kwargs)
     if use_cache:
         root.mkdir(parents=True, exist_ok=True)
