@@ -72,3 +72,71 @@ def test_clean_series_raise_no_plausibility_warning(tmp_path):
         warnings.simplefilter("error", ImplausibleValueWarning)
         ds = extract(cat, cache_dir=tmp_path / "cache")
     assert np.isfinite(ds["rain"].values).all()
+
+
+# --------------------------------------------------------------------------- many files, few descriptors
+_MANY_FILES = textwrap.dedent("""
+    import resource, sys, warnings
+    from pathlib import Path
+    import numpy as np, pandas as pd
+    sys.path.insert(0, sys.argv[2])
+    from utils import box_basins, lonlat_grid, write_catalog, write_tif
+    tmp, n = Path(sys.argv[1]), int(sys.argv[3])
+    (tmp / "tifs").mkdir()
+    lon, lat = lonlat_grid(10, 12, 40, 42, 0.5)
+    months = pd.date_range("1950-01", periods=n, freq="MS")
+    for i, m in enumerate(months):
+        write_tif(tmp / "tifs" / f"r_{m:%Y%m}.tif", np.full((lat.size, lon.size), float(i)), lon, lat)
+    box_basins(tmp / "basins.geojson", [(10.2, 40.2, 11.8, 41.8)])
+    cat = write_catalog(tmp, [{"id": "r", "component": "P", "path": "tifs/r_*.tif", "units": "mm",
+                               "date_format": "%Y%m"}])
+    resource.setrlimit(resource.RLIMIT_NOFILE, (256, 256))
+    from wbexplore.pipeline import extract
+    ds = extract(cat, cache_dir=tmp / "cache")
+    v = ds["r"].sel(basin="B0").values
+    assert v.shape == (n,) and np.allclose(v, np.arange(n), rtol=1e-6, atol=1e-9), v
+    print("ok", n)
+""")
+
+
+def test_long_geotiff_glob_under_low_open_file_limit(tmp_path):
+    # 400 single-band files with at most 256 descriptors (before the fix the 249th file failed to open and
+    # was blamed as "not a GeoTIFF"); long archives of one file per month are common practice
+    n = 400
+    res = subprocess.run([sys.executable, "-c", _MANY_FILES, str(tmp_path), str(Path(__file__).parent), str(n)],
+                         capture_output=True, text=True, timeout=300)
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert f"ok {n}" in res.stdout
+
+
+def test_out_of_descriptors_is_named_as_such(tmp_path, monkeypatch):
+    import errno
+
+    import rioxarray
+
+    from utils import write_tif
+    from wbexplore.errors import InputError
+    from wbexplore.io.catalog import open_catalog
+    from wbexplore.io.grids import open_source
+
+    (tmp_path / "tifs").mkdir()
+    for m in monthly("2001-01", 3):
+        write_tif(tmp_path / "tifs" / f"r_{m:%Y%m}.tif", np.ones((LAT.size, LON.size)), LON, LAT)
+    box_basins(tmp_path / "basins.geojson", [(-2, 11, 2, 13)])
+    cat = open_catalog(write_catalog(tmp_path, [{"id": "r", "component": "P", "path": "tifs/r_*.tif",
+                                                 "units": "mm", "date_format": "%Y%m"}]))
+    real = rioxarray.open_rasterio
+    calls = []
+
+    def opener(path, *a, **k):
+        calls.append(path)
+        if len(calls) == 2:
+            raise OSError(errno.EMFILE, "Too many open files")
+        return real(path, *a, **k)
+
+    monkeypatch.setattr(rioxarray, "open_rasterio", opener)
+    with pytest.raises(InputError) as ei:
+        open_source(cat.sources[0])
+    msg = str(ei.value)
+    assert "file descriptors" in msg and "file 2 of 3" in msg and "ulimit -n" in msg
+    assert "cannot be opened as GeoTIFF" not in msg and "\n" not in msg
