@@ -140,3 +140,93 @@ def test_out_of_descriptors_is_named_as_such(tmp_path, monkeypatch):
     msg = str(ei.value)
     assert "file descriptors" in msg and "file 2 of 3" in msg and "ulimit -n" in msg
     assert "cannot be opened as GeoTIFF" not in msg and "\n" not in msg
+
+
+# --------------------------------------------------------------------------- metrics: finite or a reason
+T = 36
+MOY = np.tile(np.arange(1, 13), T // 12)
+_RNG = np.random.default_rng(11)
+P0 = 100 + 30 * np.sin(np.arange(T) / 12 * 2 * np.pi) + _RNG.normal(0, 5, T)
+ET0 = 40 + _RNG.normal(0, 4, T)
+DS0 = _RNG.normal(0, 3, T)
+Q0 = P0 - ET0 - DS0 + _RNG.normal(0, 6, T)
+
+
+def _he(fn, sim, obs):
+    he = pytest.importorskip("hydroeval")
+    with np.errstate(all="ignore"):
+        return np.asarray(he.evaluator(fn, np.asarray(sim, float), np.asarray(obs, float))).ravel()
+
+
+def test_metrics_equal_hydroeval_and_need_no_reason_on_ordinary_data():
+    from wbexplore.balance.metrics import compute_metrics
+
+    m = compute_metrics(P0, ET0, Q0, DS0, month_of_year=MOY, explain=True)
+    import hydroeval as he
+
+    qhat = P0 - ET0 - DS0
+    # hydroeval (Hallouin 2021) as the outside reference for NSE and KGE (Gupta et al. 2009)
+    assert float(m["nse"]) == pytest.approx(_he(he.nse, qhat, Q0)[0], rel=1e-10)
+    assert float(m["kge"]) == pytest.approx(_he(he.kge, qhat, Q0)[0], rel=1e-10)
+    assert m["undefined"] == ""
+
+
+@pytest.mark.parametrize("case, metrics, reason", [
+    ("constant Q", ["nse", "nse_cyclo", "kge", "kge_prime", "r"], "observed discharge has no variance"),
+    ("zero Q", ["kge", "kge_prime", "pbias"], "observed discharge has zero mean"),
+    ("zero P", ["rel_imbalance"], "mean P is zero"),
+    ("one year", ["nse_cyclo"], "monthly climatology"),
+])
+def test_metrics_are_finite_or_name_why_on_degenerate_data(case, metrics, reason):
+    import hydroeval as he
+
+    from wbexplore.balance.metrics import compute_metrics
+
+    P, ET, Q, dS, moy = P0, ET0, Q0, DS0, MOY
+    if case == "constant Q":
+        Q = np.full(T, 55.0)
+        # the published formula divides by zero here: hydroeval returns -inf (NSE) and inf (KGE's alpha)
+        assert not np.isfinite(_he(he.nse, P - ET - dS, Q)[0])
+    elif case == "zero Q":
+        Q = np.zeros(T)
+        assert not np.isfinite(_he(he.pbias, P - ET - dS, Q)[0])
+    elif case == "zero P":
+        P = np.zeros(T)
+        ET = -(Q0 + _RNG.normal(0, 3, T))
+    else:
+        P, ET, Q, dS, moy = P0[:12], ET0[:12], Q0[:12], DS0[:12], MOY[:12]
+    m = compute_metrics(P, ET, Q, dS, month_of_year=moy, explain=True)
+    for k, v in m.items():
+        if k != "undefined":
+            assert not np.isinf(np.asarray(v, float)).any(), (k, v)  # never +-inf
+    for k in metrics:
+        assert np.isnan(m[k]), (k, m[k])
+        assert k in str(m["undefined"])
+    assert reason in str(m["undefined"])
+    assert np.isfinite(m["rmse"]) and np.isfinite(m["bias"])
+
+
+def _canonical(Q):
+    import xarray as xr
+
+    times = pd.date_range("2001-01", periods=T, freq="MS")
+    ds = xr.Dataset(coords={"basin": ["B0"], "time": times})
+    for name, comp, v in (("p1", "P", P0), ("e1", "ET", ET0), ("s1", "TWSA", np.cumsum(DS0))):
+        ds[name] = (("basin", "time"), v[None])
+        ds[name].attrs = {"role": "source", "component": comp, "units": "mm" if comp == "TWSA" else "mm/month"}
+    ds["discharge"] = (("basin", "time"), Q[None])
+    ds["discharge"].attrs = {"component": "Q", "units": "mm/month", "role": "discharge"}
+    return ds
+
+
+def test_rank_row_and_selection_say_why_a_metric_is_missing():
+    from wbexplore.balance import Selection, compute_selection, rank
+
+    ds = _canonical(np.full(T, 55.0))
+    r = rank(ds, "B0", min_valid=12)
+    assert np.isnan(r.loc[0, "nse"]) and not np.isinf(r[["nse", "kge", "r"]].values).any()
+    assert "observed discharge has no variance" in r.loc[0, "undefined"]
+    res = compute_selection(ds, Selection(basin="B0", P="p1", ET="e1", TWSA="s1"), min_valid=12)
+    assert any("observed discharge has no variance" in m for m in res.messages)
+    ok = rank(_canonical(Q0), "B0", min_valid=12)
+    assert (ok["undefined"] == "").all() and np.isfinite(ok.loc[0, "nse"])
