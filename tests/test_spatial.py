@@ -417,3 +417,30 @@ def test_antimeridian_basin_extracts_over_both_halves(tmp_path, lons):
     np.testing.assert_allclose(ds["p"].values, 2.0, rtol=1e-9)
     np.testing.assert_allclose(ds["valid_fraction_p"].values, 1.0, rtol=1e-6)
     assert float(ds["basin_area_km2"][0]) == pytest.approx(47_375, rel=1e-4)  # pyproj.Geod, test above
+
+
+def test_polar_cap_extracts_on_a_polar_grid(tmp_path):
+    import geopandas as gpd
+    import pandas as pd
+
+    from utils import write_catalog
+    from wbexplore.pipeline import extract
+
+    x = np.arange(-1.5e6 + 12500, 1.5e6, 25000.0)
+    X, Y = np.meshgrid(x, x)
+    # 1 out to 1,200 km from the pole (beyond the basin), 100 further out
+    v = np.where(np.hypot(X, Y) < 1.2e6, 1.0, 100.0)[None] * np.ones((2, 1, 1))
+    da = xr.DataArray(v.astype("float32"), dims=("time", "y", "x"), attrs={"units": "mm"},
+                      coords={"time": pd.date_range("2001-01", periods=2, freq="MS"), "y": x, "x": x})
+    xr.Dataset({"p": da}).to_netcdf(tmp_path / "p.nc")
+    t = np.linspace(0, 2 * np.pi, 65)[:-1]
+    cap = shapely.Polygon(np.c_[1.0e6 * np.cos(t), 1.0e6 * np.sin(t)])
+    gpd.GeoDataFrame({"basin_id": ["C"], "name": ["c"]}, geometry=[cap], crs="EPSG:3031").to_file(tmp_path / "b.gpkg")
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.nc", "variable": "p", "crs": "EPSG:3031"}],
+                        basins="b.gpkg")
+    ds = extract(cat, cache_dir=tmp_path / "cache")
+    np.testing.assert_allclose(ds["p"].values, 1.0, rtol=1e-9)
+    # the grid's covered area (ellipsoidal cell areas) meets the basin's geodesic area
+    np.testing.assert_allclose(ds["valid_fraction_p"].values, 1.0, atol=1e-4)
+    # and that area is the cap's (pyproj.Geod, test_polar_cap_in_a_polar_projection_gets_its_true_area)
+    assert float(ds["basin_area_km2"][0]) == pytest.approx(3_293_399, rel=1e-4)
