@@ -63,6 +63,23 @@ def test_implausible_values_one_warning_per_source_naming_basin_and_count(tmp_pa
     assert ds["rain"].attrs["implausible_masked"] == 3
 
 
+def test_cached_series_warn_again_and_cli_prints_one_line_per_source(tmp_path):
+    from wbexplore.pipeline import load_series
+
+    cat = _implausible_study(tmp_path)
+    for _ in range(2):  # the second load comes from the series cache: the note travels with it
+        with pytest.warns(ImplausibleValueWarning) as rec:
+            ds = load_series(cat, cache_dir=tmp_path / "cache")
+        assert len(rec) == 2 and np.isnan(ds["rain"].sel(basin="B0").values[5])
+    # the command line as a user runs it (pytest would otherwise collect the warnings itself)
+    res = subprocess.run([sys.executable, "-m", "wbexplore.cli", "extract", str(cat), "--out", str(tmp_path / "o.nc"),
+                          "--quiet", "--cache-dir", str(tmp_path / "c2")], capture_output=True, text=True, timeout=300)
+    err = [line for line in res.stderr.splitlines() if line.strip()]
+    assert res.returncode == 0 and (tmp_path / "o.nc").exists(), res.stderr
+    assert len(err) == 2 and all(line.startswith("wbexplore: warning: source '") for line in err), err
+    assert any("'rain' (P): 3 implausible" in line for line in err)
+
+
 def test_clean_series_raise_no_plausibility_warning(tmp_path):
     times = monthly("2001-01", NT)
     write_nc(tmp_path / "p.nc", np.full((NT, LAT.size, LON.size), 9000.0), LON, LAT, times, var="p", units="mm")
