@@ -363,6 +363,10 @@ def test_basin_across_the_antimeridian_gets_its_true_area(tmp_path):
     assert float(b["area_km2"].iloc[0]) * 1e6 == pytest.approx(ref, rel=1e-6)
     x0, _, x1, _ = b.geometry.iloc[0].bounds
     assert x0 >= -180 and x1 <= 180
+    # a cap drawn as a lon/lat box from -180 to 180 keeps its meaning (its full-turn edges are not jumps)
+    cap = _read_one(tmp_path, shapely.box(-180, 60, 180, 90), "EPSG:4326", name="cap.gpkg")
+    assert float(cap["area_km2"].iloc[0]) * 1e6 == pytest.approx(geod_area_lonlat(shapely.box(-180, 60, 180, 90)),
+                                                                 rel=1e-6)
 
 
 @pytest.mark.parametrize("epsg, pole", [(3031, -90), (3413, 90)])

@@ -129,7 +129,10 @@ def _continuous(lon: np.ndarray) -> np.ndarray:
 
 
 def _jumps(coords: np.ndarray) -> bool:
-    return bool(coords.shape[0] > 1 and np.any(np.abs(np.diff(coords[:, 0])) > 180.0))
+    """Whether a ring has an edge longer than 180 degrees of longitude; an edge of a full turn (-180 to 180,
+    as in a lon/lat box round a pole drawn on a plate carree map) is what it says and not a jump."""
+    d = np.abs(np.diff(coords[:, 0])) if coords.shape[0] > 1 else np.zeros(0)
+    return bool(np.any((d > 180.0) & (d < 360.0 - 1e-9)))
 
 
 def unwrap_lonlat(g):
