@@ -188,7 +188,9 @@ def unwrap_lonlat(g):
             if not piece.is_empty and piece.area > 0:
                 piece = _polygonal(piece) if piece.geom_type not in ("Polygon", "MultiPolygon") else piece
                 pieces.append(shapely.transform(piece, lambda c, k=k: c - np.array([360.0 * k, 0.0])))
-    out = shapely.union_all(pieces)
+    out = shapely.union_all(pieces) if pieces else shapely.Polygon()
+    if out.is_empty or out.area <= 0:
+        raise ValueError("its outline, read across the antimeridian or round a pole, encloses no area")
     return _polygonal(out) if out.geom_type not in ("Polygon", "MultiPolygon") else out
 
 
