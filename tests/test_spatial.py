@@ -342,3 +342,109 @@ def test_irregular_grid_in_catalog_names_the_file(tmp_path, capsys):
     err = capsys.readouterr().err
     assert rc == 2 and "p.nc" in err and "source 'p'" in err and "irregular" in err
     assert not (tmp_path / "o.nc").exists()
+
+
+# --------------------------------------------------------------------------- antimeridian and poles
+def _read_one(tmp_path, geom, crs, name="b.gpkg"):
+    import geopandas as gpd
+
+    from wbexplore.io.basins import read_basins
+    from wbexplore.io.catalog import BasinSpec
+
+    gpd.GeoDataFrame({"bid": ["X1"], "name": ["x"]}, geometry=[geom], crs=crs).to_file(tmp_path / name)
+    return read_basins(BasinSpec(path=tmp_path / name, id_field="bid"))
+
+
+def test_basin_across_the_antimeridian_gets_its_true_area(tmp_path):
+    # written the usual way, lon 179 -> -179: its edges are longer than 180 degrees of longitude
+    b = _read_one(tmp_path, shapely.Polygon([(179, -17), (-179, -17), (-179, -15), (179, -15)]), "EPSG:4326")
+    # reference: pyproj.Geod (Karney 2013) on the geometry split at the antimeridian by hand
+    ref = geod_area_lonlat(shapely.box(179, -17, 180, -15)) + geod_area_lonlat(shapely.box(-180, -17, -179, -15))
+    assert float(b["area_km2"].iloc[0]) * 1e6 == pytest.approx(ref, rel=1e-6)
+    x0, _, x1, _ = b.geometry.iloc[0].bounds
+    assert x0 >= -180 and x1 <= 180
+    # a cap drawn as a lon/lat box from -180 to 180 keeps its meaning (its full-turn edges are not jumps)
+    cap = _read_one(tmp_path, shapely.box(-180, 60, 180, 90), "EPSG:4326", name="cap.gpkg")
+    assert float(cap["area_km2"].iloc[0]) * 1e6 == pytest.approx(geod_area_lonlat(shapely.box(-180, 60, 180, 90)),
+                                                                 rel=1e-6)
+
+
+@pytest.mark.parametrize("epsg, pole", [(3031, -90), (3413, 90)])
+def test_polar_cap_in_a_polar_projection_gets_its_true_area(tmp_path, epsg, pole):
+    t = np.linspace(0, 2 * np.pi, 65)[:-1]
+    cap = shapely.Polygon(np.c_[1.0e6 * np.cos(t), 1.0e6 * np.sin(t)])  # 64-gon, 1,000 km about the pole
+    b = _read_one(tmp_path, cap, f"EPSG:{epsg}")
+    # reference: pyproj.Geod polygon area of the ring densified in the projection (GeographicLib's polygon
+    # area handles a ring that goes round a pole), and the planar area in a polar equal-area projection
+    x, y = np.asarray(shapely.segmentize(cap, 1000.0).exterior.coords).T
+    lon, lat = Transformer.from_crs(f"EPSG:{epsg}", "EPSG:4326", always_xy=True).transform(x, y)
+    ref = abs(GEOD.polygon_area_perimeter(lon, lat)[0])
+    laea = Transformer.from_crs("EPSG:4326", f"+proj=laea +lat_0={pole} +lon_0=0 +ellps=WGS84", always_xy=True)
+    ref2 = shapely.Polygon(np.c_[laea.transform(lon, lat)]).area
+    area = float(b["area_km2"].iloc[0]) * 1e6
+    assert ref == pytest.approx(ref2, rel=1e-4)
+    assert area == pytest.approx(ref, rel=1e-4)
+    assert b.geometry.iloc[0].bounds[1 if pole < 0 else 3] == pole
+
+
+def test_hole_around_a_pole_is_refused_naming_the_basin(tmp_path):
+    t = np.linspace(0, 2 * np.pi, 65)[:-1]
+    outer = shapely.Polygon(np.c_[2.0e6 * np.cos(t), 2.0e6 * np.sin(t)], [np.c_[1e6 * np.cos(t), 1e6 * np.sin(t)]])
+    with pytest.raises(InputError, match="basin 'X1'.*hole.*pole"):
+        _read_one(tmp_path, outer, "EPSG:3031")
+
+
+@pytest.mark.parametrize("lons", ["-180..180", "170..190"])
+def test_antimeridian_basin_extracts_over_both_halves(tmp_path, lons):
+    from utils import monthly, write_catalog, write_nc
+    from wbexplore.pipeline import extract
+
+    import geopandas as gpd
+
+    if lons == "-180..180":
+        lon = np.arange(-179.75, 180, 0.5)
+    else:  # a regional grid in 0..360 longitudes that stays 0..360
+        lon = np.arange(170.25, 190, 0.5)
+    lat = np.arange(-19.75, -12, 0.5)
+    l180 = np.where(lon > 180, lon - 360, lon)
+    # 1 just west of the antimeridian, 3 just east of it, 100 anywhere else (where a basin taken the long
+    # way round would reach)
+    row = np.where(l180 > 179, 1.0, np.where(l180 < -179, 3.0, 100.0))
+    vals = row[None, None, :] * np.ones((2, lat.size, lon.size))
+    write_nc(tmp_path / "p.nc", vals, lon, lat, monthly("2001-01", 2), var="p", units="mm")
+    gpd.GeoDataFrame({"basin_id": ["X1"], "name": ["x"]},
+                     geometry=[shapely.Polygon([(179, -17), (-179, -17), (-179, -15), (179, -15)])],
+                     crs="EPSG:4326").to_file(tmp_path / "basins.geojson")
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.nc", "variable": "p"}])
+    ds = extract(cat, cache_dir=tmp_path / "cache")  # filterwarnings=error: a CoverageWarning would fail here
+    # equal areas on both sides of the antimeridian (symmetric box): the mean of 1 and 3 (arithmetic)
+    np.testing.assert_allclose(ds["p"].values, 2.0, rtol=1e-9)
+    np.testing.assert_allclose(ds["valid_fraction_p"].values, 1.0, rtol=1e-6)
+    assert float(ds["basin_area_km2"][0]) == pytest.approx(47_375, rel=1e-4)  # pyproj.Geod, test above
+
+
+def test_polar_cap_extracts_on_a_polar_grid(tmp_path):
+    import geopandas as gpd
+    import pandas as pd
+
+    from utils import write_catalog
+    from wbexplore.pipeline import extract
+
+    x = np.arange(-1.5e6 + 12500, 1.5e6, 25000.0)
+    X, Y = np.meshgrid(x, x)
+    # 1 out to 1,200 km from the pole (beyond the basin), 100 further out
+    v = np.where(np.hypot(X, Y) < 1.2e6, 1.0, 100.0)[None] * np.ones((2, 1, 1))
+    da = xr.DataArray(v.astype("float32"), dims=("time", "y", "x"), attrs={"units": "mm"},
+                      coords={"time": pd.date_range("2001-01", periods=2, freq="MS"), "y": x, "x": x})
+    xr.Dataset({"p": da}).to_netcdf(tmp_path / "p.nc")
+    t = np.linspace(0, 2 * np.pi, 65)[:-1]
+    cap = shapely.Polygon(np.c_[1.0e6 * np.cos(t), 1.0e6 * np.sin(t)])
+    gpd.GeoDataFrame({"basin_id": ["C"], "name": ["c"]}, geometry=[cap], crs="EPSG:3031").to_file(tmp_path / "b.gpkg")
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.nc", "variable": "p", "crs": "EPSG:3031"}],
+                        basins="b.gpkg")
+    ds = extract(cat, cache_dir=tmp_path / "cache")
+    np.testing.assert_allclose(ds["p"].values, 1.0, rtol=1e-9)
+    # the grid's covered area (ellipsoidal cell areas) meets the basin's geodesic area
+    np.testing.assert_allclose(ds["valid_fraction_p"].values, 1.0, atol=1e-4)
+    # and that area is the cap's (pyproj.Geod, test_polar_cap_in_a_polar_projection_gets_its_true_area)
+    assert float(ds["basin_area_km2"][0]) == pytest.approx(3_293_399, rel=1e-4)

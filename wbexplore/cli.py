@@ -171,6 +171,8 @@ def _cmd_rank(args) -> int:
               f"{' (unmatched)' if args.unmatched else ' (window-matched)'}, ranked by {args.by}")
         print(show.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
         print("rmse, bias in mm/month; rel_imbalance in %; '-' = too few valid months to score")
+        for why in dict.fromkeys(w for w in df["undefined"] if w):
+            print(f"NaN: {why}")
     return 0
 
 

@@ -21,6 +21,7 @@ import xarray as xr
 
 from . import __version__
 from . import cache as _cache
+from .balance.plausibility import ImplausibleValueWarning, screen_implausible
 from .cache import default_cache_dir, load_basins
 from .errors import InputError
 from .io.catalog import Catalog, SourceSpec, open_catalog
@@ -31,7 +32,7 @@ from .spatial.grid import describe_grid
 from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
 
 __all__ = ["extract", "load_series", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE", "source_vars", "valid_var",
-           "default_cache_dir", "load_basins"]
+           "default_cache_dir", "load_basins", "warn_implausible", "ImplausibleValueWarning"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
 
@@ -177,7 +178,19 @@ def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine)
         computed = _compute(lazy, client=client, progress=progress)
     finally:
         release_handles()  # leave no product file open (HDF5 would refuse to rewrite it)
-    return _assemble(cat, gdf, specs, computed, meta)
+    ds, _ = screen_implausible(_assemble(cat, gdf, specs, computed, meta))
+    warn_implausible(ds)
+    return ds
+
+
+def warn_implausible(ds: xr.Dataset) -> None:
+    """One `ImplausibleValueWarning` per source (and for discharge) whose implausible months were masked
+    (`wbexplore.balance.plausibility.screen_implausible` left the note in the variable's attributes, so a
+    cached series warns again when it is loaded)."""
+    for v in ds.data_vars.values():
+        note = v.attrs.get("implausible_note")
+        if note:
+            warnings.warn(str(note), ImplausibleValueWarning, stacklevel=3)
 
 
 def _compute(lazy: dict, *, client, progress):
@@ -266,6 +279,13 @@ def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.Pat
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
     # options that change the result are part of the key; scheduler, workers, client do not
     options = {"sources": kwargs.get("sources"), "basins": kwargs.get("basins"), "engine": kwargs.get("engine", "auto")}
-    return _cache.cached_series(
-        cat, lambda: extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, **kwargs),
-        cache_dir=cache_dir, use_cache=use_cache, options=options)
+    built = []
+
+    def build():
+        built.append(True)  # extract warns of implausible values itself
+        return extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, **kwargs)
+
+    ds = _cache.cached_series(cat, build, cache_dir=cache_dir, use_cache=use_cache, options=options)
+    if not built:
+        warn_implausible(ds)  # a cache hit names the masked values again, from their attributes
+    return ds

@@ -278,10 +278,10 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     pm = months[mask]
     wy = water_year(pm, sel.water_year_start)
     f = frame
-    metrics = {k: float(v) if np.ndim(v) == 0 else v
-               for k, v in compute_metrics(f["P"].values, f["ET"].values, f["Q"].values, f["dS"].values,
-                                           month_of_year=pm.month.values, water_year=wy,
-                                           min_valid=min_valid).items()}
+    metrics = compute_metrics(f["P"].values, f["ET"].values, f["Q"].values, f["dS"].values,
+                              month_of_year=pm.month.values, water_year=wy, min_valid=min_valid, explain=True)
+    undefined = str(metrics.pop("undefined"))
+    metrics = {k: float(v) if np.ndim(v) == 0 else v for k, v in metrics.items()}
     metrics["n_valid"] = int(metrics["n_valid"])
     metrics["n_beyond_2sigma"] = int(frame["beyond_2sigma"].sum())
     msgs = []
@@ -293,6 +293,8 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     n_gap = int((~np.isfinite(terms["dS"][mask]) & np.isfinite(terms["P"][mask])).sum())
     if n_gap:
         msgs.append(f"{n_gap} months without storage change (TWSA gap or series edge)")
+    if undefined:
+        msgs.append(undefined)
     if terms["filled"][mask].any():
         msgs.append(f"{int(terms['filled'][mask].sum())} TWSA months interpolated across a gap (flagged)")
     return SelectionResult(selection=sel, frame=frame, metrics=metrics,

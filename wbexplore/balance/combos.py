@@ -95,7 +95,8 @@ def rank(ds: xr.Dataset, basin: str, *, start: str | None = None, end: str | Non
 
     Returns
     -------
-    pandas.DataFrame with columns rank, P, ET, TWSA, scored and every metric of `METRICS`.
+    pandas.DataFrame with columns rank, P, ET, TWSA, scored, every metric of `METRICS` and ``undefined``
+    (why a metric is NaN on degenerate data, e.g. discharge without variance; "" where all are defined).
     """
     check_metric(by)
     ids, P, ET, dS, Q = combination_terms(ds, basin, storage_change_method=storage_change, matched=matched,
@@ -105,10 +106,11 @@ def rank(ds: xr.Dataset, basin: str, *, start: str | None = None, end: str | Non
     pm = months[mask]
     m = compute_metrics(P[:, None, None, mask], ET[None, :, None, mask], Q[None, None, None, mask],
                         dS[None, None, :, mask], month_of_year=pm.month.values,
-                        water_year=water_year(pm, water_year_start), min_valid=min_valid)
+                        water_year=water_year(pm, water_year_start), min_valid=min_valid, explain=True)
     df, shape = _table(ids, m)
     for k in METRICS:
         df[k] = np.broadcast_to(m[k], shape).ravel()
+    df["undefined"] = np.broadcast_to(m["undefined"], shape).ravel()
     if (df["n_valid"] == 0).all():
         from .closure import _span
 
@@ -166,13 +168,14 @@ def rank_all(ds: xr.Dataset, *, by: str = "rmse", start: str | None = None, end:
     Sb = np.moveaxis(dS, 1, 0)[:, None, None, :, mask]
     Qb = Q[:, None, None, None, mask]
     m = compute_metrics(Pb, Eb, Qb, Sb, month_of_year=pm.month.values,
-                        water_year=water_year(pm, water_year_start), min_valid=min_valid)
+                        water_year=water_year(pm, water_year_start), min_valid=min_valid, explain=True)
     parts = []
     basins = [str(b) for b in ds.variables["basin"].values]
     for i, b in enumerate(basins):
         df, shape = _table(ids, None)
         for k in METRICS:
             df[k] = np.broadcast_to(m[k][i], shape).ravel()
+        df["undefined"] = np.broadcast_to(m["undefined"][i], shape).ravel()
         if (df["n_valid"] == 0).all():
             continue
         df = _finish_rank(df, by, min_valid)

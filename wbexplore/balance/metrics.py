@@ -19,6 +19,12 @@ pbias           Moriasi et al. (2007): 100 * sum(Q - Qhat) / sum Q (positive = u
 annual_bias     mean residual of complete (water) years, mm/year
 annual_rmse     RMSE of the residual totals of complete (water) years, mm/year
 n_valid         number of valid months
+
+Degenerate data leave some of these undefined (a ratio with a zero denominator): observed
+discharge without variance (nse, kge, kge_prime, r), with zero mean (kge, kge_prime, pbias), or
+equal to its monthly climatology (nse_cyclo); P - ET - dS without variance (r, kge, kge_prime) or
+with zero mean (kge_prime); a zero mean P (rel_imbalance). Such a metric is NaN, never +-inf, and
+``compute_metrics(..., explain=True)`` says why in an ``undefined`` entry (text per combination).
 """
 
 from __future__ import annotations
@@ -125,7 +131,8 @@ def _mask(*arrays):
     return tuple(np.where(ok, a, np.nan) for a in arrs)
 
 
-def compute_metrics(P, ET, Q, dS, *, month_of_year=None, water_year=None, min_valid: int = 1) -> dict:
+def compute_metrics(P, ET, Q, dS, *, month_of_year=None, water_year=None, min_valid: int = 1,
+                    explain: bool = False) -> dict:
     """All closure metrics for series with time on the last axis (any leading axes broadcast).
 
     Parameters
@@ -135,6 +142,9 @@ def compute_metrics(P, ET, Q, dS, *, month_of_year=None, water_year=None, min_va
     water_year : array of ints (time axis), the water year of each month, for annual metrics
     min_valid : int
         Below this many valid months every metric but ``n_valid`` is NaN.
+    explain : bool
+        Add ``undefined``: per combination, the metrics left NaN by degenerate data and why
+        ("" where every metric is defined).
 
     Returns
     -------
@@ -188,7 +198,42 @@ def compute_metrics(P, ET, Q, dS, *, month_of_year=None, water_year=None, min_va
     else:
         out["annual_bias"] = out["annual_rmse"] = np.full(n.shape, np.nan)
     few = n < max(1, min_valid)
+    reasons = _undefined(P, mo, so, ms, ss, out, cyclo=month_of_year is not None)
+    for names, (m, _) in reasons:
+        for k in names:
+            out[k] = np.where(m, np.nan, out[k])
     for k in list(out):
-        out[k] = np.where(few, np.nan, out[k])
+        # a metric that is still not finite is undefined too (a zero denominator): NaN, never +-inf
+        out[k] = np.where(few | ~np.isfinite(out[k]), np.nan, out[k])
     out["n_valid"] = n
+    if explain:
+        text = np.full(n.shape, "", dtype=object)
+        for names, why in reasons:
+            m = np.broadcast_to(why[0], n.shape) & ~few
+            if m.any():
+                text[m] = text[m] + np.where(text[m] == "", "", "; ") + f"{', '.join(names)} undefined: {why[1]}"
+        out["undefined"] = text
     return out
+
+
+def _undefined(P, mo, so, ms, ss, out, *, cyclo: bool):
+    """(metric names, (mask over the leading axes, reason)) of every way a metric has no value."""
+    tiny = np.finfo(np.float64).tiny
+    with np.errstate(invalid="ignore", divide="ignore"):
+        # spreads compared with the magnitude, so that round-off of a constant series counts as no spread
+        q_flat = so <= 1e-12 * np.maximum(np.abs(mo), tiny)
+        s_flat = ss <= 1e-12 * np.maximum(np.abs(ms), tiny)
+    q_zero = mo == 0
+    s_zero = ms == 0
+    p_zero = _nanmean(P) == 0
+    # nse_cyclo's denominator is the spread about the monthly climatology: none with a single year
+    cyc = ~q_flat & ~np.isfinite(out["nse_cyclo"]) if cyclo else np.zeros(np.shape(mo), dtype=bool)
+    items = [
+        (("nse", "nse_cyclo", "kge", "kge_prime", "r"), (q_flat, "observed discharge has no variance")),
+        (("kge", "kge_prime", "pbias"), (q_zero, "observed discharge has zero mean")),
+        (("r", "kge", "kge_prime"), (s_flat, "P - ET - dS has no variance")),
+        (("kge_prime",), (s_zero, "P - ET - dS has zero mean")),
+        (("rel_imbalance",), (p_zero, "mean P is zero")),
+        (("nse_cyclo",), (cyc, "discharge equals its monthly climatology (too few years)")),
+    ]
+    return [(names, (np.asarray(m, dtype=bool), why)) for names, (m, why) in items]

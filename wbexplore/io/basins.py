@@ -12,7 +12,7 @@ import shapely
 from ..errors import InputError
 from .catalog import BasinSpec
 
-__all__ = ["read_basins", "BasinRepairWarning", "geodesic_area_m2"]
+__all__ = ["read_basins", "BasinRepairWarning", "geodesic_area_m2", "unwrap_lonlat"]
 
 
 class BasinRepairWarning(UserWarning):
@@ -92,13 +92,106 @@ def read_basins(spec: BasinSpec) -> gpd.GeoDataFrame:
             warnings.warn(f"{path}: basin {ids.iloc[i]!r} had an invalid geometry ({reason}); repaired with make_valid",
                           BasinRepairWarning, stacklevel=2)
         gdf = gdf.set_geometry(gpd.GeoSeries(fixed, crs=gdf.crs, index=gdf.index))
+    if not gdf.crs.is_geographic:
+        # densify in the file's CRS first: an edge is straight there, and a long straight edge of a
+        # polar projection is a curve in lon/lat (a coarse circle about a pole would otherwise
+        # become a band along one parallel)
+        gdf = gdf.set_geometry(gpd.GeoSeries([_densify(g) for g in gdf.geometry.values], crs=gdf.crs,
+                                             index=gdf.index))
     gdf = gdf.to_crs("EPSG:4326")
+    fixed = []
+    for i, g in enumerate(gdf.geometry.values):
+        try:
+            fixed.append(unwrap_lonlat(g))
+        except ValueError as exc:
+            raise InputError(f"{path}: basin {ids.iloc[i]!r}: {exc}") from None
+    gdf = gdf.set_geometry(gpd.GeoSeries(fixed, crs="EPSG:4326", index=gdf.index))
     names = gdf[spec.name_field].astype(str) if spec.name_field else ids
     out = gpd.GeoDataFrame(
         {"name": names.values, "area_km2": geodesic_area_m2(gdf.geometry.values) / 1e6},
         geometry=gdf.geometry.values, crs="EPSG:4326", index=pd.Index(ids.values, name="basin"),
     )
     return out
+
+
+def _densify(g, parts: int = 512):
+    """``g`` with no edge longer than 1/``parts`` of its bounding box diagonal (CRS units)."""
+    x0, y0, x1, y1 = g.bounds
+    diag = float(np.hypot(x1 - x0, y1 - y0))
+    return shapely.segmentize(g, diag / parts) if diag > 0 else g
+
+
+def _continuous(lon: np.ndarray) -> np.ndarray:
+    """Longitudes made continuous along a ring: a step of more than 180 degrees is taken the short way."""
+    d = np.diff(lon)
+    d = d - 360.0 * np.round(d / 360.0)
+    return np.concatenate([lon[:1], lon[0] + np.cumsum(d)])
+
+
+def _jumps(coords: np.ndarray) -> bool:
+    """Whether a ring has an edge longer than 180 degrees of longitude; an edge of a full turn (-180 to 180,
+    as in a lon/lat box round a pole drawn on a plate carree map) is what it says and not a jump."""
+    d = np.abs(np.diff(coords[:, 0])) if coords.shape[0] > 1 else np.zeros(0)
+    return bool(np.any((d > 180.0) & (d < 360.0 - 1e-9)))
+
+
+def unwrap_lonlat(g):
+    """A lon/lat (Multi)Polygon whose edges cross the antimeridian or whose ring goes round a pole,
+    as the area it means, split at +-180 degrees into parts within -180..180.
+
+    A ring with an edge longer than 180 degrees of longitude is read as crossing the antimeridian
+    (the short way round, as any basin outline is drawn); a ring whose continuous longitudes end
+    360 degrees from where they start goes round a pole, the one on the side of its mean latitude,
+    and the polygon is closed along that pole. Geometries without such edges are returned unchanged.
+
+    Raises
+    ------
+    ValueError
+        For a hole that goes round a pole (no basin is a ring around the pole with the pole cut out
+        of a cap; such a file is refused, not guessed).
+    """
+    if g.geom_type == "MultiPolygon":
+        parts = list(g.geoms)
+    elif g.geom_type == "Polygon":
+        parts = [g]
+    else:
+        return g
+    if not any(_jumps(np.asarray(r.coords)) for p in parts for r in (p.exterior, *p.interiors)):
+        return g
+    pieces = []
+    for p in parts:
+        ext = np.asarray(p.exterior.coords)[:, :2]
+        if not any(_jumps(np.asarray(r.coords)) for r in (p.exterior, *p.interiors)):
+            pieces.append(p)
+            continue
+        lon = _continuous(ext[:, 0])
+        shell = np.column_stack([lon, ext[:, 1]])
+        if abs(lon[-1] - lon[0]) > 180.0:
+            pole = 90.0 if float(np.mean(ext[:, 1])) > 0 else -90.0
+            shell = np.vstack([shell, [[lon[-1], pole], [lon[0], pole]]])
+        lo, hi = float(shell[:, 0].min()), float(shell[:, 0].max())
+        holes = []
+        for r in p.interiors:
+            h = np.asarray(r.coords)[:, :2]
+            hl = _continuous(h[:, 0])
+            if abs(hl[-1] - hl[0]) > 180.0:
+                raise ValueError("a hole of the polygon goes round a pole; split the basin into parts that do not")
+            mid = 0.5 * (hl.min() + hl.max())
+            k = np.round((0.5 * (lo + hi) - mid) / 360.0)
+            holes.append(np.column_stack([hl + 360.0 * k, h[:, 1]]))
+        poly = shapely.Polygon(shell, holes)
+        if not poly.is_valid:
+            poly = _polygonal(shapely.make_valid(poly))
+        for k in (-1, 0, 1):
+            win = shapely.box(-180.0 + 360.0 * k, -90.0, 180.0 + 360.0 * k, 90.0)
+            piece = shapely.intersection(poly, win)
+            if not piece.is_empty and piece.area > 0:
+                piece = _polygonal(piece) if piece.geom_type not in ("Polygon", "MultiPolygon") else piece
+                pieces.append(shapely.transform(piece, lambda c, k=k: c - np.array([360.0 * k, 0.0])))
+    out = shapely.union_all(pieces) if pieces else shapely.Polygon()
+    if out.is_empty or out.area <= 0:
+        raise ValueError("its outline, read across the antimeridian or round a pole, encloses no area")
+    return _polygonal(out) if out.geom_type not in ("Polygon", "MultiPolygon") else out
 
 
 def _polygonal(g):

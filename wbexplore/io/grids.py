@@ -288,7 +288,7 @@ def _date_regex(fmt: str) -> re.Pattern:
 def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex | None]:
     import rioxarray  # noqa: F401  (registers .rio)
 
-    def _one(path: Path, *, band_chunks):
+    def _one(path: Path, *, band_chunks, index: int = 0):
         try:
             with warnings.catch_warnings():
                 # rioxarray multiplies affine transforms with `*` (deprecated in affine 3)
@@ -296,6 +296,9 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
                 da = rioxarray.open_rasterio(path, chunks={"band": band_chunks, "y": -1, "x": -1},
                                              mask_and_scale=True, lock=False)
         except Exception as exc:
+            if _out_of_descriptors(exc):
+                _fail(spec, f"the process ran out of file descriptors while opening file {index + 1} of "
+                            f"{len(spec.paths)} (limit {_fd_limit()}; raise it with 'ulimit -n')", path)
             _fail(spec, f"cannot be opened as GeoTIFF ({exc.__class__.__name__})", path)
         return da
 
@@ -331,14 +334,18 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
         items.sort()
         arrays = []
         first = None
-        for t, p in items:
-            a = _one(p, band_chunks=1)
+        for k, (t, p) in enumerate(items):
+            a = _one(p, band_chunks=1, index=k)
             if a.sizes["band"] != 1:
                 _fail(spec, f"expected single-band files in a date-named series, found {a.sizes['band']} bands", p)
             if first is None:
                 first = a
             elif a.shape != first.shape or not np.allclose(a.x.values, first.x.values) or not np.allclose(a.y.values, first.y.values):
                 _fail(spec, "grid differs from the series' first file", p)
+            # close the handle now: the lazy array reopens the file through xarray's bounded file
+            # cache (`xarray.set_options(file_cache_maxsize=...)`, 128 by default) when it is read,
+            # so a glob of thousands of files never holds thousands of descriptors at once
+            a.close()
             arrays.append(a.isel(band=0, drop=True))
         blocks = _geotiff_blocks([p for _, p in items], arrays)
         da = xr.concat(arrays, dim=pd.Index([t for t, _ in items], name="band"), coords="minimal",
@@ -360,6 +367,25 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
     ny, nx = da.sizes["y"], da.sizes["x"]
     da = da.chunk({"time": _time_chunk(ny, nx, da.dtype.itemsize), "y": -1, "x": -1})
     return da, crs, None, blocks
+
+
+def _out_of_descriptors(exc: BaseException) -> bool:
+    """Whether an opening failed because the process has no file descriptor left (EMFILE/ENFILE):
+    GDAL reports it as a generic I/O error, so its message is inspected too."""
+    import errno
+
+    if isinstance(exc, OSError) and exc.errno in (errno.EMFILE, errno.ENFILE):
+        return True
+    return "too many open files" in str(exc).lower()
+
+
+def _fd_limit() -> str:
+    try:
+        import resource
+
+        return str(resource.getrlimit(resource.RLIMIT_NOFILE)[0])
+    except (ImportError, OSError, ValueError):  # pragma: no cover - not on POSIX
+        return "unknown"
 
 
 def _infer_step(spec: SourceSpec, times: pd.DatetimeIndex) -> str:

@@ -41,8 +41,8 @@ def coverage_matrix(grid: GridSpec, geoms, *, engine: str = "auto") -> sp.csr_ma
     scipy.sparse.csr_matrix, shape (n_basins, ny * nx), columns in the *file's* flat (y, x) order.
     """
     geoms = list(geoms)
-    if grid.lon_offset:
-        geoms = [_shift_west(g, grid) for g in geoms]
+    if grid.is_geographic:
+        geoms = [_wrap_to_grid(g, grid) for g in geoms]
     if engine == "auto":
         engine = "exactextract" if _has_exactextract() else "shapely"
     if engine == "exactextract":
@@ -58,11 +58,27 @@ def coverage_matrix(grid: GridSpec, geoms, *, engine: str = "auto") -> sp.csr_ma
     return m
 
 
-def _shift_west(g, grid: GridSpec):
-    """Shift the parts of a lon/lat geometry lying west of a 0..360 grid by 360 degrees."""
-    if g.bounds[2] <= grid.xmin:
-        return shapely.transform(g, lambda c: c + np.array([grid.lon_offset, 0.0]))
-    return g
+def _wrap_to_grid(g, grid: GridSpec):
+    """A lon/lat geometry with the parts that lie a full turn (360 degrees) away from the grid's longitudes
+    brought onto them: a basin split at the antimeridian onto a 0..360 grid, a basin crossing the prime
+    meridian onto a 0..360 grid, or a basin written in 0..360 onto a -180..180 grid. A geometry with
+    nothing a turn away is returned unchanged."""
+    x0, _, x1, _ = g.bounds
+    window = shapely.box(grid.xmin, -90.0, grid.xmax, 90.0)
+    shifted = []
+    for k in (-360.0, 360.0):
+        if x1 + k > grid.xmin and x0 + k < grid.xmax:
+            part = shapely.intersection(shapely.transform(g, lambda c, k=k: c + np.array([k, 0.0])), window)
+            if not part.is_empty and part.area > 0:
+                shifted.append(part)
+    if not shifted:
+        return g
+    inside = shapely.intersection(g, window)
+    out = shapely.union_all([p for p in [inside, *shifted] if not p.is_empty])
+    if out.geom_type == "GeometryCollection":
+        out = shapely.MultiPolygon([q for p in out.geoms if p.geom_type in ("Polygon", "MultiPolygon")
+                                    for q in getattr(p, "geoms", [p])])
+    return out
 
 
 def _exactextract(grid: GridSpec, geoms):
