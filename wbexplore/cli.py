@@ -128,13 +128,16 @@ def _cmd_check(args) -> int:
 
 
 def _cmd_extract(args) -> int:
+    from .io.catalog import open_catalog
     from .io.writers import atomic_path, check_output
     from .pipeline import extract
 
-    check_output(args.out, overwrite=args.force)
+    # refused before the (long) extraction: an existing file without --force, and always an input of the catalog
+    cat = open_catalog(args.catalog)
+    check_output(args.out, overwrite=args.force, protect=cat)
     ds = extract(args.catalog, scheduler=args.scheduler, workers=args.workers, progress=not args.quiet,
                  cache_dir=args.cache_dir)
-    with atomic_path(args.out, overwrite=args.force) as tmp:
+    with atomic_path(args.out, overwrite=args.force, protect=cat) as tmp:
         ds.to_netcdf(tmp, format="NETCDF4")
     print(f"wrote {args.out}: {ds.sizes['basin']} basins x {ds.sizes['time']} months, "
           f"{len([v for v in ds.data_vars if ds[v].attrs.get('role') == 'source'])} sources")
@@ -207,8 +210,12 @@ def _cmd_replay(args) -> int:
 
 def _cmd_report(args) -> int:
     from .balance import best_selection
+    from .io.catalog import open_catalog
+    from .io.writers import check_output
     from .report import write_report
 
+    # refused before the series are loaded (write_report checks again just before writing)
+    check_output(args.out, overwrite=args.force, protect=open_catalog(args.catalog))
     ds = _series(args)
     if args.P and args.ET and args.TWSA:
         sel = _selection_from_args(args)

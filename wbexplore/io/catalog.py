@@ -136,6 +136,29 @@ class Catalog:
     def by_component(self, component: str) -> list[SourceSpec]:
         return [s for s in self.sources if s.component == component]
 
+    def input_paths(self) -> tuple[Path, ...]:
+        """Every file or store the catalog reads: itself, the basins file (with a shapefile's sidecars,
+        which hold its attributes and CRS), the discharge table and every product file or zarr store.
+
+        Writers refuse to replace any of these (`io.writers.check_output`).
+        """
+        out = [self.path, self.basins.path]
+        b = self.basins.path
+        if b.suffix.lower() == ".shp":
+            out += sorted(q for q in b.parent.glob(_glob.escape(b.stem) + ".*") if q != b)
+        if self.discharge is not None:
+            out.append(self.discharge.path)
+        for s in self.sources:
+            out.extend(s.paths)
+        return tuple(dict.fromkeys(out))
+
+    def input_globs(self) -> tuple[str, ...]:
+        """The absolute glob patterns of products given as patterns: a new file matching one joins the product."""
+        base = self.path.parent
+        pats = [s.path_pattern if os.path.isabs(s.path_pattern) else str(base / s.path_pattern)
+                for s in self.sources if _glob.has_magic(s.path_pattern)]
+        return tuple(dict.fromkeys(pats))
+
 
 def _fail(cat: Path, where: str, msg: str) -> None:
     raise CatalogError(f"{cat}: {where}{msg}")
