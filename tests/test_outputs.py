@@ -224,3 +224,59 @@ def test_full_disk_on_a_text_output(study, tmp_path, capsys, monkeypatch):
     assert str(out) in err
     assert _tree(tmp_path) == before
 
+
+# --------------------------------------------------------------------------- demo
+
+
+def test_demo_force_refuses_a_folder_it_did_not_write(tmp_path, capsys):
+    d = tmp_path / "thesis"
+    (d / "chapters").mkdir(parents=True)
+    (d / "chapters" / "one.md").write_text("months of work\n")
+    (d / "catalog.yaml").write_text("catalog_version: 1\n")
+    before = _tree(tmp_path)
+    rc, err = _run(["demo", "--out", d, "--force", "--no-launch"], capsys)
+    _assert_one_line_refusal(rc, err)
+    assert _tree(tmp_path) == before
+
+
+@pytest.mark.parametrize("change", ["extra-file", "edited-file", "no-marker"])
+def test_demo_force_refuses_a_changed_demo_study(change, demo_dir, tmp_path, capsys):
+    study = copy_demo(demo_dir, tmp_path)
+    if change == "extra-file":
+        (study / "grids" / "my_notes.txt").write_text("mine\n")
+    elif change == "edited-file":
+        with open(study / "README.md", "a") as fh:
+            fh.write("my edit\n")
+    else:
+        (study / ".wbexplore-demo").unlink()
+    before = _tree(tmp_path)
+    rc, err = _run(["demo", "--out", study, "--force", "--no-launch"], capsys)
+    _assert_one_line_refusal(rc, err)
+    assert _tree(tmp_path) == before
+
+
+def test_demo_force_replaces_its_study_and_keeps_a_partial_folder(demo_dir, tmp_path, capsys):
+    study = copy_demo(demo_dir, tmp_path)
+    partial = tmp_path / "study.partial"
+    partial.mkdir()
+    (partial / "keep.txt").write_text("not the demo's\n")
+    (study / "README.md").touch()  # a newer mtime, same content: still the demo's file
+    rc, err = _run(["demo", "--out", study, "--force", "--no-launch"], capsys)
+    assert rc == 0, err
+    assert (partial / "keep.txt").read_text() == "not the demo's\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["study", "study.partial"]  # no temporary folder left
+    from wbexplore.demo import MARKER
+
+    listed = (study / MARKER).read_text().splitlines()[1:]
+    assert "explore_basin.ipynb" in {line.split("  ", 1)[1] for line in listed}
+    on_disk = {p.relative_to(study).as_posix() for p in study.rglob("*") if p.is_file()} - {MARKER}
+    assert on_disk == {line.split("  ", 1)[1] for line in listed}
+
+
+def test_demo_onto_a_file_is_one_line(tmp_path, capsys):
+    f = tmp_path / "notes.txt"
+    f.write_text("keep\n")
+    for extra in ([], ["--force"]):
+        rc, err = _run(["demo", "--out", f, "--no-launch", *extra], capsys)
+        _assert_one_line_refusal(rc, err)
+        assert f.read_text() == "keep\n" and [p.name for p in tmp_path.iterdir()] == ["notes.txt"]

@@ -47,7 +47,7 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("demo", help="write the invented demo study and open the explorer notebook")
     p.add_argument("--out", default="wbexplore-demo", metavar="DIR", help="study folder (default ./wbexplore-demo)")
     p.add_argument("--no-launch", action="store_true", help="do not start JupyterLab")
-    p.add_argument("--force", action="store_true", help="replace an existing, non-empty folder")
+    p.add_argument("--force", action="store_true", help="replace a demo study written before (only if nothing in it was added or changed)")
 
     p = sub.add_parser("check", help="validate a catalog and summarise its sources")
     p.add_argument("catalog")
@@ -240,8 +240,8 @@ def _cmd_demo(args) -> int:
     from .demo import write_demo
 
     out = Path(args.out)
-    info = write_demo(out, overwrite=args.force, progress=sys.stderr.isatty())
-    nb = _copy_templates(out)
+    info = write_demo(out, overwrite=args.force, progress=sys.stderr.isatty(), templates=True)
+    nb = out / "explore_basin.ipynb" if (out / "explore_basin.ipynb").exists() else out
     print(f"wrote the demo study to {out} ({info.n_bytes / 1e6:.0f} MB, invented data)")
     _cmd_check(argparse.Namespace(catalog=str(info.catalog)))
     print("\nnext:")
@@ -256,19 +256,9 @@ def _cmd_demo(args) -> int:
 
 
 def _copy_templates(out: Path) -> Path:
-    import shutil
-    from importlib import resources
+    from .demo import copy_templates
 
-    first = None
-    tdir = resources.files("wbexplore") / "templates"
-    for item in sorted(tdir.iterdir(), key=lambda p: p.name):
-        if item.name.endswith(".ipynb"):
-            dest = out / item.name
-            with resources.as_file(item) as src:
-                shutil.copyfile(src, dest)
-            if item.name == "explore_basin.ipynb":
-                first = dest
-    return first or out
+    return copy_templates(out)
 
 
 _COMMANDS = {"demo": _cmd_demo, "check": _cmd_check, "extract": _cmd_extract, "rank": _cmd_rank,
