@@ -280,3 +280,32 @@ def test_demo_onto_a_file_is_one_line(tmp_path, capsys):
         rc, err = _run(["demo", "--out", f, "--no-launch", *extra], capsys)
         _assert_one_line_refusal(rc, err)
         assert f.read_text() == "keep\n" and [p.name for p in tmp_path.iterdir()] == ["notes.txt"]
+
+
+# --------------------------------------------------------------------------- library writers (the explorer's path)
+
+
+def test_library_writers_refuse_inputs_even_when_overwriting(study, demo_series):
+    """The explorer's export and report buttons call these with overwrite=True: inputs stay untouched."""
+    from wbexplore.balance import Selection, compute_selection
+    from wbexplore.errors import InputError
+    from wbexplore.io.catalog import open_catalog
+    from wbexplore.report import write_report
+    from wbexplore.selection import export_selection, write_series_csv, write_series_netcdf
+
+    cat = open_catalog(study / "catalog.yaml")
+    sel = Selection("VEL", "heron", "tansy", "quarry", start="2003-01", end="2018-12")
+    before = _tree(study)
+    with pytest.raises(InputError, match="input of catalog"):
+        export_selection(cat.path, sel, study / "catalog.yaml", overwrite=True, ds=demo_series)
+    with pytest.raises(InputError, match="input of catalog"):
+        export_selection(cat.path, sel, study / "sel.yaml", overwrite=True, series=str(study / "discharge.csv"),
+                         ds=demo_series)
+    with pytest.raises(InputError, match="input of catalog"):
+        write_report(cat.path, demo_series, sel, study / "basins.geojson", overwrite=True)
+    res = compute_selection(demo_series, sel)
+    with pytest.raises(InputError, match="input of catalog"):
+        write_series_csv(res, study / "discharge.csv", overwrite=True, protect=cat)
+    with pytest.raises(InputError, match="input of catalog"):
+        write_series_netcdf(res, study / "grids" / "quarry_twsa_0p5.nc", overwrite=True, protect=cat)
+    assert _tree(study) == before
