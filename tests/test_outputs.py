@@ -276,8 +276,8 @@ def test_demo_force_replaces_its_study_and_keeps_a_partial_folder(demo_dir, tmp_
 def test_demo_onto_a_file_is_one_line(tmp_path, capsys):
     f = tmp_path / "notes.txt"
     f.write_text("keep\n")
-    for extra in ([], ["--force"]):
-        rc, err = _run(["demo", "--out", f, "--no-launch", *extra], capsys)
+    for out, extra in ((f, []), (f, ["--force"]), (f / "study", [])):
+        rc, err = _run(["demo", "--out", out, "--no-launch", *extra], capsys)
         _assert_one_line_refusal(rc, err)
         assert f.read_text() == "keep\n" and [p.name for p in tmp_path.iterdir()] == ["notes.txt"]
 

@@ -383,6 +383,11 @@ def write_demo(out: str | Path, *, overwrite: bool = False, progress: bool = Fal
         raise InputError(f"{out}: is a symlink; give the study folder itself as --out")
     if out.exists() and not out.is_dir():
         raise InputError(f"{out}: exists and is not a folder; give a new or empty folder as --out")
+    for up in out.parents:
+        if up.exists():
+            if not up.is_dir():
+                raise InputError(f"{out}: {str(up)!r} is a file, not a folder")
+            break
     old = None
     if out.exists() and any(out.iterdir()):
         if not overwrite:
