@@ -47,7 +47,8 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("demo", help="write the invented demo study and open the explorer notebook")
     p.add_argument("--out", default="wbexplore-demo", metavar="DIR", help="study folder (default ./wbexplore-demo)")
     p.add_argument("--no-launch", action="store_true", help="do not start JupyterLab")
-    p.add_argument("--force", action="store_true", help="replace a demo study written before (only if nothing in it was added or changed)")
+    p.add_argument("--force", action="store_true",
+                   help="replace a demo study written before (only if nothing in it was added or changed)")
 
     p = sub.add_parser("check", help="validate a catalog and summarise its sources")
     p.add_argument("catalog")

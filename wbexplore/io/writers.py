@@ -20,7 +20,6 @@ import stat
 import tempfile
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Iterable
 
 from ..errors import InputError
 
