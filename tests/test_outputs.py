@@ -309,3 +309,37 @@ def test_library_writers_refuse_inputs_even_when_overwriting(study, demo_series)
     with pytest.raises(InputError, match="input of catalog"):
         write_series_netcdf(res, study / "grids" / "quarry_twsa_0p5.nc", overwrite=True, protect=cat)
     assert _tree(study) == before
+
+
+# --------------------------------------------------------------------------- interrupted writes
+
+_TERM_WRITER = """
+import os, signal, sys
+from wbexplore.io.writers import atomic_path
+with atomic_path(sys.argv[1]) as tmp:
+    tmp.write_text("half an output")
+    os.kill(os.getpid(), signal.SIGTERM)
+"""
+
+_TERM_DEMO = """
+import os, signal, sys
+import wbexplore.demo as demo
+def _write(folder, progress):
+    (folder / "catalog.yaml").write_text("half a study")
+    os.kill(os.getpid(), signal.SIGTERM)
+demo._write = _write
+demo.write_demo(sys.argv[1])
+"""
+
+
+@pytest.mark.parametrize("script", ["writer", "demo"])
+def test_sigterm_leaves_no_temporary_file(script, tmp_path):
+    """SIGTERM (what a batch system or ``kill`` sends) ends the run with status 128 + 15, the temporary gone."""
+    import subprocess
+    import sys
+
+    code = {"writer": _TERM_WRITER, "demo": _TERM_DEMO}[script]
+    target = tmp_path / ("out.nc" if script == "writer" else "study")
+    proc = subprocess.run([sys.executable, "-c", code, str(target)], capture_output=True, text=True, timeout=120)
+    assert proc.returncode in (143, -15), proc.stderr
+    assert list(tmp_path.iterdir()) == []

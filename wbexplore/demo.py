@@ -399,18 +399,11 @@ def write_demo(out: str | Path, *, overwrite: bool = False, progress: bool = Fal
         tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
     except OSError as exc:
         raise InputError(f"{out}: cannot create the study folder ({exc.strerror or exc})") from None
+    from .io.writers import terminate_unwinds
+
     try:
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o777 & ~umask)  # mkdtemp's private mode is not what a study folder wants
-        (tmp / "grids" / "plover").mkdir(parents=True)
-        _write(tmp, progress=progress)
-        if templates:
-            copy_templates(tmp)
-        _write_marker(tmp)
-        if old is not None:
-            _remove_demo(out, old)
-        os.rename(tmp, out)  # onto a missing or an empty folder
+        with terminate_unwinds():
+            _fill(tmp, out, old, progress=progress, templates=templates)
     except OSError as exc:
         shutil.rmtree(tmp, ignore_errors=True)
         raise InputError(f"{out}: cannot write the demo study ({exc.strerror or exc})") from None
@@ -419,6 +412,21 @@ def write_demo(out: str | Path, *, overwrite: bool = False, progress: bool = Fal
         raise
     total = sum(p.stat().st_size for p in out.rglob("*") if p.is_file())
     return DemoInfo(folder=out, catalog=out / "catalog.yaml", truth=out / "truth.nc", n_bytes=total)
+
+
+def _fill(tmp: Path, out: Path, old: list[Path] | None, *, progress: bool, templates: bool) -> None:
+    """Write the study into ``tmp``, then remove the old study (``old``: its files) and rename ``tmp`` to ``out``."""
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o777 & ~umask)  # mkdtemp's private mode is not what a study folder wants
+    (tmp / "grids" / "plover").mkdir(parents=True)
+    _write(tmp, progress=progress)
+    if templates:
+        copy_templates(tmp)
+    _write_marker(tmp)
+    if old is not None:
+        _remove_demo(out, old)
+    os.rename(tmp, out)  # onto a missing or an empty folder
 
 
 def _write(folder: Path, *, progress: bool):

@@ -16,14 +16,16 @@ from __future__ import annotations
 import fnmatch
 import glob as _glob
 import os
+import signal
 import stat
 import tempfile
+import threading
 from contextlib import contextmanager
 from pathlib import Path
 
 from ..errors import InputError
 
-__all__ = ["CAUTION", "atomic_path", "check_output", "same_file"]
+__all__ = ["CAUTION", "atomic_path", "check_output", "same_file", "terminate_unwinds"]
 
 CAUTION = ("Screening-level analysis: results depend on the products and gauges used and carry their errors. "
            "For water-allocation, flood or drought decisions, defer to gauged data, local codes and "
@@ -145,12 +147,35 @@ def same_file(a: str | os.PathLike, b: str | os.PathLike) -> bool:
 
 
 @contextmanager
+def terminate_unwinds():
+    """While inside, SIGTERM raises ``SystemExit(143)`` so that ``finally`` blocks remove temporary files.
+
+    Only when SIGTERM has its default action (which ends the process at once, leaving them behind) and in
+    the main thread (the only one that may set handlers); a handler someone else installed is kept.
+    """
+    if threading.current_thread() is not threading.main_thread() or \
+            signal.getsignal(signal.SIGTERM) is not signal.SIG_DFL:
+        yield
+        return
+
+    def _raise(signum, frame):
+        raise SystemExit(128 + signum)
+
+    signal.signal(signal.SIGTERM, _raise)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, signal.SIG_DFL)
+
+
+@contextmanager
 def atomic_path(path: str | os.PathLike, *, overwrite: bool = False, protect=None):
     """Yield a temporary path next to ``path``; rename it onto ``path`` only on success.
 
     The refusals of `check_output` apply (``protect``: the catalog whose inputs must not be written). An
     `OSError` while writing (a full disk, a lost mount) becomes one `InputError` line naming ``path``; the
-    temporary file is removed whatever happens, and ``path`` keeps its old content.
+    temporary file is removed whatever happens (SIGTERM included, see `terminate_unwinds`), and ``path``
+    keeps its old content.
     """
     p = check_output(path, overwrite=overwrite, protect=protect)
     try:
@@ -160,13 +185,14 @@ def atomic_path(path: str | os.PathLike, *, overwrite: bool = False, protect=Non
     except OSError as exc:
         raise InputError(f"{p}: cannot write the output file ({exc.strerror or exc})") from None
     try:
-        try:
-            yield Path(tmp)
-            # checked again just before the rename: the target may have changed while the output was computed
-            check_output(p, overwrite=overwrite, protect=protect)
-            os.replace(tmp, p)
-        except OSError as exc:
-            raise InputError(f"{p}: cannot write the output file ({exc.strerror or exc})") from None
+        with terminate_unwinds():
+            try:
+                yield Path(tmp)
+                # checked again just before the rename: the target may have changed while the output was computed
+                check_output(p, overwrite=overwrite, protect=protect)
+                os.replace(tmp, p)
+            except OSError as exc:
+                raise InputError(f"{p}: cannot write the output file ({exc.strerror or exc})") from None
     finally:
         if os.path.lexists(tmp):
             try:
