@@ -86,6 +86,8 @@ def _target(kind: str, study: Path, tmp_path: Path) -> Path:
         return study / "grids" / "cairn_twsa_1deg.zarr" / "out.nc"
     if kind == "new-file-matching-a-product-glob":
         return study / "grids" / "plover" / "plover_rain_2099-01.tif"
+    if kind == "new-sidecar-of-a-geotiff-product":
+        return study / "grids" / "fennel_et_0p1.tif.aux.xml"
     if kind == "symlink-to-catalog":
         link = tmp_path / "link.out"
         link.symlink_to(study / "catalog.yaml")
@@ -124,7 +126,7 @@ def _target(kind: str, study: Path, tmp_path: Path) -> Path:
 
 
 KINDS = ["catalog", "discharge", "basins", "product", "file-in-zarr-store", "new-file-in-zarr-store",
-         "new-file-matching-a-product-glob", "symlink-to-catalog", "hardlink-to-product",
+         "new-file-matching-a-product-glob", "new-sidecar-of-a-geotiff-product", "symlink-to-catalog", "hardlink-to-product",
          "hardlink-into-zarr-store", "fifo", "device", "symlink-to-device", "folder", "symlink-to-folder"]
 
 

@@ -153,10 +153,25 @@ class Catalog:
         return tuple(dict.fromkeys(out))
 
     def input_globs(self) -> tuple[str, ...]:
-        """The absolute glob patterns of products given as patterns: a new file matching one joins the product."""
+        """Absolute glob patterns of files that do not exist yet but would change what the catalog reads.
+
+        A new file matching a product's glob joins the product; a new sidecar is read with the file beside
+        it: any ``<stem>.*`` of a shapefile (attributes, CRS, encoding) and the ``.aux.xml``, ``.ovr`` and
+        ``.msk`` files the GeoTIFF reader picks up (nodata, scale, masks).
+        """
         base = self.path.parent
-        pats = [s.path_pattern if os.path.isabs(s.path_pattern) else str(base / s.path_pattern)
-                for s in self.sources if _glob.has_magic(s.path_pattern)]
+        pats = []
+        b = self.basins.path
+        if b.suffix.lower() == ".shp":
+            pats.append(_glob.escape(str(b.with_suffix(""))) + ".*")
+        for s in self.sources:
+            full = s.path_pattern if os.path.isabs(s.path_pattern) else str(base / s.path_pattern)
+            magic = _glob.has_magic(s.path_pattern)
+            if magic:
+                pats.append(full)
+            if s.format == "geotiff":
+                stem = full if magic else _glob.escape(full)
+                pats += [stem + ext for ext in (".aux.xml", ".ovr", ".msk")]
         return tuple(dict.fromkeys(pats))
 
 
