@@ -69,7 +69,8 @@ def _refuse_input(p: Path, protect) -> None:
             stores.append(os.path.realpath(q))
     for d in stores:
         if _is_within(real_parent, d) or _is_within(real, d):
-            raise InputError(f"{p}: output lies inside {d}, an input store of {name}; refused even with --force")
+            raise InputError(f"{p}: output lies inside {os.path.basename(d)!r}, an input store of {name}; "
+                             f"refused even with --force")
     if st is not None:
         if (st.st_dev, st.st_ino) in ids:
             raise InputError(f"{p}: output file is an input of {name}; refused even with --force")
@@ -83,8 +84,9 @@ def _refuse_input(p: Path, protect) -> None:
                         except OSError:
                             continue
                         if (fs.st_dev, fs.st_ino) == (st.st_dev, st.st_ino):
-                            raise InputError(f"{p}: output file is a link to {os.path.join(root, f)}, "
-                                             f"an input of {name}; refused even with --force")
+                            inner = os.path.relpath(os.path.join(root, f), os.path.dirname(d))
+                            raise InputError(f"{p}: output file is a link to {inner!r}, an input of {name}; "
+                                             f"refused even with --force")
     for pat in globs:
         pdir, pbase = os.path.split(pat)
         cands = [(os.path.abspath(p), pat)]
@@ -92,8 +94,8 @@ def _refuse_input(p: Path, protect) -> None:
             cands.append((real, os.path.join(os.path.realpath(pdir), pbase)))
         for target, pattern in cands:
             if fnmatch.fnmatchcase(target, pattern):
-                raise InputError(f"{p}: output file name matches the product pattern {pat!r} of {name}; "
-                                 f"refused even with --force")
+                raise InputError(f"{p}: output would be read as an input of {name} (it matches "
+                                 f"{os.path.basename(pat)!r}); refused even with --force")
 
 
 def check_output(path: str | os.PathLike, *, overwrite: bool = False, protect=None) -> Path:
