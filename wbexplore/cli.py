@@ -47,7 +47,8 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("demo", help="write the invented demo study and open the explorer notebook")
     p.add_argument("--out", default="wbexplore-demo", metavar="DIR", help="study folder (default ./wbexplore-demo)")
     p.add_argument("--no-launch", action="store_true", help="do not start JupyterLab")
-    p.add_argument("--force", action="store_true", help="replace an existing, non-empty folder")
+    p.add_argument("--force", action="store_true",
+                   help="replace a demo study written before (only if nothing in it was added or changed)")
 
     p = sub.add_parser("check", help="validate a catalog and summarise its sources")
     p.add_argument("catalog")
@@ -128,13 +129,16 @@ def _cmd_check(args) -> int:
 
 
 def _cmd_extract(args) -> int:
+    from .io.catalog import open_catalog
     from .io.writers import atomic_path, check_output
     from .pipeline import extract
 
-    check_output(args.out, overwrite=args.force)
+    # refused before the (long) extraction: an existing file without --force, and always an input of the catalog
+    cat = open_catalog(args.catalog)
+    check_output(args.out, overwrite=args.force, protect=cat)
     ds = extract(args.catalog, scheduler=args.scheduler, workers=args.workers, progress=not args.quiet,
                  cache_dir=args.cache_dir)
-    with atomic_path(args.out, overwrite=args.force) as tmp:
+    with atomic_path(args.out, overwrite=args.force, protect=cat) as tmp:
         ds.to_netcdf(tmp, format="NETCDF4")
     print(f"wrote {args.out}: {ds.sizes['basin']} basins x {ds.sizes['time']} months, "
           f"{len([v for v in ds.data_vars if ds[v].attrs.get('role') == 'source'])} sources")
@@ -209,8 +213,12 @@ def _cmd_replay(args) -> int:
 
 def _cmd_report(args) -> int:
     from .balance import best_selection
+    from .io.catalog import open_catalog
+    from .io.writers import check_output
     from .report import write_report
 
+    # refused before the series are loaded (write_report checks again just before writing)
+    check_output(args.out, overwrite=args.force, protect=open_catalog(args.catalog))
     ds = _series(args)
     if args.P and args.ET and args.TWSA:
         sel = _selection_from_args(args)
@@ -235,8 +243,8 @@ def _cmd_demo(args) -> int:
     from .demo import write_demo
 
     out = Path(args.out)
-    info = write_demo(out, overwrite=args.force, progress=sys.stderr.isatty())
-    nb = _copy_templates(out)
+    info = write_demo(out, overwrite=args.force, progress=sys.stderr.isatty(), templates=True)
+    nb = out / "explore_basin.ipynb" if (out / "explore_basin.ipynb").exists() else out
     print(f"wrote the demo study to {out} ({info.n_bytes / 1e6:.0f} MB, invented data)")
     _cmd_check(argparse.Namespace(catalog=str(info.catalog)))
     print("\nnext:")
@@ -251,19 +259,9 @@ def _cmd_demo(args) -> int:
 
 
 def _copy_templates(out: Path) -> Path:
-    import shutil
-    from importlib import resources
+    from .demo import copy_templates
 
-    first = None
-    tdir = resources.files("wbexplore") / "templates"
-    for item in sorted(tdir.iterdir(), key=lambda p: p.name):
-        if item.name.endswith(".ipynb"):
-            dest = out / item.name
-            with resources.as_file(item) as src:
-                shutil.copyfile(src, dest)
-            if item.name == "explore_basin.ipynb":
-                first = dest
-    return first or out
+    return copy_templates(out)
 
 
 _COMMANDS = {"demo": _cmd_demo, "check": _cmd_check, "extract": _cmd_extract, "rank": _cmd_rank,

@@ -27,6 +27,7 @@ See `PRODUCTS` below; `wbexplore demo` writes the table into the study README.
 from __future__ import annotations
 
 import json
+import os
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -34,7 +35,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-__all__ = ["write_demo", "PRODUCTS", "BASINS", "SEED", "DemoInfo", "REGION"]
+__all__ = ["write_demo", "copy_templates", "MARKER", "PRODUCTS", "BASINS", "SEED", "DemoInfo", "REGION"]
 
 SEED = 20260412
 REGION = dict(lon0=-7.0, lon1=5.0, lat0=6.0, lat1=16.0)
@@ -269,37 +270,163 @@ def _write_geotiff(path, arr, lon_edges_w, lat_edge_n, res, *, descriptions=None
         dst.update_tags(units=units)
 
 
-def write_demo(out: str | Path, *, overwrite: bool = False, progress: bool = False) -> DemoInfo:
+MARKER = ".wbexplore-demo"
+_MARKER_HEAD = "wbexplore demo study: the files `wbexplore demo` wrote here (sha256, path)"
+
+
+def copy_templates(folder: str | Path) -> Path:
+    """Copy the template notebooks into ``folder``; return the path of the explorer notebook."""
+    from importlib import resources
+
+    folder = Path(folder)
+    first = None
+    tdir = resources.files("wbexplore") / "templates"
+    for item in sorted(tdir.iterdir(), key=lambda p: p.name):
+        if item.name.endswith(".ipynb"):
+            dest = folder / item.name
+            with resources.as_file(item) as src:
+                shutil.copyfile(src, dest)
+            if item.name == "explore_basin.ipynb":
+                first = dest
+    return first or folder
+
+
+def _sha256(path: Path) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _write_marker(folder: Path) -> None:
+    """List every file of the study with its SHA-256: what a later ``--force`` may remove, and only if unchanged."""
+    lines = [_MARKER_HEAD]
+    for p in sorted(folder.rglob("*")):
+        if p.is_file() and not p.is_symlink():
+            lines.append(f"{_sha256(p)}  {p.relative_to(folder).as_posix()}")
+    (folder / MARKER).write_text("\n".join(lines) + "\n")
+
+
+def _demo_files(out: Path) -> list[Path]:
+    """The files of an unchanged demo study at ``out`` (marker last), or InputError naming what is not one.
+
+    ``--force`` replaces a study only when everything in it is a file the demo wrote, unchanged: a user's
+    extra file, an edited notebook or anything else refuses the whole replacement. Refusing (rather than
+    removing only the demo's files) keeps the user's work next to a study they still see, and never leaves
+    a half-replaced folder.
+    """
+    from .errors import InputError
+
+    marker = out / MARKER
+    try:
+        lines = marker.read_text(encoding="utf-8").splitlines() if marker.is_file() else []
+    except (OSError, UnicodeDecodeError):
+        lines = []
+    if not lines or lines[0] != _MARKER_HEAD:
+        raise InputError(f"{out}: folder is not a demo study wbexplore wrote (no {MARKER} marker); "
+                         f"--force replaces only those: choose another --out")
+    listed = {}
+    for line in lines[1:]:
+        digest, _, rel = line.partition("  ")
+        listed[rel] = digest
+    files = []
+    for p in sorted(out.rglob("*")):
+        rel = p.relative_to(out).as_posix()
+        if p.is_symlink() or not (p.is_file() or p.is_dir()):
+            raise InputError(f"{out}: holds {rel!r}, which the demo did not write; refused, even with --force")
+        if p.is_dir() or rel == MARKER:
+            continue
+        if rel not in listed:
+            raise InputError(f"{out}: holds {rel!r}, which the demo did not write; refused, even with --force "
+                             f"(move it away first)")
+        if _sha256(p) != listed[rel]:
+            raise InputError(f"{out}: {rel!r} changed since the demo wrote it; refused, even with --force "
+                             f"(move it away first)")
+        files.append(p)
+    return files + [marker]
+
+
+def _remove_demo(out: Path, files: list[Path]) -> None:
+    """Remove the listed files, then the folders they leave empty: ``rmdir`` fails on anything else."""
+    for p in files:
+        p.unlink()
+    for d in sorted({q.parent for q in files}, key=lambda q: len(q.parts), reverse=True):
+        while d != out and d.is_dir() and not any(d.iterdir()):
+            d.rmdir()
+            d = d.parent
+    out.rmdir()
+
+
+def write_demo(out: str | Path, *, overwrite: bool = False, progress: bool = False,
+               templates: bool = False) -> DemoInfo:
     """Write the complete demo study folder (deterministic: fixed seed).
 
     Writes ``catalog.yaml``, ``basins.geojson``, ``discharge.csv``, ``grids/`` (the
-    eight products), ``truth.nc`` (true basin series) and ``README.md`` (the error table).
-    """
-    import xarray as xr
-    import yaml
+    eight products), ``truth.nc`` (true basin series), ``README.md`` (the error table),
+    the template notebooks if ``templates``, and the marker ``.wbexplore-demo`` listing every
+    file with its SHA-256.
 
-    from .io.writers import CAUTION
+    The study is written into a fresh temporary folder next to ``out`` and renamed onto it at the end:
+    nothing that existed before is touched on failure. ``overwrite`` replaces only an unchanged demo
+    study (its marker lists every file in it); a folder holding anything else is refused, and a file at
+    ``out`` always is.
+    """
+    import tempfile
+
+    from .errors import InputError
 
     out = Path(out)
+    if out.is_symlink():
+        raise InputError(f"{out}: is a symlink; give the study folder itself as --out")
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{out}: exists and is not a folder; give a new or empty folder as --out")
+    for up in out.parents:
+        if up.exists():
+            if not up.is_dir():
+                raise InputError(f"{out}: {str(up)!r} is a file, not a folder")
+            break
+    old = None
     if out.exists() and any(out.iterdir()):
         if not overwrite:
-            from .errors import InputError
-
-            raise InputError(f"{out}: folder exists and is not empty (use --force to overwrite)")
-        shutil.rmtree(out)
-    tmp = out.with_name(out.name + ".partial")
-    if tmp.exists():
-        shutil.rmtree(tmp)
-    (tmp / "grids" / "plover").mkdir(parents=True)
+            raise InputError(f"{out}: folder exists and is not empty (use --force to replace a demo study)")
+        old = _demo_files(out)
     try:
-        info = _write(tmp, progress=progress)
-        tmp.rename(out) if not out.exists() else (shutil.rmtree(out), tmp.rename(out))
+        out.parent.mkdir(parents=True, exist_ok=True)
+        # a name of our own: a pre-existing "<out>.partial" (or anything else) is never removed
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    except OSError as exc:
+        raise InputError(f"{out}: cannot create the study folder ({exc.strerror or exc})") from None
+    from .io.writers import terminate_unwinds
+
+    try:
+        with terminate_unwinds():
+            _fill(tmp, out, old, progress=progress, templates=templates)
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise InputError(f"{out}: cannot write the demo study ({exc.strerror or exc})") from None
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    del info, xr, yaml, CAUTION
     total = sum(p.stat().st_size for p in out.rglob("*") if p.is_file())
     return DemoInfo(folder=out, catalog=out / "catalog.yaml", truth=out / "truth.nc", n_bytes=total)
+
+
+def _fill(tmp: Path, out: Path, old: list[Path] | None, *, progress: bool, templates: bool) -> None:
+    """Write the study into ``tmp``, then remove the old study (``old``: its files) and rename ``tmp`` to ``out``."""
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o777 & ~umask)  # mkdtemp's private mode is not what a study folder wants
+    (tmp / "grids" / "plover").mkdir(parents=True)
+    _write(tmp, progress=progress)
+    if templates:
+        copy_templates(tmp)
+    _write_marker(tmp)
+    if old is not None:
+        _remove_demo(out, old)
+    os.rename(tmp, out)  # onto a missing or an empty folder
 
 
 def _write(folder: Path, *, progress: bool):

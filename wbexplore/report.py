@@ -99,10 +99,10 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
 
 
 def write_report(catalog, ds, sel, out, *, overwrite: bool = False, by: str = "rmse") -> Path:
-    """Write the HTML report atomically (refuses to overwrite unless asked)."""
+    """Write the HTML report atomically (refuses to overwrite unless asked, and any input of the catalog always)."""
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
-    check_output(out, overwrite=overwrite)
+    check_output(out, overwrite=overwrite, protect=cat)
     text = report_html(cat, ds, sel, by=by)
-    with atomic_path(out, overwrite=overwrite) as tmp:
+    with atomic_path(out, overwrite=overwrite, protect=cat) as tmp:
         tmp.write_text(text, encoding="utf-8")
     return Path(out)

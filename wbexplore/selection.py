@@ -24,7 +24,7 @@ from .balance import Selection, compute_selection, to_unit_system
 from .balance.closure import Q_RELATIVE_ERROR
 from .errors import InputError, ReplayMismatch, SelectionError
 from .io.catalog import Catalog, file_sha256, open_catalog
-from .io.writers import CAUTION, atomic_path, check_output
+from .io.writers import CAUTION, atomic_path, check_output, same_file
 
 __all__ = ["SELECTION_VERSION", "export_selection", "selection_document", "load_selection", "replay",
            "write_series_csv", "write_series_netcdf", "series_dataset"]
@@ -120,11 +120,13 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     dict with the written paths and the metrics.
     """
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
-    out = check_output(out, overwrite=overwrite)
+    out = check_output(out, overwrite=overwrite, protect=cat)
     if series:
-        check_output(series, overwrite=overwrite)
         if Path(series).suffix.lower() not in (".csv", ".nc"):
             raise InputError(f"{series}: series file must end in .csv or .nc")
+        check_output(series, overwrite=overwrite, protect=cat)
+        if same_file(out, series):
+            raise InputError(f"{series}: the series file is the selection file {out}; give two different files")
     for comp in ("P", "ET", "TWSA"):
         spec = cat.source(getattr(sel, comp))
         if spec.component != comp:
@@ -138,11 +140,11 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     written = {}
     if series:
         if Path(series).suffix.lower() == ".csv":
-            write_series_csv(res, series, unit_system=unit_system, overwrite=overwrite)
+            write_series_csv(res, series, unit_system=unit_system, overwrite=overwrite, protect=cat)
         else:
-            write_series_netcdf(res, series, doc=doc, overwrite=overwrite)
+            write_series_netcdf(res, series, doc=doc, overwrite=overwrite, protect=cat)
         written["series"] = str(series)
-    with atomic_path(out, overwrite=overwrite) as tmp:
+    with atomic_path(out, overwrite=overwrite, protect=cat) as tmp:
         tmp.write_text("# wbexplore selection file: replay with `wbexplore replay " + out.name + "`\n"
                        + yaml.safe_dump(doc, sort_keys=False, width=110))
     written["selection"] = str(out)
@@ -268,11 +270,12 @@ def _series_frame(result, unit_system):
     return f
 
 
-def write_series_csv(result, path, *, unit_system: str = "mm", overwrite: bool = False) -> Path:
+def write_series_csv(result, path, *, unit_system: str = "mm", overwrite: bool = False, protect=None) -> Path:
     """One row per month: P, ET, Q, dS, residual (+ TWSA), their uncertainties and valid fractions.
 
     Units: "mm" (mm/month; TWSA mm), "m3" (m3 per month), "m3/s" (mean flow over the month), named in
     the header comment lines. Read back with ``pandas.read_csv(path, comment="#", index_col="month")``.
+    ``protect``: the catalog (or list of paths) whose inputs must never be replaced (`io.writers.check_output`).
     """
     f = _series_frame(result, unit_system)
     unit = {"mm": "mm/month (TWSA: mm)", "m3": "m3 per month (TWSA: m3)", "m3/s": "m3/s mean over the month (TWSA: m3)"}
@@ -280,7 +283,7 @@ def write_series_csv(result, path, *, unit_system: str = "mm", overwrite: bool =
     head = (f"# wbexplore series: basin {sel.basin}, P={sel.P} ET={sel.ET} TWSA={sel.TWSA}, "
             f"storage change {sel.storage_change}{' window-matched' if sel.matched else ''}\n"
             f"# units: {unit[unit_system]}; valid fractions 0..1\n# {CAUTION}\n")
-    with atomic_path(path, overwrite=overwrite) as tmp:
+    with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
         with open(tmp, "w") as fh:
             fh.write(head)
             f.to_csv(fh, float_format="%.17g")
@@ -340,9 +343,10 @@ def series_dataset(result, *, doc: dict | None = None):
     return ds
 
 
-def write_series_netcdf(result, path, *, doc: dict | None = None, overwrite: bool = False) -> Path:
+def write_series_netcdf(result, path, *, doc: dict | None = None, overwrite: bool = False, protect=None) -> Path:
+    """Write `series_dataset` as CF netCDF-4; ``protect`` as for `write_series_csv`."""
     ds = series_dataset(result, doc=doc)
-    with atomic_path(path, overwrite=overwrite) as tmp:
+    with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
         ds.to_netcdf(tmp, format="NETCDF4", encoding={"time": {"units": "days since 1970-01-01", "dtype": "float64"},
                                                        "time_bnds": {"units": "days since 1970-01-01",
                                                                      "dtype": "float64"}})

@@ -136,6 +136,44 @@ class Catalog:
     def by_component(self, component: str) -> list[SourceSpec]:
         return [s for s in self.sources if s.component == component]
 
+    def input_paths(self) -> tuple[Path, ...]:
+        """Every file or store the catalog reads: itself, the basins file (with a shapefile's sidecars,
+        which hold its attributes and CRS), the discharge table and every product file or zarr store.
+
+        Writers refuse to replace any of these (`io.writers.check_output`).
+        """
+        out = [self.path, self.basins.path]
+        b = self.basins.path
+        if b.suffix.lower() == ".shp":
+            out += sorted(q for q in b.parent.glob(_glob.escape(b.stem) + ".*") if q != b)
+        if self.discharge is not None:
+            out.append(self.discharge.path)
+        for s in self.sources:
+            out.extend(s.paths)
+        return tuple(dict.fromkeys(out))
+
+    def input_globs(self) -> tuple[str, ...]:
+        """Absolute glob patterns of files that do not exist yet but would change what the catalog reads.
+
+        A new file matching a product's glob joins the product; a new sidecar is read with the file beside
+        it: any ``<stem>.*`` of a shapefile (attributes, CRS, encoding) and the ``.aux.xml``, ``.ovr`` and
+        ``.msk`` files the GeoTIFF reader picks up (nodata, scale, masks).
+        """
+        base = self.path.parent
+        pats = []
+        b = self.basins.path
+        if b.suffix.lower() == ".shp":
+            pats.append(_glob.escape(str(b.with_suffix(""))) + ".*")
+        for s in self.sources:
+            full = s.path_pattern if os.path.isabs(s.path_pattern) else str(base / s.path_pattern)
+            magic = _glob.has_magic(s.path_pattern)
+            if magic:
+                pats.append(full)
+            if s.format == "geotiff":
+                stem = full if magic else _glob.escape(full)
+                pats += [stem + ext for ext in (".aux.xml", ".ovr", ".msk")]
+        return tuple(dict.fromkeys(pats))
+
 
 def _fail(cat: Path, where: str, msg: str) -> None:
     raise CatalogError(f"{cat}: {where}{msg}")
