@@ -268,6 +268,9 @@ def test_rank_lag_validated_like_export(demo_dir, lag, capsys, monkeypatch):
                                    demo_dir.parent / "never.yaml"], capsys)[::2])
     assert line2 == line
     assert not (demo_dir.parent / "never.yaml").exists()
+    line3 = _one_line_error(*_run(["report", demo_dir / "catalog.yaml", "--basin", "VEL", "--lag", lag, "--out",
+                                   demo_dir.parent / "never.html"], capsys)[::2])
+    assert line3 == line and not (demo_dir.parent / "never.html").exists()
 
 
 @pytest.mark.parametrize("address", ["foo", "tcp://", "nonsense://x:1", "tcp://127.0.0.1:1", "tcp://host:port"])

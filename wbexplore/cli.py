@@ -212,8 +212,10 @@ def _cmd_replay(args) -> int:
 
 def _cmd_report(args) -> int:
     from .balance import best_selection
+    from .balance.closure import check_lag
     from .report import write_report
 
+    check_lag(args.lag)  # before the series are loaded
     ds = _series(args)
     if args.P and args.ET and args.TWSA:
         sel = _selection_from_args(args)
