@@ -180,6 +180,7 @@ MALFORMED = [
     ("inputs.basins", {"inputs.basins": "basins.geojson"}),
     ("inputs.discharge.sha256", {"inputs.discharge.sha256": 12}),
     ("uncertainty_sources", {"uncertainty_sources": ["x"]}),
+    ("inputs", {"inputs": []}),
 ]
 
 

@@ -266,10 +266,11 @@ def _validate(doc: dict, p: Path) -> Selection:
         entry = c.mapping(c.get(sources, f"sources.{comp}", comp), f"sources.{comp}")
         ids[comp] = c.text(c.get(entry, f"sources.{comp}.id", "id"), f"sources.{comp}.id")
         c.files(entry.get("files", []), f"sources.{comp}.files")
-    inputs = c.mapping(doc.get("inputs") or {}, "inputs")
+    inputs = c.mapping({} if doc.get("inputs") is None else doc["inputs"], "inputs")
     for key, entry in inputs.items():
         c.file_entry(entry, f"inputs.{key}")
-    spread = c.mapping(doc.get("uncertainty_sources") or {}, "uncertainty_sources")
+    spread = c.mapping({} if doc.get("uncertainty_sources") is None else doc["uncertainty_sources"],
+                       "uncertainty_sources")
     for sid, files in spread.items():
         c.files(files, f"uncertainty_sources.{sid}")
     sc = c.mapping(doc["storage_change"], "storage_change")
