@@ -169,7 +169,7 @@ def check_scheduler(address) -> str:
             socket.create_connection((host, port), timeout=3).close()
         except (OSError, OverflowError) as exc:
             reason = exc.strerror or exc.__class__.__name__ if isinstance(exc, OSError) else "port out of range"
-            raise InputError(f"--scheduler {address!r}: no scheduler answers ({reason})") from None
+            raise InputError(f"--scheduler {address!r}: the scheduler does not answer ({reason})") from None
     return address
 
 
@@ -183,7 +183,8 @@ def _client(scheduler: str | None, workers: int | None):
             client = Client(scheduler, timeout="8s")
         except (OSError, TimeoutError, ValueError, TypeError) as exc:
             # distributed raises ValueError/TypeError for addresses it cannot use, OSError when nobody answers
-            raise InputError(f"--scheduler {scheduler!r}: no scheduler answers ({exc.__class__.__name__})") from None
+            raise InputError(f"--scheduler {scheduler!r}: the scheduler does not answer "
+                             f"({exc.__class__.__name__})") from None
         try:
             yield client
         finally:
