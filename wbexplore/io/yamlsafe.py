@@ -58,13 +58,6 @@ class _StrictLoader(_Loader):
             out[key] = self.construct_object(value_node, deep=deep)
         return out
 
-    def construct_yaml_map(self, node):
-        data = {}
-        yield data
-        data.update(self.construct_mapping(node))
-
-
-_StrictLoader.add_constructor("tag:yaml.org,2002:map", _StrictLoader.construct_yaml_map)
 
 
 def _check_events(data, source, error) -> None:
