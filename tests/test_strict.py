@@ -426,3 +426,27 @@ def test_every_command_refuses_bad_catalogs(demo_dir, tmp_path, capsys):
             assert not list(out.iterdir()), (name, cmd, list(out.iterdir()))
             seen += 1
     assert seen == 6 * 5 + 2 * 2
+
+
+def test_too_many_open_files_is_not_blamed_on_one_file(tmp_path, capsys):
+    import resource
+
+    from utils import box_basins, lonlat_grid, write_catalog, write_tif
+
+    lon, lat = lonlat_grid(0, 4, 0, 4, 0.5)
+    (tmp_path / "t").mkdir()
+    for m in pd.date_range("2000-01", periods=120, freq="MS"):
+        write_tif(tmp_path / "t" / f"p_{m:%Y-%m}.tif", [[1.0] * lon.size] * lat.size, lon, lat)
+    box_basins(tmp_path / "basins.geojson", [(1, 1, 2, 2)])
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "t/p_*.tif", "date_format": "%Y-%m",
+                                    "units": "mm"}])
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    # room for what is open now plus a few dozen: fewer than the 120 files of the series
+    resource.setrlimit(resource.RLIMIT_NOFILE, (len(os.listdir("/proc/self/fd")) + 40, hard))
+    try:
+        rc, _, err = _run(["check", cat], capsys)
+    finally:
+        resource.setrlimit(resource.RLIMIT_NOFILE, (soft, hard))
+    line = _one_line_error(rc, err)
+    assert "source 'p'" in line and "120 files" in line and "ulimit -n" in line
+    assert "p_20" not in line  # no single (innocent) file is named
