@@ -153,9 +153,11 @@ def _series(args):
 
 def _cmd_rank(args) -> int:
     from .balance import rank
+    from .balance.closure import check_lag
     from .balance.metrics import check_metric
 
     check_metric(args.by)
+    check_lag(args.lag)  # before the series are loaded: a bad option fails fast
     ds = _series(args)
     df = rank(ds, args.basin, start=args.start, end=args.end, storage_change=args.storage_change,
               matched=not args.unmatched, by=args.by, ensemble=args.ensemble, min_valid=args.min_valid,
@@ -182,7 +184,9 @@ def _cmd_rank(args) -> int:
 
 def _selection_from_args(args, P=None, ET=None, TWSA=None):
     from .balance import Selection
+    from .balance.closure import check_lag
 
+    check_lag(args.lag)
     return Selection(basin=args.basin, P=P or args.P, ET=ET or args.ET, TWSA=TWSA or args.TWSA, start=args.start,
                      end=args.end, storage_change=args.storage_change, matched=not args.unmatched, lag=args.lag)
 
@@ -203,6 +207,7 @@ def _cmd_replay(args) -> int:
     try:
         res = replay(args.selection, cache_dir=args.cache_dir)
     except ReplayMismatch as exc:
+        args.status = 1  # kept if the table cannot be written (`replay FILE | head -1`)
         print(f"wbexplore replay: {exc}", file=sys.stderr)
         if exc.table:
             print(exc.table)
@@ -215,8 +220,10 @@ def _cmd_report(args) -> int:
     from .balance import best_selection
     from .io.catalog import open_catalog
     from .io.writers import check_output
+    from .balance.closure import check_lag
     from .report import write_report
 
+    check_lag(args.lag)  # before the series are loaded
     # refused before the series are loaded (write_report checks again just before writing)
     check_output(args.out, overwrite=args.force, protect=open_catalog(args.catalog))
     ds = _series(args)
@@ -294,11 +301,16 @@ def main(argv=None) -> int:
         print("wbexplore: interrupted", file=sys.stderr)
         return 130
     except BrokenPipeError:  # output piped into `head` and the like
+        # The reader has gone; the command's own status stands (a replay that found differences stays 1;
+        # only a command that had nothing else to report ends 0). Later writes (the final flush at exit)
+        # go to the null device instead of raising again.
         try:
-            sys.stdout = open(os.devnull, "w")
-        except OSError:
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+            os.close(devnull)
+        except (OSError, ValueError, AttributeError):
             pass
-        return 0
+        return getattr(args, "status", 0)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -31,8 +31,8 @@ from .io.grids import SourceGrid, open_source
 from .spatial.grid import describe_grid
 from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
 
-__all__ = ["extract", "load_series", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE", "source_vars", "valid_var",
-           "default_cache_dir", "load_basins", "warn_implausible", "ImplausibleValueWarning"]
+__all__ = ["extract", "load_series", "check_scheduler", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE",
+           "source_vars", "valid_var", "default_cache_dir", "load_basins", "warn_implausible", "ImplausibleValueWarning"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
 
@@ -86,6 +86,34 @@ def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True) -
     return zonal_mean(src.data, weights)
 
 
+def check_scheduler(address) -> str:
+    """Refuse a malformed or unreachable scheduler address with one line, in a few seconds at most.
+
+    A TCP address (``tcp://host:port`` or ``host:port``) is tried with one plain connection first
+    (3 s at most): a refused port fails at once instead of after the client's connect timeout.
+    """
+    from distributed.comm.addressing import parse_address, parse_host_port
+    from distributed.comm.registry import get_backend
+
+    if not isinstance(address, str) or not address.strip():
+        raise InputError(f"--scheduler {address!r}: not an address (e.g. tcp://host:8786)")
+    try:
+        scheme, loc = parse_address(address, strict=False)
+        get_backend(scheme)
+        host, port = parse_host_port(loc) if scheme in ("tcp", "tls") else (None, None)
+    except (ValueError, TypeError) as exc:
+        raise InputError(f"--scheduler {address!r}: not a scheduler address ({exc})") from None
+    if scheme == "tcp":
+        import socket
+
+        try:
+            socket.create_connection((host, port), timeout=3).close()
+        except (OSError, OverflowError) as exc:
+            reason = exc.strerror or exc.__class__.__name__ if isinstance(exc, OSError) else "port out of range"
+            raise InputError(f"--scheduler {address!r}: the scheduler does not answer ({reason})") from None
+    return address
+
+
 @contextmanager
 def _client(scheduler: str | None, workers: int | None):
     """A client of the scheduler at ``scheduler``, else of a new LocalCluster of ``workers``."""
@@ -94,8 +122,10 @@ def _client(scheduler: str | None, workers: int | None):
     if scheduler is not None:
         try:
             client = Client(scheduler, timeout="8s")
-        except (OSError, TimeoutError) as exc:
-            raise InputError(f"scheduler {scheduler!r} does not answer ({exc.__class__.__name__})") from None
+        except (OSError, TimeoutError, ValueError, TypeError) as exc:
+            # distributed raises ValueError/TypeError for addresses it cannot use, OSError when nobody answers
+            raise InputError(f"--scheduler {scheduler!r}: the scheduler does not answer "
+                             f"({exc.__class__.__name__})") from None
         try:
             yield client
         finally:
@@ -132,6 +162,8 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
     -------
     xarray.Dataset (basin, time); see module docstring.
     """
+    if scheduler is not None and client is None:
+        check_scheduler(scheduler)  # before any reading: a wrong address fails in seconds
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
     gdf = load_basins(cat)
     if basins is not None:

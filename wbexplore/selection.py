@@ -13,6 +13,7 @@ from __future__ import annotations
 import datetime as _dt
 import math
 import os
+import re
 from pathlib import Path
 
 import numpy as np
@@ -21,10 +22,12 @@ import yaml
 
 from . import __version__
 from .balance import Selection, compute_selection, to_unit_system
-from .balance.closure import Q_RELATIVE_ERROR
+from .balance.closure import MAX_LAG_MONTHS, Q_RELATIVE_ERROR, UNIT_SYSTEMS
+from .balance.storage import METHODS
 from .errors import InputError, ReplayMismatch, SelectionError
 from .io.catalog import Catalog, file_sha256, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output, same_file
+from .io.yamlsafe import load_yaml
 
 __all__ = ["SELECTION_VERSION", "export_selection", "selection_document", "load_selection", "replay",
            "write_series_csv", "write_series_netcdf", "series_dataset"]
@@ -163,83 +166,240 @@ def _extract_for(cat: Catalog, sel: Selection, cache_dir):
         return extract(cat, basins=[sel.basin], cache_dir=cache_dir)
 
 
+_HEX64 = re.compile(r"[0-9a-f]{64}\Z")
+_MONTH = re.compile(r"[0-9]{4}-(0[1-9]|1[0-2])\Z")
+
+
+def _show(v) -> str:
+    r = repr(v)
+    return r if len(r) <= 60 else r[:57] + "..."
+
+
+class _Fields:
+    """Type and range checks of a selection file's fields; each failure is one line naming file and field."""
+
+    def __init__(self, path: Path):
+        self.path = path
+
+    def fail(self, field: str, msg: str):
+        raise SelectionError(f"{self.path}: field {field!r}: {msg}")
+
+    def get(self, mapping: dict, field: str, key: str, *, required: bool = True):
+        if key not in mapping or mapping[key] is None:
+            if required:
+                self.fail(field, "is missing")
+            return None
+        return mapping[key]
+
+    def mapping(self, v, field: str) -> dict:
+        if not isinstance(v, dict):
+            self.fail(field, f"{_show(v)} must be a mapping")
+        return v
+
+    def text(self, v, field: str) -> str:
+        if not isinstance(v, str) or not v.strip():
+            self.fail(field, f"{_show(v)} must be text")
+        return v
+
+    def boolean(self, v, field: str) -> bool:
+        if not isinstance(v, bool):
+            self.fail(field, f"{_show(v)} must be true or false")
+        return v
+
+    def integer(self, v, field: str, lo: int, hi: int) -> int:
+        if isinstance(v, bool) or not isinstance(v, int):
+            self.fail(field, f"{_show(v)} must be a whole number")
+        if not lo <= v <= hi:
+            self.fail(field, f"{v} must be between {lo} and {hi}")
+        return v
+
+    def number(self, v, field: str, lo: float, hi: float = math.inf) -> float:
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            self.fail(field, f"{_show(v)} must be a number")
+        if not (math.isfinite(v) and lo <= v <= hi):
+            self.fail(field, f"{v} must be finite and between {lo} and {hi}" if math.isfinite(hi)
+                      else f"{v} must be finite and at least {lo}")
+        return float(v)
+
+    def sha256(self, v, field: str) -> str:
+        if not isinstance(v, str) or not _HEX64.match(v):
+            self.fail(field, f"{_show(v)} must be a SHA-256 (64 lowercase hex digits)")
+        return v
+
+    def files(self, v, field: str) -> list[dict]:
+        if not isinstance(v, list):
+            self.fail(field, f"{_show(v)} must be a list of {{path, sha256}} entries")
+        return [self.file_entry(e, f"{field}.{i}") for i, e in enumerate(v)]
+
+    def file_entry(self, v, field: str) -> dict:
+        self.mapping(v, field)
+        self.text(self.get(v, f"{field}.path", "path"), f"{field}.path")
+        self.sha256(self.get(v, f"{field}.sha256", "sha256"), f"{field}.sha256")
+        return v
+
+
+def _validate(doc: dict, p: Path) -> Selection:
+    """Every field of a selection document checked for type and range; returns its `Selection`."""
+    c = _Fields(p)
+    for key in _REQUIRED:
+        if key not in doc or doc[key] in (None, ""):
+            raise SelectionError(f"{p}: required field {key!r} is missing")
+    version = doc["wbexplore_selection"]
+    if isinstance(version, bool) or version != SELECTION_VERSION:
+        c.fail("wbexplore_selection", f"version {_show(version)} is not supported "
+                                      f"(this wbexplore reads {SELECTION_VERSION})")
+    cat = c.mapping(doc["catalog"], "catalog")
+    c.text(c.get(cat, "catalog.path", "path"), "catalog.path")
+    c.sha256(c.get(cat, "catalog.sha256", "sha256"), "catalog.sha256")
+    basin = c.mapping(doc["basin"], "basin")
+    basin_id = c.text(c.get(basin, "basin.id", "id"), "basin.id")
+    period = c.mapping(doc["period"], "period")
+    months = {}
+    for key in ("start", "end"):
+        v = c.get(period, f"period.{key}", key)
+        if not isinstance(v, str) or not _MONTH.match(v):
+            c.fail(f"period.{key}", f"{_show(v)} is not a month written YYYY-MM")
+        months[key] = v
+    if months["start"] > months["end"]:
+        c.fail("period", f"start {months['start']} is after end {months['end']}")
+    sources = c.mapping(doc["sources"], "sources")
+    ids = {}
+    for comp in ("P", "ET", "TWSA"):
+        entry = c.mapping(c.get(sources, f"sources.{comp}", comp), f"sources.{comp}")
+        ids[comp] = c.text(c.get(entry, f"sources.{comp}.id", "id"), f"sources.{comp}.id")
+        c.files(entry.get("files", []), f"sources.{comp}.files")
+    inputs = c.mapping({} if doc.get("inputs") is None else doc["inputs"], "inputs")
+    for key, entry in inputs.items():
+        c.file_entry(entry, f"inputs.{key}")
+    spread = c.mapping({} if doc.get("uncertainty_sources") is None else doc["uncertainty_sources"],
+                       "uncertainty_sources")
+    for sid, files in spread.items():
+        c.files(files, f"uncertainty_sources.{sid}")
+    sc = c.mapping(doc["storage_change"], "storage_change")
+    method = c.get(sc, "storage_change.method", "method")
+    if method not in METHODS:
+        c.fail("storage_change.method", f"{_show(method)} is not one of {', '.join(METHODS)}")
+    matched = c.boolean(sc.get("window_matched", True), "storage_change.window_matched")
+    fill = c.boolean(sc.get("fill_gaps", False), "storage_change.fill_gaps")
+    lag = c.integer(doc.get("discharge_lag_months", 0), "discharge_lag_months", 0, MAX_LAG_MONTHS)
+    mvf = c.number(doc.get("min_valid_fraction", 0.5), "min_valid_fraction", 0.0, 1.0)
+    wy = c.integer(doc.get("water_year_start_month", 1), "water_year_start_month", 1, 12)
+    c.number(doc.get("q_relative_error", Q_RELATIVE_ERROR), "q_relative_error", 0.0)
+    unit_system = doc.get("unit_system", "mm")
+    if unit_system not in UNIT_SYSTEMS:
+        c.fail("unit_system", f"{_show(unit_system)} is not one of {', '.join(UNIT_SYSTEMS)}")
+    metrics = c.mapping(doc["metrics"], "metrics")
+    for name, v in metrics.items():
+        # null is how a metric that could not be computed (NaN) is written; .inf and -.inf stay numbers
+        if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))):
+            c.fail(f"metrics.{name}", f"{_show(v)} must be a number or null")
+    return Selection(basin=basin_id, P=ids["P"], ET=ids["ET"], TWSA=ids["TWSA"], start=months["start"],
+                     end=months["end"], storage_change=method, matched=matched, fill_gaps=fill, lag=lag,
+                     min_valid_fraction=mvf, water_year_start=wy)
+
+
 def load_selection(path) -> tuple[dict, Selection, Path]:
-    """Read and validate a selection file; returns (document, Selection, catalog path)."""
+    """Read and validate a selection file; returns (document, Selection, catalog path).
+
+    The YAML is read strictly (`io.yamlsafe.load_yaml`) and every field is type- and range-checked;
+    a bad one raises `SelectionError` naming the file and the field (dotted, e.g. ``period.start``).
+    """
     p = Path(path)
     if not p.is_file():
         raise SelectionError(f"{p}: selection file not found")
     try:
-        doc = yaml.safe_load(p.read_text())
-    except yaml.YAMLError:
-        raise SelectionError(f"{p}: not valid YAML") from None
+        text = p.read_bytes()
+    except OSError as exc:
+        raise SelectionError(f"{p}: cannot be read ({exc.strerror or exc.__class__.__name__})") from None
+    doc = load_yaml(text, source=p, error=SelectionError)
     if not isinstance(doc, dict):
         raise SelectionError(f"{p}: expected a mapping")
-    for key in _REQUIRED:
-        if key not in doc or doc[key] in (None, ""):
-            raise SelectionError(f"{p}: required field {key!r} is missing")
-    if doc["wbexplore_selection"] != SELECTION_VERSION:
-        raise SelectionError(f"{p}: field 'wbexplore_selection': version {doc['wbexplore_selection']!r} "
-                             f"is not supported (this wbexplore reads {SELECTION_VERSION})")
-    try:
-        src = {c: str(doc["sources"][c]["id"]) for c in ("P", "ET", "TWSA")}
-        sc = doc["storage_change"]
-        sel = Selection(basin=str(doc["basin"]["id"]), P=src["P"], ET=src["ET"], TWSA=src["TWSA"],
-                        start=str(doc["period"]["start"]), end=str(doc["period"]["end"]),
-                        storage_change=str(sc["method"]), matched=bool(sc.get("window_matched", True)),
-                        fill_gaps=bool(sc.get("fill_gaps", False)), lag=int(doc.get("discharge_lag_months", 0)),
-                        min_valid_fraction=float(doc.get("min_valid_fraction", 0.5)),
-                        water_year_start=int(doc.get("water_year_start_month", 1)))
-        cat_path = (p.resolve().parent / str(doc["catalog"]["path"])).resolve()
-    except (KeyError, TypeError, ValueError) as exc:
-        raise SelectionError(f"{p}: malformed field ({exc.__class__.__name__}: {exc})") from None
+    sel = _validate(doc, p)
+    cat_path = (p.resolve().parent / doc["catalog"]["path"]).resolve()
     return doc, sel, cat_path
 
 
+def _nonfinite(v) -> bool:
+    return v is None or not math.isfinite(float(v))
+
+
 def _close(a, b) -> bool:
-    if a is None or b is None or (isinstance(b, float) and math.isnan(b)):
-        return (a is None or (isinstance(a, float) and math.isnan(a))) and (
-            b is None or (isinstance(b, float) and math.isnan(b)))
+    """Recorded and recomputed metric agree: to 1e-9 relative, or both the same non-finite value.
+
+    NaN is written as null; +inf and -inf are kept apart (a metric that went from +inf to -inf changed).
+    """
+    if _nonfinite(a) or _nonfinite(b):
+        a = None if a is None or math.isnan(float(a)) else float(a)
+        b = None if b is None or math.isnan(float(b)) else float(b)
+        return a == b
     return abs(float(a) - float(b)) <= 1e-9 * max(1.0, abs(float(a)))
 
 
 def replay(path, *, cache_dir=None) -> dict:
     """Recompute a selection file.
 
+    Only files the catalog itself names are opened and hashed: the expected files come from the
+    catalog, and a recorded path that is not one of them is reported as a difference, never read.
+    A directory is hashed only when the catalog names it as a zarr store.
+
     Raises `SelectionError` (exit 2) for a malformed file, a missing file or an unknown id;
     `ReplayMismatch` (exit 1) with a table when a file's hash or any metric differs.
     """
     doc, sel, cat_path = load_selection(path)
     if not cat_path.is_file():
-        raise SelectionError(f"{path}: catalog {str(cat_path)!r} not found (moved?)")
+        raise SelectionError(f"{path}: field 'catalog.path': catalog {doc['catalog']['path']!r} not found (moved?)")
     cat = open_catalog(cat_path)
     rows = []
-    if cat.sha256 != doc["catalog"].get("sha256"):
-        rows.append(("catalog", str(cat_path), "sha256 changed"))
-    known = {s.id for s in cat.sources}
+    if cat.sha256 != doc["catalog"]["sha256"]:
+        rows.append(("catalog", doc["catalog"]["path"], "sha256 changed"))
+    known = {s.id: s for s in cat.sources}
     for comp in ("P", "ET", "TWSA"):
         sid = getattr(sel, comp)
         if sid not in known:
-            raise SelectionError(f"{path}: source id {sid!r} ({comp}) is not in catalog {cat_path}")
+            raise SelectionError(f"{path}: field 'sources.{comp}.id': source {sid!r} is not in the catalog "
+                                 f"{doc['catalog']['path']!r}")
     base = cat.path.parent
 
-    def check(files, label, missing_label):
-        for f in files:
-            fp = (base / f["path"]).resolve()
-            if not fp.exists():
-                raise SelectionError(f"{path}: {missing_label} file {str(fp)!r} is missing")
-            if file_sha256(fp) != f.get("sha256"):
+    def check(entries, expected_paths, label, *, store_ok=False):
+        # recorded paths are compared as text with the catalog's own files: nothing else is touched
+        expected = {os.path.normpath(_rel(Path(q), base)): Path(q) for q in expected_paths}
+        recorded = set()
+        for f in entries:
+            key = os.path.normpath(f["path"])
+            if key not in expected:
+                rows.append((label, f["path"], "not a file of the catalog (not opened)"))
+                continue
+            recorded.add(key)
+            fp = expected[key]
+            if not (fp.is_file() or (store_ok and fp.is_dir())):
+                if not fp.exists():
+                    raise SelectionError(f"{path}: {label} file {key!r} is missing")
+                rows.append((label, f["path"], "not a regular file (not opened)"))
+                continue
+            if file_sha256(fp) != f["sha256"]:
                 rows.append((label, f["path"], "sha256 changed"))
+        for key in sorted(expected.keys() - recorded):
+            rows.append((label, key, "a file of the catalog that was not recorded"))
+
+    def is_store(spec):
+        return spec.format == "zarr"
 
     for comp in ("P", "ET", "TWSA"):
-        sid = getattr(sel, comp)
-        check(doc["sources"][comp].get("files", []), f"source {sid}", f"source {sid!r}")
+        spec = known[getattr(sel, comp)]
+        check(doc["sources"][comp].get("files") or [], spec.paths, f"source {spec.id}", store_ok=is_store(spec))
     for sid, files in (doc.get("uncertainty_sources") or {}).items():
         if sid not in known:
             rows.append((f"source {sid}", "(uncertainty)", "no longer in the catalog"))
             continue
-        check(files, f"source {sid} (uncertainty)", f"source {sid!r}")
+        check(files, known[sid].paths, f"source {sid} (uncertainty)", store_ok=is_store(known[sid]))
+    catalog_inputs = {"basins": cat.basins.path}
+    if cat.discharge:
+        catalog_inputs["discharge"] = cat.discharge.path
     for key, entry in (doc.get("inputs") or {}).items():
-        check([entry], key, key)
+        if key not in catalog_inputs:
+            rows.append((key, entry["path"], "not an input of the catalog (not opened)"))
+            continue
+        check([entry], [catalog_inputs[key]], key)
     ds = _extract_for(cat, sel, cache_dir)
     res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)))
     new = _clean_metrics(res.metrics)

@@ -22,10 +22,21 @@ from .storage import (METHODS, fill_gaps, match_window, match_window_variance, s
 __all__ = [
     "Selection", "SelectionResult", "compute_selection", "component_terms", "period_mask",
     "with_ensembles", "source_ids", "UNIT_SYSTEMS", "to_unit_system", "Q_RELATIVE_ERROR",
-    "water_year", "month_labels",
+    "water_year", "month_labels", "MAX_LAG_MONTHS", "check_lag",
 ]
 
 UNIT_SYSTEMS = ("mm", "m3", "m3/s")
+# Gauged Q is compared at most a year later than the basin terms: a longer routing delay is not a
+# monthly water balance any more, and each month of lag shortens the compared period.
+MAX_LAG_MONTHS = 12
+
+
+def check_lag(lag) -> int:
+    """The discharge lag in months (0..`MAX_LAG_MONTHS`); `InputError` otherwise (one message for every caller)."""
+    if isinstance(lag, bool) or not isinstance(lag, (int, np.integer)) or not 0 <= lag <= MAX_LAG_MONTHS:
+        raise InputError(f"lag {lag} must be between 0 and {MAX_LAG_MONTHS} months")
+    return int(lag)
+
 # Relative error of gauged monthly discharge: a few percent for a rated station (common practice;
 # the 5% used here is from memory of typical stage-discharge uncertainty, not from a standard).
 Q_RELATIVE_ERROR = 0.05
@@ -179,9 +190,7 @@ def component_terms(ds: xr.Dataset, sel: Selection) -> dict:
         v = np.where(_valid(ds, sid, b, sel.min_valid_fraction), v, np.nan)
         out[comp] = v
     q = _values(ds, "discharge")[b].astype(np.float64)
-    if sel.lag:
-        if not 0 <= sel.lag <= 12:
-            raise InputError(f"lag {sel.lag} must be between 0 and 12 months")
+    if check_lag(sel.lag):
         q = shift_later(q, sel.lag)
     out["Q"] = q
     twsa = out["TWSA"]

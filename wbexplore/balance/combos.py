@@ -7,8 +7,8 @@ import pandas as pd
 import xarray as xr
 
 from ..errors import InputError
-from .closure import (ENSEMBLE_PREFIX, Selection, _basin_index, _valid, month_labels, period_mask, source_ids,
-                      water_year, with_ensembles)
+from .closure import (ENSEMBLE_PREFIX, Selection, _basin_index, _valid, check_lag, month_labels, period_mask,
+                      source_ids, water_year, with_ensembles)
 from .metrics import METRICS, check_metric, compute_metrics, sort_key
 from .storage import METHODS, match_window, shift_later, storage_change
 
@@ -29,6 +29,7 @@ def _stack_all(ds, ids, min_vf, b=None):
 
 
 def _prepare(ds, *, storage_change_method, matched, lag, min_valid_fraction, ensemble):
+    check_lag(lag)
     if storage_change_method not in METHODS:
         raise InputError(f"storage-change method {storage_change_method!r} is not one of {', '.join(METHODS)}")
     if "discharge" not in ds:

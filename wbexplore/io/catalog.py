@@ -18,10 +18,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import yaml
-
 from ..errors import CatalogError, UnitError
 from ..units import parse_discharge_unit, parse_flux_unit, parse_storage_unit
+from .yamlsafe import load_yaml
 
 __all__ = [
     "COMPONENTS",
@@ -238,13 +237,11 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
     cat = Path(path).resolve()
     if not cat.is_file():
         raise CatalogError(f"{path}: catalog file not found")
-    text = cat.read_bytes()
     try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        line = f" at line {mark.line + 1}" if mark is not None else ""
-        raise CatalogError(f"{cat}: not valid YAML{line}") from None
+        text = cat.read_bytes()
+    except OSError as exc:
+        raise CatalogError(f"{cat}: cannot be read ({exc.strerror or exc.__class__.__name__})") from None
+    data = load_yaml(text, source=cat, error=CatalogError)
     if not isinstance(data, dict):
         raise CatalogError(f"{cat}: expected a mapping at the top level")
     version = data.get("catalog_version")
