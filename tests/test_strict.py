@@ -428,7 +428,9 @@ def test_every_command_refuses_bad_catalogs(demo_dir, tmp_path, capsys):
     assert seen == 6 * 5 + 2 * 2
 
 
-def test_too_many_open_files_is_not_blamed_on_one_file(tmp_path, capsys):
+def test_glob_longer_than_the_descriptor_limit_is_read(tmp_path, capsys):
+    """Files are opened a bounded number at a time (the glob reader closes each after its metadata), so a
+    series of more files than the process may hold open is read; before, file number ~N was blamed."""
     import resource
 
     from utils import box_basins, lonlat_grid, write_catalog, write_tif
@@ -444,9 +446,8 @@ def test_too_many_open_files_is_not_blamed_on_one_file(tmp_path, capsys):
     # room for what is open now plus a few dozen: fewer than the 120 files of the series
     resource.setrlimit(resource.RLIMIT_NOFILE, (len(os.listdir("/proc/self/fd")) + 40, hard))
     try:
-        rc, _, err = _run(["check", cat], capsys)
+        rc, out, err = _run(["check", cat], capsys)
     finally:
         resource.setrlimit(resource.RLIMIT_NOFILE, (soft, hard))
-    line = _one_line_error(rc, err)
-    assert "source 'p'" in line and "120 files" in line and "ulimit -n" in line
-    assert "p_20" not in line  # no single (innocent) file is named
+    assert rc == 0, err
+    assert "2000-01..2009-12" in out and "ok: 1 sources validate" in out

@@ -19,6 +19,17 @@ from .errors import InputError, ReplayMismatch
 __all__ = ["main"]
 
 
+def _count(text: str) -> int:
+    """A whole number of months, 0 or more (argparse type)."""
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if n < 0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be 0 or more")
+    return n
+
+
 def _add_selection_args(p, *, sources: bool):
     p.add_argument("catalog", help="catalog YAML file")
     p.add_argument("--basin", required=True, help="basin id")
@@ -36,8 +47,16 @@ def _add_selection_args(p, *, sources: bool):
     p.add_argument("--cache-dir", metavar="DIR", help="weights and series cache (default ~/.cache/wbexplore)")
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with the project's error form: one line naming the option and value, exit status 2
+    (argparse's own form prints the whole usage block first)."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
+
+
 def _parser() -> argparse.ArgumentParser:
-    ap = argparse.ArgumentParser(
+    ap = _Parser(
         prog="wbexplore",
         description="Basin water-balance closure explorer: which P, ET and TWSA products close "
                     "P - ET - Q - dS against gauged discharge. Screening-level analysis.")
@@ -68,7 +87,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--by", default="rmse", metavar="METRIC", help="ranking metric (default rmse)")
     p.add_argument("--format", default="table", choices=["table", "csv", "json"])
     p.add_argument("--ensemble", action="store_true", help="add the per-component ensemble mean as a source")
-    p.add_argument("--min-valid", type=int, default=24, metavar="N", help="months needed to score (default 24)")
+    p.add_argument("--min-valid", type=_count, default=24, metavar="N", help="months needed to score (default 24)")
 
     p = sub.add_parser("export", help="write the selection file of one combination")
     _add_selection_args(p, sources=True)

@@ -1,0 +1,192 @@
+"""Every command against malformed input: exit status 2, one line on stderr naming what is wrong, no
+traceback, and no file left behind (DESIGN.md, "Command line contract").
+
+The cases are a table: (command line, text the message must contain). Each runs in-process through
+`wbexplore.cli.main`; an exception escaping `main` fails the case just as a traceback would.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from utils import box_basins, lonlat_grid, monthly, write_catalog, write_nc
+from wbexplore.cli import main
+
+
+@pytest.fixture(scope="module")
+def master(tmp_path_factory):
+    """A small, complete study: one basin, two P, one ET, one TWSA, monthly discharge (4 years)."""
+    d = tmp_path_factory.mktemp("cli-bad")
+    lon, lat = lonlat_grid(-2, 2, 0, 4, 0.5)
+    t = monthly("2001-01", 48)
+    rng = np.random.default_rng(1)
+    shape = (t.size, lat.size, lon.size)
+    write_nc(d / "p1.nc", 3 + rng.random(shape), lon, lat, t, var="pr", units="mm/day")
+    write_nc(d / "p2.nc", 3 + rng.random(shape), lon, lat, t, var="pr", units="mm/day")
+    write_nc(d / "et.nc", 1 + rng.random(shape), lon, lat, t, var="et", units="mm/day")
+    write_nc(d / "tws.nc", 10 * rng.standard_normal(shape), lon, lat, t, var="lwe", units="mm")
+    box_basins(d / "basins.geojson", [(-1, 1, 1, 3)], ids=["B1"])
+    q = pd.DataFrame({"date": [f"{m:%Y-%m-%d}" for m in t], "basin_id": "B1", "q": 50 + 10 * rng.random(t.size)})
+    q.to_csv(d / "q.csv", index=False)
+    cat = write_catalog(d, [
+        {"id": "p1", "component": "P", "path": "p1.nc", "variable": "pr", "units": "mm/day"},
+        {"id": "p2", "component": "P", "path": "p2.nc", "variable": "pr", "units": "mm/day"},
+        {"id": "e1", "component": "ET", "path": "et.nc", "variable": "et", "units": "mm/day"},
+        {"id": "t1", "component": "TWSA", "path": "tws.nc", "variable": "lwe", "units": "mm"},
+    ], discharge={"path": "q.csv", "time_field": "date", "basin_field": "basin_id", "value_field": "q",
+                  "units": "m3/s"})
+    (d / "not_yaml.yaml").write_text("catalog_version: 1\nsources: [a, b\n")
+    (d / "empty.yaml").write_text("")
+    (d / "dup.yaml").write_text(cat.read_text() + "sources: []\n")
+    (d / "binary.yaml").write_bytes(bytes(range(256)) * 4)
+    (d / "a_file.txt").write_text("not a folder\n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["export", str(cat), "--basin", "B1", "--P", "p1", "--ET", "e1", "--TWSA", "t1",
+                     "--out", str(d / "good_selection.yaml")]) == 0
+    return d
+
+
+@pytest.fixture
+def study(master, tmp_path):
+    """A fresh copy per case, so that a case that destroys a file cannot hide the next one's failure."""
+    dest = tmp_path / "study"
+    shutil.copytree(master, dest)
+    return dest
+
+
+def _sel(study, edit):
+    """A copy of the good selection file with one edit (a line-level text substitution)."""
+    text = (study / "good_selection.yaml").read_text()
+    old, new = edit
+    assert old in text, old
+    p = study / f"sel_{abs(hash(edit))}.yaml"
+    p.write_text(text.replace(old, new, 1))
+    return p
+
+
+def _period_line(study):
+    return "start: '2001-01'" if "start: '2001-01'" in (study / "good_selection.yaml").read_text() else "start: 2001-01"
+
+
+# (id, argv builder taking the study folder, words the message must contain)
+C = "catalog.yaml"
+CASES = [
+    # catalogs
+    ("check missing catalog", lambda d: ["check", str(d / "nope.yaml")], ["nope.yaml"]),
+    ("check catalog is a folder", lambda d: ["check", str(d)], ["{study}"]),
+    ("check not yaml", lambda d: ["check", str(d / "not_yaml.yaml")], ["not_yaml.yaml"]),
+    ("check empty catalog", lambda d: ["check", str(d / "empty.yaml")], ["empty.yaml"]),
+    ("check binary catalog", lambda d: ["check", str(d / "binary.yaml")], ["binary.yaml"]),
+    ("check duplicate key", lambda d: ["check", str(d / "dup.yaml")], ["sources"]),
+    ("extract missing catalog", lambda d: ["extract", str(d / "nope.yaml"), "--out", str(d / "o.nc")], ["nope.yaml"]),
+    ("rank missing catalog", lambda d: ["rank", str(d / "nope.yaml"), "--basin", "B1"], ["nope.yaml"]),
+    ("export missing catalog", lambda d: ["export", str(d / "nope.yaml"), "--basin", "B1", "--P", "p1", "--ET", "e1",
+                                          "--TWSA", "t1", "--out", str(d / "o.yaml")], ["nope.yaml"]),
+    ("report missing catalog", lambda d: ["report", str(d / "nope.yaml"), "--basin", "B1", "--out", str(d / "o.html")],
+     ["nope.yaml"]),
+    # extract
+    ("extract out folder missing", lambda d: ["extract", str(d / C), "--out", str(d / "no" / "o.nc")], ["no"]),
+    ("extract out is a folder", lambda d: ["extract", str(d / C), "--out", str(d), "--force"], ["{study}"]),
+    ("extract workers 0", lambda d: ["extract", str(d / C), "--out", str(d / "o.nc"), "--workers", "0"], ["workers"]),
+    ("extract cache dir is a file", lambda d: ["extract", str(d / C), "--out", str(d / "o.nc"), "--cache-dir",
+                                              str(d / "a_file.txt")], ["a_file.txt"]),
+    ("extract bad scheduler", lambda d: ["extract", str(d / C), "--out", str(d / "o.nc"), "--scheduler",
+                                         "nonsense://x:1"], ["nonsense://x:1"]),
+    # rank
+    ("rank unknown basin", lambda d: ["rank", str(d / C), "--basin", "ZZ"], ["ZZ"]),
+    ("rank bad month", lambda d: ["rank", str(d / C), "--basin", "B1", "--start", "2003-13"], ["2003-13"]),
+    ("rank start after end", lambda d: ["rank", str(d / C), "--basin", "B1", "--start", "2004-01", "--end",
+                                        "2002-01"], ["2004-01"]),
+    ("rank unknown metric", lambda d: ["rank", str(d / C), "--basin", "B1", "--by", "accuracy"], ["accuracy"]),
+    ("rank negative lag", lambda d: ["rank", str(d / C), "--basin", "B1", "--lag", "-5"], ["-5"]),
+    ("rank huge lag", lambda d: ["rank", str(d / C), "--basin", "B1", "--lag", "1000"], ["1000"]),
+    ("rank lag not a number", lambda d: ["rank", str(d / C), "--basin", "B1", "--lag", "x"], ["'x'"]),
+    ("rank bad storage change", lambda d: ["rank", str(d / C), "--basin", "B1", "--storage-change", "sideways"],
+     ["sideways"]),
+    ("rank negative min-valid", lambda d: ["rank", str(d / C), "--basin", "B1", "--min-valid", "-3"], ["-3"]),
+    # export
+    ("export unknown source", lambda d: ["export", str(d / C), "--basin", "B1", "--P", "zz", "--ET", "e1", "--TWSA",
+                                         "t1", "--out", str(d / "o.yaml")], ["zz"]),
+    ("export wrong component", lambda d: ["export", str(d / C), "--basin", "B1", "--P", "e1", "--ET", "e1", "--TWSA",
+                                          "t1", "--out", str(d / "o.yaml")], ["e1"]),
+    ("export out equals series", lambda d: ["export", str(d / C), "--basin", "B1", "--P", "p1", "--ET", "e1",
+                                            "--TWSA", "t1", "--out", str(d / "o.yaml"), "--series",
+                                            str(d / "o.yaml")], ["o.yaml"]),
+    ("export series bad suffix", lambda d: ["export", str(d / C), "--basin", "B1", "--P", "p1", "--ET", "e1",
+                                            "--TWSA", "t1", "--out", str(d / "o.yaml"), "--series",
+                                            str(d / "o.xls")], ["o.xls"]),
+    ("export onto the catalog", lambda d: ["export", str(d / C), "--basin", "B1", "--P", "p1", "--ET", "e1",
+                                           "--TWSA", "t1", "--out", str(d / C), "--force"], [C]),
+    ("export onto a product", lambda d: ["export", str(d / C), "--basin", "B1", "--P", "p1", "--ET", "e1",
+                                         "--TWSA", "t1", "--out", str(d / "p1.yaml"), "--series", str(d / "p2.nc"),
+                                         "--force"], ["p2.nc"]),
+    ("export period outside data", lambda d: ["export", str(d / C), "--basin", "B1", "--P", "p1", "--ET", "e1",
+                                              "--TWSA", "t1", "--start", "1990-01", "--end", "1991-12", "--out",
+                                              str(d / "o.yaml")], ["1990-01"]),
+    # report
+    ("report only P", lambda d: ["report", str(d / C), "--basin", "B1", "--P", "p1", "--out", str(d / "o.html")],
+     ["--ET"]),
+    ("report onto discharge", lambda d: ["report", str(d / C), "--basin", "B1", "--out", str(d / "q.csv"), "--force"],
+     ["q.csv"]),
+    # replay
+    ("replay missing file", lambda d: ["replay", str(d / "nope.yaml")], ["nope.yaml"]),
+    ("replay not yaml", lambda d: ["replay", str(d / "not_yaml.yaml")], ["not_yaml.yaml"]),
+    ("replay a folder", lambda d: ["replay", str(d)], ["{study}"]),
+    ("replay a catalog", lambda d: ["replay", str(d / C)], [C]),
+    ("replay bad version", lambda d: ["replay", str(_sel(d, ("wbexplore_selection: 1", "wbexplore_selection: 7")))],
+     ["wbexplore_selection"]),
+    ("replay bad method", lambda d: ["replay", str(_sel(d, ("method: central", "method: sideways")))], ["sideways"]),
+    ("replay lag text", lambda d: ["replay", str(_sel(d, ("discharge_lag_months: 0", "discharge_lag_months: soon")))],
+     ["discharge_lag_months"]),
+    ("replay lag huge", lambda d: ["replay", str(_sel(d, ("discharge_lag_months: 0",
+                                                          "discharge_lag_months: 100000")))],
+     ["discharge_lag_months"]),
+    ("replay valid fraction > 1", lambda d: ["replay", str(_sel(d, ("min_valid_fraction: 0.5",
+                                                                    "min_valid_fraction: 7.5")))],
+     ["min_valid_fraction"]),
+    ("replay water year 13", lambda d: ["replay", str(_sel(d, ("water_year_start_month: 1",
+                                                               "water_year_start_month: 13")))],
+     ["water_year_start_month"]),
+    ("replay bad period", lambda d: ["replay", str(_sel(d, (_period_line(d), "start: '2001-13'")))], ["2001-13"]),
+    ("replay sources not a mapping", lambda d: ["replay", str(_sel(d, ("sources:\n", "sources: 3\nold_sources:\n")))],
+     ["sources"]),
+    # demo
+    ("demo out is a file", lambda d: ["demo", "--out", str(d / "a_file.txt"), "--no-launch"], ["a_file.txt"]),
+]
+
+
+def _listing(d: Path) -> dict:
+    return {str(p.relative_to(d)): (p.stat().st_size, p.stat().st_mtime_ns)
+            for p in sorted(d.rglob("*")) if not p.name.startswith("sel_")}
+
+
+@pytest.mark.parametrize("argv, expect", [c[1:] for c in CASES], ids=[c[0] for c in CASES])
+def test_bad_input_exit_2_one_line_nothing_written(study, capsys, argv, expect):
+    args = argv(study)
+    before = _listing(study)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            rc = main(args)
+        except SystemExit as exc:  # argparse
+            rc = exc.code
+    cap = capsys.readouterr()
+    err = cap.err.strip()
+    assert rc == 2, (rc, err)
+    assert "Traceback" not in cap.err and "Traceback" not in cap.out
+    assert len(err.splitlines()) == 1, err
+    for word in expect:
+        word = word.format(study=study.name)
+        assert word in err, (word, err)
+    assert _listing(study) == before, "a file was written, changed or removed"
+    leftovers = [p for p in study.rglob("*") if p.name.endswith((".tmp", ".partial"))]
+    assert not leftovers, leftovers
+    assert os.path.isfile(study / C)
