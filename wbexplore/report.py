@@ -93,9 +93,11 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
             f"<h2>Method notes</h2>{notes}")
     layout = column(Div(text=head, width=950), *figs, Div(text=tail, width=950))
     out = file_html(layout, resources=INLINE, title=f"wbexplore report {sel.basin}")
-    # panel (imported by holoviews) registers a server-relative module shim that a standalone
-    # file cannot load and does not need: drop it so the file makes no request at all
-    return re.sub(r'<script src="static/extensions/[^"]*"></script>\n?', "", out)
+    # panel (imported by holoviews) registers a server-relative module shim, and once a Tabulator
+    # widget exists in the process (an explorer in the same notebook) its stylesheet: a standalone
+    # file cannot load them and does not need them: drop both so the file makes no request at all
+    out = re.sub(r'<script src="static/extensions/[^"]*"></script>\n?', "", out)
+    return re.sub(r'<link[^>]*href="static/extensions/[^"]*"[^>]*>\n?', "", out)
 
 
 def write_report(catalog, ds, sel, out, *, overwrite: bool = False, by: str = "rmse") -> Path:
