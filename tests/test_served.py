@@ -207,6 +207,8 @@ def test_export_folder_shown_relative_to_the_study(evil_state, demo_dir):
     page = Explorer(evil_state).panel()
     text = str(_pane(page, "wbx-export-dir").object)
     assert "exports" in text and str(demo_dir) not in text
+    shown = _render_md(text)  # escaped text outside code spans (inside them escapes would show literally)
+    assert "<code>" not in shown and "\\" not in shown and "&amp;" not in shown
 
 
 def test_sessions_share_computed_results(evil_series, monkeypatch):
@@ -246,3 +248,107 @@ def test_escape_helpers():
     msg = public_message("/study/a/q.csv: column 'q' not found (has: secret, columns)", "/study/a")
     assert msg == "q.csv: column 'q' not found (contents not shown)"
     assert "/etc" not in public_message("see /etc/shadow for details", "/study/a")
+
+
+# ----------------------------------------------------------------------------- in the browser
+def _served(study, cache, *extra):
+    import os
+    import subprocess
+    import sys
+
+    from test_browser import _free_port, _wait_http
+
+    port = _free_port()
+    proc = subprocess.Popen([sys.executable, "-m", "wbexplore.cli", "serve", str(study / "catalog.yaml"), "--port",
+                             str(port), "--cache-dir", str(cache), *extra], stdout=subprocess.PIPE,
+                            stderr=subprocess.STDOUT, text=True, env=dict(os.environ, PYTHONWARNINGS="ignore"))
+    url = f"http://127.0.0.1:{port}/"
+    _wait_http(url, proc)
+    return proc, url
+
+
+def _inject(study: Path):
+    text = (study / "catalog.yaml").read_text()
+    (study / "catalog.yaml").write_text(text.replace("title: Quessary uplands demo study (invented data)",
+                                                     f"title: '{EVIL}'"))
+    b = json.loads((study / "basins.geojson").read_text())
+    b["features"][0]["properties"]["name"] = EVIL
+    (study / "basins.geojson").write_text(json.dumps(b))
+
+
+@pytest.mark.browser
+def test_served_page_runs_no_injected_script_and_exports_to_the_fixed_folder(demo_dir, tmp_path, artifacts):
+    import time
+
+    from playwright.sync_api import sync_playwright
+
+    from test_browser import ARGS, CHROMIUM, _deep_text, _stop
+
+    study = copy_demo(demo_dir, tmp_path)
+    _inject(study)
+    fixed = tmp_path / "fixed_exports"
+    proc, url = _served(study, tmp_path / "cache", "--export-dir", str(fixed))
+    try:
+        with sync_playwright() as p:
+            b = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
+            pg = b.new_page(viewport={"width": 1500, "height": 1700})
+            dialogs, errors = [], []
+            pg.on("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
+            pg.on("pageerror", lambda e: errors.append(str(e)))
+            pg.goto(url)
+            pg.wait_for_selector(".wbx-summary", timeout=120_000)
+            pg.wait_for_selector(".wbx-map canvas", timeout=120_000)
+            pg.wait_for_timeout(2000)
+            # open the basin list and the search box's completions too: every place the name appears
+            pg.locator("input[placeholder='type an id or a name']").fill("img")
+            pg.wait_for_timeout(1000)
+            pg.screenshot(path=str(artifacts / "served_injected.png"), full_page=True)
+            assert dialogs == [] and errors == []
+            assert EVIL in _deep_text(pg, ".wbx-summary-pane") and EVIL in _deep_text(pg, ".wbx-header")
+            assert EVIL in pg.locator("select").first.locator("option:checked").inner_text()
+            # no box to type a folder into: the only text input is the basin search
+            texts = pg.locator("input[type='text']")
+            assert [texts.nth(i).get_attribute("placeholder") for i in range(texts.count())] == [
+                "type an id or a name"]
+            assert "Export folder" not in _deep_text(pg, "body")
+            assert str(tmp_path) not in _deep_text(pg, "body")
+            pg.get_by_text("Export selection + CSV").click()
+            t0 = time.time()
+            while time.time() - t0 < 60 and not list(fixed.glob("selection_*.yaml")):
+                pg.wait_for_timeout(300)
+            pg.wait_for_timeout(500)
+            assert len(list(fixed.glob("selection_*.yaml"))) == 1 and not (study / "exports").exists()
+            msg = _deep_text(pg, ".wbx-export-msg")
+            assert "Wrote" in msg and str(tmp_path) not in msg
+            assert dialogs == [] and errors == []
+            b.close()
+    finally:
+        _stop(proc)
+
+
+@pytest.mark.browser
+def test_error_page_runs_no_injected_script(tmp_path, artifacts):
+    from playwright.sync_api import sync_playwright
+
+    from test_browser import ARGS, CHROMIUM, _deep_text, _stop
+
+    study = tmp_path / "study"
+    study.mkdir()
+    (study / "catalog.yaml").write_text(f"catalog_version: 1\ntitle: x\nbasins: {{path: '{EVIL}.geojson', "
+                                        "id_field: id}\nsources: []\n")
+    proc, url = _served(study, tmp_path / "cache")
+    try:
+        with sync_playwright() as p:
+            b = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
+            pg = b.new_page()
+            dialogs = []
+            pg.on("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
+            pg.goto(url)
+            pg.wait_for_selector(".wbx-error", timeout=60_000)
+            pg.wait_for_timeout(1500)
+            pg.screenshot(path=str(artifacts / "served_error_injected.png"))
+            text = _deep_text(pg, ".wbx-error")
+            assert dialogs == [] and "could not be opened" in text and str(tmp_path) not in text
+            b.close()
+    finally:
+        _stop(proc)

@@ -52,13 +52,16 @@ class Explorer:
     """Widgets and views around one `ClosureState`.
 
     `export_dir` is where the export and report buttons write (default ``exports/`` beside the
-    catalog); the page cannot change it.
+    catalog); the page cannot change it. `defer_plots` draws the plots after the page is shown
+    (served pages).
     """
 
-    def __init__(self, state: ClosureState, *, export_dir: str | os.PathLike | None = None):
+    def __init__(self, state: ClosureState, *, export_dir: str | os.PathLike | None = None,
+                 defer_plots: bool = False):
         import panel as pn
 
         self.state = state
+        self.defer_plots = defer_plots
         s = state
         self.study_dir = Path(s.catalog_path).resolve().parent if s.catalog_path else None
         self.export_dir = default_export_dir(s.catalog_path, export_dir)
@@ -92,7 +95,7 @@ class Explorer:
                                           formatters={c: {"type": "plaintext"} for c in view.columns},
                                           css_classes=["wbx-ranking"])
         self.table.on_click(self._on_row)
-        self.export_where = pn.pane.Markdown(f"Files go to `{md_text(self._shown(self.export_dir))}`",
+        self.export_where = pn.pane.Markdown(f"Files go to *{md_text(self._shown(self.export_dir))}*",
                                              css_classes=["wbx-export-dir"], width=260)
         self.w_export = pn.widgets.Button(name="Export selection + CSV", button_type="success", width=260)
         self.w_export.on_click(self._on_export)
@@ -181,7 +184,7 @@ class Explorer:
                 raise InputError(f"{what} needs the explorer to be opened on a catalog file")
             folder.mkdir(parents=True, exist_ok=True)
             written = write(s, folder, safe_filename(s.basin, s.P, s.ET, s.TWSA, s.start, s.end))
-            self.export_msg.object = "Wrote " + " and ".join(f"`{md_text(self._shown(p))}`" for p in written)
+            self.export_msg.object = "Wrote " + " and ".join(f"*{md_text(self._shown(p))}*" for p in written)
         except (InputError, OSError) as exc:
             msg = public_message(exc, self.study_dir)
             self.export_msg.object = f"**{what.capitalize()} failed:** {md_text(msg)}"
@@ -235,24 +238,39 @@ class Explorer:
         self._tap = tap
         return dmap
 
+    def _plot(self, make_dmap, css: str):
+        """A plot pane; with `defer_plots`, drawn just after the page is on screen.
+
+        Drawing the five plots is most of the server's work for a new page (holoviews to bokeh); a
+        served page defers it so every visitor gets the controls, the summary and the ranking at
+        once, and the plots follow as they are drawn.
+        """
+        import panel as pn
+
+        def make():
+            return pn.pane.HoloViews(make_dmap(), linked_axes=False, sizing_mode="stretch_width", css_classes=[css])
+
+        if not self.defer_plots:
+            return make()
+        return pn.panel(make, defer_load=True, sizing_mode="stretch_width", min_height=280)
+
     def panel(self):
         """The page layout (a panel object)."""
         import panel as pn
 
         s = self.state
         res = lambda: s.result()  # noqa: E731
-        bars = pn.pane.HoloViews(self._dmap(lambda: views.component_bars(res(), s.unit_system), _SEL_DEPS),
-                                 linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-bars"])
-        resid = pn.pane.HoloViews(self._dmap(lambda: views.residual_series(res(), s.unit_system), _SEL_DEPS),
-                                  linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-residual"])
-        scatter = pn.pane.HoloViews(self._dmap(lambda: views.balance_scatter(res(), s.unit_system), _SEL_DEPS),
-                                    linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-scatter"])
+        plot = self._plot
+        bars = plot(lambda: self._dmap(lambda: views.component_bars(res(), s.unit_system), _SEL_DEPS), "wbx-bars")
+        resid = plot(lambda: self._dmap(lambda: views.residual_series(res(), s.unit_system), _SEL_DEPS),
+                     "wbx-residual")
+        scatter = plot(lambda: self._dmap(lambda: views.balance_scatter(res(), s.unit_system), _SEL_DEPS),
+                       "wbx-scatter")
         summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
                                css_classes=["wbx-summary-pane"], width=260)
         warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.series), _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
-        multi = pn.pane.HoloViews(self._dmap(lambda: views.multi_basin(s.multi_basin()), _MULTI_DEPS),
-                                  linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-multi"])
+        multi = plot(lambda: self._dmap(lambda: views.multi_basin(s.multi_basin()), _MULTI_DEPS), "wbx-multi")
         controls = pn.Column(
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search, self.w_src["P"], self.w_src["ET"],
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
@@ -261,7 +279,7 @@ class Explorer:
             pn.pane.Markdown("### Export"), self.export_where, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
         views_col = pn.Column(
-            pn.Row(pn.pane.HoloViews(self._map(), linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-map"]), bars,
+            pn.Row(plot(self._map, "wbx-map"), bars,
                    sizing_mode="stretch_width"),
             resid,
             pn.Row(scatter, multi, sizing_mode="stretch_width"),
@@ -352,7 +370,7 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
         # computed results are the server's (read-only data, one thread serves all sessions)
         st = ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path, title=base.title,
                           memo=base._memo)
-        return Explorer(st, export_dir=out_dir).panel()
+        return Explorer(st, export_dir=out_dir, defer_plots=True).panel()
 
     print(f"wbexplore explorer on http://{address}:{port}/  (Ctrl+C to stop); exports go to "
           f"{out_dir}", flush=True)
