@@ -370,7 +370,7 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
         # computed results are the server's (read-only data, one thread serves all sessions)
         st = ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path, title=base.title,
                           memo=base._memo)
-        return Explorer(st, export_dir=out_dir, defer_plots=True).panel()
+        return Explorer(st, export_dir=out_dir).panel()  # defer_plots: unproven with 20 sessions, see benchmarks/serve.py
 
     print(f"wbexplore explorer on http://{address}:{port}/  (Ctrl+C to stop); exports go to "
           f"{out_dir}", flush=True)
