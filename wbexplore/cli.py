@@ -115,6 +115,9 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--address", default="127.0.0.1")
     p.add_argument("--show", action="store_true", help="open a browser")
     p.add_argument("--cache-dir", metavar="DIR")
+    p.add_argument("--export-dir", metavar="DIR",
+                   help="the one folder the page's export and report buttons write to (default: exports/ beside "
+                        "the catalog); visitors cannot change it")
     return ap
 
 
@@ -261,7 +264,8 @@ def _cmd_report(args) -> int:
 def _cmd_serve(args) -> int:
     from .explorer.app import serve
 
-    serve(args.catalog, port=args.port, address=args.address, show=args.show, cache_dir=args.cache_dir)
+    serve(args.catalog, port=args.port, address=args.address, show=args.show, cache_dir=args.cache_dir,
+          export_dir=args.export_dir)
     return 0
 
 

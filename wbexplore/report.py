@@ -6,7 +6,6 @@ the selection's metrics, the ranking table, method notes and the caution.
 
 from __future__ import annotations
 
-import html
 import re
 from pathlib import Path
 
@@ -14,6 +13,7 @@ import numpy as np
 
 from . import __version__
 from .balance import compute_selection, rank
+from .escape import html_text
 from .io.catalog import Catalog, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output
 
@@ -72,30 +72,32 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
         o = obj.opts(responsive=False, width=950, clone=True)
         figs.append(hv.render(o, backend="bokeh"))
     m = res.metrics
-    mrows = "".join(f"<tr><td>{k}</td><td style='text-align:right'>{_fmt(v, '.4g')}</td></tr>" for k, v in m.items())
+    mrows = "".join(f"<tr><td>{html_text(k)}</td><td style='text-align:right'>{html_text(_fmt(v, '.4g'))}</td></tr>" for k, v in m.items())
     cols = ["rank", "P", "ET", "TWSA", "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid"]
-    trows = "".join("<tr>" + "".join(f"<td>{html.escape(_fmt(r[c], '.3f') if isinstance(r[c], float) else str(r[c]))}</td>"
+    trows = "".join("<tr>" + "".join(f"<td>{html_text(_fmt(r[c], '.3f') if isinstance(r[c], float) else str(r[c]))}</td>"
                                      for c in cols) + "</tr>" for _, r in ranking.iterrows())
-    head = (f"<h1>wbexplore report: {html.escape(res.basin_name)} ({html.escape(sel.basin)})</h1>"
-            f"<p class='caution' style='border:2px solid #D55E00;padding:8px'><b>Caution.</b> {html.escape(CAUTION)}</p>"
-            f"<p>Catalog: {html.escape(cat.title)} ({html.escape(cat.path.name)}, sha256 {cat.sha256[:16]}...). "
-            f"Period {res.frame.index[0]:%Y-%m}..{res.frame.index[-1]:%Y-%m}. Sources: P = {html.escape(sel.P)}, "
-            f"ET = {html.escape(sel.ET)}, TWSA = {html.escape(sel.TWSA)}. Basin area {res.area_km2:,.0f} km2. "
+    head = (f"<h1>wbexplore report: {html_text(res.basin_name)} ({html_text(sel.basin)})</h1>"
+            f"<p class='caution' style='border:2px solid #D55E00;padding:8px'><b>Caution.</b> {html_text(CAUTION)}</p>"
+            f"<p>Catalog: {html_text(cat.title)} ({html_text(cat.path.name)}, sha256 {cat.sha256[:16]}...). "
+            f"Period {res.frame.index[0]:%Y-%m}..{res.frame.index[-1]:%Y-%m}. Sources: P = {html_text(sel.P)}, "
+            f"ET = {html_text(sel.ET)}, TWSA = {html_text(sel.TWSA)}. Basin area {res.area_km2:,.0f} km2. "
             f"wbexplore {__version__}.</p>")
-    warn = "".join(f"<li>{html.escape(w)}</li>" for w in views.warnings_for(res, ds))
-    notes = METHOD_NOTES.format(method=sel.storage_change,
+    warn = "".join(f"<li>{html_text(w)}</li>" for w in views.warnings_for(res, ds))
+    notes = METHOD_NOTES.format(method=html_text(sel.storage_change),
                                 matched="P, ET and Q are filtered with the same window (window-matched)."
                                 if sel.matched else "fluxes are compared as monthly totals (not window-matched).")
     tail = (f"<h2>Selection metrics</h2><table class='metrics'>{mrows}</table>"
             f"<h2>Warnings</h2><ul>{warn or '<li>none</li>'}</ul>"
-            f"<h2>Every combination (ranked by {html.escape(by)})</h2><table class='ranking' border='1' "
+            f"<h2>Every combination (ranked by {html_text(by)})</h2><table class='ranking' border='1' "
             f"style='border-collapse:collapse'><tr>{''.join(f'<th>{c}</th>' for c in cols)}</tr>{trows}</table>"
             f"<h2>Method notes</h2>{notes}")
     layout = column(Div(text=head, width=950), *figs, Div(text=tail, width=950))
     out = file_html(layout, resources=INLINE, title=f"wbexplore report {sel.basin}")
-    # panel (imported by holoviews) registers a server-relative module shim that a standalone
-    # file cannot load and does not need: drop it so the file makes no request at all
-    return re.sub(r'<script src="static/extensions/[^"]*"></script>\n?', "", out)
+    # panel (imported by holoviews) registers a server-relative module shim, and once a Tabulator
+    # widget exists in the process (an explorer in the same notebook) its stylesheet: a standalone
+    # file cannot load them and does not need them: drop both so the file makes no request at all
+    out = re.sub(r'<script src="static/extensions/[^"]*"></script>\n?', "", out)
+    return re.sub(r'<link[^>]*href="static/extensions/[^"]*"[^>]*>\n?', "", out)
 
 
 def write_report(catalog, ds, sel, out, *, overwrite: bool = False, by: str = "rmse") -> Path:

@@ -3,6 +3,11 @@
 ``explore(catalog_or_path)`` returns the app for a JupyterLab cell; ``serve(catalog)`` serves
 the same app as a web page (panel serve). A catalog that fails validation shows its message
 in the page instead of a traceback.
+
+Served pages are open to anyone who reaches the port, and every text on them may come from a
+file someone else wrote: names, ids, titles, labels and messages are escaped (`wbexplore.escape`),
+paths are shown relative to the study folder, and exports go to one folder fixed when the server
+starts, under generated file names: a visitor cannot choose where anything is written.
 """
 
 from __future__ import annotations
@@ -16,11 +21,12 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError
+from ..escape import md_text, public_message, safe_filename, study_relative
 from ..io.writers import CAUTION
 from . import views
 from .state import ClosureState
 
-__all__ = ["Explorer", "explore", "serve", "load_state"]
+__all__ = ["Explorer", "explore", "serve", "load_state", "default_export_dir"]
 
 _DEPS = ("basin", "P", "ET", "TWSA", "period", "storage_change", "matched", "unit_system", "metric")
 _SEL_DEPS = ("basin", "P", "ET", "TWSA", "period", "storage_change", "matched", "unit_system")
@@ -39,19 +45,26 @@ def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureSta
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CoverageWarning)  # shown per basin in the page instead
         ds = load_series(cat, cache_dir=cache_dir, progress=progress)
-    return ClosureState(ds, basins=load_basins(cat), catalog_path=str(cat.path))
+    return ClosureState(ds, basins=load_basins(cat), catalog_path=str(cat.path), title=str(cat.title or ""))
 
 
 class Explorer:
-    """Widgets and views around one `ClosureState`."""
+    """Widgets and views around one `ClosureState`.
 
-    def __init__(self, state: ClosureState, *, export_dir: str | os.PathLike | None = None):
+    `export_dir` is where the export and report buttons write (default ``exports/`` beside the
+    catalog); the page cannot change it. `defer_plots` draws the plots after the page is shown
+    (served pages).
+    """
+
+    def __init__(self, state: ClosureState, *, export_dir: str | os.PathLike | None = None,
+                 defer_plots: bool = False):
         import panel as pn
 
         self.state = state
+        self.defer_plots = defer_plots
         s = state
-        self.export_dir = Path(export_dir) if export_dir else (
-            Path(s.catalog_path).parent / "exports" if s.catalog_path else Path.cwd() / "exports")
+        self.study_dir = Path(s.catalog_path).resolve().parent if s.catalog_path else None
+        self.export_dir = default_export_dir(s.catalog_path, export_dir)
         names = s.series["basin_name"].values if "basin_name" in s.series.coords else s.param.basin.objects
         self._basin_opts = {f"{b} - {n}": b for b, n in zip(s.param.basin.objects, names)}
         self.w_basin = pn.widgets.Select(name="Basin", options=self._basin_opts, value=s.basin, width=260)
@@ -75,11 +88,15 @@ class Explorer:
         self.w_metric = pn.widgets.Select(name="Rank by", options=list(s.param.metric.objects), value=s.metric, width=260)
         self.w_best = pn.widgets.Button(name="Best combination", button_type="primary", width=260)
         self._wire()
-        self.table = pn.widgets.Tabulator(self._rank_view(), disabled=True, show_index=False, height=330,
+        view = self._rank_view()
+        # "plaintext" escapes the cell value (ids come from the catalog): no cell renders HTML
+        self.table = pn.widgets.Tabulator(view, disabled=True, show_index=False, height=330,
                                           sizing_mode="stretch_width", selectable=False,
+                                          formatters={c: {"type": "plaintext"} for c in view.columns},
                                           css_classes=["wbx-ranking"])
         self.table.on_click(self._on_row)
-        self.w_export_dir = pn.widgets.TextInput(name="Export folder", value=str(self.export_dir), width=260)
+        self.export_where = pn.pane.Markdown(f"Files go to *{md_text(self._shown(self.export_dir))}*",
+                                             css_classes=["wbx-export-dir"], width=260)
         self.w_export = pn.widgets.Button(name="Export selection + CSV", button_type="success", width=260)
         self.w_export.on_click(self._on_export)
         self.w_report = pn.widgets.Button(name="Write HTML report", button_type="default", width=260)
@@ -141,9 +158,13 @@ class Explorer:
         row = self.table.value.iloc[event.row]
         self.state.param.update(P=row["P"], ET=row["ET"], TWSA=row["TWSA"])
 
+    def _shown(self, path) -> str:
+        """A path as a visitor may see it: relative to the study folder."""
+        return study_relative(Path(path).resolve(), self.study_dir)
+
     def _csv_name(self):
         s = self.state
-        return f"series_{s.basin}_{s.P}_{s.ET}_{s.TWSA}.csv"
+        return f"series_{safe_filename(s.basin, s.P, s.ET, s.TWSA)}.csv"
 
     def _csv_bytes(self):
         from ..selection import _series_frame
@@ -157,14 +178,16 @@ class Explorer:
     def _write_to_folder(self, what: str, write) -> None:
         """Run ``write(state, folder)`` (returns the message) and show the outcome under the buttons."""
         s = self.state
-        folder = Path(self.w_export_dir.value)
+        folder = self.export_dir
         try:
             if not s.catalog_path:
                 raise InputError(f"{what} needs the explorer to be opened on a catalog file")
             folder.mkdir(parents=True, exist_ok=True)
-            self.export_msg.object = write(s, folder, f"{s.basin}_{s.P}_{s.ET}_{s.TWSA}_{s.start}_{s.end}")
+            written = write(s, folder, safe_filename(s.basin, s.P, s.ET, s.TWSA, s.start, s.end))
+            self.export_msg.object = "Wrote " + " and ".join(f"*{md_text(self._shown(p))}*" for p in written)
         except (InputError, OSError) as exc:
-            self.export_msg.object = f"**{what.capitalize()} failed:** {exc}"
+            msg = public_message(exc, self.study_dir)
+            self.export_msg.object = f"**{what.capitalize()} failed:** {md_text(msg)}"
 
     def _on_export(self, event):
         from ..selection import export_selection
@@ -173,7 +196,7 @@ class Explorer:
             out = export_selection(s.catalog_path, s.selection(), folder / f"selection_{stem}.yaml", overwrite=True,
                                    series=str(folder / f"selection_{stem}.csv"), unit_system=s.unit_system,
                                    ds=s.series)
-            return f"Wrote `{out['selection']}` and `{out['series']}`"
+            return [out["selection"], out["series"]]
 
         self._write_to_folder("export", write)
 
@@ -183,7 +206,7 @@ class Explorer:
         def write(s, folder, stem):
             out = write_report(s.catalog_path, s.series, s.selection(), folder / f"report_{stem}.html",
                                overwrite=True, by=s.metric)
-            return f"Wrote `{out}`"
+            return [out]
 
         self._write_to_folder("the report", write)
 
@@ -215,42 +238,57 @@ class Explorer:
         self._tap = tap
         return dmap
 
+    def _plot(self, make_dmap, css: str):
+        """A plot pane; with `defer_plots`, drawn just after the page is on screen.
+
+        Drawing the five plots is most of the server's work for a new page (holoviews to bokeh); a
+        served page defers it so every visitor gets the controls, the summary and the ranking at
+        once, and the plots follow as they are drawn.
+        """
+        import panel as pn
+
+        def make():
+            return pn.pane.HoloViews(make_dmap(), linked_axes=False, sizing_mode="stretch_width", css_classes=[css])
+
+        if not self.defer_plots:
+            return make()
+        return pn.panel(make, defer_load=True, sizing_mode="stretch_width", min_height=280)
+
     def panel(self):
         """The page layout (a panel object)."""
         import panel as pn
 
         s = self.state
         res = lambda: s.result()  # noqa: E731
-        bars = pn.pane.HoloViews(self._dmap(lambda: views.component_bars(res(), s.unit_system), _SEL_DEPS),
-                                 linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-bars"])
-        resid = pn.pane.HoloViews(self._dmap(lambda: views.residual_series(res(), s.unit_system), _SEL_DEPS),
-                                  linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-residual"])
-        scatter = pn.pane.HoloViews(self._dmap(lambda: views.balance_scatter(res(), s.unit_system), _SEL_DEPS),
-                                    linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-scatter"])
+        plot = self._plot
+        bars = plot(lambda: self._dmap(lambda: views.component_bars(res(), s.unit_system), _SEL_DEPS), "wbx-bars")
+        resid = plot(lambda: self._dmap(lambda: views.residual_series(res(), s.unit_system), _SEL_DEPS),
+                     "wbx-residual")
+        scatter = plot(lambda: self._dmap(lambda: views.balance_scatter(res(), s.unit_system), _SEL_DEPS),
+                       "wbx-scatter")
         summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
                                css_classes=["wbx-summary-pane"], width=260)
-        warn = pn.pane.Markdown(self._bound(lambda: "\n".join(f"- {w}" for w in views.warnings_for(res(), s.series))
-                                            or "No warnings for this selection.", _SEL_DEPS),
+        warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.series), _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
-        multi = pn.pane.HoloViews(self._dmap(lambda: views.multi_basin(s.multi_basin()), _MULTI_DEPS),
-                                  linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-multi"])
+        multi = plot(lambda: self._dmap(lambda: views.multi_basin(s.multi_basin()), _MULTI_DEPS), "wbx-multi")
         controls = pn.Column(
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search, self.w_src["P"], self.w_src["ET"],
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
             self.w_matched, pn.pane.Markdown("Units"), self.w_units, self.w_metric, self.w_best,
             pn.pane.Markdown("### Summary"), summary, warn,
-            pn.pane.Markdown("### Export"), self.w_export_dir, self.w_export, self.w_report, self.export_msg, self.w_download,
+            pn.pane.Markdown("### Export"), self.export_where, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
         views_col = pn.Column(
-            pn.Row(pn.pane.HoloViews(self._map(), linked_axes=False, sizing_mode="stretch_width", css_classes=["wbx-map"]), bars,
+            pn.Row(plot(self._map, "wbx-map"), bars,
                    sizing_mode="stretch_width"),
             resid,
             pn.Row(scatter, multi, sizing_mode="stretch_width"),
             pn.pane.Markdown("### Every combination for this basin and period (click a row to select it)"),
             self.table,
             sizing_mode="stretch_width")
+        title = f"\n**{md_text(s.title)}**\n" if s.title else ""
         header = pn.pane.Markdown(
-            f"## wbexplore: water-balance closure\n*{CAUTION}*", sizing_mode="stretch_width",
+            f"## wbexplore: water-balance closure\n{title}\n*{CAUTION}*", sizing_mode="stretch_width",
             css_classes=["wbx-header"])
         return pn.Column(header, pn.Row(controls, views_col, sizing_mode="stretch_width"),
                          sizing_mode="stretch_width")
@@ -259,11 +297,21 @@ class Explorer:
         return self.panel()
 
 
-def _error_page(message: str):
+def default_export_dir(catalog_path, export_dir=None) -> Path:
+    """The one folder the page's export and report buttons write to (``exports/`` beside the catalog)."""
+    if export_dir:
+        return Path(export_dir).resolve()
+    base = Path(catalog_path).resolve().parent if catalog_path else Path.cwd()
+    return base / "exports"
+
+
+def _error_page(message: str, study_dir=None):
+    """The page shown instead of the explorer: the message with study-relative paths, as plain text."""
     import panel as pn
 
+    text = md_text(public_message(message, study_dir))
     return pn.Column(pn.pane.Markdown("## wbexplore"),
-                     pn.pane.Alert(f"**The catalog could not be opened.** {message}", alert_type="danger",
+                     pn.pane.Alert(f"**The catalog could not be opened.** {text}", alert_type="danger",
                                    css_classes=["wbx-error"]),
                      pn.pane.Markdown(f"*{CAUTION}*"))
 
@@ -282,17 +330,34 @@ def explore(catalog_or_path, *, cache_dir=None, export_dir=None):
     try:
         state = load_state(catalog_or_path, cache_dir=cache_dir)
     except InputError as exc:
-        return _error_page(str(exc))
+        return _error_page(str(exc), _study_dir(catalog_or_path))
     return Explorer(state, export_dir=export_dir).panel()
+
+
+def _study_dir(catalog) -> Path | None:
+    path = getattr(catalog, "path", catalog)
+    if isinstance(path, (str, os.PathLike)):
+        return Path(path).resolve().parent
+    return None
 
 
 def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool = False, cache_dir=None,
           export_dir=None):
-    """Serve the explorer as a web page (blocks)."""
+    """Serve the explorer as a web page (blocks).
+
+    The series are extracted (or read from the cache) once, before the first page is requested,
+    and shared by every session together with everything computed from them (rankings, basin
+    scores, selections): a new session only builds its widgets. Exports and reports go to
+    `export_dir` (default ``exports/`` beside the catalog), fixed here for every visitor.
+    """
     import panel as pn
 
     pn.extension("tabulator")
-    try:  # extract once, before the first page is requested; each session gets its own state
+    study = _study_dir(catalog)
+    out_dir = default_export_dir(catalog if study else None, export_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InputError(f"serve: option '--export-dir': {out_dir} exists and is not a folder")
+    try:
         base = load_state(catalog, cache_dir=cache_dir, progress=True)
         err = None
     except InputError as exc:
@@ -300,10 +365,14 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
 
     def page():
         if err:
-            return _error_page(err)
-        st = ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path)
-        return Explorer(st, export_dir=export_dir).panel()
+            return _error_page(err, study)
+        # each session has its own selection, but the series, the outlines and the memo of
+        # computed results are the server's (read-only data, one thread serves all sessions)
+        st = ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path, title=base.title,
+                          memo=base._memo)
+        return Explorer(st, export_dir=out_dir).panel()  # defer_plots: unproven with 20 sessions, see benchmarks/serve.py
 
-    print(f"wbexplore explorer on http://{address}:{port}/  (Ctrl+C to stop)", flush=True)
+    print(f"wbexplore explorer on http://{address}:{port}/  (Ctrl+C to stop); exports go to "
+          f"{out_dir}", flush=True)
     pn.serve({"/": page}, port=port, address=address, show=show, title="wbexplore",
              websocket_origin=[f"{address}:{port}", f"localhost:{port}", f"127.0.0.1:{port}"])

@@ -25,6 +25,7 @@ class ClosureState(param.Parameterized):
     series = param.Parameter(precedence=-1, doc="canonical basin series (xarray.Dataset)")
     basins = param.Parameter(precedence=-1, doc="basin outlines (GeoDataFrame, EPSG:4326)")
     catalog_path = param.String(default="", precedence=-1)
+    title = param.String(default="", precedence=-1, doc="catalog title (text from the catalog file)")
 
     basin = param.Selector(objects=[], doc="basin id")
     P = param.Selector(objects=[], label="Precipitation (P)")
@@ -37,9 +38,12 @@ class ClosureState(param.Parameterized):
     metric = param.Selector(objects=[m for m in METRICS if m != "n_valid"], default="rmse", label="Rank by")
     min_valid = param.Integer(default=24, bounds=(1, None), precedence=-1)
 
-    def __init__(self, series, basins=None, **params):
+    def __init__(self, series, basins=None, *, memo: dict | None = None, **params):
+        """`memo`: results computed from `series` by other states on the same series (a served page
+        passes one dict to every session, so a visitor never recomputes what another one did; every
+        key holds the full selection or options it was computed for)."""
         super().__init__(series=series, basins=basins, **params)
-        self._memo: dict = {}
+        self._memo: dict = {} if memo is None else memo
         ids = [str(b) for b in series["basin"].values]
         self.param.basin.objects = ids
         labels = {}

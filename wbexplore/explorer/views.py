@@ -13,12 +13,13 @@ import numpy as np
 import pandas as pd
 
 from ..balance.closure import to_unit_system
+from ..escape import html_text, md_text
 
 if TYPE_CHECKING:  # pragma: no cover
     import holoviews as hv
 
 __all__ = ["COLORS", "SEASON_COLORS", "UNIT_LABEL", "component_bars", "residual_series", "balance_scatter",
-           "basin_map", "multi_basin", "summary_html", "warnings_for", "explain"]
+           "basin_map", "multi_basin", "summary_html", "warnings_for", "warnings_markdown", "explain"]
 
 COLORS = {"P": "#0072B2", "ET": "#009E73", "Q": "#56B4E9", "dS": "#CC79A7", "residual": "#D55E00",
           "band": "#E69F00", "gap": "#BBBBBB"}
@@ -186,6 +187,11 @@ def multi_basin(table: pd.DataFrame, unit: str = "mm/year"):
                                       ylabel=f"P - ET ({unit})", title=title, show_grid=True)
 
 
+def warnings_markdown(result, series) -> str:
+    """`warnings_for` as a Markdown list, each warning escaped to literal text."""
+    return "\n".join(f"- {md_text(w)}" for w in warnings_for(result, series)) or "No warnings for this selection."
+
+
 def warnings_for(result, series) -> list[str]:
     """Reader-facing warnings for a selection (size vs storage resolution, coverage, gaps)."""
     out = []
@@ -202,6 +208,7 @@ def warnings_for(result, series) -> list[str]:
 
 
 def summary_html(result, *, metric: str = "rmse") -> str:
+    """The selection's metrics as a small HTML table (every text from a file escaped)."""
     m = result.metrics
     sel = result.selection
 
@@ -215,6 +222,7 @@ def summary_html(result, *, metric: str = "rmse") -> str:
             ("valid months", str(m["n_valid"])), ("basin area", f"{result.area_km2:,.0f} km2")]
     cells = "".join(f"<tr><td>{k}</td><td style='text-align:right'><b class='wbx-{k.replace(' ', '-')}'>{v}</b></td></tr>"
                     for k, v in rows)
-    return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{result.basin_name} ({sel.basin})</h4>"
-            f"<div>{sel.P} / {sel.ET} / {sel.TWSA}, {sel.storage_change} difference"
+    e = html_text  # names and ids come from input files: never markup
+    return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{e(result.basin_name)} ({e(sel.basin)})</h4>"
+            f"<div>{e(sel.P)} / {e(sel.ET)} / {e(sel.TWSA)}, {e(sel.storage_change)} difference"
             f"{', window-matched' if sel.matched else ''}</div><table>{cells}</table></div>")
