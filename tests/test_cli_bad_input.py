@@ -72,6 +72,27 @@ def _sel(study, edit):
     return p
 
 
+_LISTENING = []
+
+
+def _busy_port() -> int:
+    """A port another socket is listening on (kept open for the rest of the module)."""
+    import socket
+
+    sock = socket.socket()
+    sock.bind(("127.0.0.1", 0))
+    sock.listen()
+    _LISTENING.append(sock)
+    return sock.getsockname()[1]
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _close_listening():
+    yield
+    while _LISTENING:
+        _LISTENING.pop().close()
+
+
 def _period_line(study):
     return "start: '2001-01'" if "start: '2001-01'" in (study / "good_selection.yaml").read_text() else "start: 2001-01"
 
@@ -158,6 +179,10 @@ CASES = [
     ("replay bad period", lambda d: ["replay", str(_sel(d, (_period_line(d), "start: '2001-13'")))], ["2001-13"]),
     ("replay sources not a mapping", lambda d: ["replay", str(_sel(d, ("sources:\n", "sources: 3\nold_sources:\n")))],
      ["sources"]),
+    # serve (refused before any series are loaded or a server starts)
+    ("serve port out of range", lambda d: ["serve", str(d / C), "--port", "99999"], ["99999"]),
+    ("serve unknown address", lambda d: ["serve", str(d / C), "--address", "nowhere.invalid"], ["nowhere.invalid"]),
+    ("serve port in use", lambda d: ["serve", str(d / C), "--port", str(_busy_port())], ["--port"]),
     # demo
     ("demo out is a file", lambda d: ["demo", "--out", str(d / "a_file.txt"), "--no-launch"], ["a_file.txt"]),
 ]

@@ -30,6 +30,34 @@ def _count(text: str) -> int:
     return n
 
 
+def _port(text: str) -> int:
+    """A TCP port number, 1..65535 (argparse type)."""
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a port number") from None
+    if not 1 <= n <= 65535:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a port number (1 to 65535)")
+    return n
+
+
+def _check_listen(address: str, port: int) -> None:
+    """Refuse an address the server could not listen on (unknown host, port in use) before any work."""
+    import socket
+
+    try:
+        infos = socket.getaddrinfo(address, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except (OSError, UnicodeError) as exc:
+        raise InputError(f"--address {address!r}: not an address of this machine ({exc.__class__.__name__})") from None
+    family, kind, proto, _, sockaddr = infos[0]
+    with socket.socket(family, kind, proto) as sock:
+        sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        try:
+            sock.bind(sockaddr)
+        except OSError as exc:
+            raise InputError(f"--address {address!r} --port {port}: cannot listen there ({exc.strerror})") from None
+
+
 def _add_selection_args(p, *, sources: bool):
     p.add_argument("catalog", help="catalog YAML file")
     p.add_argument("--basin", required=True, help="basin id")
@@ -111,7 +139,7 @@ def _parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("serve", help="the explorer as a web page")
     p.add_argument("catalog")
-    p.add_argument("--port", type=int, default=5006)
+    p.add_argument("--port", type=_port, default=5006, help="TCP port (default 5006)")
     p.add_argument("--address", default="127.0.0.1")
     p.add_argument("--show", action="store_true", help="open a browser")
     p.add_argument("--cache-dir", metavar="DIR")
@@ -264,6 +292,7 @@ def _cmd_report(args) -> int:
 def _cmd_serve(args) -> int:
     from .explorer.app import serve
 
+    _check_listen(args.address, args.port)
     serve(args.catalog, port=args.port, address=args.address, show=args.show, cache_dir=args.cache_dir,
           export_dir=args.export_dir)
     return 0
