@@ -278,6 +278,9 @@ def test_duplicates_in_a_wide_table(study, tmp_path, capsys):
     cat = _catalog(study, d, {"path": "q.csv", "layout": "wide", "time_field": "date", "units": "m3/s"})
     with pytest.warns(DuplicateRowsWarning, match="2 duplicated rows collapsed"):
         _read(cat)
+    with pytest.warns(DuplicateRowsWarning, match="2 duplicated rows collapsed"):  # `check` passes it on
+        rc = main(["check", str(cat)])
+    assert rc == 0 and "layout wide, 2 station(s)" in capsys.readouterr().out
     bad = w.iloc[[5]].copy()
     old = bad.iloc[0]["123"]
     bad["123"] = 1.5
