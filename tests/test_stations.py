@@ -392,3 +392,16 @@ def test_gauge_code_with_leading_zero_is_its_own_basin(study, tmp_path, capsys):
     rc, text, err = _run(["check", cat], capsys)
     assert rc == 0, err
     assert "station '0123' -> basin '0123'" in text and "station '123' -> basin '123'" in text
+
+
+def test_unquoted_gauge_code_in_the_mapping_is_named_as_written(study, tmp_path, capsys):
+    # YAML 1.1 reads 0123 as the octal number 83: the refusal named "key 83", which the user never wrote
+    d = tmp_path / "octal"
+    d.mkdir()
+    _long(_daily()).to_csv(d / "q.csv", index=False)
+    cat = _catalog(study, d, {"path": "q.csv", "time_field": "date", "station_field": "gauge", "value_field": "q",
+                              "units": "m3/s"})
+    cat.write_text(cat.read_text() + "  stations: {0123: VEL}\n")
+    assert yaml.safe_load(cat.read_text())["discharge"]["stations"] == {83: "VEL"}  # PyYAML: octal
+    line = _one_line_error(*_run(["check", cat], capsys)[::2])
+    assert "key 0123 is not text" in line and "83" not in line.split(str(cat))[1]
