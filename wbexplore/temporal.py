@@ -12,6 +12,7 @@ import pandas as pd
 
 __all__ = [
     "station_days_in_month",
+    "station_month_range",
     "station_daily_means",
     "station_monthly_means",
 ]
@@ -30,6 +31,13 @@ def station_days_in_month(months) -> np.ndarray:
     """Days in the calendar month of each stamp (``calendar.monthrange``, proleptic Gregorian)."""
     idx = pd.DatetimeIndex(months)
     return np.array([calendar.monthrange(y, m)[1] for y, m in zip(idx.year, idx.month)], dtype=np.int64)
+
+
+def station_month_range(first, last) -> pd.DatetimeIndex:
+    """Month-start stamps from the month of `first` to that of `last` (numpy month arithmetic:
+    ``pd.date_range(freq="MS")`` builds each stamp in Python, which is slow for long records)."""
+    a, b = np.datetime64(pd.Timestamp(first), "M"), np.datetime64(pd.Timestamp(last), "M")
+    return pd.DatetimeIndex(np.arange(a, b + 1).astype("datetime64[ns]"))
 
 
 def station_daily_means(frame: pd.DataFrame) -> pd.DataFrame:
@@ -76,7 +84,7 @@ def station_monthly_means(daily: pd.DataFrame, min_coverage: float = 1.0) -> pd.
     parts = []
     for station, sub in out.groupby(level="station", sort=True):
         months = pd.DatetimeIndex(sub.index.get_level_values("month"))
-        full = pd.date_range(months.min(), months.max(), freq="MS")
+        full = station_month_range(months.min(), months.max())
         sub = sub.droplevel("station").reindex(full)
         sub.index.name = "month"
         sub["days"] = sub["days"].fillna(0).astype(np.int64)

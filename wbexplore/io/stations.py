@@ -29,7 +29,8 @@ import pandas as pd
 import xarray as xr
 
 from ..errors import InputError, UnitError
-from ..temporal import station_daily_means, station_days_in_month, station_monthly_means
+from ..temporal import (station_daily_means, station_days_in_month, station_month_range,
+                        station_monthly_means)
 from ..units import flow_m3s_to_mm_per_month, parse_discharge_unit, parse_level_unit
 from .catalog import StationTableSpec
 
@@ -199,26 +200,28 @@ def _dates(spec: StationTableSpec, df: pd.DataFrame, first_line: int) -> tuple[p
     return t, raw
 
 
-def _long_frame(spec: StationTableSpec, df: pd.DataFrame, first_line: int) -> pd.DataFrame:
-    """Rows (station, t, v, raw_t, raw_v, line) from either layout, in file order."""
+def _long_frame(spec: StationTableSpec, df: pd.DataFrame, first_line: int) -> tuple[pd.DataFrame, object]:
+    """Rows (station, t, v, row, col) from either layout, in file order, and ``raw(row, col)``: the date
+    and value as written (only looked up for messages: formatting every cell as text is slow)."""
     t, raw_t = _dates(spec, df, first_line)
-    line = np.arange(len(df)) + first_line
+    pos = np.arange(len(df))
+    cols = [spec.value_field] if spec.layout == "long" else [c for c in df.columns if c != spec.time_field]
+
+    def raw(row: int, col: int) -> tuple[str, str]:
+        return str(raw_t.iloc[row]), str(df[cols[col]].iloc[row])
+
     if spec.layout == "long":
         v = _numbers(spec, df, spec.value_field, first_line)
         st = df[spec.station_field].fillna("").astype(str).str.strip()
-        return pd.DataFrame({"station": st, "t": t, "v": v, "raw_t": raw_t,
-                             "raw_v": df[spec.value_field].astype(str), "line": line})
+        return pd.DataFrame({"station": st, "t": t, "v": v, "row": pos, "col": 0}), raw
     parts = []
-    for col in df.columns:
-        if col == spec.time_field:
-            continue
+    for i, col in enumerate(cols):
         v = _numbers(spec, df, col, first_line)
-        parts.append(pd.DataFrame({"station": col.strip(), "t": t, "v": v, "raw_t": raw_t,
-                                   "raw_v": df[col].astype(str), "line": line}))
-    return pd.concat(parts, ignore_index=True)
+        parts.append(pd.DataFrame({"station": col.strip(), "t": t, "v": v, "row": pos, "col": i}))
+    return pd.concat(parts, ignore_index=True), raw
 
 
-def _collapse_duplicates(frame: pd.DataFrame, path) -> pd.DataFrame:
+def _collapse_duplicates(frame: pd.DataFrame, path, raw) -> pd.DataFrame:
     """Rows repeating a station and time: identical ones collapse (with a warning), different ones are refused."""
     key = ["station", "t"]
     dup = frame.duplicated(key, keep=False)
@@ -232,13 +235,16 @@ def _collapse_duplicates(frame: pd.DataFrame, path) -> pd.DataFrame:
         same = rows[(rows["station"] == b) & (rows["t"] == ts)]
         first = same.iloc[0]
         other = same[~same["v"].isin([first["v"]]) | (same["v"].isna() != pd.isna(first["v"]))].iloc[0]
-        raise InputError(f"{path}: station {_short(b)}, date {first['raw_t']!r}: two rows with different values "
-                         f"({_short(first['raw_v'])} and {_short(other['raw_v'])})")
+        t1, v1 = raw(int(first["row"]), int(first["col"]))
+        _t2, v2 = raw(int(other["row"]), int(other["col"]))
+        raise InputError(f"{path}: station {_short(b)}, date {t1!r}: two rows with different values "
+                         f"({_short(v1)} and {_short(v2)})")
     extra = frame.duplicated(key, keep="first")
     first = frame[extra].iloc[0]
     k = int(extra.sum())
+    t1, _v1 = raw(int(first["row"]), int(first["col"]))
     warnings.warn(f"{path}: {k} duplicated row{'s' if k > 1 else ''} collapsed (same station, date and value; "
-                  f"first: station {_short(first['station'])}, date {first['raw_t']!r})", DuplicateRowsWarning,
+                  f"first: station {_short(first['station'])}, date {t1!r})", DuplicateRowsWarning,
                   stacklevel=4)
     return frame[~extra]
 
@@ -290,14 +296,15 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
     except UnitError as exc:
         raise InputError(str(exc)) from None
     df, first_line = _read_frame(spec)
-    frame = _long_frame(spec, df, first_line)
+    frame, raw = _long_frame(spec, df, first_line)
     if use is not None:
-        missing = [s for s in use if s not in set(frame["station"])]
+        present = set(frame["station"].unique())
+        missing = [s for s in use if s not in present]
         if missing:
             what = "column" if spec.layout == "wide" else "station"
             raise InputError(f"{path}: field 'stations': {what} {_short(missing[0])} is not in the table")
         frame = frame[frame["station"].isin(use)]
-    frame = _collapse_duplicates(frame, path)
+    frame = _collapse_duplicates(frame, path, raw)
     frame = frame.sort_values(["station", "t"], kind="stable")
     sub, daily = _steps(frame, path)
     is_daily = frame["station"].isin(sub | daily)
@@ -332,14 +339,14 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
         full = []
         for st, s in val.groupby(level="station", sort=True):
             s = s.droplevel("station")
-            rng = pd.date_range(s.index.min(), s.index.max(), freq="MS")
+            rng = station_month_range(s.index.min(), s.index.max())
             s = s.reindex(rng)
             full.append(pd.DataFrame({"station": st, "month": rng, "value": s.to_numpy(),
                                       "coverage": s.notna().to_numpy(float)}))
         parts.append(pd.concat(full, ignore_index=True).set_index(["station", "month"]))
     monthly = pd.concat(parts).sort_index()
     return StationTable(path=path, layout=spec.layout, unit_kind=unit_kind,
-                        stations=sorted(set(frame["station"])), daily=sub | daily, monthly=monthly, notes=notes)
+                        stations=sorted(frame["station"].unique()), daily=sub | daily, monthly=monthly, notes=notes)
 
 
 def _station_basins(spec: StationTableSpec, table_stations: list[str], basin_ids) -> dict[str, str]:
@@ -372,7 +379,7 @@ def read_discharge_series(spec: StationTableSpec, basin_area_km2: pd.Series) -> 
     to_basin = _station_basins(spec, table.stations, basin_area_km2.index)
     m = table.monthly
     months = pd.DatetimeIndex(m.index.get_level_values("month"))
-    full = pd.date_range(months.min(), months.max(), freq="MS")
+    full = station_month_range(months.min(), months.max())
     basins = [str(b) for b in basin_area_km2.index]
     values = np.full((len(basins), len(full)), np.nan)
     ds = xr.Dataset()
