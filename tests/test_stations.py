@@ -405,3 +405,27 @@ def test_unquoted_gauge_code_in_the_mapping_is_named_as_written(study, tmp_path,
     assert yaml.safe_load(cat.read_text())["discharge"]["stations"] == {83: "VEL"}  # PyYAML: octal
     line = _one_line_error(*_run(["check", cat], capsys)[::2])
     assert "key 0123 is not text" in line and "83" not in line.split(str(cat))[1]
+
+
+_CATALOG_REFUSALS = [
+    ("unknown layout", {"layout": "tall"}, ["'layout'", "'tall'"]),
+    ("sheet for a CSV", {"sheet": "Daily"}, ["'sheet'", "'Daily'", "not an Excel workbook"]),
+    ("long without station_field", {"station_field": None}, ["'station_field'", "layout long"]),
+    ("two stations, one basin", {"stations": {"0123": "VEL", "123": "VEL"}}, ["'0123'", "'123'", "'VEL'"]),
+    ("min_coverage not a number", {"min_coverage": "most"}, ["'min_coverage'", "'most'"]),
+    ("min_coverage below 0", {"min_coverage": -0.1}, ["'min_coverage'", "-0.1"]),
+    ("decimal equals separator", {"separator": ";", "decimal": ";"}, ["'decimal'"]),
+    ("not a flow or a depth", {"units": "degC"}, ["'units'", "'degC'"]),
+]
+
+
+@pytest.mark.parametrize("name,change,parts", _CATALOG_REFUSALS, ids=[c[0] for c in _CATALOG_REFUSALS])
+def test_station_fields_validated_with_the_catalog(study, tmp_path, capsys, name, change, parts):
+    _long(_daily()).to_csv(tmp_path / "q.csv", index=False)
+    spec = {"path": "q.csv", "time_field": "date", "station_field": "gauge", "value_field": "q", "units": "m3/s"}
+    spec.update(change)
+    cat = _catalog(study, tmp_path / "c", {k: v for k, v in spec.items() if v is not None} | {"path": str(tmp_path / "q.csv")})
+    line = _one_line_error(*_run(["check", cat], capsys)[::2])
+    assert str(cat) in line and "discharge" in line
+    for part in parts:
+        assert part in line, (name, line)
