@@ -337,6 +337,7 @@ def _bad_cases(study, tmp_path):
     case("value not a number", iso, frame=t)
     case("header only", iso, text="date,gauge,q\n")
     case("min_coverage above 1", dict(iso, min_coverage=1.5), frame=_long(daily))
+    case("per-month unit on daily records", dict(iso, units="mm/month"), frame=_long(daily))
     return cases
 
 
@@ -349,6 +350,7 @@ _EXPECT = {
     "value not a number": ["line 42", "column 'q'", "'12..5'"],
     "header only": ["no rows"],
     "min_coverage above 1": ["min_coverage", "1.5"],
+    "per-month unit on daily records": ["'units'", "'mm/month'", "daily values (stations 0123, 123)"],
 }
 
 

@@ -317,8 +317,12 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
         m = station_monthly_means(days, spec.min_coverage)
         m = m.rename(columns={"mean": "value"})
         if unit_kind == "depth":
+            try:
+                per_day = flux.daily_factor()
+            except UnitError as exc:  # mm/month cannot describe daily records
+                raise InputError(f"{path}: field 'units': {exc} (stations {', '.join(sorted(sub | daily))})") from None
             # mean depth per present day times the days of the month: the month's total
-            m["value"] = m["value"] * flux.daily_factor() * station_days_in_month(m.index.get_level_values("month"))
+            m["value"] = m["value"] * per_day * station_days_in_month(m.index.get_level_values("month"))
         else:
             m["value"] = m["value"] * factor
         parts.append(m[["value", "coverage"]])
