@@ -414,6 +414,7 @@ _CATALOG_REFUSALS = [
     ("sheet for a CSV", {"sheet": "Daily"}, ["'sheet'", "'Daily'", "not an Excel workbook"]),
     ("long without station_field", {"station_field": None}, ["'station_field'", "layout long"]),
     ("two stations, one basin", {"stations": {"0123": "VEL", "123": "VEL"}}, ["'0123'", "'123'", "'VEL'"]),
+    ("basin id read as a number", {"stations": {"G-9": 83}}, ["'G-9'", "put the id in quotes"]),
     ("min_coverage not a number", {"min_coverage": "most"}, ["'min_coverage'", "'most'"]),
     ("min_coverage below 0", {"min_coverage": -0.1}, ["'min_coverage'", "-0.1"]),
     ("decimal equals separator", {"separator": ";", "decimal": ";"}, ["'decimal'"]),

@@ -420,10 +420,11 @@ def _station_table(cat: Path, where: str, d: Any, *, kind: str) -> StationTableS
             _fail(cat, where, "field 'stations': expected a non-empty mapping station id -> basin id")
         pairs = []
         for k, v in stations.items():
-            if not isinstance(v, (str, int)) or isinstance(v, bool):
-                _fail(cat, where, f"field 'stations': station {str(k)!r}: basin {v!r} is not an id")
-            # YAML reads 0123 as a number: ids are written as text ("0123") to keep their zeros
-            pairs.append((str(k), str(v)))
+            # YAML 1.1 reads 0123 as the number 83: a basin id that is not text has lost how it was written
+            if not isinstance(v, str):
+                _fail(cat, where, f"field 'stations': station {str(k)!r}: basin {v!r} is not text "
+                                  "(YAML reads 0123 as the number 83); put the id in quotes")
+            pairs.append((str(k), v))
         seen: dict[str, str] = {}
         for k, v in pairs:
             if v in seen:
