@@ -160,12 +160,14 @@ def _cmd_check(args) -> int:
     print(f"basins: {len(basins)} in {cat.basins.path.name} "
           f"({basins['area_km2'].min():,.0f} to {basins['area_km2'].max():,.0f} km2)")
     if cat.discharge:
-        from .io.discharge import read_discharge
+        from .io.stations import read_discharge_series
 
-        q = read_discharge(cat.discharge, basins["area_km2"])
+        qds, table = read_discharge_series(cat.discharge, basins["area_km2"])
+        q = qds["discharge"]
         print(f"discharge: {cat.discharge.path.name}, {int(q.notnull().sum())} basin-months, "
               f"{q.time.values[0].astype('datetime64[M]')}..{q.time.values[-1].astype('datetime64[M]')}, "
               f"units {cat.discharge.units}")
+        _print_station_table(cat.discharge, table)
     else:
         print("discharge: none (closure metrics need it)")
     rows = [open_source(s).summary() for s in cat.sources]
@@ -176,6 +178,24 @@ def _cmd_check(args) -> int:
         print("  ".join(str(r[c]).ljust(width[c]) for c in cols))
     print(f"ok: {len(rows)} sources validate")
     return 0
+
+
+def _print_station_table(spec, table) -> None:
+    """One line per station: the basin it feeds, its step, period, share of months with data, gaps."""
+    mapping = spec.station_map
+    print(f"  layout {table.layout}, {len(table.stations)} station(s)"
+          + (f", min_coverage {spec.min_coverage:g}" if table.daily else ""))
+    for note in table.notes:
+        print(f"  {note}")
+    for st in table.stations:
+        m = table.monthly.loc[st]
+        has = m["value"].notna()
+        gaps = int((has & (m["coverage"] < 1)).sum())
+        first, last = m.index[0], m.index[-1]
+        basin = mapping[st] if mapping is not None else st
+        print(f"  station {st!r} -> basin {basin!r}: {'daily' if st in table.daily else 'monthly'}, "
+              f"{first:%Y-%m}..{last:%Y-%m}, months with data {has.mean():.0%}"
+              + (f", {gaps} month(s) accepted with gaps (coverage_{st})" if gaps else ""))
 
 
 def _cmd_extract(args) -> int:

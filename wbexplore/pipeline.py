@@ -4,7 +4,8 @@ The canonical form (DESIGN.md): an `xarray.Dataset` with dims ``(basin, time)``,
 monthly (month-start stamps), one variable per source (P and ET in mm/month,
 TWSA in mm; attributes ``component``, ``units``, ``long_name``), the gauged
 discharge as variable ``discharge`` (component ``Q``, mm/month), each source's
-share of basin area with data as ``valid_fraction_<id>``, and coordinates
+share of basin area with data as ``valid_fraction_<id>``, for each daily gauging station the share
+of each month's days with a record as ``coverage_<station>`` (time; 0..1), and coordinates
 ``basin_name`` and ``basin_area_km2``.
 """
 
@@ -25,9 +26,9 @@ from .balance.plausibility import ImplausibleValueWarning, screen_implausible
 from .cache import default_cache_dir, load_basins
 from .errors import InputError
 from .io.catalog import Catalog, SourceSpec, open_catalog
-from .io.discharge import read_discharge
 from .io.blocks import release_handles
 from .io.grids import SourceGrid, open_source
+from .io.stations import read_discharge_series
 from .spatial.grid import describe_grid
 from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
 
@@ -255,7 +256,8 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta) -> xr.Dataset:
         months.update(pd.DatetimeIndex(zm["time"].values))
     q = None
     if cat.discharge is not None:
-        q = read_discharge(cat.discharge, load_basins(cat)["area_km2"]).reindex(basin=gdf.index.values)
+        qds, _table = read_discharge_series(cat.discharge, load_basins(cat)["area_km2"])
+        q = qds["discharge"].reindex(basin=gdf.index.values)
         months.update(pd.DatetimeIndex(q["time"].values))
     full = pd.date_range(min(months), max(months), freq="MS") if months else pd.DatetimeIndex([])
     ds = xr.Dataset(coords={"basin": ("basin", gdf.index.values.astype(str)), "time": ("time", full)})
@@ -290,6 +292,11 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta) -> xr.Dataset:
     if q is not None:
         ds["discharge"] = q.reindex(time=full)
         ds["discharge"].attrs = dict(q.attrs, role="discharge")
+        # per station: share of each month's days with a record (months accepted with gaps are < 1)
+        for name in qds.data_vars:
+            if name != "discharge":
+                ds[name] = qds[name].reindex(time=full, fill_value=0.0)
+                ds[name].attrs = dict(qds[name].attrs)
     ds.attrs = {
         "Conventions": "CF-1.8",
         "title": cat.title,

@@ -31,6 +31,7 @@ __all__ = [
     "parse_flux_unit",
     "parse_storage_unit",
     "parse_discharge_unit",
+    "parse_level_unit",
     "days_in_month",
     "seconds_in_month",
     "flow_m3s_to_mm_per_month",
@@ -177,6 +178,14 @@ def parse_discharge_unit(text: str, *, where: str = "discharge") -> DischargeUni
             f"{where}: unit {text!r} is neither a flow (m3/s) nor a depth per period (mm/month)"
         ) from None
     return DischargeUnit("depth", 1.0, flux, text)
+
+
+def parse_level_unit(text: str, *, where: str = "level") -> float:
+    """Factor taking a water level (m, cm, mm ...) to metres; anything but a length is refused."""
+    q = _parse(text, what=where)
+    if q.dimensionality != _ureg().Quantity(1, "m").dimensionality:
+        raise UnitError(f"{where}: unit {text!r} is not a length (m, cm) for a water level")
+    return float(q.to("m").magnitude)
 
 
 def _month_index(months) -> pd.DatetimeIndex:

@@ -1,10 +1,10 @@
-"""The catalog (YAML, version 1): the one module that knows its schema.
+"""The catalog (YAML, versions 1 and 2): the one module that knows its schema.
 
 A catalog names the basins, the gauged discharge and every gridded product an
 analyst wants to compare. It is validated completely, before any data is read:
 unknown keys (typos), missing required fields, duplicate ids, unknown
 components, paths that match no file, units of the wrong dimension and a
-``catalog_version`` other than 1 are each refused with one line naming the
+``catalog_version`` other than 1 or 2 are each refused with one line naming the
 catalog file, the source id and the field.
 """
 
@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import CatalogError, UnitError
-from ..units import parse_discharge_unit, parse_flux_unit, parse_storage_unit
+from ..units import parse_discharge_unit, parse_flux_unit, parse_level_unit, parse_storage_unit
 from .yamlsafe import load_yaml
 
 __all__ = [
@@ -28,6 +28,7 @@ __all__ = [
     "SourceSpec",
     "BasinSpec",
     "DischargeSpec",
+    "StationTableSpec",
     "open_catalog",
     "file_sha256",
 ]
@@ -38,8 +39,15 @@ RESERVED_IDS = {"discharge", "Q", "basin", "time"}
 _TOP_KEYS = {"catalog_version": True, "title": False, "description": False, "basins": True,
              "discharge": False, "sources": True}
 _BASIN_KEYS = {"path": True, "id_field": True, "name_field": False, "crs": False, "layer": False}
-_DISCHARGE_KEYS = {"path": True, "time_field": True, "basin_field": True, "value_field": True,
-                   "units": True}
+# Station tables (version 2 additions, accepted in both versions; DESIGN.md "Station tables").
+# `basin_field` is version 1's spelling of `station_field`; one of the two is required for a long table.
+_DISCHARGE_KEYS = {"path": True, "time_field": True, "station_field": False, "basin_field": False,
+                   "value_field": False, "units": True, "layout": False, "separator": False,
+                   "decimal": False, "missing_values": False, "date_format": False, "sheet": False,
+                   "stations": False, "min_coverage": False}
+LAYOUTS = ("long", "wide")
+EXCEL_SUFFIXES = (".xlsx", ".xlsm")
+SUPPORTED_VERSIONS = (1, 2)
 # Extensions to version 1 (optional): description, date_format, time_start, time_step,
 # relative_error, absolute_error_mm.
 _SOURCE_KEYS = {"id": True, "component": True, "path": True, "variable": False, "units": False,
@@ -72,12 +80,42 @@ class BasinSpec:
 
 
 @dataclass(frozen=True)
-class DischargeSpec:
+class StationTableSpec:
+    """A gauge table as the agency exports it (discharge now; flows and levels use the same fields).
+
+    ``stations`` maps station id -> basin id (both text); None: station ids are basin ids.
+    ``min_coverage``: share (0..1) of a month's days a daily station needs for the month to count.
+    """
+
     path: Path
     time_field: str
-    basin_field: str
-    value_field: str
     units: str
+    layout: str = "long"
+    station_field: str | None = None
+    value_field: str | None = None
+    separator: str | None = None
+    decimal: str = "."
+    missing_values: tuple[str, ...] = ()
+    date_format: str | None = None
+    sheet: str | None = None
+    stations: tuple[tuple[str, str], ...] | None = None
+    min_coverage: float = 1.0
+
+    @property
+    def basin_field(self) -> str | None:
+        """Version 1's name of `station_field`."""
+        return self.station_field
+
+    @property
+    def is_excel(self) -> bool:
+        return self.path.suffix.lower() in EXCEL_SUFFIXES
+
+    @property
+    def station_map(self) -> dict[str, str] | None:
+        return None if self.stations is None else dict(self.stations)
+
+
+DischargeSpec = StationTableSpec  # the discharge table is a station table
 
 
 @dataclass(frozen=True)
@@ -247,8 +285,8 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
     version = data.get("catalog_version")
     if version is None:
         _fail(cat, "", "required field 'catalog_version' is missing")
-    if version != 1:
-        _fail(cat, "", f"field 'catalog_version': version {version!r} is not supported (this wbexplore reads 1)")
+    if isinstance(version, bool) or version not in SUPPORTED_VERSIONS:
+        _fail(cat, "", f"field 'catalog_version': version {version!r} is not supported (this wbexplore reads 1 and 2)")
     _check_keys(cat, "", data, _TOP_KEYS)
 
     b = data["basins"]
@@ -265,20 +303,7 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
 
     discharge = None
     if data.get("discharge") is not None:
-        d = data["discharge"]
-        _check_keys(cat, "discharge: ", d, _DISCHARGE_KEYS)
-        units = _str(cat, "discharge: ", d, "units")
-        try:
-            parse_discharge_unit(units, where="discharge")
-        except UnitError as exc:
-            _fail(cat, "discharge: ", f"field 'units': {exc}")
-        discharge = DischargeSpec(
-            path=_resolve(cat, "discharge: ", "path", _str(cat, "discharge: ", d, "path"), allow_glob=False)[0],
-            time_field=_str(cat, "discharge: ", d, "time_field"),
-            basin_field=_str(cat, "discharge: ", d, "basin_field"),
-            value_field=_str(cat, "discharge: ", d, "value_field"),
-            units=units,
-        )
+        discharge = _station_table(cat, "discharge: ", data["discharge"], kind="flow")
 
     raw_sources = data["sources"]
     if not isinstance(raw_sources, list) or not raw_sources:
@@ -349,6 +374,76 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
         description=str(data.get("description") or ""),
         sha256=hashlib.sha256(text).hexdigest(),
         raw=data,
+    )
+
+
+def _station_table(cat: Path, where: str, d: Any, *, kind: str) -> StationTableSpec:
+    """Validate one station table's fields (`kind`: "flow" for discharge and flows, "level" for levels)."""
+    _check_keys(cat, where, d, _DISCHARGE_KEYS)
+    units = _str(cat, where, d, "units")
+    try:
+        if kind == "level":
+            parse_level_unit(units, where=where.rstrip(": "))
+        else:
+            parse_discharge_unit(units, where=where.rstrip(": "))
+    except UnitError as exc:
+        _fail(cat, where, f"field 'units': {exc}")
+    layout = _str(cat, where, d, "layout", "long")
+    if layout not in LAYOUTS:
+        _fail(cat, where, f"field 'layout': {layout!r} is not one of {', '.join(LAYOUTS)}")
+    station_field = _str(cat, where, d, "station_field")
+    basin_field = _str(cat, where, d, "basin_field")
+    if station_field is not None and basin_field is not None and station_field != basin_field:
+        _fail(cat, where, f"fields 'station_field' and 'basin_field' name different columns "
+                          f"({station_field!r}, {basin_field!r}); give one")
+    station_field = station_field or basin_field
+    value_field = _str(cat, where, d, "value_field")
+    if layout == "long":
+        for key, val in (("station_field", station_field), ("value_field", value_field)):
+            if val is None:
+                _fail(cat, where, f"required field {key!r} is missing (layout long)")
+    sep = _str(cat, where, d, "separator")
+    if sep is not None and (len(sep) != 1 and sep != "\\t"):
+        _fail(cat, where, f"field 'separator': {sep!r} is not one character")
+    decimal = _str(cat, where, d, "decimal", ".")
+    if len(decimal) != 1 or decimal == sep:
+        _fail(cat, where, f"field 'decimal': {decimal!r} is not one character other than the separator")
+    miss = d.get("missing_values", [])
+    if not isinstance(miss, list):
+        miss = [miss]
+    for m in miss:
+        if not isinstance(m, (str, int, float)) or isinstance(m, bool):
+            _fail(cat, where, f"field 'missing_values': {m!r} is not a number or text")
+    stations = d.get("stations")
+    if stations is not None:
+        if not isinstance(stations, dict) or not stations:
+            _fail(cat, where, "field 'stations': expected a non-empty mapping station id -> basin id")
+        pairs = []
+        for k, v in stations.items():
+            # YAML 1.1 reads 0123 as the number 83: a basin id that is not text has lost how it was written
+            if not isinstance(v, str):
+                _fail(cat, where, f"field 'stations': station {str(k)!r}: basin {v!r} is not text "
+                                  "(YAML reads 0123 as the number 83); put the id in quotes")
+            pairs.append((str(k), v))
+        seen: dict[str, str] = {}
+        for k, v in pairs:
+            if v in seen:
+                _fail(cat, where, f"field 'stations': stations {seen[v]!r} and {k!r} both feed basin {v!r}")
+            seen[v] = k
+        stations = tuple(pairs)
+    mc = d.get("min_coverage", 1.0)
+    if not isinstance(mc, (int, float)) or isinstance(mc, bool) or not 0.0 <= float(mc) <= 1.0:
+        _fail(cat, where, f"field 'min_coverage': {mc!r} is not a share between 0 and 1")
+    path = _resolve(cat, where, "path", _str(cat, where, d, "path"), allow_glob=False)[0]
+    sheet = _str(cat, where, d, "sheet")
+    if sheet is not None and path.suffix.lower() not in EXCEL_SUFFIXES:
+        _fail(cat, where, f"field 'sheet': {sheet!r} given for {path.name}, which is not an Excel workbook (.xlsx)")
+    return StationTableSpec(
+        path=path, time_field=_str(cat, where, d, "time_field"), units=units, layout=layout,
+        station_field=station_field, value_field=value_field,
+        separator="\t" if sep == "\\t" else sep, decimal=decimal,
+        missing_values=tuple(str(m) for m in miss), date_format=_str(cat, where, d, "date_format"),
+        sheet=sheet, stations=stations, min_coverage=float(mc),
     )
 
 

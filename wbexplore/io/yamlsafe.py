@@ -51,7 +51,9 @@ class _StrictLoader(_Loader):
                 raise self.error(f"{self.source}: line {line}: merge key '<<' is not supported; write the values out")
             key = self.construct_object(key_node, deep=deep)
             if not isinstance(key, str):
-                raise self.error(f"{self.source}: line {line}: key {key!r} is not text; put it in quotes")
+                # name the key as written: YAML 1.1 reads 0123 as the octal 83, a gauge code as a number
+                shown = key_node.value if isinstance(key_node, yaml.ScalarNode) else repr(key)
+                raise self.error(f"{self.source}: line {line}: key {shown} is not text; put it in quotes")
             if key in seen:
                 raise self.error(f"{self.source}: line {line}: duplicate key {key!r} (first on line {seen[key]})")
             seen[key] = line
