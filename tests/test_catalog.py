@@ -44,7 +44,7 @@ CASES = [
     ("duplicate id", lambda d: d["sources"].append(dict(d["sources"][0])), ["duplicate source id 'rain_a'"]),
     ("unknown component", lambda d: d["sources"][0].update(component="RUNOFF"), ["'component'", "'RUNOFF'"]),
     ("path matches nothing", lambda d: d["sources"][0].update(path="nope/*.nc"), ["source 'rain_a'", "'path'", "nope/*.nc"]),
-    ("wrong version", lambda d: d.update(catalog_version=2), ["'catalog_version'", "2"]),
+    ("wrong version", lambda d: d.update(catalog_version=3), ["'catalog_version'", "3"]),  # 1 and 2 are read
     ("wrong unit dimension", lambda d: d["sources"][0].update(units="degC"), ["source 'rain_a'", "'units'", "degC"]),
     ("basin file missing", lambda d: d["basins"].update(path="gone.shp"), ["basins", "'path'", "gone.shp"]),
     ("bad crs", lambda d: d["sources"][0].update(crs="EPSG:99999999"), ["'crs'", "EPSG:99999999"]),
