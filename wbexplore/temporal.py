@@ -134,7 +134,8 @@ def step_fits_stamps(stamps, step: str) -> tuple[pd.Timestamp, pd.Timestamp] | N
 
     Returns None when they fit, else the first two stamps that show it does not: a stamp that is
     not a first day of the step (with the stamp before it), or two stamps closer than one period.
-    ``month`` accepts any stamp inside its month (mid-month and month-end stamps are common)."""
+    ``month`` accepts any stamp inside its month (mid-month and month-end stamps are common) and
+    up to two stamps in one month (a duplicate solution, for the ``duplicates`` rule)."""
     ds = sorted(_as_dates(stamps))
     for i, d in enumerate(ds):
         prev = ds[i - 1] if i else None
@@ -146,17 +147,24 @@ def step_fits_stamps(stamps, step: str) -> tuple[pd.Timestamp, pd.Timestamp] | N
                     continue  # two steps in one month: the duplicates rule decides
             elif d < period_end(prev, step):
                 return (pd.Timestamp(prev), pd.Timestamp(d))
-    if step == "month" and len(ds) > 1:
-        gaps = np.diff(np.array(ds, dtype="datetime64[D]")).astype(float)
-        if np.median(gaps) < 27:
-            return (pd.Timestamp(ds[0]), pd.Timestamp(ds[1]))
+    if step == "month":
+        # two stamps in a month are a duplicate solution (the duplicates rule decides); three or
+        # more mean the stamps are of a finer step
+        per_month: dict = {}
+        for d in ds:
+            per_month.setdefault((d.year, d.month), []).append(d)
+        crowded = [v for v in per_month.values() if len(v) > 2]
+        if crowded:
+            return (pd.Timestamp(crowded[0][0]), pd.Timestamp(crowded[0][1]))
     return None
 
 
 def infer_step(stamps) -> str | None:
     """The time step of ``stamps`` where it is unambiguous, else None.
 
-    Daily and monthly stamps are recognised by their spacing (median 1 day; 27 to 32 days). Other
+    Daily and monthly stamps are recognised by their spacing (median 1 day; 27 to 32 days), and
+    stamps that fit no finer step but fall in consecutive months (fewer than two per month on
+    average) as monthly with some months given twice. Other
     steps must fit every stamp and show, in most places, one period between neighbours; the
     coarsest such step wins only when no finer step also fits (dekad stamps are also pentad starts
     two pentads apart, so pentad is never chosen for them)."""
@@ -176,6 +184,12 @@ def infer_step(stamps) -> str | None:
         adjacent = sum(period_end(a, step) == b for a, b in zip(ds[:-1], ds[1:]))
         if adjacent >= 0.5 * (len(ds) - 1):
             fits.append(step)
+    if not fits:
+        # monthly products with an extra solution in some month (the duplicates rule decides):
+        # no finer step fits and the distinct months follow one another
+        ords = sorted({d.year * 12 + d.month - 1 for d in ds})
+        if len(ords) >= 2 and np.median(np.diff(ords)) == 1 and len(ds) < 2 * len(ords):
+            return "month"
     return fits[0] if len(fits) == 1 else None
 
 
