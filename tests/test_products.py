@@ -222,3 +222,27 @@ def test_bad_input_exit_2_one_line_nothing_written(tmp_path, capsys, make):
         assert e in err, (e, err)
     assert not out.exists()
     assert not any(p.name.startswith("series") for p in tmp_path.iterdir())
+
+
+@pytest.mark.parametrize("declared_scale, expect", [(None, 2.5), (0.1, 25.0)])
+def test_packed_netcdf_codes_masked_and_declared_packing_wins(tmp_path, declared_scale, expect):
+    # CF: _FillValue and scale_factor in the file; catalog nodata codes compared with stored values
+    stored = np.full((2, LAT.size, LON.size), 250, np.int16)
+    stored[:, 1, :4] = -9998  # producer's class codes beside the fill value
+    stored[0, 2, 2] = -9999
+    t = pd.date_range("2020-01-01", periods=2, freq="MS")
+    da = xr.DataArray(stored, dims=("time", "lat", "lon"), coords={"time": t, "lat": LAT, "lon": LON},
+                      attrs={"units": "mm", "scale_factor": 0.01, "_FillValue": np.int16(-9999)})
+    da["lat"].attrs = {"units": "degrees_north", "standard_name": "latitude"}
+    da["lon"].attrs = {"units": "degrees_east", "standard_name": "longitude"}
+    xr.Dataset({"et": da}).to_netcdf(tmp_path / "pk.nc", encoding={"et": {"dtype": "int16"}})
+    src = {"id": "pk", "component": "ET", "path": "pk.nc", "nodata": [-9998, -9997]}
+    if declared_scale is not None:
+        src["scale_factor"] = declared_scale
+    g, cat = _open(tmp_path, src)
+    vals = g.data.values
+    assert np.isnan(vals[:, 1, :4]).all() and np.isnan(vals[0, 2, 2])
+    np.testing.assert_allclose(np.nanmean(vals, axis=(1, 2)), expect, rtol=1e-6)
+    assert g.blocks is not None  # and the block path masks and unpacks alike
+    ds = extract(cat, use_cache=False)
+    np.testing.assert_allclose(ds["pk"].values.ravel(), expect, rtol=1e-6)

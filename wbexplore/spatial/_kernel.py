@@ -30,6 +30,9 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
     def _accumulate(X, cells, indptr, indices, data, nb, nodata, vmin, vmax, codes):  # noqa: D401
         t = X.shape[0]
         out = np.zeros((t, nb, 2))
+        ncode = codes.size
+        clo = codes[0] if ncode else 0.0
+        chi = codes[ncode - 1] if ncode else 0.0
         ntile = (t + _TB - 1) // _TB
         for tile in numba.prange(ntile):
             t0 = tile * _TB
@@ -42,12 +45,15 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                     for i in range(t0, t1):
                         v = X[i, c]
                         if v == v and v != nodata and v >= vmin and v <= vmax:
-                            skip = False
-                            for q in range(codes.size):  # further no-data codes (usually none)
-                                if v == codes[q]:
-                                    skip = True
-                            if skip:
-                                continue
+                            if ncode and v >= clo and v <= chi:
+                                # further no-data codes (sorted; only values between the lowest
+                                # and the highest code are looked up, so data rarely pay for it)
+                                skip = False
+                                for q in range(ncode):
+                                    if v == codes[q]:
+                                        skip = True
+                                if skip:
+                                    continue
                             out[i, b, 0] += w * np.float64(v)
                             out[i, b, 1] += w
         return out
@@ -76,6 +82,6 @@ def accumulate(X2: np.ndarray, used: np.ndarray, wu_t, nodata: float = np.nan, *
     stored range [``valid_min``, ``valid_max``] or equal to one of ``codes`` count as missing, as NaN
     always does (CF meanings, compared with stored values). ``args`` are precomputed `kernel_args`.
     """
-    c = np.asarray(codes, np.float64) if len(codes) else _NO_CODES
+    c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
     return _accumulate(X2, *(args or kernel_args(used, wu_t)), np.float64(nodata),
                        np.float64(valid_min), np.float64(valid_max), c)
