@@ -171,7 +171,7 @@ def _cmd_check(args) -> int:
     else:
         print("discharge: none (closure metrics need it)")
     rows = [open_source(s).summary() for s in cat.sources]
-    cols = ["id", "component", "units", "step", "grid", "period", "crs", "label"]
+    cols = ["id", "component", "units", "step", "grid", "period", "crs", "incomplete", "label"]
     width = {c: max(len(c), *(len(str(r[c])) for r in rows)) for c in cols}
     print("  ".join(c.ljust(width[c]) for c in cols))
     for r in rows:

@@ -103,6 +103,7 @@ class BlockReader:
     shape : (nt, ny, nx) in file order
     dtype : stored dtype
     nodata : stored value that means "no data" besides NaN (None if there is none)
+    valid_min, valid_max, nodata_codes : catalog-declared stored range (inclusive) and further codes
     scale, offset : decoded = stored * scale + offset (1 and 0 when unpacked)
     time_align : time steps per stored chunk (blocks start on multiples of it)
     block_rows, block_cols : stored chunk (or tile) size in y and x; 0 when the storage is contiguous
@@ -119,6 +120,15 @@ class BlockReader:
     block_cols: int = 0
     interleaved: bool = False
     keep_open: bool = True  # False on distributed workers: open and close the file in every task
+    valid_min: float = float("-inf")  # stored values outside [valid_min, valid_max] are no data (CF)
+    valid_max: float = float("inf")
+    nodata_codes: tuple = ()  # further stored values meaning no data
+
+    @property
+    def mask_args(self) -> dict:
+        """The kernel's stored-value mask besides ``fill``: range and further codes."""
+        return {"valid_min": float(self.valid_min), "valid_max": float(self.valid_max),
+                "codes": tuple(float(c) for c in self.nodata_codes)}
 
     @property
     def fill(self) -> float:

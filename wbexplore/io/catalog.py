@@ -53,7 +53,12 @@ SUPPORTED_VERSIONS = (1, 2)
 _SOURCE_KEYS = {"id": True, "component": True, "path": True, "variable": False, "units": False,
                 "crs": False, "label": False, "description": False, "date_format": False,
                 "time_start": False, "time_step": False, "relative_error": False,
-                "absolute_error_mm": False}
+                "absolute_error_mm": False,
+                # version 2 (accepted in version 1 too): time steps, masks, packing, duplicates
+                "valid_range": False, "nodata": False, "scale_factor": False, "add_offset": False,
+                "duplicates": False}
+TIME_STEPS = ("day", "pentad", "dekad", "8-day", "16-day", "month")
+DUPLICATES = ("refuse", "mean", "first", "last")
 
 
 def file_sha256(path: str | os.PathLike) -> str:
@@ -133,9 +138,20 @@ class SourceSpec:
     description: str | None = None
     date_format: str | None = None
     time_start: str | None = None
-    time_step: str = "month"
+    time_step: str | None = None  # None: inferred from the stamps (day or month where unambiguous)
     relative_error: float | None = None
     absolute_error_mm: float | None = None
+    valid_range: tuple[float, float] | None = None  # stored values outside (inclusive) are no data
+    nodata: tuple[float, ...] = ()  # further stored values meaning no data
+    scale_factor: float | None = None  # packing declared in the catalog wins over the file's own
+    add_offset: float | None = None
+    duplicates: str = "refuse"  # two time steps in one month: refuse | mean | first | last
+
+    @property
+    def declares_packing(self) -> bool:
+        """Whether the catalog states a mask or packing the file's own decoding would not apply."""
+        return bool(self.valid_range is not None or self.nodata or self.scale_factor is not None
+                    or self.add_offset is not None)
 
     @property
     def display(self) -> str:
@@ -251,7 +267,7 @@ def _resolve(cat: Path, where: str, key: str, pattern: str, *, allow_glob: bool)
 
 
 def open_catalog(path: str | os.PathLike) -> Catalog:
-    """Read and validate a catalog file (YAML, version 1).
+    """Read and validate a catalog file (YAML, version 1 or 2).
 
     Parameters
     ----------
@@ -337,9 +353,10 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
         crs = _str(cat, where, s, "crs")
         if crs is not None:
             _check_crs(cat, where, crs)
-        step = _str(cat, where, s, "time_step", "month")
-        if step not in ("month", "day"):
-            _fail(cat, where, f"field 'time_step': {step!r} is not 'month' or 'day'")
+        step = _str(cat, where, s, "time_step")
+        if step is not None and step not in TIME_STEPS:
+            _fail(cat, where, f"field 'time_step': {step!r} is not one of {', '.join(TIME_STEPS)}")
+        mask = _mask_fields(cat, where, s)
         tstart = _str(cat, where, s, "time_start")
         if tstart is not None:
             import pandas as pd
@@ -359,11 +376,13 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
         date_format = _str(cat, where, s, "date_format")
         if len(fmt_paths) > 1 and Path(fmt_paths[0]).suffix.lower() in (".tif", ".tiff") and not date_format:
             _fail(cat, where, "field 'date_format' is required for a glob of GeoTIFF files (e.g. '%Y-%m')")
+        if date_format is not None:
+            _check_date_format(cat, where, date_format)
         sources.append(SourceSpec(
             id=sid, component=comp, path_pattern=pattern, paths=paths,
             variable=_str(cat, where, s, "variable"), units=units, crs=crs,
             label=_str(cat, where, s, "label"), description=_str(cat, where, s, "description"),
-            date_format=date_format, time_start=tstart, time_step=step, **errs,
+            date_format=date_format, time_start=tstart, time_step=step, **errs, **mask,
         ))
     return Catalog(
         path=cat,
@@ -445,6 +464,56 @@ def _station_table(cat: Path, where: str, d: Any, *, kind: str) -> StationTableS
         missing_values=tuple(str(m) for m in miss), date_format=_str(cat, where, d, "date_format"),
         sheet=sheet, stations=stations, min_coverage=float(mc),
     )
+
+
+def _number(cat: Path, where: str, key: str, val) -> float:
+    if not isinstance(val, (int, float)) or isinstance(val, bool) or val != val:
+        _fail(cat, where, f"field {key!r}: {val!r} is not a number")
+    return float(val)
+
+
+def _mask_fields(cat: Path, where: str, s: dict) -> dict:
+    """valid_range, nodata, scale_factor, add_offset (stored values, CF meanings) and duplicates."""
+    out: dict = {}
+    vr = s.get("valid_range")
+    if vr is not None:
+        if not isinstance(vr, list) or len(vr) != 2:
+            _fail(cat, where, f"field 'valid_range': {vr!r} is not a list of two numbers [min, max]")
+        lo, hi = (_number(cat, where, "valid_range", v) for v in vr)
+        if lo > hi:
+            _fail(cat, where, f"field 'valid_range': min {vr[0]!r} is greater than max {vr[1]!r}")
+        out["valid_range"] = (lo, hi)
+    nd = s.get("nodata")
+    if nd is not None:
+        if isinstance(nd, (int, float)) and not isinstance(nd, bool):
+            nd = [nd]
+        if not isinstance(nd, list) or not nd:
+            _fail(cat, where, f"field 'nodata': {nd!r} is not a list of numbers")
+        for v in nd:
+            if not isinstance(v, (int, float)) or isinstance(v, bool):
+                _fail(cat, where, f"field 'nodata': {v!r} in {nd!r} is not a number")
+        out["nodata"] = tuple(float(v) for v in nd)
+    for key in ("scale_factor", "add_offset"):
+        if s.get(key) is not None:
+            out[key] = _number(cat, where, key, s[key])
+    if out.get("scale_factor") == 0:
+        _fail(cat, where, "field 'scale_factor': 0 would make every value the offset")
+    dup = s.get("duplicates")
+    if dup is not None:
+        if dup not in DUPLICATES:
+            _fail(cat, where, f"field 'duplicates': {dup!r} is not one of {', '.join(DUPLICATES)}")
+        out["duplicates"] = dup
+    return out
+
+
+def _check_date_format(cat: Path, where: str, fmt: str) -> None:
+    import re
+
+    for tok in re.findall(r"\{([^}]*)\}", fmt):
+        if tok not in ("dekad", "pentad"):
+            _fail(cat, where, f"field 'date_format': {{{tok}}} in {fmt!r} is not {{dekad}} or {{pentad}}")
+    if "{dekad}" in fmt and "{pentad}" in fmt:
+        _fail(cat, where, f"field 'date_format': {fmt!r} has both {{dekad}} and {{pentad}}")
 
 
 def _check_crs(cat: Path, where: str, text: str) -> None:

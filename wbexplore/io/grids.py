@@ -6,9 +6,10 @@ per-month factor that turns its values into the canonical unit (mm per month for
 P and ET, mm for TWSA). Applying the factor after the basin mean is exact because
 it does not vary in space, and it keeps extraction a single pass over the data.
 
-Time stamps may be month-start, mid-month or month-end, or CF time bounds; daily
-data are summed (fluxes) or averaged (TWSA) to calendar months, and a month with
-a missing day is NaN, never scaled up.
+Time stamps may be month-start, mid-month or month-end, or CF time bounds; daily,
+pentad, dekad, 8-day and 16-day values are mapped onto calendar months day-weighted
+by `wbexplore.temporal` (summed for fluxes, averaged for TWSA), and a month with a
+missing day is NaN, never scaled up.
 """
 
 from __future__ import annotations
@@ -30,7 +31,7 @@ from ..units import parse_flux_unit, parse_storage_unit
 from .blocks import BlockReader, GeoTIFFBlocks, NetCDFBlocks
 from .catalog import SourceSpec
 
-__all__ = ["SourceGrid", "open_source", "month_index", "TARGET_CHUNK_BYTES"]
+__all__ = ["SourceGrid", "open_source", "month_index", "short_crs", "TARGET_CHUNK_BYTES"]
 
 TARGET_CHUNK_BYTES = 96 * 2**20  # time chunks of about this size stream through memory
 
@@ -47,8 +48,8 @@ class SourceGrid:
     crs: CRS
     factor: np.ndarray  # per month: native value -> canonical unit
     native_units: str
-    native_step: str  # "month" or "day"
-    incomplete_months: int = 0  # months with missing days (daily data)
+    native_step: str  # one of wbexplore.temporal.STEPS
+    incomplete_months: int = 0  # months not covered on every day (sub-monthly steps): empty, never scaled
     blocks: BlockReader | None = None  # direct reader of the stored values, when it decodes exactly like `data`
 
     @property
@@ -70,9 +71,23 @@ class SourceGrid:
             "grid": f"{ny}x{nx}",
             "period": f"{m[0]:%Y-%m}..{m[-1]:%Y-%m}" if len(m) else "-",
             "months": len(m),
-            "crs": self.crs.to_string() if self.crs.to_epsg() is None else f"EPSG:{self.crs.to_epsg()}",
+            "crs": short_crs(self.crs),
+            "incomplete": self.incomplete_months,
             "label": self.spec.display,
         }
+
+
+def short_crs(crs: CRS) -> str:
+    """An EPSG code (``EPSG:4326``) where pyproj finds one, else the CRS's own short name, never
+    a WKT or JSON text (at most 40 characters)."""
+    code = crs.to_epsg(min_confidence=70)
+    if code is not None:
+        return f"EPSG:{code}"
+    auth = crs.to_authority(min_confidence=70)
+    if auth is not None:
+        return f"{auth[0]}:{auth[1]}"
+    name = (crs.name or "unnamed CRS").strip()
+    return name if len(name) <= 40 else name[:39] + "…"
 
 
 def month_index(stamps) -> pd.DatetimeIndex:
@@ -171,17 +186,20 @@ def _time_chunk(ny: int, nx: int, itemsize: int) -> int:
 
 def _open_netcdf_or_zarr(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex | None]:
     fmt = spec.format
+    # a catalog-declared mask or packing applies to stored values: open them undecoded
+    raw = not spec.declares_packing
     try:
         if fmt == "zarr":
             with warnings.catch_warnings():
                 warnings.filterwarnings("ignore", message=".*consolidated metadata.*")
-                ds = xr.open_zarr(spec.paths[0], chunks=None, decode_timedelta=False)
+                ds = xr.open_zarr(spec.paths[0], chunks=None, decode_timedelta=False, mask_and_scale=raw)
         elif len(spec.paths) > 1:
             ds = xr.open_mfdataset([str(p) for p in spec.paths], combine="by_coords", chunks={},
-                                   decode_timedelta=False, data_vars="minimal", coords="minimal",
+                                   decode_timedelta=False, mask_and_scale=raw, data_vars="minimal", coords="minimal",
                                    compat="override", join="override")
         else:
-            ds = xr.open_dataset(spec.paths[0], chunks=None, cache=False, decode_timedelta=False)
+            ds = xr.open_dataset(spec.paths[0], chunks=None, cache=False, decode_timedelta=False,
+                                 mask_and_scale=raw)
     except InputError:
         raise
     except Exception as exc:
@@ -240,10 +258,62 @@ def _packing(enc: dict) -> tuple[float, float, float] | None:
     return nodata, float(enc.get("scale_factor", 1.0)), float(enc.get("add_offset", 0.0))
 
 
+_PACKING_KEYS = ("_FillValue", "missing_value", "scale_factor", "add_offset", "_Unsigned")
+
+
+def _stored_encoding(da: xr.DataArray) -> dict:
+    """The CF decoding of a variable: in ``encoding`` when xarray decoded it, in ``attrs`` when it
+    was opened undecoded (a catalog-declared mask or packing)."""
+    enc = dict(da.encoding)
+    enc.update({k: da.attrs[k] for k in _PACKING_KEYS if k in da.attrs})
+    if "dtype" not in enc:
+        enc["dtype"] = enc.get("rasterio_dtype", da.dtype)
+    return enc
+
+
+def _decode_declared(spec: SourceSpec, da: xr.DataArray) -> xr.DataArray:
+    """Mask and unpack undecoded stored values as the catalog (first) and the file (then) say.
+
+    CF meaning: the file's fill values, the catalog's ``nodata`` codes and values outside the
+    inclusive ``valid_range`` are compared with *stored* values, before unpacking; then
+    ``decoded = stored * scale_factor + add_offset``. A declared packing wins over the file's."""
+    enc = _stored_encoding(da)
+    stored = da.dtype
+    bad = da.isnull() if stored.kind == "f" else xr.zeros_like(da, dtype=bool)
+    for key in ("_FillValue", "missing_value"):
+        for v in np.atleast_1d(np.asarray(enc.get(key, []), dtype=float)):
+            if not np.isnan(v):
+                bad = bad | (da == np.asarray(v).astype(stored))
+    for v in spec.nodata:
+        bad = bad | (da == v)
+    if spec.valid_range is not None:
+        bad = bad | (da < spec.valid_range[0]) | (da > spec.valid_range[1])
+    scale = spec.scale_factor if spec.scale_factor is not None else float(enc.get("scale_factor", 1.0))
+    offset = spec.add_offset if spec.add_offset is not None else float(enc.get("add_offset", 0.0))
+    out = da.astype("float64" if stored.itemsize > 4 or scale != 1 else "float32")
+    out = out.where(~bad) * scale + offset
+    out.attrs = {k: v for k, v in da.attrs.items() if k not in _PACKING_KEYS}
+    return out
+
+
+def _declare_blocks(spec: SourceSpec, blocks: BlockReader | None) -> BlockReader | None:
+    """Give a block reader the catalog's mask and packing (same meanings as `_decode_declared`)."""
+    if blocks is None or not spec.declares_packing:
+        return blocks
+    if spec.scale_factor is not None:
+        blocks.scale = spec.scale_factor
+    if spec.add_offset is not None:
+        blocks.offset = spec.add_offset
+    if spec.valid_range is not None:
+        blocks.valid_min, blocks.valid_max = spec.valid_range
+    blocks.nodata_codes = tuple(spec.nodata)
+    return blocks
+
+
 def _netcdf_blocks(spec: SourceSpec, da: xr.DataArray, dims: tuple[str, str, str]) -> BlockReader | None:
     if tuple(da.dims) != dims:
         return None
-    pk = _packing(da.encoding)
+    pk = _packing(_stored_encoding(da))
     if pk is None:
         return None
     enc = da.encoding
@@ -262,7 +332,7 @@ def _geotiff_blocks(paths, arrays) -> BlockReader | None:
     """Reader for one multi-band file or single-band files in time order; None if their packing differs."""
     import rasterio
 
-    pks = [_packing(a.encoding) for a in arrays]
+    pks = [_packing(_stored_encoding(a)) for a in arrays]
     kinds = set(pks)
     dtypes = {np.dtype(a.encoding.get("rasterio_dtype", a.encoding.get("dtype", "float32"))).str for a in arrays}
     if len(kinds) != 1 or None in kinds or len(dtypes) != 1:
@@ -286,19 +356,55 @@ def _geotiff_blocks(paths, arrays) -> BlockReader | None:
 
 
 _DATE_TOKENS = {"%Y": r"\d{4}", "%m": r"\d{2}", "%d": r"\d{2}", "%j": r"\d{3}", "%y": r"\d{2}", "%b": r"[A-Za-z]{3}"}
+_PERIOD_TOKENS = {"{dekad}": "dekad", "{pentad}": "pentad"}
 
 
 def _date_regex(fmt: str) -> re.Pattern:
+    """A regex finding ``fmt`` in a file name; ``{dekad}`` / ``{pentad}`` capture one digit (checked later)."""
     out, i = "", 0
     while i < len(fmt):
         tok = fmt[i:i + 2]
-        if tok in _DATE_TOKENS:
+        period = next((t for t in _PERIOD_TOKENS if fmt.startswith(t, i)), None)
+        if period:
+            out += f"(?P<{_PERIOD_TOKENS[period]}>\\d)"
+            i += len(period)
+        elif tok in _DATE_TOKENS:
             out += _DATE_TOKENS[tok]
             i += 2
         else:
             out += re.escape(fmt[i])
             i += 1
     return re.compile(out)
+
+
+def _date_from_name(spec: SourceSpec, path: Path) -> datetime:
+    """The first day of the period a file name names, through ``date_format`` (with {dekad}/{pentad})."""
+    from .. import temporal
+
+    fmt = spec.date_format
+    m = _date_regex(fmt).search(path.name)
+    if not m:
+        _fail(spec, f"field 'date_format': no date like {fmt!r} in the file name", path)
+    text, rest_fmt, period = m.group(0), fmt, None
+    for tok, name in _PERIOD_TOKENS.items():
+        if tok in fmt:
+            period = (name, int(m.group(name)))
+            # drop the period digit from the text and its token from the format, keep the rest
+            a, b = m.span(name)
+            text = text[:a - m.start()] + text[b - m.start():]
+            rest_fmt = fmt.replace(tok, "")
+    try:
+        t = datetime.strptime(text, rest_fmt) if rest_fmt else datetime(1970, 1, 1)
+    except ValueError:
+        _fail(spec, f"field 'date_format': {m.group(0)!r} does not parse as {fmt!r}", path)
+    if period is not None:
+        name, k = period
+        try:
+            d = (temporal.dekad_start if name == "dekad" else temporal.pentad_start)(t.year, t.month, k)
+        except temporal.TemporalError as exc:
+            _fail(spec, f"field 'date_format': {{{name}}} of {m.group(0)!r}: {exc}", path)
+        t = datetime(d.year, d.month, d.day)
+    return t
 
 
 def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex | None]:
@@ -310,7 +416,7 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
                 # rioxarray multiplies affine transforms with `*` (deprecated in affine 3)
                 warnings.filterwarnings("ignore", category=PendingDeprecationWarning)
                 da = rioxarray.open_rasterio(path, chunks={"band": band_chunks, "y": -1, "x": -1},
-                                             mask_and_scale=True, lock=False)
+                                             mask_and_scale=not spec.declares_packing, lock=False)
         except Exception as exc:
             if _out_of_descriptors(exc):
                 _fail(spec, f"the process ran out of file descriptors while opening file {index + 1} of "
@@ -323,9 +429,16 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
         da = _one(spec.paths[0], band_chunks="auto")
         nb = da.sizes["band"]
         if spec.time_start:
+            from .. import temporal
+
             start = pd.Timestamp(spec.time_start)
-            freq = "D" if spec.time_step == "day" else "MS"
-            times = pd.date_range(start, periods=nb, freq=freq)
+            step = spec.time_step or "month"
+            if step == "day":
+                times = pd.date_range(start, periods=nb, freq="D")
+            elif step == "month":
+                times = pd.date_range(start, periods=nb, freq="MS")
+            else:  # consecutive periods of the step from time_start
+                times = temporal.period_starts_between(step, start, start + pd.Timedelta(days=17 * nb))[:nb]
         else:
             desc = da.attrs.get("long_name")
             desc = (desc,) if isinstance(desc, str) else desc
@@ -338,16 +451,11 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
         da = da.assign_coords(band=times)
         blocks = _geotiff_blocks(spec.paths, [da])
     else:
-        rx = _date_regex(spec.date_format or "%Y-%m")
+        if not spec.date_format:
+            _fail(spec, "field 'date_format' is required for a glob of GeoTIFF files (e.g. '%Y-%m')")
         items = []
         for p in spec.paths:
-            m = rx.search(p.name)
-            if not m:
-                _fail(spec, f"field 'date_format': no date like {spec.date_format!r} in the file name", p)
-            try:
-                items.append((datetime.strptime(m.group(0), spec.date_format), p))
-            except ValueError:
-                _fail(spec, f"field 'date_format': {m.group(0)!r} does not parse as {spec.date_format!r}", p)
+            items.append((_date_from_name(spec, p), p))
         items.sort()
         arrays = []
         first = None
@@ -405,27 +513,70 @@ def _fd_limit() -> str:
         return "unknown"
 
 
-def _infer_step(spec: SourceSpec, times: pd.DatetimeIndex) -> str:
-    if len(times) < 2:
+def _source_step(spec: SourceSpec, times: pd.DatetimeIndex) -> str:
+    """The declared step, checked against the stamps, or the step the stamps show unambiguously."""
+    from .. import temporal
+
+    if spec.time_step is not None:
+        bad = temporal.step_fits_stamps(times, spec.time_step)
+        if bad is not None:
+            _fail(spec, f"field 'time_step': {spec.time_step!r} does not fit the time stamps "
+                        f"{bad[0]:%Y-%m-%d} and {bad[1]:%Y-%m-%d}")
         return spec.time_step
-    d = np.median(np.diff(times.values).astype("timedelta64[s]").astype(float)) / 86400.0
-    if 0.5 <= d <= 1.5:
-        return "day"
-    if 27 <= d <= 32:
+    if len(times) < 2:
         return "month"
-    _fail(spec, f"time step of {d:.1f} days is neither daily nor monthly")
+    step = temporal.infer_step(times)
+    if step is None:
+        srt = times.sort_values()
+        d = np.median(np.diff(srt.values).astype("timedelta64[s]").astype(float)) / 86400.0
+        _fail(spec, f"field 'time_step' is required: stamps {srt[0]:%Y-%m-%d} and {srt[1]:%Y-%m-%d} "
+                    f"(median step {d:.1f} days) fit no one time step unambiguously "
+                    f"(one of {', '.join(temporal.STEPS)})")
+    return step
+
+
+def _combine_duplicates(spec: SourceSpec, da: xr.DataArray, months: pd.DatetimeIndex) -> xr.DataArray:
+    """Several time steps in one calendar month: refuse (default, naming the months and the field),
+    or keep their plain mean, the first or the last (in time order)."""
+    if spec.duplicates == "refuse":
+        dups = sorted(set(months[months.duplicated()]))
+        listed = ", ".join(f"{m:%Y-%m}" for m in dups[:5]) + (" ..." if len(dups) > 5 else "")
+        _fail(spec, f"field 'duplicates': two time steps fall in the same month ({listed}); "
+                    "declare duplicates: mean, first or last")
+    order = np.argsort(np.asarray(da["time"].values), kind="stable")
+    da = da.isel(time=order)
+    months = months[order]
+    if spec.duplicates in ("first", "last"):
+        keep = ~months.duplicated(keep="first" if spec.duplicates == "first" else "last")
+        return da.isel(time=np.flatnonzero(keep)).assign_coords(time=months[keep])
+    uniq = pd.DatetimeIndex(months.unique())
+    w = (np.asarray(months)[None, :] == np.asarray(uniq)[:, None]).astype(float)
+    w /= w.sum(axis=1, keepdims=True)  # the plain mean of the steps in a month
+    from ..temporal import _apply_weights_xarray
+
+    return _apply_weights_xarray(da, w, uniq)
 
 
 def open_source(spec: SourceSpec) -> SourceGrid:
     """Open one catalog source lazily into a `SourceGrid` (no data values are read).
 
+    Any time step of `wbexplore.temporal.STEPS` is mapped onto calendar months day-weighted there;
+    catalog-declared masks and packing (``valid_range``, ``nodata``, ``scale_factor``,
+    ``add_offset``) apply to stored values on both the xarray and the block path.
+
     Raises `InputError` naming the file and source for an unreadable file, a missing
-    variable, no CRS, units missing or of the wrong dimension, or duplicate months.
+    variable, no CRS, units missing or of the wrong dimension, a step that does not fit the
+    stamps, overlapping periods, or (unless ``duplicates`` says otherwise) two steps in one month.
     """
+    from .. import temporal
+
     if spec.format == "geotiff":
         da, crs, bounds_mid, blocks = _open_geotiff(spec)
     else:
         da, crs, bounds_mid, blocks = _open_netcdf_or_zarr(spec)
+    if spec.declares_packing:
+        da = _decode_declared(spec, da)
+        blocks = _declare_blocks(spec, blocks)
     units = spec.units or da.attrs.get("units")
     if not units:
         _fail(spec, "field 'units' is required: the file's variable has no units attribute")
@@ -438,15 +589,17 @@ def open_source(spec: SourceSpec) -> SourceGrid:
     except UnitError as exc:
         _fail(spec, str(exc))
     times = _to_datetime_index(spec, da["time"].values)
-    step = _infer_step(spec, times)
+    step = _source_step(spec, times if bounds_mid is None or spec.time_step else bounds_mid)
     incomplete = 0
     if step == "month":
         stamp = bounds_mid if bounds_mid is not None else times
         months = month_index(stamp)
         if months.has_duplicates:
-            dup = months[months.duplicated()][0]
-            _fail(spec, f"two time steps fall in the same month {dup:%Y-%m}")
-        da = da.assign_coords(time=months)
+            da = _combine_duplicates(spec, da, months)
+            months = pd.DatetimeIndex(da["time"].values)
+            blocks = None  # steps are combined: the xarray path does that
+        else:
+            da = da.assign_coords(time=months)
         if not months.is_monotonic_increasing:
             da = da.sortby("time")
             months = pd.DatetimeIndex(da["time"].values)
@@ -456,39 +609,24 @@ def open_source(spec: SourceSpec) -> SourceGrid:
         else:
             factor = flux.monthly_factor(months)
     else:
-        blocks = None  # daily values are summed to months cell by cell first: the xarray path does that
-        days = times.normalize()
-        if days.has_duplicates:
-            _fail(spec, f"two time steps fall on the same day {days[days.duplicated()][0]:%Y-%m-%d}")
-        da = da.assign_coords(time=days).sortby("time")
-        full = pd.date_range(days.min().to_period("M").to_timestamp(),
-                             days.max().to_period("M").to_timestamp(how="end").normalize(), freq="D")
-        present = pd.Series(1, index=days).reindex(full, fill_value=0)
-        per_month = present.groupby(full.to_period("M")).agg(["sum", "size"])
-        incomplete = int((per_month["sum"] < per_month["size"]).sum())
-        if len(full) != len(days):
-            da = da.reindex(time=full)  # missing days become NaN -> their months become NaN
-        da = da.chunk({"time": _days_chunks(full)})
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", category=RuntimeWarning)
-            if spec.component == "TWSA":
-                da = da.resample(time="MS").mean(skipna=False)
-                factor_const = twsa_factor
-            else:
-                try:
-                    factor_const = flux.daily_factor()
-                except UnitError as exc:
-                    _fail(spec, str(exc))
-                da = da.resample(time="MS").sum(skipna=False)
-        months = pd.DatetimeIndex(da["time"].values)
+        blocks = None  # periods are mapped onto months cell by cell first: the xarray path does that
+        if spec.component == "TWSA":
+            kind, factor_const = "state", twsa_factor
+        else:
+            try:
+                # a rate is summed per day (x 1 day); an amount is spread over its own period's days
+                factor_const = flux.daily_factor()
+            except UnitError as exc:
+                _fail(spec, str(exc))
+            kind = "rate" if flux.kind == "rate" else "amount"
+        starts = times.normalize()
+        try:
+            da, months, inc = temporal.periods_to_months(starts, step, da.assign_coords(time=starts), kind)
+        except temporal.TemporalError as exc:
+            _fail(spec, f"field 'time_step' {step!r}: {exc}")
+        incomplete = len(inc)
         factor = np.full(len(months), factor_const)
     da.name = spec.id
     da.attrs = {"units": units}
     return SourceGrid(spec=spec, data=da, crs=crs, factor=np.asarray(factor, float), native_units=units,
                       native_step=step, incomplete_months=incomplete, blocks=blocks)
-
-
-def _days_chunks(full: pd.DatetimeIndex) -> tuple[int, ...]:
-    """Chunk a complete daily axis on whole years so monthly sums never straddle chunks."""
-    s = pd.Series(1, index=full).groupby(full.year).size()
-    return tuple(int(v) for v in s.values)

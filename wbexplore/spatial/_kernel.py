@@ -27,9 +27,12 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
     _TB = 32  # time steps per tile (16: 0.052 s, 32: 0.044 s, 64: 0.048 s on the benchmark stack)
 
     @numba.njit(cache=True, nogil=True, parallel=True)
-    def _accumulate(X, cells, indptr, indices, data, nb, nodata):  # noqa: D401
+    def _accumulate(X, cells, indptr, indices, data, nb, nodata, vmin, vmax, codes):  # noqa: D401
         t = X.shape[0]
         out = np.zeros((t, nb, 2))
+        ncode = codes.size
+        clo = codes[0] if ncode else 0.0
+        chi = codes[ncode - 1] if ncode else 0.0
         ntile = (t + _TB - 1) // _TB
         for tile in numba.prange(ntile):
             t0 = tile * _TB
@@ -41,7 +44,16 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                     b = indices[k]
                     for i in range(t0, t1):
                         v = X[i, c]
-                        if v == v and v != nodata:
+                        if v == v and v != nodata and v >= vmin and v <= vmax:
+                            if ncode and v >= clo and v <= chi:
+                                # further no-data codes (sorted; only values between the lowest
+                                # and the highest code are looked up, so data rarely pay for it)
+                                skip = False
+                                for q in range(ncode):
+                                    if v == codes[q]:
+                                        skip = True
+                                if skip:
+                                    continue
                             out[i, b, 0] += w * np.float64(v)
                             out[i, b, 1] += w
         return out
@@ -59,10 +71,17 @@ def kernel_args(used: np.ndarray, wu_t) -> tuple:
             wu_t.indices.astype(np.int64), wu_t.data.astype(np.float64), int(wu_t.shape[1]))
 
 
-def accumulate(X2: np.ndarray, used: np.ndarray, wu_t, nodata: float = np.nan, *, args: tuple | None = None) -> np.ndarray:
+_NO_CODES = np.zeros(0, np.float64)
+
+
+def accumulate(X2: np.ndarray, used: np.ndarray, wu_t, nodata: float = np.nan, *, args: tuple | None = None,
+               valid_min: float = -np.inf, valid_max: float = np.inf, codes=()) -> np.ndarray:
     """(t, cells) block -> (t, basins, 2) of [sum W x, sum W valid] over the used cells.
 
-    Values equal to ``nodata`` (stored fill values of packed or integer data) count as missing,
-    as NaN always does. ``args`` are precomputed `kernel_args`.
+    Values equal to ``nodata`` (stored fill values of packed or integer data), outside the inclusive
+    stored range [``valid_min``, ``valid_max``] or equal to one of ``codes`` count as missing, as NaN
+    always does (CF meanings, compared with stored values). ``args`` are precomputed `kernel_args`.
     """
-    return _accumulate(X2, *(args or kernel_args(used, wu_t)), np.float64(nodata))
+    c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
+    return _accumulate(X2, *(args or kernel_args(used, wu_t)), np.float64(nodata),
+                       np.float64(valid_min), np.float64(valid_max), c)

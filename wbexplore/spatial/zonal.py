@@ -169,20 +169,26 @@ def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub) -> np.ndarray:
     for s0 in range(t0, t1, sub):
         s1 = min(t1, s0 + sub)
         X = reader.read(s0, s1, r0, r1, c0, c1)
-        out[s0 - t0:s1 - t0] = _accumulate_raw(X.reshape(X.shape[0], -1), args, reader.fill)
+        out[s0 - t0:s1 - t0] = _accumulate_raw(X.reshape(X.shape[0], -1), args, reader.fill,
+                                               getattr(reader, "mask_args", {}))
     return out
 
 
-def _accumulate_raw(X2, args, nodata) -> np.ndarray:
+def _accumulate_raw(X2, args, nodata, mask: dict | None = None) -> np.ndarray:
+    """Accumulate stored values; ``mask`` holds ``valid_min``, ``valid_max`` and ``codes`` (stored)."""
     from ._kernel import HAVE_NUMBA, accumulate
 
+    mask = mask or {}
     if HAVE_NUMBA:
-        return accumulate(X2, None, None, nodata, args=args)
+        return accumulate(X2, None, None, nodata, args=args, **mask)
     cells, indptr, indices, data, nb = args  # pragma: no cover - without numba
     wu_t = sp.csr_array((data, indices, indptr), shape=(cells.size, nb))
     Xf = X2.astype(np.float64)
     if not np.isnan(nodata):
         Xf[X2 == nodata] = np.nan
+    for code in mask.get("codes", ()):
+        Xf[X2 == code] = np.nan
+    Xf[(X2 < mask.get("valid_min", -np.inf)) | (X2 > mask.get("valid_max", np.inf))] = np.nan
     return _block_scipy(Xf, wu_t, cells)
 
 
