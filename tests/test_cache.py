@@ -345,3 +345,57 @@ def test_basins_reread_after_ids_swapped_with_mtime_restored(tmp_path):
     os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
     assert path.stat().st_size == st.st_size and path.stat().st_mtime_ns == st.st_mtime_ns
     assert load_basins(open_catalog(cat)).index.tolist() == ["E", "W"]
+
+
+def test_geotiff_sidecar_changes_the_series_key(tmp_path):
+    """A '.aux.xml' beside a GeoTIFF changes what GDAL reads (here a scale of 10), so it must change the
+    series key (seen: same key, old series served)."""
+    import rasterio
+
+    from utils import write_tif
+    from wbexplore.cache import inputs_digest
+
+    lon, lat = lonlat_grid(0, 2, 0, 2, 0.5)
+    write_tif(tmp_path / "p.tif", np.ones((3, lat.size, lon.size)), lon, lat)
+    box_basins(tmp_path / "basins.geojson", [(0.2, 0.2, 1.8, 1.8)])
+    cat = open_catalog(write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.tif", "units": "mm",
+                                                 "time_start": "2001-01"}]))
+    before = inputs_digest(cat)
+    (tmp_path / "p.tif.aux.xml").write_text(
+        '<PAMDataset><PAMRasterBand band="1"><Scale>10</Scale></PAMRasterBand></PAMDataset>\n')
+    with rasterio.open(tmp_path / "p.tif") as src:  # GDAL does read it
+        assert src.scales[0] == 10.0
+    assert inputs_digest(cat) != before
+
+
+def test_cache_folder_inside_an_input_is_refused(tmp_path, capsys):
+    """A cache folder inside a zarr store (or matched by a product glob) would write into the inputs it
+    caches (seen: rank exit 0 and weights files inside the store)."""
+    import zarr  # noqa: F401
+
+    from wbexplore.cli import main
+
+    lon, lat = lonlat_grid(0, 2, 0, 2, 0.5)
+    t = monthly("2001-01", 30)
+    rng = np.random.default_rng(3)
+    for name in ("p", "e"):
+        write_nc(tmp_path / f"{name}.nc", 1 + rng.random((t.size, lat.size, lon.size)), lon, lat, t, var="v")
+    da = xr.DataArray(rng.standard_normal((t.size, lat.size, lon.size)), dims=("time", "lat", "lon"),
+                      coords={"time": t, "lat": lat, "lon": lon}, attrs={"units": "mm"})
+    xr.Dataset({"lwe": da}).to_zarr(tmp_path / "tws.zarr", consolidated=False)
+    box_basins(tmp_path / "basins.geojson", [(0.2, 0.2, 1.8, 1.8)], ids=["B"])
+    pd.DataFrame({"date": [f"{m:%Y-%m-%d}" for m in t], "basin_id": "B", "q": 5.0}).to_csv(tmp_path / "q.csv",
+                                                                                       index=False)
+    cat = write_catalog(tmp_path, [
+        {"id": "p", "component": "P", "path": "p.nc", "variable": "v", "units": "mm/day"},
+        {"id": "e", "component": "ET", "path": "e.nc", "variable": "v", "units": "mm/day"},
+        {"id": "t", "component": "TWSA", "path": "tws.zarr", "variable": "lwe", "units": "mm"}],
+        discharge={"path": "q.csv", "time_field": "date", "basin_field": "basin_id", "value_field": "q",
+                   "units": "m3/s"})
+    store_files = sorted(p.relative_to(tmp_path) for p in (tmp_path / "tws.zarr").rglob("*"))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        rc = main(["rank", str(cat), "--basin", "B", "--cache-dir", str(tmp_path / "tws.zarr" / "cache")])
+    err = capsys.readouterr().err.strip()
+    assert rc == 2 and len(err.splitlines()) == 1 and "tws.zarr" in err, err
+    assert sorted(p.relative_to(tmp_path) for p in (tmp_path / "tws.zarr").rglob("*")) == store_files

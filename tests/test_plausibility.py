@@ -247,3 +247,20 @@ def test_rank_row_and_selection_say_why_a_metric_is_missing():
     assert any("observed discharge has no variance" in m for m in res.messages)
     ok = rank(_canonical(Q0), "B0", min_valid=12)
     assert (ok["undefined"] == "").all() and np.isfinite(ok.loc[0, "nse"])
+
+
+def test_time_first_variables_are_screened_too():
+    """A (time, basin) variable was skipped without a word (seen in review); now screened like any other."""
+    import numpy as np
+    import pandas as pd
+    import xarray as xr
+
+    from wbexplore.balance.plausibility import screen_implausible
+
+    t = pd.date_range("2001-01-01", periods=4, freq="MS")
+    v = np.array([[10.0, 20.0], [-50.0, 20.0], [10.0, 20.0], [10.0, 20.0]])  # -50 mm P: implausible
+    ds = xr.Dataset({"p": (("time", "basin"), v, {"component": "P", "units": "mm/month"})},
+                    coords={"time": t, "basin": ["A", "B"]})
+    out, recs = screen_implausible(ds)
+    assert len(recs) == 1 and recs[0].counts["below"] == {"A": 1}
+    assert np.isnan(out["p"].sel(basin="A").values[1]) and int(out["p"].notnull().sum()) == 7

@@ -353,3 +353,13 @@ def test_error_page_runs_no_injected_script(tmp_path, artifacts):
             b.close()
     finally:
         _stop(proc)
+
+
+def test_public_message_study_folder_with_a_space():
+    """A study folder whose name holds a space is still made relative, whole (seen: the folder was called
+    '<outside the study>' and the rest of the absolute path was shown)."""
+    from wbexplore.escape import public_message
+
+    msg = public_message("/home/ann/My Study/secret/q.csv: column 'x' not found", "/home/ann/My Study")
+    assert msg == "secret/q.csv: column 'x' not found"
+    assert "/home/ann" not in public_message("/home/ann/My Study: folder not writable", "/home/ann/My Study")

@@ -79,7 +79,7 @@ from .errors import InputError
 
 __all__ = ["CACHE_FORMAT", "CacheRebuiltWarning", "CacheWriteWarning", "default_cache_dir", "cache_root",
            "file_digest", "input_files", "inputs_digest", "sweep_stale", "weights_key", "cached_weights", "cached_series",
-           "load_basins", "clear_memory"]
+           "check_root_for", "load_basins", "clear_memory"]
 
 CACHE_FORMAT = "wbx-cache-2"
 RACY_SECONDS = 2.0  # a digest is remembered only for files whose newest time stamp is older than this
@@ -404,7 +404,37 @@ def input_files(cat) -> list[tuple[str, Path]]:
     for s in cat.sources:
         for f in s.paths:
             out.append((f"source {s.id}", Path(f)))
+            if Path(f).suffix.lower() in (".tif", ".tiff"):
+                # sidecars GDAL reads with a GeoTIFF (nodata, scale, masks, overviews): one appearing,
+                # changing or going away changes the numbers, so it changes the key
+                from .io.catalog import GEOTIFF_SIDECARS
+
+                for ext in GEOTIFF_SIDECARS:
+                    side = Path(str(f) + ext)
+                    if side.is_file():
+                        out.append((f"source {s.id} sidecar", side))
     return out
+
+
+
+def check_root_for(cat, root: Path) -> None:
+    """Refuse a cache folder that lies among the catalog's inputs: inside a zarr store or an input
+    folder, or matched by a product glob (its files would change or join the inputs it caches)."""
+    import fnmatch
+
+    r = Path(os.path.realpath(root))
+    chain = [r, *r.parents]
+    for role, p in input_files(cat):
+        rp = Path(os.path.realpath(p))
+        if rp.is_dir() and rp in chain:
+            raise InputError(f"{root}: cache folder lies inside input {p.name!r} ({role}) of catalog "
+                             f"{cat.path.name}; choose a folder outside the study's inputs")
+    globs = cat.input_globs() if hasattr(cat, "input_globs") else ()
+    for pat in globs:
+        for cand in chain[:-1]:
+            if fnmatch.fnmatch(str(cand), pat) or fnmatch.fnmatch(os.path.realpath(str(cand)), pat):
+                raise InputError(f"{root}: cache folder matches the file pattern of an input of catalog "
+                                 f"{cat.path.name} ({os.path.basename(pat)!r}); choose another folder")
 
 
 def inputs_digest(cat, *, root: Path | None = None, options: dict | None = None) -> str:
@@ -563,6 +593,7 @@ def cached_series(cat, build: Callable[[], object], *, cache_dir=None, use_cache
     if not use_cache:
         return build()
     root = cache_root(cache_dir)
+    check_root_for(cat, root)
     key = inputs_digest(cat, root=root, options=options)
     path = root / f"series-{key}.wbxc"
     if path.exists():

@@ -362,8 +362,12 @@ def main(argv=None) -> int:
             warnings.filterwarnings("ignore", category=FutureWarning)
             warnings.formatwarning = lambda m, c, *a, **k: f"wbexplore: warning: {m}\n"
             if hasattr(args, "cache_dir"):  # an unusable cache folder is bad input, found before any work
-                from .cache import cache_root
+                from .cache import cache_root, check_root_for
 
+                if getattr(args, "catalog", None) and args.cache_dir:  # never inside the study's inputs
+                    from .io.catalog import open_catalog
+
+                    check_root_for(open_catalog(args.catalog), Path(args.cache_dir))
                 cache_root(args.cache_dir)
             return _COMMANDS[args.command](args)
     except InputError as exc:

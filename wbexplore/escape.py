@@ -82,5 +82,11 @@ def public_message(message, root=None, *, max_len: int = 400) -> str:
     """
     text = " ".join(str(message).split())
     text = _FILE_CONTENT.sub(" (contents not shown)", text)
+    if root is not None:
+        # the study folder first, whole: a folder name with a space would stop the pattern below halfway
+        for r in dict.fromkeys((str(root), os.path.realpath(str(root)))):
+            r = " ".join(r.split()).rstrip("/")
+            if r:
+                text = text.replace(r + "/", "").replace(r, ".")
     text = _ABS_PATH.sub(lambda m: study_relative(m.group(1), root), text)
     return text if len(text) <= max_len else text[: max_len - 3] + "..."

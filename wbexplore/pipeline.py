@@ -166,6 +166,8 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
     if scheduler is not None and client is None:
         check_scheduler(scheduler)  # before any reading: a wrong address fails in seconds
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
+    if use_cache:
+        _cache.check_root_for(cat, _cache.cache_root(cache_dir))
     gdf = load_basins(cat)
     if basins is not None:
         missing = [b for b in basins if b not in gdf.index]

@@ -112,8 +112,11 @@ def screen_implausible(ds: xr.Dataset) -> tuple[xr.Dataset, list[Implausible]]:
     records = []
     for name, v in ds.data_vars.items():
         comp = v.attrs.get("component")
-        if comp not in BOUNDS or v.dims != ("basin", "time"):
+        if comp not in BOUNDS:
             continue
+        if set(v.dims) != {"basin", "time"}:
+            raise ValueError(f"variable {name!r} ({comp}) has dims {v.dims}, not (basin, time): cannot screen it")
+        v = v.transpose("basin", "time")  # any order screened alike (never skipped)
         a = np.asarray(v.values, dtype=np.float64)
         lo, hi = BOUNDS[comp]
         with np.errstate(invalid="ignore"):

@@ -46,6 +46,8 @@ _DISCHARGE_KEYS = {"path": True, "time_field": True, "station_field": False, "ba
                    "decimal": False, "missing_values": False, "date_format": False, "sheet": False,
                    "stations": False, "min_coverage": False}
 LAYOUTS = ("long", "wide")
+# files GDAL reads beside a GeoTIFF (nodata, scale, masks, overviews): inputs too (writers, caches)
+GEOTIFF_SIDECARS = (".aux.xml", ".ovr", ".msk")
 EXCEL_SUFFIXES = (".xlsx", ".xlsm")
 SUPPORTED_VERSIONS = (1, 2)
 # Extensions to version 1 (optional): description, date_format, time_start, time_step,
@@ -224,7 +226,7 @@ class Catalog:
                 pats.append(full)
             if s.format == "geotiff":
                 stem = full if magic else _glob.escape(full)
-                pats += [stem + ext for ext in (".aux.xml", ".ovr", ".msk")]
+                pats += [stem + ext for ext in GEOTIFF_SIDECARS]
         return tuple(dict.fromkeys(pats))
 
 
