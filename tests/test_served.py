@@ -264,7 +264,13 @@ def _served(study, cache, *extra):
                              str(port), "--cache-dir", str(cache), *extra], stdout=subprocess.PIPE,
                             stderr=subprocess.STDOUT, text=True, env=dict(os.environ, PYTHONWARNINGS="ignore"))
     url = f"http://127.0.0.1:{port}/"
-    _wait_http(url, proc)
+    try:
+        _wait_http(url, proc)
+    except BaseException:
+        from test_browser import _stop
+
+        _stop(proc)  # closes its pipe too (else an unraisable ResourceWarning fails a later test)
+        raise
     return proc, url
 
 

@@ -367,7 +367,12 @@ def main(argv=None) -> int:
                 if getattr(args, "catalog", None) and args.cache_dir:  # never inside the study's inputs
                     from .io.catalog import open_catalog
 
-                    check_root_for(open_catalog(args.catalog), Path(args.cache_dir))
+                    try:
+                        cat = open_catalog(args.catalog)
+                    except InputError:
+                        cat = None  # the command reports it its own way (serve: on the page)
+                    if cat is not None:
+                        check_root_for(cat, Path(args.cache_dir))
                 cache_root(args.cache_dir)
             return _COMMANDS[args.command](args)
     except InputError as exc:
