@@ -12,13 +12,12 @@ import errno
 import hashlib
 import os
 import stat
-import warnings
 from pathlib import Path
 
 import pytest
 
 from conftest import copy_demo
-from wbexplore.cli import main
+from utils import run_cli
 
 SEL = ["--basin", "VEL", "--start", "2003-01", "--end", "2018-12"]
 TRIPLE = ["--P", "heron", "--ET", "tansy", "--TWSA", "quarry"]
@@ -46,11 +45,8 @@ def _tree(root: Path) -> dict[str, str]:
 
 
 def _run(argv, capsys):
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        rc = main([str(a) for a in argv])
-    cap = capsys.readouterr()
-    return rc, cap.err
+    rc, _, err = run_cli(argv, capsys)
+    return rc, err
 
 
 def _assert_one_line_refusal(rc, err):

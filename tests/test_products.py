@@ -12,7 +12,6 @@ import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
-import yaml
 
 from utils import box_basins, lonlat_grid, write_catalog, write_nc, write_tif
 from wbexplore.cli import main

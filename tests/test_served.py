@@ -115,12 +115,7 @@ def test_report_escapes_title_and_name(evil_series, demo_dir, tmp_path):
     from wbexplore.report import report_html
 
     study = copy_demo(demo_dir, tmp_path)
-    cat_text = (study / "catalog.yaml").read_text()
-    (study / "catalog.yaml").write_text(cat_text.replace("title: Quessary uplands demo study (invented data)",
-                                                         f"title: '{EVIL}'"))
-    b = json.loads((study / "basins.geojson").read_text())
-    b["features"][0]["properties"]["name"] = EVIL
-    (study / "basins.geojson").write_text(json.dumps(b))
+    _inject(study)
     bid = str(evil_series["basin"].values[0])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import calendar
 import math
-import warnings
 
 import numpy as np
 import pandas as pd
@@ -20,7 +19,7 @@ import yaml
 
 from wbexplore.cli import main
 
-from utils import box_basins, lonlat_grid, write_catalog, write_nc
+from utils import box_basins, lonlat_grid, one_line_error, run_cli, write_catalog, write_nc
 
 # three basins; "0123" and "123" are different gauges and different basins
 IDS = ["0123", "123", "VEL"]
@@ -76,20 +75,8 @@ def _long(daily: pd.DataFrame, stations=("0123", "123")) -> pd.DataFrame:
     return rows
 
 
-def _run(argv, capsys):
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        rc = main([str(a) for a in argv])
-    cap = capsys.readouterr()
-    return rc, cap.out, cap.err
-
-
-def _one_line_error(rc, err):
-    lines = [ln for ln in err.splitlines() if ln.strip()]
-    assert rc == 2, err
-    assert "Traceback" not in err
-    assert len(lines) == 1 and lines[0].startswith("wbexplore: error: "), err
-    return lines[0]
+_run = run_cli
+_one_line_error = one_line_error
 
 
 # --------------------------------------------------------------------------- units (pint, SI arithmetic)

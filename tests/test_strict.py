@@ -19,26 +19,14 @@ import pandas as pd
 import pytest
 import yaml
 
+from utils import one_line_error, run_cli
 from wbexplore.cli import main
 from wbexplore.errors import InputError
 
 
 # --------------------------------------------------------------------------- helpers
-def _run(argv, capsys):
-    """main() in-process; returns (status, stdout, stderr)."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        rc = main([str(a) for a in argv])
-    cap = capsys.readouterr()
-    return rc, cap.out, cap.err
-
-
-def _one_line_error(rc, err):
-    lines = [ln for ln in err.splitlines() if ln.strip()]
-    assert rc == 2, err
-    assert "Traceback" not in err
-    assert len(lines) == 1 and lines[0].startswith("wbexplore: error: "), err
-    return lines[0]
+_run = run_cli
+_one_line_error = one_line_error
 
 
 def _catalog_doc(demo_dir: Path) -> dict:

@@ -81,3 +81,25 @@ def monthly(start, n, how="start"):
     if how == "end":
         return m + pd.offsets.MonthEnd(0)
     return m
+
+
+def run_cli(argv, capsys):
+    """`wbexplore.cli.main` in-process with warnings silenced; returns (status, stdout, stderr)."""
+    import warnings
+
+    from wbexplore.cli import main
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        rc = main([str(a) for a in argv])
+    cap = capsys.readouterr()
+    return rc, cap.out, cap.err
+
+
+def one_line_error(rc, err):
+    """Assert the command-line contract for bad input (exit 2, one line, no traceback); return the line."""
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert rc == 2, err
+    assert "Traceback" not in err
+    assert len(lines) == 1 and lines[0].startswith("wbexplore: error: "), err
+    return lines[0]

@@ -7,7 +7,7 @@ import pandas as pd
 import xarray as xr
 
 from ..errors import InputError
-from .closure import (ENSEMBLE_PREFIX, Selection, _basin_index, _valid, check_lag, month_labels, period_mask,
+from .closure import (ENSEMBLE_PREFIX, Selection, _basin_index, check_lag, month_labels, period_mask,
                       source_ids, water_year, with_ensembles)
 from .metrics import METRICS, check_metric, compute_metrics, sort_key
 from .storage import METHODS, match_window, shift_later, storage_change
