@@ -14,7 +14,6 @@ missing day is NaN, never scaled up.
 
 from __future__ import annotations
 
-import errno
 import re
 import warnings
 from dataclasses import dataclass
@@ -103,15 +102,9 @@ def _fail(spec: SourceSpec, msg: str, path=None) -> None:
 
 def _fail_if_too_many_open(spec: SourceSpec, exc: BaseException) -> None:
     """Running out of file handles is the size of the series, not a fault of the file that hit the limit."""
-    if getattr(exc, "errno", None) != errno.EMFILE and "Too many open files" not in str(exc):
+    if not _out_of_descriptors(exc):
         return
-    try:
-        import resource
-
-        limit = f"the limit is {resource.getrlimit(resource.RLIMIT_NOFILE)[0]}"
-    except (ImportError, OSError):  # pragma: no cover - not a Unix
-        limit = "the limit is lower"
-    _fail(spec, f"field 'path': {len(spec.paths)} files cannot all be open at once ({limit}; "
+    _fail(spec, f"field 'path': {len(spec.paths)} files cannot all be open at once (the limit is {_fd_limit()}; "
                 "raise it with `ulimit -n`, or merge the files)", spec.path_pattern)
 
 
@@ -421,7 +414,6 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
             if _out_of_descriptors(exc):
                 _fail(spec, f"the process ran out of file descriptors while opening file {index + 1} of "
                             f"{len(spec.paths)} (limit {_fd_limit()}; raise it with 'ulimit -n')", path)
-            _fail_if_too_many_open(spec, exc)
             _fail(spec, f"cannot be opened as GeoTIFF ({exc.__class__.__name__})", path)
         return da
 
