@@ -66,13 +66,36 @@ def _nodata(result) -> str | None:
 
 
 def _figure(*, width: int | None, height: int, **kw) -> figure:
-    """A figure that fills the width of its container (``width=None``) or has a fixed width in pixels."""
+    """A figure that fills the width of its container (``width=None``) or has a fixed width in pixels.
+
+    Tools are added as instances: with a tool string, bokeh compares every pair of tools property by
+    property to drop repeats, which was a third of a figure's cost here (cProfile, the demo page).
+    """
+    from bokeh.models import BoxZoomTool, PanTool, ResetTool, SaveTool, WheelZoomTool
     from bokeh.plotting import figure
 
     size = {"sizing_mode": "stretch_width"} if width is None else {"width": width}
-    fig = figure(height=height, toolbar_location="right", tools="pan,wheel_zoom,box_zoom,reset,save", **size, **kw)
+    fig = figure(height=height, toolbar_location="right", tools="", **size, **kw)
+    fig.add_tools(PanTool(), WheelZoomTool(), BoxZoomTool(), ResetTool(), SaveTool())
     fig.toolbar.logo = None
     return fig
+
+
+def _add(fig, glyph, source, *, legend=None):
+    """Draw `glyph` from `source` (one renderer, returned); `legend`: its entry (text, or ``{"field": name}``).
+
+    Unlike the figure's glyph methods, the renderer's selection, non-selection and muted looks are left
+    to bokehjs ("auto") instead of being built as three more glyph models per renderer.
+    """
+    from bokeh.models import GlyphRenderer, Legend, LegendItem
+
+    r = GlyphRenderer(glyph=glyph, data_source=source)
+    fig.renderers.append(r)
+    if legend is not None:
+        if not fig.legend:
+            fig.add_layout(Legend())
+        fig.legend[0].items.append(LegendItem(label=legend, renderers=[r]))
+    return r
 
 
 def _zero_line(fig) -> None:
@@ -99,12 +122,12 @@ class BarsPlot(_Plot):
     """Period means of P (in), ET, Q, dS (out) and the residual (one bar each)."""
 
     def _build(self, width):
-        from bokeh.models import ColumnDataSource, HoverTool
+        from bokeh.models import ColumnDataSource, HoverTool, VBar
 
         self.src = ColumnDataSource({"term": list(TERMS), "value": [0.0] * len(TERMS),
                                      "color": [COLORS[k] for k in TERMS], "role": list(ROLES)})
         self.fig = fig = _figure(width=width, height=280, x_range=list(TERMS))
-        fig.vbar(x="term", top="value", width=0.8, color="color", line_color=None, source=self.src)
+        _add(fig, VBar(x="term", top="value", width=0.8, fill_color={"field": "color"}, line_color=None), self.src)
         _zero_line(fig)
         fig.add_tools(HoverTool(tooltips=[("term", "@term"), ("value", "@value{0.00}"), ("role", "@role")]))
         fig.xgrid.grid_line_color = None
@@ -129,20 +152,27 @@ class ResidualPlot(_Plot):
     """Residual per month with a +/- 2 sigma band, gaps shaded, months beyond 2 sigma marked."""
 
     def _build(self, width):
-        from bokeh.models import ColumnDataSource, HoverTool
+        from bokeh.models import (
+            ColumnDataSource,
+            HoverTool,
+            Line,
+            Scatter,
+            VArea,
+            VStrip,
+        )
 
         empty_t = np.array([], dtype="datetime64[ns]")
         self.src = ColumnDataSource({"month": empty_t, "residual": [], "lo": [], "hi": []})
         self.flag = ColumnDataSource({"month": empty_t, "residual": []})
         self.gaps = ColumnDataSource({"x0": empty_t, "x1": empty_t})
         self.fig = fig = _figure(width=width, height=300, x_axis_type="datetime")
-        fig.vstrip(x0="x0", x1="x1", source=self.gaps, fill_color=COLORS["gap"], fill_alpha=0.45, line_width=0)
-        fig.varea(x="month", y1="lo", y2="hi", source=self.src, fill_color=COLORS["band"], fill_alpha=0.3,
-                  legend_label="± 2 sigma")
-        line = fig.line(x="month", y="residual", source=self.src, line_color=COLORS["residual"], line_width=2,
-                        legend_label="residual")
-        fig.scatter(x="month", y="residual", source=self.flag, marker="x", size=9, line_width=2,
-                    line_color="black", legend_label="beyond 2 sigma")
+        _add(fig, VStrip(x0="x0", x1="x1", fill_color=COLORS["gap"], fill_alpha=0.45, line_width=0), self.gaps)
+        _add(fig, VArea(x="month", y1="lo", y2="hi", fill_color=COLORS["band"], fill_alpha=0.3), self.src,
+             legend="± 2 sigma")
+        line = _add(fig, Line(x="month", y="residual", line_color=COLORS["residual"], line_width=2), self.src,
+                    legend="residual")
+        _add(fig, Scatter(x="month", y="residual", marker="x", size=9, line_width=2, line_color="black"),
+             self.flag, legend="beyond 2 sigma")
         _zero_line(fig)
         fig.add_tools(HoverTool(renderers=[line], tooltips=[("month", "@month{%Y-%m}"), ("residual", "@residual{0.00}")],
                                 formatters={"@month": "datetime"}))
@@ -174,7 +204,7 @@ class ScatterPlot(_Plot):
     """P - ET - dS against gauged Q: months coloured by season, complete years as large marks, 1:1 line."""
 
     def _build(self, width):
-        from bokeh.models import ColumnDataSource, HoverTool
+        from bokeh.models import ColumnDataSource, HoverTool, Line, Scatter
         from bokeh.transform import factor_cmap
 
         self.pts = ColumnDataSource({"Q": [], "Qhat": [], "season": [], "month": []})
@@ -182,11 +212,12 @@ class ScatterPlot(_Plot):
         self.line = ColumnDataSource({"x": [0.0, 1.0], "y": [0.0, 1.0]})
         self.fig = fig = _figure(width=width, height=320)
         seasons = list(SEASON_COLORS)
-        pts = fig.scatter(x="Q", y="Qhat", source=self.pts, size=5, alpha=0.8, legend_field="season",
-                          color=factor_cmap("season", [SEASON_COLORS[k] for k in seasons], seasons))
-        yrs = fig.scatter(x="Q", y="Qhat", source=self.years, marker="square", size=11, line_color="black",
-                          fill_color="black", fill_alpha=0.15, line_width=1.5, legend_label="year (mean month)")
-        fig.line(x="x", y="y", source=self.line, line_color="grey", line_dash="dashed", legend_label="1:1")
+        by_season = factor_cmap("season", [SEASON_COLORS[k] for k in seasons], seasons)
+        pts = _add(fig, Scatter(x="Q", y="Qhat", size=5, fill_color=by_season, line_color=by_season, fill_alpha=0.8,
+                                line_alpha=0.8), self.pts, legend={"field": "season"})
+        yrs = _add(fig, Scatter(x="Q", y="Qhat", marker="square", size=11, line_color="black", fill_color="black",
+                                fill_alpha=0.15, line_width=1.5), self.years, legend="year (mean month)")
+        _add(fig, Line(x="x", y="y", line_color="grey", line_dash="dashed"), self.line, legend="1:1")
         fig.add_tools(HoverTool(renderers=[pts], tooltips=[("month", "@month"), ("season", "@season"),
                                                            ("Q", "@Q{0.00}"), ("P - ET - dS", "@Qhat{0.00}")]),
                       HoverTool(renderers=[yrs], tooltips=[("year", "@year"), ("Q", "@Q{0.00}"),
@@ -265,6 +296,7 @@ class MapPlot(_Plot):
             ColumnDataSource,
             HoverTool,
             LinearColorMapper,
+            Patches,
             TapTool,
         )
         from bokeh.palettes import Viridis256
@@ -275,9 +307,9 @@ class MapPlot(_Plot):
                                      "score": [np.nan] * len(o.basin), "lw": [0.8] * len(o.basin)})
         self.mapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
         self.fig = fig = _figure(width=width, height=360, match_aspect=True, title="Basins (click to select)")
-        fig.patches(xs="xs", ys="ys", source=self.src, fill_color={"field": "score", "transform": self.mapper},
-                    line_color="black", line_width="lw", fill_alpha=0.85, nonselection_fill_alpha=0.85,
-                    nonselection_line_alpha=1.0)
+        outline = Patches(xs="xs", ys="ys", fill_color={"field": "score", "transform": self.mapper},
+                          line_color="black", line_width={"field": "lw"}, fill_alpha=0.85)
+        _add(fig, outline, self.src).nonselection_glyph = outline  # a tapped basin does not fade the others
         self.colorbar = ColorBar(color_mapper=self.mapper, title="best rmse")
         fig.add_layout(self.colorbar, "right")
         fig.add_tools(HoverTool(tooltips=[("basin", "@basin"), ("name", "@name"), ("score", "@score{0.000}"),
@@ -302,16 +334,17 @@ class MultiBasinPlot(_Plot):
     """Long-term P - ET against Q for every basin with the chosen combination (mm/year)."""
 
     def _build(self, width):
-        from bokeh.models import ColumnDataSource, HoverTool, LabelSet
+        from bokeh.models import ColumnDataSource, HoverTool, LabelSet, Line, Scatter
 
         self.src = ColumnDataSource({"Q": [], "P_minus_ET": [], "basin": [], "name": [], "years": []})
         self.line = ColumnDataSource({"x": [0.0, 1.0], "y": [0.0, 1.0]})
         self.fig = fig = _figure(width=width, height=300)
-        pts = fig.scatter(x="Q", y="P_minus_ET", source=self.src, size=10, color=COLORS["P"])
+        pts = _add(fig, Scatter(x="Q", y="P_minus_ET", size=10, fill_color=COLORS["P"], line_color=COLORS["P"]),
+                   self.src)
         self.labels = LabelSet(x="Q", y="P_minus_ET", text="basin", source=self.src, text_font_size="9pt",
                                 y_offset=6, text_align="center")
         fig.add_layout(self.labels)
-        fig.line(x="x", y="y", source=self.line, line_color="grey", line_dash="dashed")
+        _add(fig, Line(x="x", y="y", line_color="grey", line_dash="dashed"), self.line)
         fig.add_tools(HoverTool(renderers=[pts], tooltips=[("basin", "@basin"), ("name", "@name"),
                                                            ("years", "@years"), ("Q", "@Q{0.0}"),
                                                            ("P - ET", "@P_minus_ET{0.0}")]))
