@@ -33,27 +33,63 @@ ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--
         "--disable-component-update", "--disable-sync"]
 
 
-def per_session_server_cost(catalog, cache, n=5):
-    """Seconds the server spends building one session's page (median of n), fresh vs shared results."""
+def _median(fn, n):
+    fn()
+    times = []
+    for _ in range(n):
+        t = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t)
+    return statistics.median(times)
+
+
+def per_session_server_cost(catalog, cache, n=7):
+    """Seconds the server spends on one session's page (median of n): building its bokeh document and
+    serialising it (what the websocket's PULL-DOC sends), with every result recomputed and with the
+    server's shared results; then each view alone (its figure built, filled and turned into models)."""
     import panel as pn
     from bokeh.document import Document
 
+    from wbexplore import plots
     from wbexplore.explorer.app import Explorer, load_state
     from wbexplore.explorer.state import ClosureState
 
     pn.extension("tabulator")
     base = load_state(catalog, cache_dir=cache)
+    outlines = plots.basin_outlines(base.basins)
     Explorer(base).panel().get_root(Document())  # warm imports and the shared memo
     out = {}
-    for label, memo in (("own results (each session recomputes)", None), ("shared results", base._memo)):
-        times = []
-        for _ in range(n):
-            t = time.perf_counter()
-            st = ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path, title=base.title,
-                              memo=memo)
-            Explorer(st).panel().get_root(Document())
-            times.append(time.perf_counter() - t)
-        out[label] = statistics.median(times)
+
+    def state(memo):
+        return ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path, title=base.title,
+                            memo=memo)
+
+    def page(memo):
+        doc = Document()
+        doc.add_root(Explorer(state(memo), outlines=outlines).panel().get_root(doc))
+        doc.to_json()
+
+    out["page, own results (each session recomputes)"] = _median(lambda: page({}), n)
+    out["page, shared results"] = _median(lambda: page(base._memo), n)
+    st = state(base._memo)
+    res = st.result()
+    ex = Explorer(st, outlines=outlines)
+
+    def view(make, fill):
+        def run():
+            p = make()
+            fill(p)
+            pn.pane.Bokeh(p.fig).get_root(Document())
+        return run
+
+    views = {"map": view(lambda: plots.MapPlot(outlines), lambda p: p.update(st.basin_scores(), st.basin, st.metric)),
+             "bars": view(plots.BarsPlot, lambda p: p.update(res)),
+             "residual": view(plots.ResidualPlot, lambda p: p.update(res)),
+             "scatter": view(plots.ScatterPlot, lambda p: p.update(res)),
+             "multi-basin": view(plots.MultiBasinPlot, lambda p: p.update(st.multi_basin())),
+             "ranking table": lambda: pn.Column(ex.table).get_root(Document())}
+    for name, fn in views.items():
+        out[f"view {name}"] = _median(fn, n)
     return out
 
 
@@ -117,7 +153,8 @@ async def server_sessions(url, n):
         t = time.perf_counter()
         html = (await http.fetch(url, request_timeout=300)).body.decode()
         token = re.search(r'"token":"([^"]+)"', html).group(1)
-        ws = await websocket_connect(HTTPRequest(f"ws://{host}/ws", headers={"Origin": f"http://{host}"}),
+        ws = await websocket_connect(HTTPRequest(f"ws://{host}/ws", headers={"Origin": f"http://{host}"},
+                                                 connect_timeout=300, request_timeout=300),
                                      subprotocols=["bokeh", token])
 
         async def read_message():
@@ -218,7 +255,7 @@ def main():
         if not a.no_cost:
             cost = per_session_server_cost(info.catalog, cache)
             for k, v in cost.items():
-                print(f"server work per session with every plot drawn, {k}: {v * 1e3:.0f} ms", flush=True)
+                print(f"server work per session, {k}: {v * 1e3:.0f} ms", flush=True)
         port = _free_port()
         clients = [light] + ([] if a.light_only else [lambda url: asyncio.run(open_sessions(url, a.sessions))])
         times = _run_sessions([sys.executable, "-m", "wbexplore.cli", "serve", str(info.catalog), "--port",
