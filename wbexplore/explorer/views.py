@@ -1,41 +1,54 @@
 """Views: the explorer's text panes (summary, warnings) and its plots, drawn by `wbexplore.plots`.
 
 Nothing here computes a balance term: every function takes a `SelectionResult` (or the series)
-and formats it. The plots are shared with the HTML report and live in `wbexplore.plots`; their
-one-shot functions are re-exported here for notebooks (``views.multi_basin(table)``).
+and formats it. The plots are shared with the HTML report and live in `wbexplore.plots`; the
+functions here hand them to a notebook cell as panel panes (a bare bokeh figure in a cell shows
+its properties, not the plot): ``views.multi_basin(table)``.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from .. import plots
 from ..escape import html_text, md_text
-from ..plots import (
-    COLORS,
-    SEASON_COLORS,
-    UNIT_LABEL,
-    balance_scatter,
-    basin_map,
-    component_bars,
-    multi_basin,
-    residual_series,
-)
+from ..plots import COLORS, SEASON_COLORS, UNIT_LABEL
 
-__all__ = [
-    "COLORS",
-    "SEASON_COLORS",
-    "UNIT_LABEL",
-    "balance_scatter",
-    "basin_map",
-    "component_bars",
-    "multi_basin",
-    "residual_series",
-    "summary_html",
-    "warnings_for",
-    "warnings_markdown",
-]
+__all__ = ["COLORS", "SEASON_COLORS", "UNIT_LABEL", "balance_scatter", "basin_map", "component_bars",
+           "multi_basin", "residual_series", "summary_html", "warnings_for", "warnings_markdown"]
 
 GRAVIMETRY_MIN_KM2 = 200_000  # rule of thumb for satellite-gravimetry storage (e.g. Longuevergne et al. 2010, WRR)
+
+
+def _pane(fig):
+    import panel as pn
+
+    return pn.pane.Bokeh(fig, sizing_mode="stretch_width")
+
+
+def component_bars(result, unit_system: str = "mm"):
+    """`plots.BarsPlot` of one selection, as a panel pane."""
+    return _pane(plots.component_bars(result, unit_system))
+
+
+def residual_series(result, unit_system: str = "mm"):
+    """`plots.ResidualPlot` of one selection, as a panel pane."""
+    return _pane(plots.residual_series(result, unit_system))
+
+
+def balance_scatter(result, unit_system: str = "mm"):
+    """`plots.ScatterPlot` of one selection, as a panel pane."""
+    return _pane(plots.balance_scatter(result, unit_system))
+
+
+def basin_map(basins, scores, selected: str | None = None, metric: str = "rmse"):
+    """`plots.MapPlot` of the basins coloured by their best `metric`, as a panel pane."""
+    return _pane(plots.basin_map(basins, scores, selected, metric))
+
+
+def multi_basin(table, unit: str = "mm/year"):
+    """`plots.MultiBasinPlot` of a `long_term_all` table, as a panel pane."""
+    return _pane(plots.multi_basin(table, unit))
 
 
 def warnings_markdown(result, series) -> str:
