@@ -1,14 +1,26 @@
 """Served-page benchmark: many visitors opening the explorer at once.
 
 Target (issue 11): with 20 sessions opened at the same moment, every page is rendered within 3 s.
-Starts `wbexplore serve` on the demo scenario (series cache warmed first, as on a running server),
-opens the sessions concurrently as pages of Debian's chromium (Playwright's async API, one browser,
-one context per visitor), and times each from its request to a rendered page: the summary pane,
-the ranking table rows and the map's canvas on screen. Also times, in this process, what the server
-does per session (state + widgets + bokeh models), with the server's shared results and without.
+Starts `wbexplore serve` on the demo scenario (series cache warmed first, as on a running server) and
+opens the sessions concurrently twice:
+
+- from a light client (`server_sessions`): GET the page and pull its document over the websocket, as
+  bokeh's client does, without parsing or drawing: the server's own time to serve every page;
+- as pages of Debian's chromium (Playwright's async API, one browser, one context per visitor), timed
+  from the request to a rendered page: the summary pane, the ranking table rows, then every plot's canvas.
+  On this 2-core machine chromium shares the cores with the server: `--floor` measures the same on a
+  one-Markdown-pane panel page, the framework's and the browser's own floor.
+
+Also times, in this process, what the server does per session (the document built and serialised, with
+the server's shared results and without) and each view alone.
 
     python benchmarks/serve.py               # 20 sessions
     python benchmarks/serve.py --sessions 5
+    python benchmarks/serve.py --floor       # the one-pane page instead
+    python benchmarks/serve.py --light-only  # no chromium
+
+Measured and left out (see DEVELOPERS.md): `num_procs=2` (slower: a websocket that lands on the other
+worker builds its session again) and panel's defer_load (with 20 sessions a deferred plot stayed undrawn).
 """
 
 from __future__ import annotations
