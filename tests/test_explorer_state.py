@@ -72,8 +72,8 @@ def test_no_valid_months_explained(state):
     from wbexplore.explorer import views
 
     for fn in (views.component_bars, views.residual_series, views.balance_scatter):
-        el = fn(res)  # same structure as with data, the explanation in the title
-        title = el.opts.get().kwargs["title"]
+        el = fn(res).object  # same figure as with data, the explanation in the title
+        title = el.title.text
         assert title.startswith("No valid month") and "no month" in title
     r = state.ranking()
     assert (~r[r["TWSA"] == "cairn"]["scored"]).all()

@@ -1,7 +1,7 @@
 """Self-contained HTML report of one selection (no network needed to view it).
 
-Bokeh figures rendered from the explorer's views with their JavaScript inlined, plus
-the selection's metrics, the ranking table, method notes and the caution.
+The explorer's bokeh figures (`wbexplore.plots`, drawn by the same code) with their JavaScript
+inlined, plus the selection's metrics, the ranking table, method notes and the caution.
 """
 
 from __future__ import annotations
@@ -44,16 +44,15 @@ def _fmt(v, spec=".3f"):
 
 
 def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
-    import holoviews as hv
     from bokeh.embed import file_html
     from bokeh.layouts import column
     from bokeh.models import Div
     from bokeh.resources import INLINE
 
+    from . import plots
     from .explorer import views
     from .pipeline import load_basins
 
-    hv.extension("bokeh", logo=False)
     res = compute_selection(ds, sel)
     ranking = rank(ds, sel.basin, start=sel.start, end=sel.end, storage_change=sel.storage_change,
                    matched=sel.matched, lag=sel.lag, by=by)
@@ -65,12 +64,10 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
     best = rank_all(ds, by=by, start=sel.start, end=sel.end, storage_change=sel.storage_change,
                     matched=sel.matched)
     scores = best[best["rank"] == 1].set_index("basin")[by] if len(best) else pd.Series(dtype=float)
-    figs = []
-    bmap = views.basin_map(basins, scores, sel.basin, by).opts(title=f"Basins coloured by best {by}; {sel.basin} outlined")
-    for obj in (bmap, views.component_bars(res),
-                views.residual_series(res), views.balance_scatter(res)):
-        o = obj.opts(responsive=False, width=950, clone=True)
-        figs.append(hv.render(o, backend="bokeh"))
+    figs = [plots.basin_map(basins, scores, sel.basin, by, width=950,
+                            title=f"Basins coloured by best {by}; {sel.basin} outlined"),
+            plots.component_bars(res, width=950), plots.residual_series(res, width=950),
+            plots.balance_scatter(res, width=950)]
     m = res.metrics
     mrows = "".join(f"<tr><td>{html_text(k)}</td><td style='text-align:right'>{html_text(_fmt(v, '.4g'))}</td></tr>" for k, v in m.items())
     cols = ["rank", "P", "ET", "TWSA", "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid"]
@@ -93,7 +90,7 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
             f"<h2>Method notes</h2>{notes}")
     layout = column(Div(text=head, width=950), *figs, Div(text=tail, width=950))
     out = file_html(layout, resources=INLINE, title=f"wbexplore report {sel.basin}")
-    # panel (imported by holoviews) registers a server-relative module shim, and once a Tabulator
+    # panel (once imported in the process) registers a server-relative module shim, and once a Tabulator
     # widget exists in the process (an explorer in the same notebook) its stylesheet: a standalone
     # file cannot load them and does not need them: drop both so the file makes no request at all
     out = re.sub(r'<script src="static/extensions/[^"]*"></script>\n?', "", out)

@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from .. import plots
 from ..errors import InputError
 from ..escape import md_text, public_message, safe_filename, study_relative
 from ..io.writers import CAUTION
@@ -52,16 +53,16 @@ class Explorer:
     """Widgets and views around one `ClosureState`.
 
     `export_dir` is where the export and report buttons write (default ``exports/`` beside the
-    catalog); the page cannot change it. `defer_plots` draws the plots after the page is shown
-    (served pages).
+    catalog); the page cannot change it. `outlines`: the basins' `plots.Outlines` when the caller
+    already has them (a served page computes them once for every session).
     """
 
     def __init__(self, state: ClosureState, *, export_dir: str | os.PathLike | None = None,
-                 defer_plots: bool = False):
+                 outlines: plots.Outlines | None = None):
         import panel as pn
 
         self.state = state
-        self.defer_plots = defer_plots
+        self.outlines = plots.basin_outlines(state.basins) if outlines is None else outlines
         s = state
         self.study_dir = Path(s.catalog_path).resolve().parent if s.catalog_path else None
         self.export_dir = default_export_dir(s.catalog_path, export_dir)
@@ -217,42 +218,23 @@ class Explorer:
         s = self.state
         return pn.bind(lambda *a: fn(), *[s.param[d] for d in deps])
 
-    def _dmap(self, fn, deps=_DEPS):
-        """A DynamicMap: later changes update the plot's data in place instead of re-rendering it."""
-        import holoviews as hv
-
-        return hv.DynamicMap(self._bound(fn, deps))
-
-    def _map(self):
-        import holoviews as hv
-
-        s = self.state
-        dmap = self._dmap(lambda: views.basin_map(s.basins, s.basin_scores(), s.basin, s.metric), _MAP_DEPS)
-        tap = hv.streams.Tap(source=dmap)
-
-        def on_tap(*_):
-            if tap.x is not None and tap.y is not None:
-                s.pick_basin_at(tap.x, tap.y)
-
-        tap.param.watch(on_tap, ["x", "y"])
-        self._tap = tap
-        return dmap
-
-    def _plot(self, make_dmap, css: str):
-        """A plot pane; with `defer_plots`, drawn just after the page is on screen.
-
-        Drawing the five plots is most of the server's work for a new page (holoviews to bokeh); a
-        served page defers it so every visitor gets the controls, the summary and the ranking at
-        once, and the plots follow as they are drawn.
-        """
+    def _view(self, plot, draw, deps, css: str):
+        """A plot pane: the figure is built once per session and `draw(plot)` refills its sources in place
+        when one of `deps` changes (bokeh then sends the new columns, not a new figure)."""
         import panel as pn
 
-        def make():
-            return pn.pane.HoloViews(make_dmap(), linked_axes=False, sizing_mode="stretch_width", css_classes=[css])
+        plot.fig.css_classes = [css]
+        draw(plot)
+        self.state.param.watch(lambda *events: draw(plot), list(deps))
+        return pn.pane.Bokeh(plot.fig, sizing_mode="stretch_width", css_classes=[css])
 
-        if not self.defer_plots:
-            return make()
-        return pn.panel(make, defer_load=True, sizing_mode="stretch_width", min_height=280)
+    def _map(self):
+        from bokeh.events import Tap
+
+        s = self.state
+        m = plots.MapPlot(self.outlines)
+        m.fig.on_event(Tap, lambda ev: s.pick_basin_at(ev.x, ev.y))
+        return self._view(m, lambda p: p.update(s.basin_scores(), s.basin, s.metric), _MAP_DEPS, "wbx-map")
 
     def panel(self):
         """The page layout (a panel object)."""
@@ -260,17 +242,16 @@ class Explorer:
 
         s = self.state
         res = lambda: s.result()  # noqa: E731
-        plot = self._plot
-        bars = plot(lambda: self._dmap(lambda: views.component_bars(res(), s.unit_system), _SEL_DEPS), "wbx-bars")
-        resid = plot(lambda: self._dmap(lambda: views.residual_series(res(), s.unit_system), _SEL_DEPS),
-                     "wbx-residual")
-        scatter = plot(lambda: self._dmap(lambda: views.balance_scatter(res(), s.unit_system), _SEL_DEPS),
-                       "wbx-scatter")
+        bars = self._view(plots.BarsPlot(), lambda p: p.update(res(), s.unit_system), _SEL_DEPS, "wbx-bars")
+        resid = self._view(plots.ResidualPlot(), lambda p: p.update(res(), s.unit_system), _SEL_DEPS,
+                           "wbx-residual")
+        scatter = self._view(plots.ScatterPlot(), lambda p: p.update(res(), s.unit_system), _SEL_DEPS,
+                             "wbx-scatter")
         summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
                                css_classes=["wbx-summary-pane"], width=260)
         warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.series), _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
-        multi = plot(lambda: self._dmap(lambda: views.multi_basin(s.multi_basin()), _MULTI_DEPS), "wbx-multi")
+        multi = self._view(plots.MultiBasinPlot(), lambda p: p.update(s.multi_basin()), _MULTI_DEPS, "wbx-multi")
         controls = pn.Column(
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search, self.w_src["P"], self.w_src["ET"],
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
@@ -279,7 +260,7 @@ class Explorer:
             pn.pane.Markdown("### Export"), self.export_where, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
         views_col = pn.Column(
-            pn.Row(plot(self._map, "wbx-map"), bars,
+            pn.Row(self._map(), bars,
                    sizing_mode="stretch_width"),
             resid,
             pn.Row(scatter, multi, sizing_mode="stretch_width"),
@@ -362,6 +343,10 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
         err = None
     except InputError as exc:
         base, err = None, str(exc)
+    outlines = None
+    if base is not None:
+        outlines = plots.basin_outlines(base.basins)
+        base.view_data()  # the first page's results, computed before anyone waits for them
 
     def page():
         if err:
@@ -370,7 +355,7 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
         # computed results are the server's (read-only data, one thread serves all sessions)
         st = ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path, title=base.title,
                           memo=base._memo)
-        return Explorer(st, export_dir=out_dir).panel()  # defer_plots: unproven with 20 sessions, see benchmarks/serve.py
+        return Explorer(st, export_dir=out_dir, outlines=outlines).panel()
 
     print(f"wbexplore explorer on http://{address}:{port}/  (Ctrl+C to stop); exports go to "
           f"{out_dir}", flush=True)

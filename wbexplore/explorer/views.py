@@ -1,190 +1,54 @@
-"""Views: pure drawing functions (holoviews, bokeh backend) of numbers computed in `balance/`.
+"""Views: the explorer's text panes (summary, warnings) and its plots, drawn by `wbexplore.plots`.
 
-Nothing here computes a balance term: every function takes a `SelectionResult`, a ranking
-table or a per-basin table and draws it. Colours: the Okabe-Ito colour-blind-safe palette,
-one fixed colour per component throughout.
+Nothing here computes a balance term: every function takes a `SelectionResult` (or the series)
+and formats it. The plots are shared with the HTML report and live in `wbexplore.plots`; the
+functions here hand them to a notebook cell as panel panes (a bare bokeh figure in a cell shows
+its properties, not the plot): ``views.multi_basin(table)``.
 """
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
-
 import numpy as np
-import pandas as pd
 
-from ..balance.closure import to_unit_system
+from .. import plots
 from ..escape import html_text, md_text
+from ..plots import COLORS, SEASON_COLORS, UNIT_LABEL
 
-if TYPE_CHECKING:  # pragma: no cover
-    import holoviews as hv
+__all__ = ["COLORS", "SEASON_COLORS", "UNIT_LABEL", "balance_scatter", "basin_map", "component_bars",
+           "multi_basin", "residual_series", "summary_html", "warnings_for", "warnings_markdown"]
 
-__all__ = ["COLORS", "SEASON_COLORS", "UNIT_LABEL", "component_bars", "residual_series", "balance_scatter",
-           "basin_map", "multi_basin", "summary_html", "warnings_for", "warnings_markdown", "explain"]
-
-COLORS = {"P": "#0072B2", "ET": "#009E73", "Q": "#56B4E9", "dS": "#CC79A7", "residual": "#D55E00",
-          "band": "#E69F00", "gap": "#BBBBBB"}
-SEASON_COLORS = {"DJF": "#0072B2", "MAM": "#009E73", "JJA": "#E69F00", "SON": "#CC79A7"}
-UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s"}
 GRAVIMETRY_MIN_KM2 = 200_000  # rule of thumb for satellite-gravimetry storage (e.g. Longuevergne et al. 2010, WRR)
 
 
-def _hv():
-    import holoviews as hv
+def _pane(fig):
+    import panel as pn
 
-    if not hv.Store.current_backend or "bokeh" not in hv.Store.renderers:
-        hv.extension("bokeh", logo=False)
-    return hv
-
-
-def _short(message: str, n: int = 110) -> str:
-    return message if len(message) <= n else message[: n - 3] + "..."
-
-
-def explain(message: str, *, title: str = ""):
-    """A standalone placeholder that says why there is nothing to draw."""
-    hv = _hv()
-    return hv.Text(0.5, 0.5, message).opts(xaxis=None, yaxis=None, toolbar=None, responsive=True, height=260,
-                                            title=title, fontsize={"text": 11}, show_frame=False)
-
-
-def _nodata(result) -> str | None:
-    if result.frame["valid"].any():
-        return None
-    return "No valid month: " + _short(result.messages[0] if result.messages else "nothing to compare")
-
-
-# Every view returns the same element structure with or without data (an empty frame carries the
-# explanation in its title), so the explorer can update them in place as DynamicMaps.
+    return pn.pane.Bokeh(fig, sizing_mode="stretch_width")
 
 
 def component_bars(result, unit_system: str = "mm"):
-    """Period means of P (in), ET, Q, dS (out) and the residual."""
-    hv = _hv()
-    f = to_unit_system(result.frame, result.area_km2, unit_system)
-    ok = result.frame["valid"].values
-    terms = ["P", "ET", "Q", "dS", "residual"]
-    vals = [float(f.loc[ok, k].mean()) if ok.any() else 0.0 for k in terms]
-    df = pd.DataFrame({"term": terms, "value": vals, "color": [COLORS[k] for k in terms],
-                       "role": ["inflow", "outflow", "outflow", "storage", "imbalance"]})
-    unit = UNIT_LABEL[unit_system]
-    msg = _nodata(result)
-    bars = hv.Bars(df, kdims=["term"], vdims=["value", "color", "role"]).opts(
-        color="color", responsive=True, height=280, framewise=True,
-        ylabel=f"mean over valid months ({unit})", xlabel="", tools=["hover"], line_color=None)
-    return (bars * hv.HLine(0).opts(color="black", line_width=1)).opts(
-        title=msg or f"Component means, {result.n_valid} valid months")
-
-
-def _runs(mask: np.ndarray):
-    idx = np.flatnonzero(mask)
-    if idx.size == 0:
-        return []
-    splits = np.flatnonzero(np.diff(idx) > 1) + 1
-    return [(r[0], r[-1]) for r in np.split(idx, splits)]
+    """`plots.BarsPlot` of one selection, as a panel pane."""
+    return _pane(plots.component_bars(result, unit_system))
 
 
 def residual_series(result, unit_system: str = "mm"):
-    """Residual per month with a +/- 2 sigma band, gaps shaded, months beyond 2 sigma marked."""
-    hv = _hv()
-    f = to_unit_system(result.frame, result.area_km2, unit_system)
-    t = pd.DatetimeIndex(f.index)
-    unit = UNIT_LABEL[unit_system]
-    r = f["residual"].values
-    s = f["sigma_residual"].values
-    df = pd.DataFrame({"month": t, "residual": r, "lo": r - 2 * s, "hi": r + 2 * s})
-    band = hv.Area(df, "month", ["lo", "hi"], label="± 2 sigma").opts(color=COLORS["band"], alpha=0.3,
-                                                                      line_width=0, framewise=True)
-    curve = hv.Curve(df, "month", "residual", label="residual").opts(color=COLORS["residual"], line_width=2,
-                                                                      tools=["hover"], framewise=True)
-    flag = result.frame["beyond_2sigma"].values
-    pts = hv.Scatter(df[flag], "month", "residual", label="beyond 2 sigma").opts(
-        color="black", marker="x", size=9, line_width=2, framewise=True)
-    gaps = ~result.frame["valid"].values
-    spans = pd.DataFrame([(t[a] - pd.Timedelta(days=15), t[b] + pd.Timedelta(days=15)) for a, b in _runs(gaps)],
-                         columns=["x0", "x1"])
-    if spans.empty:
-        spans = pd.DataFrame({"x0": pd.to_datetime([]), "x1": pd.to_datetime([])})
-    vsp = hv.VSpans(spans, kdims=["x0", "x1"]).opts(color=COLORS["gap"], alpha=0.45, line_width=0,
-                                                    framewise=True)
-    sel = result.selection
-    msg = _nodata(result)
-    overlay = vsp * band * curve * pts * hv.HLine(0).opts(color="black", line_width=1)
-    return overlay.opts(responsive=True, height=300, ylabel=f"P - ET - Q - dS ({unit})",
-                        xlabel="month", title=msg or f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)",
-                        legend_position="top_left", show_grid=True)
-
-
-def _season(month: np.ndarray) -> np.ndarray:
-    return np.array(["DJF", "DJF", "MAM", "MAM", "MAM", "JJA", "JJA", "JJA", "SON", "SON", "SON", "DJF"])[month - 1]
+    """`plots.ResidualPlot` of one selection, as a panel pane."""
+    return _pane(plots.residual_series(result, unit_system))
 
 
 def balance_scatter(result, unit_system: str = "mm"):
-    """P - ET - dS against gauged Q: months coloured by season, complete years as large marks, 1:1 line."""
-    hv = _hv()
-    fr = result.frame
-    f = to_unit_system(fr, result.area_km2, unit_system)
-    ok = fr["valid"].values
-    t = pd.DatetimeIndex(f.index)
-    df = pd.DataFrame({"Q": f["Q"].values, "Qhat": f["Qhat"].values, "season": _season(t.month.values),
-                       "month": [f"{m:%Y-%m}" for m in t]})[ok]
-    unit = UNIT_LABEL[unit_system]
-    pts = hv.Scatter(df, "Q", ["Qhat", "season", "month"]).opts(
-        color="season", cmap=SEASON_COLORS, size=5, alpha=0.8, tools=["hover"], legend_position="bottom_right",
-        framewise=True)
-    years = t.year.values
-    ann = []
-    for y in np.unique(years):
-        m = years == y
-        if m.sum() == 12 and ok[m].all():
-            ann.append((y, f["Q"].values[m].mean(), f["Qhat"].values[m].mean()))
-    a = pd.DataFrame(ann, columns=["year", "Q", "Qhat"])  # annual totals drawn as their monthly mean
-    yr = hv.Scatter(a, "Q", ["Qhat", "year"], label="year (mean month)").opts(
-        color="black", marker="square", size=11, fill_alpha=0.15, line_width=1.5, tools=["hover"], framewise=True)
-    vals = df[["Q", "Qhat"]].values
-    lim = [float(np.nanmin(vals)), float(np.nanmax(vals))] if len(df) else [0.0, 1.0]
-    line = hv.Curve([(lim[0], lim[0]), (lim[1], lim[1])], label="1:1").opts(color="grey", line_dash="dashed",
-                                                                             framewise=True)
-    m = result.metrics
-    msg = _nodata(result)
-    title = msg or f"KGE {m['kge']:.2f}  NSE {m['nse']:.2f}  r {m['r']:.2f}  PBIAS {m['pbias']:.1f}%"
-    return (pts * yr * line).opts(responsive=True, height=320, xlabel=f"gauged Q ({unit})",
-                                  ylabel=f"P - ET - dS ({unit})", title=title, show_grid=True)
+    """`plots.ScatterPlot` of one selection, as a panel pane."""
+    return _pane(plots.balance_scatter(result, unit_system))
 
 
-def basin_map(basins, scores: pd.Series, selected: str | None = None, metric: str = "rmse"):
-    """Basin outlines on lon/lat axes (no tiles) coloured by their best closure score; the selected one outlined."""
-    hv = _hv()
-    polys = []
-    order = basins.sort_values("area_km2", ascending=False)  # small (nested) basins drawn last, on top
-    for bid, row in order.iterrows():
-        geoms = getattr(row.geometry, "geoms", [row.geometry])
-        for g in geoms:
-            x, y = g.exterior.coords.xy
-            polys.append({"x": np.asarray(x), "y": np.asarray(y), "basin": str(bid), "name": row["name"],
-                          "score": float(scores.get(bid, np.nan)), "area_km2": float(row["area_km2"]),
-                          "lw": 3.0 if str(bid) == selected else 0.8})
-    p = hv.Polygons(polys, vdims=["score", "basin", "name", "area_km2", "lw"]).opts(
-        color="score", cmap="viridis_r" if metric in ("rmse", "mae", "annual_rmse") else "viridis",
-        colorbar=True, clabel=f"best {metric}", line_color="black", line_width="lw", alpha=0.85,
-        tools=["hover", "tap"], responsive=True, height=360, xlabel="longitude (deg E)",
-        ylabel="latitude (deg N)", title="Basins (click to select)", data_aspect=1, nonselection_alpha=0.85)
-    return p
+def basin_map(basins, scores, selected: str | None = None, metric: str = "rmse"):
+    """`plots.MapPlot` of the basins coloured by their best `metric`, as a panel pane."""
+    return _pane(plots.basin_map(basins, scores, selected, metric))
 
 
-def multi_basin(table: pd.DataFrame, unit: str = "mm/year"):
-    """Long-term P - ET against Q for every basin with the chosen combination."""
-    hv = _hv()
-    t = table.dropna(subset=["P_minus_ET", "Q"]) if len(table) else table
-    top = float(np.nanmax(t[["P_minus_ET", "Q"]].values)) * 1.1 if len(t) else 1.0
-    pts = hv.Scatter(t, "Q", ["P_minus_ET", "basin", "name", "years"]).opts(
-        size=10, color=COLORS["P"], tools=["hover"], framewise=True)
-    labels = hv.Labels(t, ["Q", "P_minus_ET"], "basin").opts(text_font_size="9pt", yoffset=top * 0.03,
-                                                             framewise=True)
-    line = hv.Curve([(0.0, 0.0), (top, top)]).opts(color="grey", line_dash="dashed", framewise=True)
-    title = ("All basins, long-term means (complete years)" if len(t)
-             else "No basin has complete years for this combination")
-    return (pts * labels * line).opts(responsive=True, height=300, xlabel=f"gauged Q ({unit})",
-                                      ylabel=f"P - ET ({unit})", title=title, show_grid=True)
+def multi_basin(table, unit: str = "mm/year"):
+    """`plots.MultiBasinPlot` of a `long_term_all` table, as a panel pane."""
+    return _pane(plots.multi_basin(table, unit))
 
 
 def warnings_markdown(result, series) -> str:
