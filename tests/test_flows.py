@@ -263,6 +263,21 @@ def test_whole_series_carry_flows(study):
     assert "unit" not in ds.attrs and "flow_upstream_UP" not in ds
 
 
+def test_flow_into_an_upstream_basin_enters_the_whole_downstream_basin(study):
+    """A transfer released in UP reaches OUT's outlet: OUT's whole balance holds the same volume (over
+    OUT's area); OUT's incremental balance does not (it arrives in UP's gauged outflow)."""
+    p = _edit(study, lambda d: d["flows"][1].update(basin="UP"), name="catalog.yaml")
+    whole = _extract(study)
+    v = whole["flow_trf"]
+    a = whole["basin_area_km2"]
+    np.testing.assert_allclose(v.sel(basin="OUT") * a.sel(basin="OUT"), v.sel(basin="UP") * a.sel(basin="UP"),
+                               rtol=1e-12)
+    assert v.attrs["basin"] == "UP" and v.attrs["downstream_basins"] == "OUT"
+    assert (whole["flow_irr"].sel(basin="UP") == 0).all()  # a flow of OUT does not enter UP
+    inc = _extract(study, incremental=True)
+    assert (inc["flow_trf"] == 0).all() and p.name == "catalog.yaml"
+
+
 def test_incremental_series(study):
     whole = _extract(study)
     inc = _extract(study, incremental=True)

@@ -333,7 +333,7 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta, *, incremental: bool = F
     if incremental:
         _incremental_terms(ds, cat, whole, gdf, qds["discharge"] if q is not None else None, full, flows)
     elif flows is not None:
-        _add_flows(ds, flows.reindex(basin=gdf.index.values), full)
+        _add_flows(ds, _downstream(flows, whole).reindex(basin=gdf.index.values), full)
     ds.attrs = {
         "Conventions": "CF-1.8",
         "title": cat.title,
@@ -360,14 +360,39 @@ def _over_units(da: xr.DataArray, whole, units) -> xr.DataArray:
     return (da.reindex(basin=ids) * ratio).assign_attrs(da.attrs)
 
 
+def _downstream(fds: xr.Dataset, whole) -> xr.Dataset:
+    """Flows over whole basins: a flow that enters a basin enters every basin it drains into too (their
+    areas hold it), as the same volume over each one's area. Attribute ``downstream_basins`` lists them."""
+    if "drains_to" not in whole.columns:
+        return fds
+    fds = fds.copy()
+    area = whole["area_km2"]
+    for name, v in list(fds.data_vars.items()):
+        if v.attrs.get("role") != "flow":
+            continue
+        chain, b = [], v.attrs["basin"]
+        while whole.loc[b, "drains_to"] is not None:
+            b = whole.loc[b, "drains_to"]
+            chain.append(b)
+        if not chain:
+            continue
+        src = v.sel(basin=v.attrs["basin"])
+        vals = v.values.copy()
+        for d in chain:
+            vals[list(v["basin"].values).index(d)] = (src * float(area.loc[v.attrs["basin"]]) / float(area.loc[d])).values
+        fds[name] = v.copy(data=vals)
+        fds[name].attrs["downstream_basins"] = ",".join(chain)
+    return fds
+
+
 def _add_flows(ds: xr.Dataset, fds: xr.Dataset, full) -> None:
     """Flow variables onto the series' months: 0.0 stays 0.0 for basins a flow does not enter; months
-    beyond a gauge's record are NaN for its basin (no data), coverage 0."""
+    beyond a gauge's record are NaN for the basins it enters (no data), coverage 0."""
     for name, v in fds.data_vars.items():
         if v.attrs.get("role") == "flow":
-            target = v.attrs["basin"]
+            entered = [v.attrs["basin"], *filter(None, v.attrs.get("downstream_basins", "").split(","))]
             out = v.reindex(time=full)
-            out = out.where(out["basin"] == target, 0.0)
+            out = out.where(out["basin"].isin(entered), 0.0)
             ds[name] = out
         else:
             ds[name] = v.reindex(time=full, fill_value=0.0)

@@ -439,7 +439,8 @@ def read_flow_series(flows: tuple[FlowSpec, ...] | list[FlowSpec], basin_area_km
         their balance); NaN where the gauge has no record or too few days. Depths per period (mm/month)
         are taken as depths over the basin's area as they are. Attributes: ``role="flow"``, ``flow_id``,
         ``direction`` ("in" | "out"), ``label``, ``units="mm/month"``, ``component="flow"``, ``station``,
-        ``basin`` (the target), ``source_units``. A daily station also gives ``coverage_flow_<id>``
+        ``basin`` (the target), ``source_units``. (The pipeline adds the basins the target drains into:
+        a flow entering a basin enters their whole areas too.) A daily station also gives ``coverage_flow_<id>``
         (time; share of each month's days with a record).
     """
     ds = xr.Dataset()
