@@ -47,6 +47,8 @@ def master(tmp_path_factory):
     (d / "dup.yaml").write_text(cat.read_text() + "sources: []\n")
     (d / "binary.yaml").write_bytes(bytes(range(256)) * 4)
     (d / "a_file.txt").write_text("not a folder\n")
+    pd.DataFrame({"date": [f"{m:%Y-%m-%d}" for m in t], "IRR": 1 + rng.random(t.size)}).to_csv(d / "flows.csv",
+                                                                                              index=False)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         assert main(["export", str(cat), "--basin", "B1", "--P", "p1", "--ET", "e1", "--TWSA", "t1",
@@ -97,6 +99,35 @@ def _period_line(study):
     return "start: '2001-01'" if "start: '2001-01'" in (study / "good_selection.yaml").read_text() else "start: 2001-01"
 
 
+_FLOW = {"id": "irr", "basin": "B1", "direction": "out", "path": "flows.csv", "layout": "wide", "time_field": "date",
+         "station": "IRR", "units": "m3/s"}
+
+
+def _flow_cat(study, *, flows=None, boxes=None, drains=None):
+    """A copy of the study's catalog with ``flows`` and, with ``boxes``, a basin file nested by ``drains``."""
+    import yaml
+
+    doc = yaml.safe_load((study / C).read_text())
+    doc["catalog_version"] = 2
+    if flows is not None:
+        doc["flows"] = flows
+    if boxes is not None:
+        import geopandas as gpd
+        import shapely
+
+        gdf = gpd.GeoDataFrame({"basin_id": list(boxes), "name": list(boxes),
+                                "drains_to": [drains.get(b) for b in boxes]},
+                               geometry=[shapely.box(*b) for b in boxes.values()], crs="EPSG:4326")
+        gdf.to_file(study / "nested.geojson", driver="GeoJSON")
+        doc["basins"].update(path="nested.geojson", downstream_field="drains_to")
+    p = study / "flow_catalog.yaml"
+    p.write_text(yaml.safe_dump(doc, sort_keys=False))
+    return p
+
+
+_B1 = (-1, 1, 1, 3)
+
+
 # (id, argv builder taking the study folder, words the message must contain)
 C = "catalog.yaml"
 CASES = [
@@ -113,6 +144,31 @@ CASES = [
                                           "--TWSA", "t1", "--out", str(d / "o.yaml")], ["nope.yaml"]),
     ("report missing catalog", lambda d: ["report", str(d / "nope.yaml"), "--basin", "B1", "--out", str(d / "o.html")],
      ["nope.yaml"]),
+    # flows and nesting (catalog version 2)
+    ("check flow of unknown basin", lambda d: ["check", str(_flow_cat(d, flows=[dict(_FLOW, basin="ZZ")]))],
+     ["flow_catalog.yaml", "'basin'", "ZZ"]),
+    ("extract flow of unknown basin", lambda d: ["extract", str(_flow_cat(d, flows=[dict(_FLOW, basin="ZZ")])),
+                                                 "--out", str(d / "o.nc")], ["flow_catalog.yaml", "'basin'", "ZZ"]),
+    ("check flow of unknown station", lambda d: ["check", str(_flow_cat(d, flows=[dict(_FLOW, station="NOPE")]))],
+     ["flows.csv", "'station'", "NOPE"]),
+    ("check flow direction", lambda d: ["check", str(_flow_cat(d, flows=[dict(_FLOW, direction="up")]))],
+     ["'direction'", "'up'"]),
+    ("check duplicate flow id", lambda d: ["check", str(_flow_cat(d, flows=[_FLOW, dict(_FLOW, direction="in")]))],
+     ["'id'", "'irr'"]),
+    ("check flow id is a source id", lambda d: ["check", str(_flow_cat(d, flows=[dict(_FLOW, id="p1")]))],
+     ["'id'", "'p1'"]),
+    ("check downstream cycle", lambda d: ["check", str(_flow_cat(d, boxes={"B1": _B1, "B2": (-0.5, 1.5, 0.5, 2.5)},
+                                                                  drains={"B1": "B2", "B2": "B1"}))],
+     ["nested.geojson", "'downstream_field'", "B1 -> B2 -> B1"]),
+    ("check downstream unknown", lambda d: ["check", str(_flow_cat(d, boxes={"B1": _B1}, drains={"B1": "ZZ"}))],
+     ["nested.geojson", "'downstream_field'", "'ZZ'"]),
+    ("check upstream sticks out", lambda d: ["check", str(_flow_cat(d, boxes={"B1": _B1, "B2": (0.5, 1.5, 1.5, 2.5)},
+                                                                     drains={"B2": "B1"}))],
+     ["nested.geojson", "'downstream_field'", "'B2'", "km2", "50.0%"]),
+    ("extract upstream sticks out", lambda d: ["extract", str(_flow_cat(d, boxes={"B1": _B1, "B2": (0.5, 1.5, 1.5,
+                                                                                                    2.5)},
+                                                                         drains={"B2": "B1"})), "--out",
+                                               str(d / "o.nc")], ["'B2'", "50.0%"]),
     # extract
     ("extract out folder missing", lambda d: ["extract", str(d / C), "--out", str(d / "no" / "o.nc")], ["no"]),
     ("extract out is a folder", lambda d: ["extract", str(d / C), "--out", str(d), "--force"], ["{study}"]),

@@ -36,6 +36,8 @@ def _catalog_doc(demo_dir: Path) -> dict:
     doc["discharge"]["path"] = str(demo_dir / doc["discharge"]["path"])
     for s in doc["sources"]:
         s["path"] = str(demo_dir / s["path"])
+    for f in doc.get("flows", []):
+        f["path"] = str(demo_dir / f["path"])
     return doc
 
 

@@ -103,3 +103,29 @@ def one_line_error(rc, err):
     assert "Traceback" not in err
     assert len(lines) == 1 and lines[0].startswith("wbexplore: error: "), err
     return lines[0]
+
+
+def v1_study(folder: Path) -> Path:
+    """A small version-1 study (two basins, a netCDF and a GeoTIFF product, daily discharge with a gap):
+    the input of the regression fixture ``tests/data/v1_series.nc``, written by the code before flows and
+    nested basins (catalog version 2) were added. Returns the catalog path."""
+    folder = Path(folder)
+    lon, lat = lonlat_grid(-2, 2, 0, 3, 0.25)
+    t = monthly("2003-01", 18)
+    rng = np.random.default_rng(20261203)
+    write_nc(folder / "rain.nc", 1 + 4 * rng.random((t.size, lat.size, lon.size)), lon, lat, t, var="pr",
+             units="mm/day")
+    write_tif(folder / "et.tif", 30 + 60 * rng.random((t.size, lat.size, lon.size)), lon, lat, units="mm")
+    write_nc(folder / "tws.nc", 20 * rng.standard_normal((t.size, lat.size, lon.size)), lon, lat, t, var="lwe",
+             units="cm")
+    box_basins(folder / "basins.geojson", [(-1.6, 0.3, 0.2, 2.7), (0.1, 0.6, 1.7, 2.2)], ids=["A", "B"])
+    days = pd.date_range("2003-01-01", "2004-06-30", freq="D")
+    q = pd.DataFrame({"date": days.strftime("%Y-%m-%d"), "A": 40 + 20 * rng.random(days.size),
+                      "B": 9 + 3 * rng.random(days.size)})
+    q.loc[40:44, "A"] = np.nan
+    q.to_csv(folder / "q.csv", index=False)
+    return write_catalog(folder, [
+        {"id": "rain", "component": "P", "path": "rain.nc", "variable": "pr"},
+        {"id": "evap", "component": "ET", "path": "et.tif", "units": "mm", "time_start": "2003-01"},
+        {"id": "tws", "component": "TWSA", "path": "tws.nc", "variable": "lwe"},
+    ], discharge={"path": "q.csv", "layout": "wide", "time_field": "date", "units": "m3/s", "min_coverage": 0.8})

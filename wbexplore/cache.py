@@ -390,7 +390,7 @@ def _write_memo(root: Path, memo: dict) -> None:
 
 def input_files(cat) -> list[tuple[str, Path]]:
     """(role, path) of every file a catalog's extraction reads: basins (with shapefile parts),
-    discharge, product files (zarr stores as folders)."""
+    discharge, the station table of each flow, product files (zarr stores as folders)."""
     out: list[tuple[str, Path]] = []
     b = Path(cat.basins.path)
     out.append(("basins", b))
@@ -401,6 +401,8 @@ def input_files(cat) -> list[tuple[str, Path]]:
                     out.append(("basins", cand))
     if cat.discharge is not None:
         out.append(("discharge", Path(cat.discharge.path)))
+    for f in getattr(cat, "flows", ()):
+        out.append((f"flow {f.id}", Path(f.table.path)))
     for s in cat.sources:
         for f in s.paths:
             out.append((f"source {s.id}", Path(f)))
@@ -624,17 +626,30 @@ def load_basins(catalog):
     """Basins of a catalog, read once per content of the basin file(s) and basin settings."""
     from .io.basins import read_basins
 
+    return _load_basin_units(catalog, "whole", read_basins)
+
+
+def load_incremental_basins(catalog):
+    """Incremental units of a catalog's nested basins (`wbexplore.io.basins.incremental_basins`), read
+    once per content of the basin file(s) and basin settings (``downstream_field`` among them)."""
+    from .io.basins import incremental_basins
+
+    return _load_basin_units(catalog, "incremental", incremental_basins)
+
+
+def _load_basin_units(catalog, kind: str, read):
     files = [p for role, p in input_files(catalog) if role == "basins"]
 
     def digest():
         return tuple(file_digest(p) for p in files)
 
-    key = (tuple(os.path.abspath(p) for p in files), catalog.basins, digest())
+    key = (kind, tuple(os.path.abspath(p) for p in files), catalog.basins, digest())
     if key in _BASINS:
         return _BASINS[key]
-    gdf = read_basins(catalog.basins)
-    if digest() == key[2]:  # not changed while it was read
-        _BASINS.clear()
+    gdf = read(catalog.basins)
+    if digest() == key[3]:  # not changed while it was read
+        for k in [k for k in _BASINS if k[0] == kind]:
+            del _BASINS[k]
         _BASINS[key] = gdf
     return gdf
 

@@ -170,6 +170,8 @@ def _cmd_check(args) -> int:
         _print_station_table(cat.discharge, table)
     else:
         print("discharge: none (closure metrics need it)")
+    _print_flows(cat, basins)
+    _print_nesting(cat, basins)
     rows = [open_source(s).summary() for s in cat.sources]
     cols = ["id", "component", "units", "step", "grid", "period", "crs", "incomplete", "label"]
     width = {c: max(len(c), *(len(str(r[c])) for r in rows)) for c in cols}
@@ -178,6 +180,54 @@ def _cmd_check(args) -> int:
         print("  ".join(str(r[c]).ljust(width[c]) for c in cols))
     print(f"ok: {len(rows)} sources validate")
     return 0
+
+
+def _print_flows(cat, basins) -> None:
+    """One line per flow: id, the basin it enters, direction, station, months with data and period."""
+    if not cat.flows:
+        return
+    from .io.stations import read_flow_series
+
+    fds = read_flow_series(cat.flows, basins["area_km2"], catalog=cat.path)
+    print(f"flows: {len(cat.flows)}")
+    rows = []
+    for f in cat.flows:
+        v = fds[f.var].sel(basin=f.basin)
+        has = v.notnull().values
+        t = v["time"].values.astype("datetime64[M]")
+        rows.append({"id": f.id, "basin": f.basin, "direction": f.direction, "station": f.station,
+                     "months": f"{int(has.sum())} of {has.size}", "period": f"{t[0]}..{t[-1]}",
+                     "file": f.table.path.name, "label": f.display})
+    _print_rows(rows, indent="  ")
+
+
+def _print_nesting(cat, basins) -> None:
+    """Each basin that drains into another, and each incremental unit with its area."""
+    if not cat.basins.downstream_field:
+        return
+    from .cache import load_incremental_basins
+
+    print(f"nesting ({cat.basins.downstream_field}):")
+    for b, d in basins["drains_to"].items():
+        if d is not None:
+            out = float(basins.loc[b, "outside_km2"])
+            print(f"  {b} -> drains to {d}" + (f" ({out:,.1f} km2 outside it, clipped)" if out > 0 else ""))
+    units = load_incremental_basins(cat)
+    rows = [{"incremental unit": b, "area km2": f"{units.loc[b, 'area_km2']:,.1f}",
+             "whole km2": f"{units.loc[b, 'whole_area_km2']:,.1f}", "minus": units.loc[b, "upstream"]}
+            for b in units.index]
+    if rows:
+        _print_rows(rows, indent="  ")
+    else:
+        print("  no basin has upstream basins")
+
+
+def _print_rows(rows: list[dict], *, indent: str = "") -> None:
+    cols = list(rows[0])
+    width = {c: max(len(c), *(len(str(r[c])) for r in rows)) for c in cols}
+    print(indent + "  ".join(c.ljust(width[c]) for c in cols).rstrip())
+    for r in rows:
+        print(indent + "  ".join(str(r[c]).ljust(width[c]) for c in cols).rstrip())
 
 
 def _print_station_table(spec, table) -> None:

@@ -1,7 +1,7 @@
 """The invented demo scenario: the Quessary uplands, with a known truth.
 
-Everything here is fictional: the region, its six basins and the eight gridded
-products. The region sits on the WGS84 grid from 7 W to 5 E and 6 N to 16 N, so
+Everything here is fictional: the region, its eight basins, two gauged flows and the
+eight gridded products. The region sits on the WGS84 grid from 7 W to 5 E and 6 N to 16 N, so
 a product stored with 0..360 longitudes really has to be read right.
 
 Truth
@@ -19,6 +19,19 @@ and month ``P - ET - Q - dS = 0`` to round-off. TWSA is the monthly *mean* of
 total storage (soil + groundwater + channel; piecewise linear in time) minus its
 2001-2020 mean.
 
+Nesting and flows
+-----------------
+Upper Velumbe drains into Velumbe and Upper Sarnelle into Sarnelle (``drains_to`` in the basin
+file): both downstream basins also have an incremental unit (their area minus the upstream basin),
+whose truth is summed over its own cells and written to ``truth_incremental.nc``. Below the upper
+gauge of Sarnelle an irrigation canal abstracts water from the river (out, dry season, at most 60% of
+the natural flow) and a small transfer from outside the region releases water into it (in): the gauged
+outflow of Sarnelle is its natural outflow minus the abstraction plus the transfer, so for Sarnelle
+``P - ET - Q - dS + in - out = 0``, whole and incremental. Both flows are gauged without error
+(``irrigation.csv``, m3/s, wide; ``transfer.csv``, l/s, long). The two Sarnelle basins were added after
+the first six: they are drawn from generators of their own and after every earlier draw, so the first six
+basins and every product are bitwise what they were.
+
 Products and their errors (also written in the catalog's labels/descriptions)
 -----------------------------------------------------------------------------
 See `PRODUCTS` below; `wbexplore demo` writes the table into the study README.
@@ -35,7 +48,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-__all__ = ["write_demo", "copy_templates", "MARKER", "PRODUCTS", "BASINS", "SEED", "DemoInfo", "REGION"]
+__all__ = ["write_demo", "copy_templates", "MARKER", "PRODUCTS", "BASINS", "DRAINS_TO", "FLOWS", "SEED", "DemoInfo",
+           "REGION"]
 
 SEED = 20260412
 REGION = dict(lon0=-7.0, lon1=5.0, lat0=6.0, lat1=16.0)
@@ -51,6 +65,16 @@ BASINS = [
     ("TIR", "Tiramo", 1.15, 7.2, 0.38, 4, "small, humid"),
     ("ZEF", "Zefron", 2.6, 10.9, 1.25, 5, "straddles the edge of one ET product"),
     ("ULK", "Ulkesh", 2.35, 14.4, 0.8, 6, "semi-arid north-east"),
+    ("SAR", "Sarnelle", -5.1, 13.9, 1.15, 7, "semi-arid north-west; irrigation abstraction and a transfer in"),
+    ("SAU", "Upper Sarnelle", -5.55, 14.3, 0.5, 8, "nested in Sarnelle, own gauge"),
+]
+# basin -> the basin it drains into (the basin file's `drains_to`; the catalog's downstream_field)
+DRAINS_TO = {"VEU": "VEL", "SAU": "SAR"}
+FIRST_BASINS = 6  # the original basins; later ones never overlap them
+# the gauged flows (id, basin, direction, station, file, units, label); truth in truth.nc as flow_<id>
+FLOWS = [
+    ("irrigation", "SAR", "out", "IRR-K4", "irrigation.csv", "m3/s", "Kessaly irrigation canal (abstraction)"),
+    ("transfer", "SAR", "in", "TRF-O2", "transfer.csv", "l/s", "Orvane transfer tunnel (release)"),
 ]
 
 # id, component, label, description (the error by construction), form
@@ -159,6 +183,10 @@ def _basin_masks(lon_c, lat_c, rng):
             m = lab == (1 + int(np.argmax(sizes)))
         masks[bid] = m
     masks["VEU"] &= masks["VEL"]
+    first = np.logical_or.reduce([masks[b[0]] for b in BASINS[:FIRST_BASINS]])
+    for bid, *_r in BASINS[FIRST_BASINS:]:
+        masks[bid] &= ~first  # the later basins never overlap the first six
+    masks["SAU"] &= masks["SAR"]
     return masks
 
 
@@ -234,6 +262,105 @@ def _run_model(rng, lon_c, lat_c, months):
         s_prev = s
     del s_prev
     return out_p, out_et, out_q, out_s, s_start
+
+
+# --------------------------------------------------------------------------- flows and nesting
+def _flow_truth(truth, basin_area, months):
+    """Irrigation abstraction and transfer of Sarnelle (m3/s, as gauged) and the gauged outflow they leave.
+
+    Changes ``truth`` in place: adds ``flow_<id>`` (mm/month over each basin; 0 where the flow does not
+    enter) and turns Sarnelle's natural outflow into the gauged one, ``Q = Q_natural - out + in``. Flows
+    are rounded to the digits written to their tables, so that the tables hold the truth exactly.
+    Returns ``{flow id: m3/s}``.
+    """
+    ids = [b[0] for b in BASINS]
+    frng = np.random.default_rng(SEED + 300)  # a generator of its own: earlier draws stay as they were
+    secs = months.days_in_month.values * 86400.0
+    out = {}
+    for fid, bid, direction, *_r in FLOWS:
+        i = ids.index(bid)
+        natural = truth["Q"][i] / 1000.0 * basin_area[i] / secs  # m3/s
+        if direction == "out":  # dry-season irrigation demand, at most 60% of what the river carries
+            demand = 0.5 * natural.mean() * np.maximum(0.0, np.cos(2 * np.pi * (months.month.values - 2) / 12.0))
+            flow = np.round(np.minimum(demand, 0.6 * natural), 6)
+        else:  # a small, steady release (about 8% of the natural mean outflow), in l/s in its table
+            flow = np.round(0.08 * natural.mean() * np.clip(1.0 + 0.1 * frng.standard_normal(months.size), 0.5, None)
+                            * 1000.0, 3) / 1000.0
+        out[fid] = flow
+        mm = np.zeros((len(ids), months.size))
+        mm[i] = flow * secs / basin_area[i] * 1000.0
+        truth[f"flow_{fid}"] = mm
+        truth["Q"][i] = truth["Q"][i] + (mm[i] if direction == "in" else -mm[i])
+    return out
+
+
+def _incremental_truth(masks, area2d, P, ET, Q, dS, M, truth, basin_area, months):
+    """True series of the incremental units (downstream basin minus the basins draining into it): P, ET,
+    dS and mean storage summed over the unit's own cells; the gauged outlet flow, each upstream basin's
+    gauged outflow (``flow_upstream_<id>``) and the declared flows of the basin as depths over the unit."""
+    import xarray as xr
+
+    ids = [b[0] for b in BASINS]
+    downs = [b for b in ids if b in DRAINS_TO.values()]
+    nt = len(months)
+    names = ["P", "ET", "Q", "dS", "TWSA", "S_mean"] + [k for k in truth if k.startswith("flow_")]
+    names += [f"flow_upstream_{u}" for u in DRAINS_TO]
+    inc = {k: np.zeros((len(downs), nt)) for k in names}
+    area = []
+    for j, d in enumerate(downs):
+        ups = [u for u, dd in DRAINS_TO.items() if dd == d]
+        cells = masks[d] & ~np.logical_or.reduce([masks[u] for u in ups])
+        w = np.where(cells, area2d, 0.0)
+        a = w.sum()
+        area.append(a)
+        for k, f in (("P", P), ("ET", ET), ("dS", dS), ("S_mean", M)):
+            inc[k][j] = np.tensordot(f, w, axes=([1, 2], [0, 1])) / a
+        inc["TWSA"][j] = inc["S_mean"][j] - inc["S_mean"][j].mean()
+        i = ids.index(d)
+        inc["Q"][j] = truth["Q"][i] * basin_area[i] / a  # the outlet's gauged flow over the unit
+        for k in truth:
+            if k.startswith("flow_"):
+                inc[k][j] = truth[k][i] * basin_area[i] / a
+        for u in ups:
+            inc[f"flow_upstream_{u}"][j] = truth["Q"][ids.index(u)] * basin_area[ids.index(u)] / a
+    ds = xr.Dataset(
+        {k: (("basin", "time"), v, {"units": "mm" if k in ("TWSA", "S_mean") else "mm/month"}) for k, v in inc.items()},
+        coords={"basin": downs, "time": months, "basin_area_km2": ("basin", np.asarray(area) / 1e6, {"units": "km2"}),
+                "upstream_basins": ("basin", [",".join(u for u, dd in DRAINS_TO.items() if dd == d) for d in downs])},
+        attrs={"title": "Quessary uplands demo: true series of the incremental units (invented data)",
+               "unit": "incremental",
+               "note": "P - ET - Q - dS + flows in - flows out = 0 per unit and month; flow_upstream_<id> are in"},
+    )
+    for fid, _b, direction, *_r in FLOWS:
+        ds[f"flow_{fid}"].attrs["direction"] = direction
+    for u in DRAINS_TO:
+        ds[f"flow_upstream_{u}"].attrs["direction"] = "in"
+    return ds
+
+
+def _write_flow_tables(folder: Path, flows_m3s: dict, months) -> None:
+    """The gauged flows as their operators export them: irrigation wide in m3/s, transfer long in l/s."""
+    for fid, _b, _d, station, fname, units, _label in FLOWS:
+        v = flows_m3s[fid]
+        if units == "m3/s":
+            pd.DataFrame({"date": months.strftime("%Y-%m"), station: [f"{x:.6f}" for x in v]}).to_csv(
+                folder / fname, index=False)
+        else:
+            pd.DataFrame({"station": station, "month": months.strftime("%Y-%m"),
+                          "flow_ls": [f"{x * 1000.0:.3f}" for x in v]}).to_csv(folder / fname, index=False)
+
+
+def _flow_entries() -> list[dict]:
+    out = []
+    for fid, bid, direction, station, fname, units, label in FLOWS:
+        e = {"id": fid, "basin": bid, "direction": direction, "path": fname}
+        if units == "m3/s":
+            e.update(layout="wide", time_field="date")
+        else:
+            e.update(layout="long", time_field="month", station_field="station", value_field="flow_ls")
+        e.update(station=station, units=units, label=label)
+        out.append(e)
+    return out
 
 
 # --------------------------------------------------------------------------- writers
@@ -364,8 +491,10 @@ def write_demo(out: str | Path, *, overwrite: bool = False, progress: bool = Fal
                templates: bool = False) -> DemoInfo:
     """Write the complete demo study folder (deterministic: fixed seed).
 
-    Writes ``catalog.yaml``, ``basins.geojson``, ``discharge.csv``, ``grids/`` (the
-    eight products), ``truth.nc`` (true basin series), ``README.md`` (the error table),
+    Writes ``catalog.yaml`` (version 2: flows and nesting), ``basins.geojson``, ``discharge.csv``,
+    ``irrigation.csv`` and ``transfer.csv`` (the gauged flows), ``grids/`` (the eight products),
+    ``truth.nc`` (true basin series), ``truth_incremental.nc`` (true series of the incremental units),
+    ``README.md`` (the error table),
     the template notebooks if ``templates``, and the marker ``.wbexplore-demo`` listing every
     file with its SHA-256.
 
@@ -464,7 +593,7 @@ def _write(folder: Path, *, progress: bool):
     records, geoms = [], []
     for bid, name, *_rest in BASINS:
         geoms.append(_mask_polygon(masks[bid], lon_e, lat_e))
-        records.append({"basin_id": bid, "name": name, "note": _rest[-1]})
+        records.append({"basin_id": bid, "name": name, "note": _rest[-1], "drains_to": DRAINS_TO.get(bid)})
     gdf = gpd.GeoDataFrame(records, geometry=geoms, crs="EPSG:4326")
     gdf.to_file(folder / "basins.geojson", driver="GeoJSON", COORDINATE_PRECISION=9)
     tick()
@@ -484,15 +613,21 @@ def _write(folder: Path, *, progress: bool):
             truth[k][i] = np.tensordot(f, w, axes=([1, 2], [0, 1])) / wsum
         truth["TWSA"][i] = truth["S_mean"][i] - truth["S_mean"][i].mean()
     basin_area = np.asarray(basin_area)
+    flows_m3s = _flow_truth(truth, basin_area, months)
     tds = xr.Dataset(
         {k: (("basin", "time"), v, {"units": "mm" if k in ("TWSA", "S_mean") else "mm/month"})
          for k, v in truth.items()},
         coords={"basin": [b[0] for b in BASINS], "time": months,
                 "basin_area_km2": ("basin", basin_area / 1e6, {"units": "km2"})},
         attrs={"title": "Quessary uplands demo: true basin series (invented data)",
-               "note": "P - ET - Q - dS = 0 per basin and month; TWSA = monthly-mean storage minus its mean"},
+               "note": "P - ET - Q - dS + flows in - flows out = 0 per basin and month (flow_<id>, attribute "
+                       "direction); Q is the gauged outflow; TWSA = monthly-mean storage minus its mean"},
     )
+    for fid, _b, direction, station, *_r in FLOWS:
+        tds[f"flow_{fid}"].attrs.update(direction=direction, station=station, role="flow")
     tds.to_netcdf(folder / "truth.nc")
+    _incremental_truth(masks, area2d, P, ET, Q, dS, M, truth, basin_area, months).to_netcdf(
+        folder / "truth_incremental.nc")
     tick()
 
     # --- products
@@ -611,6 +746,7 @@ def _write(folder: Path, *, progress: bool):
                 continue
             rows.append((f"{m:%Y-%m}", bid, f"{flow[j]:.4f}"))
     pd.DataFrame(rows, columns=["date", "basin_id", "q_m3s"]).to_csv(folder / "discharge.csv", index=False)
+    _write_flow_tables(folder, flows_m3s, months)
     tick()
 
     # --- catalog
@@ -628,13 +764,16 @@ def _write(folder: Path, *, progress: bool):
     for sid, comp, label, desc, _f in PRODUCTS:
         sources.append({"id": sid, "component": comp, **form[sid], "label": label, "description": desc})
     catalog = {
-        "catalog_version": 1,
+        "catalog_version": 2,
         "title": "Quessary uplands demo study (invented data)",
-        "description": "Six fictional basins, three P, three ET and two TWSA products with known errors. " + CAUTION,
-        "basins": {"path": "basins.geojson", "id_field": "basin_id", "name_field": "name"},
+        "description": "Eight fictional basins (two nested pairs), two gauged flows, three P, three ET and two TWSA "
+                       "products with known errors. " + CAUTION,
+        "basins": {"path": "basins.geojson", "id_field": "basin_id", "name_field": "name",
+                   "downstream_field": "drains_to"},
         "discharge": {"path": "discharge.csv", "time_field": "date", "basin_field": "basin_id",
                       "value_field": "q_m3s", "units": "m3/s"},
         "sources": sources,
+        "flows": _flow_entries(),
     }
     (folder / "catalog.yaml").write_text(
         "# wbexplore catalog, written by `wbexplore demo` (invented scenario; fixed seed %d)\n" % SEED
@@ -647,8 +786,15 @@ def _write(folder: Path, *, progress: bool):
               "|---|---|---|---|"]
     for sid, comp, label, desc, f in PRODUCTS:
         lines.append(f"| {sid} | {comp} | {f} | {desc} |")
+    lines += ["", "Nesting: " + "; ".join(f"{u} drains into {d}" for u, d in DRAINS_TO.items())
+              + " (`drains_to`; each downstream basin also has an incremental unit).", "",
+              "## Flows (gauged without error)", "", "| id | basin | direction | station | file | units | what |",
+              "|---|---|---|---|---|---|---|"]
+    for fid, bid, direction, station, fname, units, label in FLOWS:
+        lines.append(f"| {fid} | {bid} | {direction} | {station} | {fname} | {units} | {label} |")
     lines += ["", "Discharge: m3/s at each outlet, multiplicative gauge error (sd 3%), 5 missing months per gauge.",
-              "", "`truth.nc` holds the true basin series (P, ET, Q, dS, TWSA) for checking."]
+              "", "`truth.nc` holds the true basin series (P, ET, Q, dS, TWSA and each flow) for checking; "
+              "`truth_incremental.nc` those of the incremental units."]
     (folder / "README.md").write_text("\n".join(lines) + "\n")
     (folder / "scenario.json").write_text(json.dumps({"seed": SEED, "region": REGION, "truth_resolution_deg": RES,
                                                       "years": list(YEARS)}, indent=1))

@@ -23,17 +23,18 @@ import xarray as xr
 from . import __version__
 from . import cache as _cache
 from .balance.plausibility import ImplausibleValueWarning, screen_implausible
-from .cache import default_cache_dir, load_basins
+from .cache import default_cache_dir, load_basins, load_incremental_basins
 from .errors import InputError
 from .io.catalog import Catalog, SourceSpec, open_catalog
 from .io.blocks import release_handles
 from .io.grids import SourceGrid, open_source
-from .io.stations import read_discharge_series
+from .io.stations import read_discharge_series, read_flow_series
 from .spatial.grid import describe_grid
 from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
 
 __all__ = ["extract", "load_series", "check_scheduler", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE",
-           "source_vars", "valid_var", "default_cache_dir", "load_basins", "warn_implausible", "ImplausibleValueWarning"]
+           "source_vars", "valid_var", "default_cache_dir", "load_basins", "load_incremental_basins", "warn_implausible",
+           "ImplausibleValueWarning", "flow_vars"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
 
@@ -53,6 +54,12 @@ def source_vars(ds: xr.Dataset, component: str | None = None) -> list[str]:
         if v.attrs.get("role") == "source" and (component is None or v.attrs.get("component") == component):
             out.append(str(name))
     return out
+
+
+def flow_vars(ds: xr.Dataset, direction: str | None = None) -> list[str]:
+    """Names of the flow variables (``flow_<id>``, attribute ``role="flow"``) of a canonical dataset."""
+    return [str(n) for n, v in ds.data_vars.items()
+            if v.attrs.get("role") == "flow" and (direction is None or v.attrs.get("direction") == direction)]
 
 
 def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None = None,
@@ -140,7 +147,7 @@ def _client(scheduler: str | None, workers: int | None):
 def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None = None,
             basins: list[str] | None = None, scheduler: str | None = None, workers: int | None = None,
             client=None, progress: bool = False, cache_dir: str | os.PathLike | None = None,
-            use_cache: bool = True, engine: str = "auto") -> xr.Dataset:
+            use_cache: bool = True, engine: str = "auto", incremental: bool = False) -> xr.Dataset:
     """Every source of a catalog over every basin, in the canonical form.
 
     Parameters
@@ -158,6 +165,12 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
         Show a progress bar (tqdm).
     cache_dir : path, optional
         Where weights are cached (default `default_cache_dir`).
+    incremental : bool
+        The incremental units of nested basins instead of whole basins (`load_incremental_basins`):
+        each basin with upstream basins, minus them. The same schema; ``basin_area_km2`` is the
+        incremental area, the outlet's discharge and every flow of the basin are depths over it, each
+        upstream basin's gauged outflow enters as the inflow ``flow_upstream_<id>``; coordinates
+        ``upstream_basins`` and ``whole_area_km2``; ``attrs["unit"] == "incremental"``.
 
     Returns
     -------
@@ -168,13 +181,21 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
     if use_cache:
         _cache.check_root_for(cat, _cache.cache_root(cache_dir))
-    gdf = load_basins(cat)
+    gdf = load_incremental_basins(cat) if incremental else load_basins(cat)
+    if incremental and len(gdf) == 0:
+        raise InputError(f"{cat.basins.path}: field 'downstream_field': no basin has upstream basins, so there is "
+                         "no incremental unit")
     if basins is not None:
         missing = [b for b in basins if b not in gdf.index]
         if missing:
+            if incremental and missing[0] in load_basins(cat).index:
+                raise InputError(f"{cat.basins.path}: basin {missing[0]!r} has no upstream basin "
+                                 "(field 'downstream_field'), so it has no incremental unit")
             raise InputError(f"{cat.basins.path}: basin {missing[0]!r} not found")
         gdf = gdf.loc[list(basins)]
     specs: list[SourceSpec] = [cat.source(s) for s in sources] if sources else list(cat.sources)
+    # flows are read before any product: a flow naming an unknown basin or station fails at once
+    flows = read_flow_series(cat.flows, load_basins(cat)["area_km2"], catalog=cat.path) if cat.flows else None
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be at least 1, got {workers}")
     from contextlib import ExitStack
@@ -184,10 +205,11 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
             # connect (or start the cluster) first: a scheduler that does not answer fails fast
             client = stack.enter_context(_client(scheduler, workers))
         return _extract(cat, gdf, specs, client=client, progress=progress, cache_dir=cache_dir,
-                        use_cache=use_cache, engine=engine)
+                        use_cache=use_cache, engine=engine, incremental=incremental, flows=flows)
 
 
-def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine) -> xr.Dataset:
+def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine, incremental=False,
+             flows=None) -> xr.Dataset:
     lazy = {}
     meta = {}
     remote = client is not None
@@ -213,7 +235,8 @@ def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine)
         computed = _compute(lazy, client=client, progress=progress)
     finally:
         release_handles()  # leave no product file open (HDF5 would refuse to rewrite it)
-    ds, _ = screen_implausible(_assemble(cat, gdf, specs, computed, meta))
+    ds, _ = screen_implausible(_assemble(cat, gdf, specs, computed, meta, incremental=incremental,
+                                                flows=flows))
     warn_implausible(ds)
     return ds
 
@@ -252,14 +275,20 @@ def _compute(lazy: dict, *, client, progress):
     return dict(zip(keys, results))
 
 
-def _assemble(cat: Catalog, gdf, specs, computed, meta) -> xr.Dataset:
+def _assemble(cat: Catalog, gdf, specs, computed, meta, *, incremental: bool = False,
+              flows: xr.Dataset | None = None) -> xr.Dataset:
+    """The canonical series from the computed basin means; ``flows``: `read_flow_series` over whole basins."""
     months = set()
     for sid, zm in computed.items():
         months.update(pd.DatetimeIndex(zm["time"].values))
     q = None
+    whole = load_basins(cat)
     if cat.discharge is not None:
-        qds, _table = read_discharge_series(cat.discharge, load_basins(cat)["area_km2"])
-        q = qds["discharge"].reindex(basin=gdf.index.values)
+        qds, _table = read_discharge_series(cat.discharge, whole["area_km2"])
+        if incremental:
+            q = _over_units(qds["discharge"], whole, gdf)
+        else:
+            q = qds["discharge"].reindex(basin=gdf.index.values)
         months.update(pd.DatetimeIndex(q["time"].values))
     full = pd.date_range(min(months), max(months), freq="MS") if months else pd.DatetimeIndex([])
     ds = xr.Dataset(coords={"basin": ("basin", gdf.index.values.astype(str)), "time": ("time", full)})
@@ -299,6 +328,12 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta) -> xr.Dataset:
             if name != "discharge":
                 ds[name] = qds[name].reindex(time=full, fill_value=0.0)
                 ds[name].attrs = dict(qds[name].attrs)
+    if flows is None and cat.flows:
+        flows = read_flow_series(cat.flows, whole["area_km2"], catalog=cat.path)
+    if incremental:
+        _incremental_terms(ds, cat, whole, gdf, qds["discharge"] if q is not None else None, full, flows)
+    elif flows is not None:
+        _add_flows(ds, _downstream(flows, whole).reindex(basin=gdf.index.values), full)
     ds.attrs = {
         "Conventions": "CF-1.8",
         "title": cat.title,
@@ -310,7 +345,113 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta) -> xr.Dataset:
                    "rates converted to calendar-month totals with the true number of days"),
         "history": f"{pd.Timestamp.now(tz='UTC'):%Y-%m-%dT%H:%M:%SZ} wbexplore extract",
     }
+    if incremental:
+        ds.attrs["unit"] = "incremental"
     return ds
+
+
+def _over_units(da: xr.DataArray, whole, units) -> xr.DataArray:
+    """Depths (mm/month) over whole basins ``da`` (basin, time) as depths over ``units`` (GeoDataFrame of
+    incremental units, indexed by the basin whose outlet they share): the same volume over the smaller
+    area, ``depth * whole area / unit area``."""
+    ids = units.index.values.astype(str)
+    ratio = xr.DataArray(whole["area_km2"].loc[ids].values / units["area_km2"].values, dims="basin",
+                         coords={"basin": ids})
+    return (da.reindex(basin=ids) * ratio).assign_attrs(da.attrs)
+
+
+def _downstream(fds: xr.Dataset, whole) -> xr.Dataset:
+    """Flows over whole basins: a flow that enters a basin enters every basin it drains into too (their
+    areas hold it), as the same volume over each one's area. Attribute ``downstream_basins`` lists them."""
+    if "drains_to" not in whole.columns:
+        return fds
+    fds = fds.copy()
+    area = whole["area_km2"]
+    for name, v in list(fds.data_vars.items()):
+        if v.attrs.get("role") != "flow":
+            continue
+        chain, b = [], v.attrs["basin"]
+        while whole.loc[b, "drains_to"] is not None:
+            b = whole.loc[b, "drains_to"]
+            chain.append(b)
+        if not chain:
+            continue
+        src = v.sel(basin=v.attrs["basin"])
+        vals = v.values.copy()
+        for d in chain:
+            vals[list(v["basin"].values).index(d)] = (src * float(area.loc[v.attrs["basin"]]) / float(area.loc[d])).values
+        fds[name] = v.copy(data=vals)
+        fds[name].attrs["downstream_basins"] = ",".join(chain)
+    return fds
+
+
+def _add_flows(ds: xr.Dataset, fds: xr.Dataset, full) -> None:
+    """Flow variables onto the series' months: 0.0 stays 0.0 for basins a flow does not enter; months
+    beyond a gauge's record are NaN for the basins it enters (no data), coverage 0."""
+    for name, v in fds.data_vars.items():
+        if v.attrs.get("role") == "flow":
+            entered = [v.attrs["basin"], *filter(None, v.attrs.get("downstream_basins", "").split(","))]
+            out = v.reindex(time=full)
+            out = out.where(out["basin"].isin(entered), 0.0)
+            ds[name] = out
+        else:
+            ds[name] = v.reindex(time=full, fill_value=0.0)
+        ds[name].attrs = dict(v.attrs)
+
+
+def _incremental_terms(ds: xr.Dataset, cat: Catalog, whole, units, q_whole, full, fds) -> None:
+    """Flows of an incremental series: each declared flow of the basin, and each upstream basin's gauged
+    outflow as the inflow ``flow_upstream_<id>``, as depths over the incremental area; coordinates
+    ``upstream_basins`` and ``whole_area_km2``."""
+    ids = units.index.values.astype(str)
+    ds.coords["upstream_basins"] = ("basin", units["upstream"].values.astype(str))
+    ds["upstream_basins"].attrs = {"long_name": "basins draining into this one (comma-separated ids), "
+                                                "subtracted from its area"}
+    ds.coords["whole_area_km2"] = ("basin", whole["area_km2"].loc[ids].values)
+    ds["whole_area_km2"].attrs = {"units": "km2", "long_name": "area of the whole basin (geodesic, WGS84)"}
+    ds["basin_area_km2"].attrs = {"units": "km2", "long_name": "incremental area: the basin minus its upstream "
+                                                             "basins (geodesic, WGS84)"}
+    declared = {f"flow_{f.id}" for f in cat.flows}
+    if fds is not None:
+        flows = xr.Dataset({n: _over_units(v, whole, units) if v.attrs.get("role") == "flow" else v
+                            for n, v in fds.data_vars.items()})
+        _add_flows(ds, flows, full)
+    ups = sorted({u for up in units["upstream"] for u in up.split(",")}, key=list(whole.index).index)
+    for u in ups:
+        name = f"flow_upstream_{u}"
+        if name in declared:
+            raise InputError(f"{cat.path}: flow 'upstream_{u}': field 'id': the name is taken by the inflow "
+                             f"from upstream basin {u!r} of an incremental unit; choose another id")
+        if q_whole is None:
+            raise InputError(f"{cat.path}: field 'discharge' is missing: the incremental unit below basin {u!r} "
+                             "needs its gauged outflow")
+        if not bool(q_whole.sel(basin=u).notnull().any()):
+            raise InputError(f"{cat.discharge.path}: basin {u!r} drains into another basin (field "
+                             "'downstream_field') but has no gauged discharge: its outflow cannot enter the "
+                             "incremental balance below it")
+        target = [b for b, up in zip(ids, units["upstream"]) if u in up.split(",")][0]
+        vol = q_whole.sel(basin=u) * float(whole["area_km2"].loc[u])  # mm/month x km2
+        per_unit = xr.DataArray(np.where(ids == target, 1.0, 0.0) / units["area_km2"].values, dims="basin",
+                                coords={"basin": ids})
+        v = (vol * per_unit).transpose("basin", "time").reindex(time=full)
+        v = v.where(v["basin"] == target, 0.0)
+        station = _station_of(cat, u)
+        ds[name] = v
+        ds[name].attrs = {"role": "flow", "component": "flow", "flow_id": f"upstream_{u}", "direction": "in",
+                          "label": f"outflow of upstream basin {whole.loc[u, 'name']}",
+                          "long_name": f"outflow of upstream basin {whole.loc[u, 'name']}", "units": "mm/month",
+                          "station": station, "basin": target, "upstream_basin": u,
+                          "source_units": cat.discharge.units}
+
+
+def _station_of(cat: Catalog, basin: str) -> str:
+    """The discharge station of a basin (the `stations:` mapping, else the basin id itself)."""
+    mapping = cat.discharge.station_map if cat.discharge is not None else None
+    if mapping:
+        for st, b in mapping.items():
+            if b == basin:
+                return st
+    return basin
 
 
 def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.PathLike | None = None,
@@ -320,6 +461,8 @@ def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.Pat
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
     # options that change the result are part of the key; scheduler, workers, client do not
     options = {"sources": kwargs.get("sources"), "basins": kwargs.get("basins"), "engine": kwargs.get("engine", "auto")}
+    if kwargs.get("incremental"):
+        options["incremental"] = True  # other polygons, other series (the weights key has the geometries)
     built = []
 
     def build():

@@ -12,7 +12,8 @@ import shapely
 from ..errors import InputError
 from .catalog import BasinSpec
 
-__all__ = ["read_basins", "BasinRepairWarning", "geodesic_area_m2", "unwrap_lonlat"]
+__all__ = ["read_basins", "incremental_basins", "BasinRepairWarning", "geodesic_area_m2", "unwrap_lonlat",
+           "MAX_OUTSIDE_SHARE"]
 
 
 class BasinRepairWarning(UserWarning):
@@ -50,13 +51,86 @@ def _orient_multi(g):
     return g
 
 
+MAX_OUTSIDE_SHARE = 0.05  # an upstream basin may stick out of its downstream basin by this share of its area
+
+
 def read_basins(spec: BasinSpec) -> gpd.GeoDataFrame:
     """Read basins into a GeoDataFrame indexed by basin id (text), in EPSG:4326.
 
-    Columns: ``name``, ``area_km2`` (geodesic, WGS84), ``geometry``.
+    Columns: ``name``, ``area_km2`` (geodesic, WGS84), ``geometry``; with ``downstream_field`` also
+    ``drains_to`` (the downstream basin's id, or None) and ``outside_km2`` (area of the basin outside the
+    basin it drains to, clipped from its incremental unit; 0 for a basin that drains nowhere).
     Invalid geometries are repaired with `shapely.make_valid` and a
-    `BasinRepairWarning` naming the basin; empty geometries are refused.
+    `BasinRepairWarning` naming the basin; empty geometries are refused. The nesting is checked:
+    a downstream id not in the file, a cycle, or an upstream basin more than 5% of whose area lies
+    outside its downstream basin are refused.
     """
+    native, ids, names = _read_native(spec)
+    nest = _nesting(spec, native, ids) if spec.downstream_field else None
+    geoms = _to_lonlat(spec, native, ids)
+    out = gpd.GeoDataFrame(
+        {"name": names, "area_km2": geodesic_area_m2(geoms) / 1e6},
+        geometry=geoms, crs="EPSG:4326", index=pd.Index(ids, name="basin"),
+    )
+    if nest is not None:
+        drains, outside = nest
+        out["drains_to"] = pd.Series([drains.get(b) for b in ids], index=out.index, dtype=object)
+        out["outside_km2"] = [outside.get(b, 0.0) for b in ids]
+    return out
+
+
+def incremental_basins(spec: BasinSpec) -> gpd.GeoDataFrame:
+    """The incremental balance units: each basin with upstream basins, minus those basins.
+
+    The difference is taken exactly (`shapely.difference`) in the basin file's own CRS, then taken to
+    lon/lat as `read_basins` does; the area is the same geodesic area (`geodesic_area_m2`). The part of an
+    upstream basin outside its downstream basin (at most 5% of its area) has nothing to subtract from.
+
+    Returns
+    -------
+    geopandas.GeoDataFrame
+        Indexed by the downstream basin's id (``basin``), in file order; columns ``name``, ``area_km2``
+        (incremental, km2), ``whole_area_km2``, ``upstream`` (the upstream basin ids, joined with ","),
+        ``geometry`` (EPSG:4326). Empty when no basin has upstream basins.
+
+    Raises
+    ------
+    InputError
+        Without ``downstream_field``; as `read_basins` for a bad nesting; for an incremental unit that
+        is empty (upstream basins covering their downstream basin whole).
+    """
+    if not spec.downstream_field:
+        raise InputError(f"{spec.path}: basins have no 'downstream_field' in the catalog: no basin has an "
+                         "incremental unit")
+    native, ids, names = _read_native(spec)
+    drains, _ = _nesting(spec, native, ids)
+    pos = {b: i for i, b in enumerate(ids)}
+    geoms = np.asarray(native.geometry.values)
+    rows, inc, ups = [], [], []
+    for b in ids:
+        up = [u for u in ids if drains.get(u) == b]
+        if not up:
+            continue
+        g = shapely.difference(geoms[pos[b]], shapely.union_all([geoms[pos[u]] for u in up]))
+        g = _polygonal(g) if not g.is_empty and g.geom_type not in ("Polygon", "MultiPolygon") else g
+        if g.is_empty or g.area <= 0:
+            raise InputError(f"{spec.path}: field 'downstream_field': basins {', '.join(up)} cover basin {b!r} "
+                             "whole; its incremental unit is empty")
+        rows.append(b)
+        inc.append(g)
+        ups.append(",".join(up))
+    sub = gpd.GeoDataFrame(geometry=inc, crs=native.crs, index=pd.Index(rows, name="basin"))
+    lonlat = _to_lonlat(spec, sub, rows) if rows else []
+    whole = geodesic_area_m2(_to_lonlat(spec, native.loc[rows], rows)) / 1e6 if rows else []
+    return gpd.GeoDataFrame(
+        {"name": [names[pos[b]] for b in rows], "area_km2": geodesic_area_m2(lonlat) / 1e6 if rows else [],
+         "whole_area_km2": whole, "upstream": ups},
+        geometry=list(lonlat), crs="EPSG:4326", index=pd.Index(rows, name="basin", dtype=object),
+    )
+
+
+def _read_native(spec: BasinSpec) -> tuple[gpd.GeoDataFrame, list[str], list[str]]:
+    """The basin file in its own CRS (indexed by id, invalid geometries repaired), ids and names."""
     path = spec.path
     try:
         gdf = gpd.read_file(path, layer=spec.layer) if spec.layer else gpd.read_file(path)
@@ -66,6 +140,8 @@ def read_basins(spec: BasinSpec) -> gpd.GeoDataFrame:
         raise InputError(f"{path}: field 'id_field': column {spec.id_field!r} not found (has: {', '.join(c for c in gdf.columns if c != 'geometry')})")
     if spec.name_field and spec.name_field not in gdf.columns:
         raise InputError(f"{path}: field 'name_field': column {spec.name_field!r} not found")
+    if spec.downstream_field and spec.downstream_field not in gdf.columns:
+        raise InputError(f"{path}: field 'downstream_field': column {spec.downstream_field!r} not found")
     if len(gdf) == 0:
         raise InputError(f"{path}: the basin file holds no features")
     ids = gdf[spec.id_field].astype(str).str.strip()
@@ -90,8 +166,15 @@ def read_basins(spec: BasinSpec) -> gpd.GeoDataFrame:
             reason = shapely.is_valid_reason(fixed[i])
             fixed[i] = _polygonal(shapely.make_valid(fixed[i]))
             warnings.warn(f"{path}: basin {ids.iloc[i]!r} had an invalid geometry ({reason}); repaired with make_valid",
-                          BasinRepairWarning, stacklevel=2)
+                          BasinRepairWarning, stacklevel=3)
         gdf = gdf.set_geometry(gpd.GeoSeries(fixed, crs=gdf.crs, index=gdf.index))
+    names = gdf[spec.name_field].astype(str) if spec.name_field else ids
+    gdf = gdf.set_index(pd.Index(ids.values, name="basin"))
+    return gdf, [str(b) for b in ids.values], [str(n) for n in names.values]
+
+
+def _to_lonlat(spec: BasinSpec, gdf: gpd.GeoDataFrame, ids) -> list:
+    """Geometries of ``gdf`` (in the file's CRS) in lon/lat, densified and unwrapped as basins are."""
     if not gdf.crs.is_geographic:
         # densify in the file's CRS first: an edge is straight there, and a long straight edge of a
         # polar projection is a curve in lon/lat (a coarse circle about a pole would otherwise
@@ -104,14 +187,52 @@ def read_basins(spec: BasinSpec) -> gpd.GeoDataFrame:
         try:
             fixed.append(unwrap_lonlat(g))
         except ValueError as exc:
-            raise InputError(f"{path}: basin {ids.iloc[i]!r}: {exc}") from None
-    gdf = gdf.set_geometry(gpd.GeoSeries(fixed, crs="EPSG:4326", index=gdf.index))
-    names = gdf[spec.name_field].astype(str) if spec.name_field else ids
-    out = gpd.GeoDataFrame(
-        {"name": names.values, "area_km2": geodesic_area_m2(gdf.geometry.values) / 1e6},
-        geometry=gdf.geometry.values, crs="EPSG:4326", index=pd.Index(ids.values, name="basin"),
-    )
-    return out
+            raise InputError(f"{spec.path}: basin {ids[i]!r}: {exc}") from None
+    return fixed
+
+
+def _nesting(spec: BasinSpec, native: gpd.GeoDataFrame, ids: list[str]) -> tuple[dict, dict]:
+    """basin -> the basin it drains to (only those that drain into one), and basin -> km2 outside it.
+
+    Refused, naming the file, ``downstream_field`` and the value: a downstream id not in the file, a
+    cycle (listed), and an upstream basin sticking out of its downstream basin by more than 5% of its
+    area (the area outside, km2 and %, is geodesic as every basin area).
+    """
+    path, field = spec.path, spec.downstream_field
+    drains: dict[str, str] = {}
+    for b, v in zip(ids, native[field].values):
+        if v is None or (isinstance(v, float) and np.isnan(v)) or str(v).strip() == "":
+            continue
+        d = str(v).strip()
+        if d not in native.index:
+            raise InputError(f"{path}: field 'downstream_field': basin {b!r} drains to {d!r}, "
+                             "which is not in the basin file")
+        drains[b] = d
+    for b in ids:
+        chain = [b]
+        while chain[-1] in drains:
+            nxt = drains[chain[-1]]
+            if nxt in chain:
+                cycle = chain[chain.index(nxt):] + [nxt]
+                raise InputError(f"{path}: field 'downstream_field': basins drain in a cycle: {' -> '.join(cycle)}")
+            chain.append(nxt)
+    outside: dict[str, float] = {}
+    for u, d in drains.items():
+        gu, gd = native.geometry.loc[u], native.geometry.loc[d]
+        part = shapely.difference(gu, gd)
+        if part.is_empty or part.area <= 0:
+            outside[u] = 0.0
+            continue
+        part = _polygonal(part) if part.geom_type not in ("Polygon", "MultiPolygon") else part
+        sub = gpd.GeoDataFrame(geometry=[part, gu], crs=native.crs, index=[u, u])
+        a_out, a_u = geodesic_area_m2(_to_lonlat(spec, sub, [u, u])) / 1e6
+        outside[u] = float(a_out)
+        share = a_out / a_u if a_u > 0 else 1.0
+        if share > MAX_OUTSIDE_SHARE:
+            raise InputError(f"{path}: field 'downstream_field': basin {u!r} drains to {d!r} but sticks out of it "
+                             f"by {a_out:,.1f} km2 ({100 * share:.1f}% of its area; at most "
+                             f"{100 * MAX_OUTSIDE_SHARE:g}% is accepted and clipped)")
+    return drains, outside
 
 
 def _densify(g, parts: int = 512):

@@ -29,6 +29,8 @@ __all__ = [
     "BasinSpec",
     "DischargeSpec",
     "StationTableSpec",
+    "FlowSpec",
+    "DIRECTIONS",
     "open_catalog",
     "file_sha256",
 ]
@@ -37,14 +39,20 @@ COMPONENTS = ("P", "ET", "TWSA")
 RESERVED_IDS = {"discharge", "Q", "basin", "time"}
 
 _TOP_KEYS = {"catalog_version": True, "title": False, "description": False, "basins": True,
-             "discharge": False, "sources": True}
-_BASIN_KEYS = {"path": True, "id_field": True, "name_field": False, "crs": False, "layer": False}
+             "discharge": False, "sources": True, "flows": False}
+_BASIN_KEYS = {"path": True, "id_field": True, "name_field": False, "crs": False, "layer": False,
+               "downstream_field": False}
 # Station tables (version 2 additions, accepted in both versions; DESIGN.md "Station tables").
 # `basin_field` is version 1's spelling of `station_field`; one of the two is required for a long table.
 _DISCHARGE_KEYS = {"path": True, "time_field": True, "station_field": False, "basin_field": False,
                    "value_field": False, "units": True, "layout": False, "separator": False,
                    "decimal": False, "missing_values": False, "date_format": False, "sheet": False,
                    "stations": False, "min_coverage": False}
+# a flow (DESIGN.md "More balance terms"): the station-table fields (without `stations`: the flow names its
+# one station) plus its id, the basin whose balance it enters, its direction, station and label
+_FLOW_KEYS = {**{k: v for k, v in _DISCHARGE_KEYS.items() if k != "stations"},
+              "id": True, "basin": True, "direction": True, "station": True, "label": False}
+DIRECTIONS = ("in", "out")
 LAYOUTS = ("long", "wide")
 # files GDAL reads beside a GeoTIFF (nodata, scale, masks, overviews): inputs too (writers, caches)
 GEOTIFF_SIDECARS = (".aux.xml", ".ovr", ".msk")
@@ -84,6 +92,7 @@ class BasinSpec:
     name_field: str | None = None
     crs: str | None = None
     layer: str | None = None
+    downstream_field: str | None = None  # column: id of the basin each basin drains into (nesting)
 
 
 @dataclass(frozen=True)
@@ -123,6 +132,31 @@ class StationTableSpec:
 
 
 DischargeSpec = StationTableSpec  # the discharge table is a station table
+
+
+@dataclass(frozen=True)
+class FlowSpec:
+    """One more balance term measured at a gauge (an inflow, an abstraction, a transfer).
+
+    ``table`` is read like the discharge table; ``station`` is its column (wide) or station id (long);
+    ``basin`` is the basin whose balance the flow enters, ``direction`` "in" or "out".
+    """
+
+    id: str
+    basin: str
+    direction: str
+    station: str
+    table: StationTableSpec
+    label: str | None = None
+
+    @property
+    def display(self) -> str:
+        return self.label or self.id
+
+    @property
+    def var(self) -> str:
+        """Its variable in the canonical series."""
+        return f"flow_{self.id}"
 
 
 @dataclass(frozen=True)
@@ -180,6 +214,14 @@ class Catalog:
     description: str = ""
     sha256: str = ""
     raw: dict = field(default_factory=dict, repr=False, compare=False)
+    flows: tuple[FlowSpec, ...] = ()
+
+    def flow(self, flow_id: str) -> FlowSpec:
+        for f in self.flows:
+            if f.id == flow_id:
+                return f
+        known = ", ".join(f.id for f in self.flows) or "none"
+        raise CatalogError(f"{self.path}: no flow {flow_id!r} (known: {known})")
 
     def source(self, source_id: str) -> SourceSpec:
         for s in self.sources:
@@ -203,6 +245,8 @@ class Catalog:
             out += sorted(q for q in b.parent.glob(_glob.escape(b.stem) + ".*") if q != b)
         if self.discharge is not None:
             out.append(self.discharge.path)
+        for f in self.flows:
+            out.append(f.table.path)
         for s in self.sources:
             out.extend(s.paths)
         return tuple(dict.fromkeys(out))
@@ -315,6 +359,7 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
         name_field=_str(cat, "basins: ", b, "name_field"),
         crs=_str(cat, "basins: ", b, "crs"),
         layer=_str(cat, "basins: ", b, "layer"),
+        downstream_field=_str(cat, "basins: ", b, "downstream_field"),
     )
     if basins.crs is not None:
         _check_crs(cat, "basins: ", basins.crs)
@@ -386,6 +431,7 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
             label=_str(cat, where, s, "label"), description=_str(cat, where, s, "description"),
             date_format=date_format, time_start=tstart, time_step=step, **errs, **mask,
         ))
+    flows = _flows(cat, data.get("flows"), seen)
     return Catalog(
         path=cat,
         title=str(data.get("title") or cat.stem),
@@ -395,7 +441,57 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
         description=str(data.get("description") or ""),
         sha256=hashlib.sha256(text).hexdigest(),
         raw=data,
+        flows=flows,
     )
+
+
+def _simple_id(cat: Path, where: str, key: str, val: str) -> None:
+    if val in RESERVED_IDS or not val.replace("_", "a").replace("-", "a").isalnum():
+        _fail(cat, where, f"field {key!r}: {val!r} is reserved or not a simple name (letters, digits, _ and -)")
+
+
+def _text(cat: Path, where: str, d: dict, key: str) -> str:
+    """A required id field that must be text as written (YAML reads 0123 as the number 83)."""
+    val = d.get(key)
+    if not isinstance(val, str):
+        _fail(cat, where, f"field {key!r}: {val!r} is not text (YAML reads 0123 as the number 83); "
+                          "put the id in quotes")
+    return val
+
+
+def _flows(cat: Path, raw, source_ids: set[str]) -> tuple[FlowSpec, ...]:
+    """The ``flows`` entries: ids unique and distinct from source ids, direction in/out, station tables.
+
+    Whether the basin and the station exist is known only once the basin file and the table are read
+    (`wbexplore.io.stations.read_flow_series`).
+    """
+    if raw is None:
+        return ()
+    if not isinstance(raw, list):
+        _fail(cat, "", f"field 'flows' must be a list, got {type(raw).__name__}")
+    out: list[FlowSpec] = []
+    seen: set[str] = set()
+    for i, f in enumerate(raw):
+        fid = f.get("id") if isinstance(f, dict) else None
+        where = f"flow {fid!r}: " if isinstance(fid, str) and fid else f"flow #{i + 1}: "
+        _check_keys(cat, where, f, _FLOW_KEYS)
+        fid = _text(cat, where, f, "id")
+        _simple_id(cat, where, "id", fid)
+        if fid in seen:
+            _fail(cat, where, f"field 'id': duplicate flow id {fid!r}")
+        if fid in source_ids:
+            _fail(cat, where, f"field 'id': flow id {fid!r} is also a source id")
+        seen.add(fid)
+        direction = f.get("direction")
+        if direction not in DIRECTIONS:
+            _fail(cat, where, f"field 'direction': {direction!r} is not one of {', '.join(DIRECTIONS)}")
+        basin = _text(cat, where, f, "basin")
+        station = _text(cat, where, f, "station")
+        table = _station_table(cat, where, {k: v for k, v in f.items() if k in _DISCHARGE_KEYS},
+                               kind="flow")
+        out.append(FlowSpec(id=fid, basin=basin, direction=direction, station=station, table=table,
+                            label=_str(cat, where, f, "label")))
+    return tuple(out)
 
 
 def _station_table(cat: Path, where: str, d: Any, *, kind: str) -> StationTableSpec:

@@ -32,9 +32,9 @@ from ..errors import InputError, UnitError
 from ..temporal import (station_daily_means, station_days_in_month, station_month_range,
                         station_monthly_means)
 from ..units import flow_m3s_to_mm_per_month, parse_discharge_unit, parse_level_unit
-from .catalog import StationTableSpec
+from .catalog import FlowSpec, StationTableSpec
 
-__all__ = ["read_station_table", "read_discharge_series", "read_discharge", "coverage_var",
+__all__ = ["read_station_table", "read_discharge_series", "read_discharge", "read_flow_series", "coverage_var",
            "StationTable", "DuplicateRowsWarning"]
 
 # Median spacing of a station's time stamps: daily records are 1 day apart (a day or two missing
@@ -268,7 +268,7 @@ def _steps(frame: pd.DataFrame, path) -> tuple[set, set]:
 
 
 def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
-                       use: list[str] | None = None) -> StationTable:
+                       use: list[str] | None = None, use_field: str = "stations") -> StationTable:
     """Read a station table to per-station calendar months in a base unit.
 
     Parameters
@@ -281,6 +281,8 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
     use : list of str, optional
         Only these station ids (columns of a wide table, ids of a long one); others are ignored.
         Default: every station of the table.
+    use_field : str
+        The catalog field that named ``use`` (for the message when one is not in the table).
 
     Monthly value: the mean of the present days (sub-daily records averaged to days first); a month
     with fewer than ``spec.min_coverage`` of its days is NaN. For a depth per day (mm/day) the value
@@ -302,7 +304,7 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
         missing = [s for s in use if s not in present]
         if missing:
             what = "column" if spec.layout == "wide" else "station"
-            raise InputError(f"{path}: field 'stations': {what} {_short(missing[0])} is not in the table")
+            raise InputError(f"{path}: field {use_field!r}: {what} {_short(missing[0])} is not in the table")
         frame = frame[frame["station"].isin(use)]
     frame = _collapse_duplicates(frame, path, raw)
     frame = frame.sort_values(["station", "t"], kind="stable")
@@ -414,3 +416,59 @@ def read_discharge(spec: StationTableSpec, basin_area_km2: pd.Series) -> xr.Data
     da = ds["discharge"]
     da.name = "discharge"
     return da
+
+
+def read_flow_series(flows: tuple[FlowSpec, ...] | list[FlowSpec], basin_area_km2: pd.Series, *,
+                     catalog=None) -> xr.Dataset:
+    """Each flow as ``flow_<id>`` (basin, time) in mm/month over the basin's area, plus coverage.
+
+    Parameters
+    ----------
+    flows : sequence of FlowSpec
+        The catalog's ``flows`` entries.
+    basin_area_km2 : pandas.Series
+        Area (km2) of each balance unit, indexed by basin id: the flow is turned into a depth over it.
+    catalog : path, optional
+        The catalog file, named in the message when a flow names a basin the basin file does not hold.
+
+    Returns
+    -------
+    xarray.Dataset
+        ``flow_<id>``: the flow's monthly mean (m3/s, mean of the present days as for discharge) as a
+        depth over the area of its basin (mm/month); 0.0 for every other basin (the flow does not enter
+        their balance); NaN where the gauge has no record or too few days. Depths per period (mm/month)
+        are taken as depths over the basin's area as they are. Attributes: ``role="flow"``, ``flow_id``,
+        ``direction`` ("in" | "out"), ``label``, ``units="mm/month"``, ``component="flow"``, ``station``,
+        ``basin`` (the target), ``source_units``. (The pipeline adds the basins the target drains into:
+        a flow entering a basin enters their whole areas too.) A daily station also gives ``coverage_flow_<id>``
+        (time; share of each month's days with a record).
+    """
+    ds = xr.Dataset()
+    basins = [str(b) for b in basin_area_km2.index]
+    for f in flows:
+        if f.basin not in basins:
+            where = catalog if catalog is not None else f.table.path
+            raise InputError(f"{where}: flow {f.id!r}: field 'basin': basin {_short(f.basin)} is not in the basin file")
+    for f in flows:
+        table = read_station_table(f.table, kind="flow", use=[f.station], use_field="station")
+        s = table.monthly.loc[f.station]
+        months = pd.DatetimeIndex(s.index)
+        full = station_month_range(months.min(), months.max())
+        s = s.reindex(full)
+        i = basins.index(f.basin)
+        v = s["value"].to_numpy(float)
+        if table.unit_kind == "flow":
+            v = flow_m3s_to_mm_per_month(v, full, float(basin_area_km2.iloc[i]) * 1e6)
+        values = np.zeros((len(basins), len(full)))
+        values[i] = v
+        ds[f.var] = xr.DataArray(values, dims=("basin", "time"), coords={"basin": basins, "time": full}, attrs={
+            "role": "flow", "component": "flow", "flow_id": f.id, "direction": f.direction, "label": f.display,
+            "long_name": f.display, "units": "mm/month", "station": f.station, "basin": f.basin,
+            "source_units": f.table.units})
+        if f.station in table.daily:
+            cov = s["coverage"].fillna(0.0).to_numpy(float)
+            ds[f"coverage_{f.var}"] = xr.DataArray(cov, dims="time", coords={"time": full}, attrs={
+                "role": "coverage", "station": f.station, "basin": f.basin, "flow_id": f.id, "units": "1",
+                "long_name": f"share of the month's days with a record at station {f.station}",
+                "min_coverage": f.table.min_coverage, "daily": 1})
+    return ds
