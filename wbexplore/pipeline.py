@@ -83,7 +83,7 @@ def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True) -
     """
     if src.blocks is not None:
         blocks = src.blocks if keep_open else dataclasses.replace(src.blocks, keep_open=False)
-        return zonal_mean_blocks(blocks, weights, src.data["time"].values)
+        return zonal_mean_blocks(blocks, weights, src.data["time"].values, month_weights=src.step_weights)
     return zonal_mean(src.data, weights)
 
 

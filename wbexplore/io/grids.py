@@ -50,6 +50,9 @@ class SourceGrid:
     native_step: str  # one of wbexplore.temporal.STEPS
     incomplete_months: int = 0  # months not covered on every day (sub-monthly steps): empty, never scaled
     blocks: BlockReader | None = None  # direct reader of the stored values, when it decodes exactly like `data`
+    # sub-monthly steps read by `blocks`: (months x stored steps) day-weighted map of
+    # `wbexplore.temporal.month_weights` (NaN rows: incomplete months), applied inside the single pass
+    step_weights: np.ndarray | None = None
 
     @property
     def months(self) -> pd.DatetimeIndex:
@@ -583,6 +586,7 @@ def open_source(spec: SourceSpec) -> SourceGrid:
     times = _to_datetime_index(spec, da["time"].values)
     step = _source_step(spec, times if bounds_mid is None or spec.time_step else bounds_mid)
     incomplete = 0
+    step_weights = None
     if step == "month":
         stamp = bounds_mid if bounds_mid is not None else times
         months = month_index(stamp)
@@ -601,7 +605,6 @@ def open_source(spec: SourceSpec) -> SourceGrid:
         else:
             factor = flux.monthly_factor(months)
     else:
-        blocks = None  # periods are mapped onto months cell by cell first: the xarray path does that
         if spec.component == "TWSA":
             kind, factor_const = "state", twsa_factor
         else:
@@ -614,11 +617,16 @@ def open_source(spec: SourceSpec) -> SourceGrid:
         starts = times.normalize()
         try:
             da, months, inc = temporal.periods_to_months(starts, step, da.assign_coords(time=starts), kind)
+            if blocks is not None:
+                # the block reader reads stored steps in file order and maps them onto months in its pass
+                bmonths, step_weights, _ = temporal.month_weights(starts, step, kind)
         except temporal.TemporalError as exc:
             _fail(spec, f"field 'time_step' {step!r}: {exc}")
+        if blocks is not None and (not starts.is_monotonic_increasing or not bmonths.equals(months)):
+            blocks = step_weights = None  # stored order is not time order: the xarray path reorders
         incomplete = len(inc)
         factor = np.full(len(months), factor_const)
     da.name = spec.id
     da.attrs = {"units": units}
     return SourceGrid(spec=spec, data=da, crs=crs, factor=np.asarray(factor, float), native_units=units,
-                      native_step=step, incomplete_months=incomplete, blocks=blocks)
+                      native_step=step, incomplete_months=incomplete, blocks=blocks, step_weights=step_weights)
