@@ -230,6 +230,8 @@ def warn_implausible(ds: xr.Dataset) -> None:
 
 def _compute(lazy: dict, *, client, progress):
     import dask
+    from dask.threaded import get as threads  # named by the function: the name "threads" makes dask
+    # import distributed (about 0.6 s) to look for a client that a local run never has
 
     keys = list(lazy)
     objs = [lazy[k] for k in keys]
@@ -246,9 +248,9 @@ def _compute(lazy: dict, *, client, progress):
         from tqdm.dask import TqdmCallback
 
         with TqdmCallback(desc="extract", leave=False):
-            results = dask.compute(*objs, scheduler="threads")
+            results = dask.compute(*objs, scheduler=threads)
     else:
-        results = dask.compute(*objs, scheduler="threads")
+        results = dask.compute(*objs, scheduler=threads)
     return dict(zip(keys, results))
 
 

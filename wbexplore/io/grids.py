@@ -176,6 +176,18 @@ def _crs_from_cf(spec, ds: xr.Dataset, da: xr.DataArray, xd: str, yd: str) -> CR
     _fail(spec, "the grid carries no CRS and the catalog declares none (add 'crs: EPSG:...')")
 
 
+def _netcdf4_first(opener, target, **kwargs):
+    """Open netCDF with the netCDF4 engine named: when xarray guesses the engine it imports every
+    installed backend first (rioxarray and rasterio among them, about 1 s of a command's start-up).
+    A file that engine cannot open is tried again with xarray's guess (the error is then xarray's)."""
+    try:
+        return opener(target, engine="netcdf4", **kwargs)
+    except Exception as exc:
+        if _out_of_descriptors(exc):
+            raise
+        return opener(target, **kwargs)
+
+
 def _time_chunk(ny: int, nx: int, itemsize: int) -> int:
     return int(max(1, TARGET_CHUNK_BYTES // max(1, ny * nx * itemsize)))
 
@@ -190,12 +202,12 @@ def _open_netcdf_or_zarr(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.Dateti
                 warnings.filterwarnings("ignore", message=".*consolidated metadata.*")
                 ds = xr.open_zarr(spec.paths[0], chunks=None, decode_timedelta=False, mask_and_scale=raw)
         elif len(spec.paths) > 1:
-            ds = xr.open_mfdataset([str(p) for p in spec.paths], combine="by_coords", chunks={},
-                                   decode_timedelta=False, mask_and_scale=raw, data_vars="minimal", coords="minimal",
-                                   compat="override", join="override")
+            ds = _netcdf4_first(xr.open_mfdataset, [str(p) for p in spec.paths], combine="by_coords", chunks={},
+                                decode_timedelta=False, mask_and_scale=raw, data_vars="minimal", coords="minimal",
+                                compat="override", join="override")
         else:
-            ds = xr.open_dataset(spec.paths[0], chunks=None, cache=False, decode_timedelta=False,
-                                 mask_and_scale=raw)
+            ds = _netcdf4_first(xr.open_dataset, spec.paths[0], chunks=None, cache=False, decode_timedelta=False,
+                                mask_and_scale=raw)
     except InputError:
         raise
     except Exception as exc:
