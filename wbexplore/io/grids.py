@@ -26,6 +26,7 @@ import xarray as xr
 from pyproj import CRS
 
 from ..errors import InputError, UnitError
+from ..temporal import _apply_weights_xarray
 from ..units import parse_flux_unit, parse_storage_unit
 from .blocks import BlockReader, GeoTIFFBlocks, NetCDFBlocks
 from .catalog import SourceSpec
@@ -559,8 +560,6 @@ def _combine_duplicates(spec: SourceSpec, da: xr.DataArray, months: pd.DatetimeI
     uniq = pd.DatetimeIndex(months.unique())
     w = (np.asarray(months)[None, :] == np.asarray(uniq)[:, None]).astype(float)
     w /= w.sum(axis=1, keepdims=True)  # the plain mean of the steps in a month
-    from ..temporal import _apply_weights_xarray
-
     return _apply_weights_xarray(da, w, uniq)
 
 
@@ -627,15 +626,19 @@ def open_source(spec: SourceSpec) -> SourceGrid:
                 _fail(spec, str(exc))
             kind = "rate" if flux.kind == "rate" else "amount"
         starts = times.normalize()
+        if blocks is not None and not starts.is_monotonic_increasing:
+            blocks = None  # stored order is not time order: the xarray path reorders
         try:
-            da, months, inc = temporal.periods_to_months(starts, step, da.assign_coords(time=starts), kind)
             if blocks is not None:
-                # the block reader reads stored steps in file order and maps them onto months in its pass
-                bmonths, step_weights, _ = temporal.month_weights(starts, step, kind)
+                # the block reader maps stored steps onto months inside its single pass; `data` (read only
+                # where a caller asks for grids) applies the same weights, without building xarray's
+                # resample graph (0.2 s for two years of days) that the extraction would never run
+                months, step_weights, inc = temporal.month_weights(starts, step, kind)
+                da = _apply_weights_xarray(da.assign_coords(time=starts), step_weights, months)
+            else:
+                da, months, inc = temporal.periods_to_months(starts, step, da.assign_coords(time=starts), kind)
         except temporal.TemporalError as exc:
             _fail(spec, f"field 'time_step' {step!r}: {exc}")
-        if blocks is not None and (not starts.is_monotonic_increasing or not bmonths.equals(months)):
-            blocks = step_weights = None  # stored order is not time order: the xarray path reorders
         incomplete = len(inc)
         factor = np.full(len(months), factor_const)
     da.name = spec.id
