@@ -47,8 +47,11 @@ def tiny(tmp_path_factory):
     lon, lat = lonlat_grid(-1, 1, 0, 1, 0.25)
     write_nc(d / "p.nc", np.ones((12, lat.size, lon.size)), lon, lat,
              pd.date_range("2020-01-01", periods=12, freq="MS"), units="mm/month")
+    days = pd.date_range("2020-01-01", "2020-03-31", freq="D")  # a daily source: months formed while streaming
+    write_nc(d / "e.nc", np.ones((len(days), lat.size, lon.size)), lon, lat, days, units="mm/day")
     box_basins(d / "basins.geojson", [(-1, 0, 1, 1)])
-    return write_catalog(d, [{"id": "p", "component": "P", "path": "p.nc"}])
+    return write_catalog(d, [{"id": "p", "component": "P", "path": "p.nc"},
+                             {"id": "e", "component": "ET", "path": "e.nc"}])
 
 
 def test_check_imports_no_display_distributed_or_geotiff_stack(tiny):

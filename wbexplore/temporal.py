@@ -352,7 +352,12 @@ def _apply_weights_xarray(da, w: np.ndarray, months: pd.DatetimeIndex):
 
     data = da.data
     if hasattr(data, "dask"):
-        data = data.rechunk({0: -1})  # a month draws on periods of any chunk
+        import dask
+
+        # a month draws on periods of any chunk; the method is named because dask otherwise imports
+        # distributed to look for a client (0.6 s of a command's start-up) and, without one, picks "tasks"
+        with dask.config.set({"array.rechunk.method": "tasks"}):
+            data = data.rechunk({0: -1})
         out = data.map_blocks(block, chunks=((w.shape[0],),) + data.chunks[1:], dtype=float)
     else:
         out = block(data)
