@@ -175,3 +175,29 @@ def test_packed_daily_codes_range_and_offset(tmp_path):
     r_mean, r_vf = _basin_means(w, ref.values)
     np.testing.assert_allclose(mean, r_mean, rtol=1e-9)
     np.testing.assert_allclose(vf, r_vf, rtol=1e-12, atol=1e-15)
+
+
+@pytest.mark.cluster
+def test_streamed_months_on_a_local_cluster_equal_local(tmp_path):
+    """The month plan travels to worker processes (pickled with the reader): same numbers as locally."""
+    import warnings
+
+    from distributed import Client, LocalCluster
+
+    from wbexplore.pipeline import extract
+
+    _daily(tmp_path, np.random.default_rng(6))
+    _composites(tmp_path, np.random.default_rng(7))
+    box_basins(tmp_path / "basins.geojson", BOXES)
+    cat = write_catalog(tmp_path, [{"id": "d", "component": "P", "path": "d.nc"},
+                                   {"id": "e8", "component": "ET", "path": "et/et_*.tif", "date_format": "%Y%j"}],
+                        extra={"catalog_version": 2})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        local = extract(cat, cache_dir=tmp_path / "cache")
+        with LocalCluster(n_workers=1, threads_per_worker=2, processes=True, dashboard_address=None) as cl, \
+                Client(cl) as client:
+            dist = extract(cat, client=client, cache_dir=tmp_path / "cache")
+    for v in ("d", "e8", "valid_fraction_d", "valid_fraction_e8"):
+        assert np.isfinite(local[v].values).any()
+        np.testing.assert_allclose(dist[v].values, local[v].values, rtol=1e-12, equal_nan=True)
