@@ -58,7 +58,8 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                             out[i, b, 1] += w
         return out
 
-    @numba.njit(cache=True, nogil=True, parallel=True)
+    # not parallel: a streaming task hands it one or a few months, and dask already runs a task per core
+    @numba.njit(cache=True, nogil=True)
     def _accumulate_months(X, cells, indptr, indices, data, nb, nodata, vmin, vmax, codes, w, s0, s1):  # noqa: D401
         nm = w.shape[0]
         out = np.zeros((nm, nb, 2))
@@ -66,7 +67,7 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
         clo = codes[0] if ncode else 0.0
         chi = codes[ncode - 1] if ncode else 0.0
         nc = cells.size
-        for m in numba.prange(nm):
+        for m in range(nm):
             a = s0[m]
             b = s1[m]
             if b <= a:
