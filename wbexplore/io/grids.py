@@ -9,7 +9,8 @@ it does not vary in space, and it keeps extraction a single pass over the data.
 Time stamps may be month-start, mid-month or month-end, or CF time bounds; daily,
 pentad, dekad, 8-day and 16-day values are mapped onto calendar months day-weighted
 by `wbexplore.temporal` (summed for fluxes, averaged for TWSA), and a month with a
-missing day is NaN, never scaled up.
+missing day is NaN, never scaled up. Where a block reader streams the file, the same
+month weights (`SourceGrid.step_weights`) are applied inside its single pass.
 """
 
 from __future__ import annotations
