@@ -123,6 +123,8 @@ def _day_expansion_grid(starts, step, X):
     flat = pd.DataFrame(daily.reshape(daily.shape[0], -1), index=days)
     monthly = flat.groupby(days.to_period("M")).sum(min_count=1)
     monthly[flat.isna().groupby(days.to_period("M")).any()] = np.nan  # a missing day empties the month
+    have = pd.Series(1, index=days).groupby(days.to_period("M")).size()
+    monthly[(have.values < have.index.days_in_month.values)] = np.nan  # so does a month not covered
     return monthly.to_numpy().reshape(-1, *X.shape[1:])
 
 
@@ -201,3 +203,48 @@ def test_streamed_months_on_a_local_cluster_equal_local(tmp_path):
     for v in ("d", "e8", "valid_fraction_d", "valid_fraction_e8"):
         assert np.isfinite(local[v].values).any()
         np.testing.assert_allclose(dist[v].values, local[v].values, rtol=1e-12, equal_nan=True)
+
+
+def _write_band(path, arr, *, dtype, nodata, scale=1.0, offset=0.0):
+    import rasterio
+    from rasterio.transform import from_origin
+
+    with rasterio.open(path, "w", driver="GTiff", width=LON.size, height=LAT.size, count=1, dtype=dtype,
+                       crs="EPSG:4326", transform=from_origin(-1, 1, 0.25, 0.25), nodata=nodata) as dst:
+        dst.write(arr[None].astype(dtype))
+        dst.scales, dst.offsets = (scale,), (offset,)
+        dst.update_tags(units="mm/day")
+
+
+@pytest.mark.parametrize("dtype, nodata, scale, offset, odd", [
+    ("float32", float("nan"), 1.0, 0.0, None),
+    ("uint16", 65535, 0.01, 0.5, None),
+    ("uint16", 65535, 0.01, 0.5, "nodata"),  # one file with another no-data value: every file through rioxarray
+])
+def test_series_of_files_decoded_as_rioxarray_decodes_each(tmp_path, dtype, nodata, scale, offset, odd):
+    """A glob of single-band files is opened from its first file (the others looked at with plain
+    rasterio); its values equal rioxarray's own decoding of every file (``mask_and_scale=True``)."""
+    import rioxarray
+
+    rng = np.random.default_rng(8)
+    starts = T.period_starts_between("8-day", "2020-01-01", "2020-03-31")
+    (tmp_path / "s").mkdir()
+    paths = []
+    for k, s in enumerate(starts):
+        arr = rng.integers(0, 3000, (LAT.size, LON.size)).astype(float)
+        fill = 65534 if odd and k == 3 else nodata
+        arr[rng.random(arr.shape) < 0.1] = fill
+        paths.append(tmp_path / "s" / f"x_{s:%Y%j}.tif")
+        _write_band(paths[-1], arr, dtype=dtype, nodata=fill, scale=scale, offset=offset)
+    g, w = _source(tmp_path, {"id": "s", "component": "ET", "path": "s/x_*.tif", "date_format": "%Y%j"})
+    ref = np.stack([rioxarray.open_rasterio(p, mask_and_scale=True).values[0] for p in paths])
+    fast = any(str(k[0]).startswith("wbx-series") for k in dict(g.data.data.dask))
+    assert fast is (odd is None)
+    # the monthly grids are day-weighted sums of the decoded files (the day expansion, north first)
+    np.testing.assert_allclose(g.data.values, _day_expansion_grid(starts, "8-day", ref), rtol=1e-6)
+    if odd is None:
+        mean = _streamed(g, w)[0]
+    else:  # packing differs between files: no block reader, the grids are extracted
+        mean = zonal_mean(g.data, w).compute()["mean"].values * g.factor
+    r_mean, _ = _basin_means(w, _day_expansion_grid(starts, "8-day", ref.astype(float)))
+    np.testing.assert_allclose(mean, r_mean * g.factor, rtol=1e-6)

@@ -190,6 +190,15 @@ def _netcdf4_first(opener, target, **kwargs):
         return opener(target, **kwargs)
 
 
+def _chunk(da: xr.DataArray, chunks: dict) -> xr.DataArray:
+    """``da.chunk(chunks)`` with dask's rechunk method named: unnamed, dask imports distributed to look
+    for a client (0.6 s of a command's start-up) and, without one, picks "tasks"."""
+    import dask
+
+    with dask.config.set({"array.rechunk.method": "tasks"}):
+        return da.chunk(chunks)
+
+
 def _time_chunk(ny: int, nx: int, itemsize: int) -> int:
     return int(max(1, TARGET_CHUNK_BYTES // max(1, ny * nx * itemsize)))
 
@@ -240,7 +249,7 @@ def _open_netcdf_or_zarr(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.Dateti
     da = da.drop_vars([c for c in da.coords if c not in ("time", "y", "x")])
     ny, nx = da.sizes["y"], da.sizes["x"]
     tc = _time_chunk(ny, nx, da.dtype.itemsize)
-    da = da.chunk({"time": tc, "y": -1, "x": -1})
+    da = _chunk(da, {"time": tc, "y": -1, "x": -1})
     return da, crs, bounds_month, blocks
 
 
@@ -466,9 +475,12 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
         for p in spec.paths:
             items.append((_date_from_name(spec, p), p))
         items.sort()
+        fast = _uniform_series(spec, items, _one)
+        if fast is not None:
+            da, blocks, first = fast
         arrays = []
-        first = None
-        for k, (t, p) in enumerate(items):
+        first = None if fast is None else first
+        for k, (t, p) in enumerate(items if fast is None else ()):
             a = _one(p, band_chunks=1, index=k)
             if a.sizes["band"] != 1:
                 _fail(spec, f"expected single-band files in a date-named series, found {a.sizes['band']} bands", p)
@@ -481,11 +493,12 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
             # so a glob of thousands of files never holds thousands of descriptors at once
             a.close()
             arrays.append(a.isel(band=0, drop=True))
-        blocks = _geotiff_blocks([p for _, p in items], arrays)
-        da = xr.concat(arrays, dim=pd.Index([t for t, _ in items], name="band"), coords="minimal",
-                       compat="override", join="override")
-        da.attrs = first.attrs
-        da.rio.write_crs(first.rio.crs, inplace=True)
+        if fast is None:
+            blocks = _geotiff_blocks([p for _, p in items], arrays)
+            da = xr.concat(arrays, dim=pd.Index([t for t, _ in items], name="band"), coords="minimal",
+                           compat="override", join="override")
+            da.attrs = first.attrs
+            da.rio.write_crs(first.rio.crs, inplace=True)
     crs_r = da.rio.crs
     if spec.crs:
         crs = CRS.from_user_input(spec.crs)
@@ -499,8 +512,76 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
     if units and "units" not in da.attrs:
         da.attrs["units"] = units
     ny, nx = da.sizes["y"], da.sizes["x"]
-    da = da.chunk({"time": _time_chunk(ny, nx, da.dtype.itemsize), "y": -1, "x": -1})
+    da = _chunk(da, {"time": _time_chunk(ny, nx, da.dtype.itemsize), "y": -1, "x": -1})
     return da, crs, None, blocks
+
+
+def _read_band(path: str, decoded_dtype: str | None) -> np.ndarray:
+    """Band 1 of one file of a series as a (1, y, x) block (a dask task): stored values, or (with
+    ``decoded_dtype``) decoded step by step as rioxarray's ``mask_and_scale=True`` decodes a band
+    (masked read, filled with NaN in the decoded type, then ``* scale + offset`` in that type)."""
+    import rasterio
+
+    with rasterio.open(path) as src:
+        if decoded_dtype is None:
+            return src.read(1)[None]
+        out = np.ma.filled(src.read(1, masked=True).astype(decoded_dtype), np.nan)
+        return (out * src.scales[0] + src.offsets[0])[None]
+
+
+def _uniform_series(spec: SourceSpec, items, open_one):
+    """A glob of single-band files that all share the first file's grid, CRS, data type, no-data value
+    and packing, opened from the first file alone: the others are looked at with plain rasterio
+    (about 1 ms a file, against 10 to 14 ms through rioxarray: 6 s for 460 composites).
+
+    Returns ``(data, blocks, first)`` (``data`` decoded by xarray's own CF decoding, as rioxarray
+    decodes each file), or None where some file differs in anything but its grid (the per-file path
+    then opens every file). A file with several bands or another grid is refused as on that path."""
+    import dask.array as dsa
+    import rasterio
+
+    paths = [p for _, p in items]
+    first = open_one(paths[0], band_chunks=1, index=0)
+    if first.sizes["band"] != 1:
+        _fail(spec, f"expected single-band files in a date-named series, found {first.sizes['band']} bands", paths[0])
+    first.close()
+
+    def profile(path, k):
+        try:
+            with rasterio.open(path) as src:
+                return (src.count, src.shape, src.transform, src.dtypes[0], src.nodata, src.scales[0], src.offsets[0],
+                        src.crs)
+        except Exception as exc:
+            if _out_of_descriptors(exc):
+                _fail(spec, f"the process ran out of file descriptors while opening file {k + 1} of "
+                            f"{len(paths)} (limit {_fd_limit()}; raise it with 'ulimit -n')", path)
+            _fail(spec, f"cannot be opened as GeoTIFF ({exc.__class__.__name__})", path)
+
+    ref = profile(paths[0], 0)
+    same_nodata = (lambda a, b: a == b or (a is not None and b is not None and np.isnan(a) and np.isnan(b)))
+    for k, p in enumerate(paths[1:], start=1):
+        pr = profile(p, k)
+        if pr[0] != 1:
+            _fail(spec, f"expected single-band files in a date-named series, found {pr[0]} bands", p)
+        if pr[1] != ref[1] or not pr[2].almost_equals(ref[2]):
+            _fail(spec, "grid differs from the series' first file", p)
+        if pr[3] != ref[3] or not same_nodata(pr[4], ref[4]) or pr[5:] != ref[5:]:
+            return None
+    if "_Unsigned" in first.attrs or "_Unsigned" in first.encoding:
+        return None  # rioxarray reinterprets the stored type: the per-file path
+    blocks = _geotiff_blocks(paths, [first.isel(band=0, drop=True)])
+    ny, nx = first.sizes["y"], first.sizes["x"]
+    decoded = None if spec.declares_packing else first.dtype.str
+    name = "wbx-series-" + __import__("uuid").uuid4().hex
+    dsk = {(name, i, 0, 0): (_read_band, str(p), decoded) for i, p in enumerate(paths)}
+    data = dsa.Array(dsk, name, chunks=((1,) * len(paths), (ny,), (nx,)), dtype=first.dtype)
+    da = xr.DataArray(data, dims=("band", "y", "x"),
+                      coords={"band": pd.Index([t for t, _ in items], name="band"), "y": first["y"].values,
+                              "x": first["x"].values})
+    da.attrs = dict(first.attrs)
+    da.encoding = dict(first.encoding)
+    da.rio.write_crs(first.rio.crs, inplace=True)
+    return da, blocks, first
 
 
 def _out_of_descriptors(exc: BaseException) -> bool:
