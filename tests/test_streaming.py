@@ -248,3 +248,31 @@ def test_series_of_files_decoded_as_rioxarray_decodes_each(tmp_path, dtype, noda
         mean = zonal_mean(g.data, w).compute()["mean"].values * g.factor
     r_mean, _ = _basin_means(w, _day_expansion_grid(starts, "8-day", ref.astype(float)))
     np.testing.assert_allclose(mean, r_mean * g.factor, rtol=1e-6)
+
+
+def test_series_of_files_out_of_descriptors_is_named_as_such(tmp_path, monkeypatch):
+    """The one-profile opening looks at files 2..n with plain rasterio: running out of descriptors there
+    is named as such (file k of n, ``ulimit -n``), one line, not as a file that cannot be opened."""
+    import errno
+
+    import rasterio
+
+    from wbexplore.errors import InputError
+
+    starts = T.period_starts_between("8-day", "2020-01-01", "2020-02-28")
+    (tmp_path / "s").mkdir()
+    for s in starts:
+        write_tif(tmp_path / "s" / f"x_{s:%Y%j}.tif", np.ones((LAT.size, LON.size)), LON, LAT, units="mm/day")
+    real, calls = rasterio.open, []
+
+    def opener(path, *a, **k):
+        calls.append(path)
+        if len(calls) == 3:
+            raise OSError(errno.EMFILE, "Too many open files")
+        return real(path, *a, **k)
+
+    monkeypatch.setattr(rasterio, "open", opener)
+    with pytest.raises(InputError) as ei:
+        _source(tmp_path, {"id": "s", "component": "ET", "path": "s/x_*.tif", "date_format": "%Y%j"})
+    msg = str(ei.value)
+    assert "file descriptors" in msg and f"of {len(starts)}" in msg and "ulimit -n" in msg and "\n" not in msg
