@@ -152,6 +152,8 @@ def test_out_of_descriptors_is_named_as_such(tmp_path, monkeypatch):
         return real(path, *a, **k)
 
     monkeypatch.setattr(rioxarray, "open_rasterio", opener)
+    # the per-file path (files whose profiles differ); test_streaming covers the one-profile opening
+    monkeypatch.setattr("wbexplore.io.grids._uniform_series", lambda *a, **k: None)
     with pytest.raises(InputError) as ei:
         open_source(cat.sources[0])
     msg = str(ei.value)

@@ -9,7 +9,16 @@ from __future__ import annotations
 __version__ = "0.1.0"
 
 from .errors import CatalogError, InputError, SelectionError, UnitError  # noqa: E402
-from .io.catalog import Catalog, open_catalog  # noqa: E402
+
+
+def __getattr__(name):
+    # the catalog module brings pandas and pint (about 0.4 s): imported when first used, so that
+    # `wbexplore --help` and the command line's argument errors answer at once
+    if name in ("Catalog", "open_catalog"):
+        from .io import catalog
+
+        return getattr(catalog, name)
+    raise AttributeError(f"module 'wbexplore' has no attribute {name!r}")
 
 
 def extract(catalog, **kwargs):

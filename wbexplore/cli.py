@@ -11,6 +11,7 @@ import json
 import os
 import sys
 import warnings
+from contextlib import contextmanager
 from pathlib import Path
 
 from . import __version__
@@ -152,7 +153,7 @@ def _parser() -> argparse.ArgumentParser:
 def _cmd_check(args) -> int:
     from .io.catalog import open_catalog
     from .io.grids import open_source
-    from .pipeline import load_basins
+    from .cache import load_basins
 
     cat = open_catalog(args.catalog)
     basins = load_basins(cat)
@@ -248,6 +249,25 @@ def _print_station_table(spec, table) -> None:
               + (f", {gaps} month(s) accepted with gaps (coverage_{st})" if gaps else ""))
 
 
+@contextmanager
+def _no_distributed_probe():
+    """xarray's netCDF writer and dask ask ``distributed`` whether a client is running, importing it
+    (about 0.6 s of start-up). A process that never imported it runs no client: while the block runs,
+    importing it fails with ImportError, which both probes take as "no distributed client"."""
+    if "distributed" in sys.modules:
+        yield
+        return
+    names = ("distributed", "dask.distributed")
+    for n in names:
+        sys.modules[n] = None  # an import of a name mapped to None raises ImportError
+    try:
+        yield
+    finally:
+        for n in names:
+            if sys.modules.get(n, 0) is None:
+                del sys.modules[n]
+
+
 def _cmd_extract(args) -> int:
     from .io.catalog import open_catalog
     from .io.writers import atomic_path, check_output
@@ -258,7 +278,7 @@ def _cmd_extract(args) -> int:
     check_output(args.out, overwrite=args.force, protect=cat)
     ds = extract(args.catalog, scheduler=args.scheduler, workers=args.workers, progress=not args.quiet,
                  cache_dir=args.cache_dir)
-    with atomic_path(args.out, overwrite=args.force, protect=cat) as tmp:
+    with atomic_path(args.out, overwrite=args.force, protect=cat) as tmp, _no_distributed_probe():
         ds.to_netcdf(tmp, format="NETCDF4")
     print(f"wrote {args.out}: {ds.sizes['basin']} basins x {ds.sizes['time']} months, "
           f"{len([v for v in ds.data_vars if ds[v].attrs.get('role') == 'source'])} sources")

@@ -90,7 +90,7 @@ def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True) -
     """
     if src.blocks is not None:
         blocks = src.blocks if keep_open else dataclasses.replace(src.blocks, keep_open=False)
-        return zonal_mean_blocks(blocks, weights, src.data["time"].values)
+        return zonal_mean_blocks(blocks, weights, src.data["time"].values, month_weights=src.step_weights)
     return zonal_mean(src.data, weights)
 
 
@@ -253,6 +253,8 @@ def warn_implausible(ds: xr.Dataset) -> None:
 
 def _compute(lazy: dict, *, client, progress):
     import dask
+    from dask.threaded import get as threads  # named by the function: the name "threads" makes dask
+    # import distributed (about 0.6 s) to look for a client that a local run never has
 
     keys = list(lazy)
     objs = [lazy[k] for k in keys]
@@ -269,9 +271,9 @@ def _compute(lazy: dict, *, client, progress):
         from tqdm.dask import TqdmCallback
 
         with TqdmCallback(desc="extract", leave=False):
-            results = dask.compute(*objs, scheduler="threads")
+            results = dask.compute(*objs, scheduler=threads)
     else:
-        results = dask.compute(*objs, scheduler="threads")
+        results = dask.compute(*objs, scheduler=threads)
     return dict(zip(keys, results))
 
 

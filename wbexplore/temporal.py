@@ -46,6 +46,7 @@ __all__ = [
     "step_fits_stamps",
     "infer_step",
     "month_overlap_days",
+    "month_weights",
     "periods_to_months",
     "station_days_in_month",
     "station_month_range",
@@ -255,6 +256,41 @@ def _period_weights(starts, ends, kind: str):
     return months, w, covered
 
 
+def month_weights(starts, ends_or_step, kind: str = "rate") -> tuple[pd.DatetimeIndex, np.ndarray, pd.DatetimeIndex]:
+    """The day-weighted map of periods onto calendar months, as a matrix.
+
+    ``monthly = weights @ values`` (periods along the first axis of ``values``), where a month whose
+    row is NaN is incomplete (empty, never scaled up) and a month is empty wherever a period with a
+    non-zero weight in its row is NaN. `periods_to_months` applies it; the block readers apply it
+    cell by cell inside their single pass (`wbexplore.spatial.zonal.zonal_mean_blocks`).
+
+    Parameters
+    ----------
+    starts : sequence of dates
+        First day of each period, in the order of ``values`` (need not be sorted).
+    ends_or_step : sequence of dates (exclusive ends) or a step name of `STEPS`
+    kind : "rate" | "amount" | "state"
+        See `periods_to_months`: weights in days (rate), in shares of a period (amount) or in shares
+        of a month (state).
+
+    Returns
+    -------
+    months : DatetimeIndex of month starts, from the first period's month to the last day's month
+    weights : ndarray (n_months, n_periods), float64; NaN rows for incomplete months
+    incomplete : DatetimeIndex of the months not covered on every day
+
+    Raises `TemporalError` when periods overlap or a start is not the first day of the named step.
+    """
+    starts = pd.DatetimeIndex(pd.to_datetime(np.asarray(starts))).normalize()
+    if isinstance(ends_or_step, str):
+        ends = period_ends(starts, ends_or_step)
+    else:
+        ends = pd.DatetimeIndex(pd.to_datetime(np.asarray(ends_or_step))).normalize()
+    months, w, covered = _period_weights(starts, ends, kind)
+    w = np.where(covered[:, None], w, np.nan)  # incomplete months are empty, never scaled up
+    return months, w, months[~covered]
+
+
 def periods_to_months(starts, ends_or_step, values, kind: str = "rate", *, axis: int = 0):
     """Map values of periods onto calendar months, day-weighted.
 
@@ -279,16 +315,10 @@ def periods_to_months(starts, ends_or_step, values, kind: str = "rate", *, axis:
     A value that is NaN empties every month its period touches. Raises `TemporalError` when
     periods overlap or a start is not the first day of the named step.
     """
-    starts = pd.DatetimeIndex(pd.to_datetime(np.asarray(starts))).normalize()
-    if isinstance(ends_or_step, str):
-        ends = period_ends(starts, ends_or_step)
-    else:
-        ends = pd.DatetimeIndex(pd.to_datetime(np.asarray(ends_or_step))).normalize()
     if isinstance(ends_or_step, str) and ends_or_step == "day" and hasattr(values, "dims"):
+        starts = pd.DatetimeIndex(pd.to_datetime(np.asarray(starts))).normalize()
         return _days_to_months_xarray(starts, values, kind)
-    months, w, covered = _period_weights(starts, ends, kind)
-    incomplete = months[~covered]
-    w = np.where(covered[:, None], w, np.nan)  # incomplete months are empty, never scaled up
+    months, w, incomplete = month_weights(starts, ends_or_step, kind)
     if hasattr(values, "dims"):
         return _apply_weights_xarray(values, w, months), months, incomplete
     x = np.moveaxis(np.asarray(values, dtype=float), axis, 0)
@@ -322,7 +352,12 @@ def _apply_weights_xarray(da, w: np.ndarray, months: pd.DatetimeIndex):
 
     data = da.data
     if hasattr(data, "dask"):
-        data = data.rechunk({0: -1})  # a month draws on periods of any chunk
+        import dask
+
+        # a month draws on periods of any chunk; the method is named because dask otherwise imports
+        # distributed to look for a client (0.6 s of a command's start-up) and, without one, picks "tasks"
+        with dask.config.set({"array.rechunk.method": "tasks"}):
+            data = data.rechunk({0: -1})
         out = data.map_blocks(block, chunks=((w.shape[0],),) + data.chunks[1:], dtype=float)
     else:
         out = block(data)

@@ -9,7 +9,8 @@ it does not vary in space, and it keeps extraction a single pass over the data.
 Time stamps may be month-start, mid-month or month-end, or CF time bounds; daily,
 pentad, dekad, 8-day and 16-day values are mapped onto calendar months day-weighted
 by `wbexplore.temporal` (summed for fluxes, averaged for TWSA), and a month with a
-missing day is NaN, never scaled up.
+missing day is NaN, never scaled up. Where a block reader streams the file, the same
+month weights (`SourceGrid.step_weights`) are applied inside its single pass.
 """
 
 from __future__ import annotations
@@ -26,6 +27,7 @@ import xarray as xr
 from pyproj import CRS
 
 from ..errors import InputError, UnitError
+from ..temporal import _apply_weights_xarray
 from ..units import parse_flux_unit, parse_storage_unit
 from .blocks import BlockReader, GeoTIFFBlocks, NetCDFBlocks
 from .catalog import SourceSpec
@@ -50,6 +52,9 @@ class SourceGrid:
     native_step: str  # one of wbexplore.temporal.STEPS
     incomplete_months: int = 0  # months not covered on every day (sub-monthly steps): empty, never scaled
     blocks: BlockReader | None = None  # direct reader of the stored values, when it decodes exactly like `data`
+    # sub-monthly steps read by `blocks`: (months x stored steps) day-weighted map of
+    # `wbexplore.temporal.month_weights` (NaN rows: incomplete months), applied inside the single pass
+    step_weights: np.ndarray | None = None
 
     @property
     def months(self) -> pd.DatetimeIndex:
@@ -173,6 +178,27 @@ def _crs_from_cf(spec, ds: xr.Dataset, da: xr.DataArray, xd: str, yd: str) -> CR
     _fail(spec, "the grid carries no CRS and the catalog declares none (add 'crs: EPSG:...')")
 
 
+def _netcdf4_first(opener, target, **kwargs):
+    """Open netCDF with the netCDF4 engine named: when xarray guesses the engine it imports every
+    installed backend first (rioxarray and rasterio among them, about 1 s of a command's start-up).
+    A file that engine cannot open is tried again with xarray's guess (the error is then xarray's)."""
+    try:
+        return opener(target, engine="netcdf4", **kwargs)
+    except Exception as exc:
+        if _out_of_descriptors(exc):
+            raise
+        return opener(target, **kwargs)
+
+
+def _chunk(da: xr.DataArray, chunks: dict) -> xr.DataArray:
+    """``da.chunk(chunks)`` with dask's rechunk method named: unnamed, dask imports distributed to look
+    for a client (0.6 s of a command's start-up) and, without one, picks "tasks"."""
+    import dask
+
+    with dask.config.set({"array.rechunk.method": "tasks"}):
+        return da.chunk(chunks)
+
+
 def _time_chunk(ny: int, nx: int, itemsize: int) -> int:
     return int(max(1, TARGET_CHUNK_BYTES // max(1, ny * nx * itemsize)))
 
@@ -187,12 +213,12 @@ def _open_netcdf_or_zarr(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.Dateti
                 warnings.filterwarnings("ignore", message=".*consolidated metadata.*")
                 ds = xr.open_zarr(spec.paths[0], chunks=None, decode_timedelta=False, mask_and_scale=raw)
         elif len(spec.paths) > 1:
-            ds = xr.open_mfdataset([str(p) for p in spec.paths], combine="by_coords", chunks={},
-                                   decode_timedelta=False, mask_and_scale=raw, data_vars="minimal", coords="minimal",
-                                   compat="override", join="override")
+            ds = _netcdf4_first(xr.open_mfdataset, [str(p) for p in spec.paths], combine="by_coords", chunks={},
+                                decode_timedelta=False, mask_and_scale=raw, data_vars="minimal", coords="minimal",
+                                compat="override", join="override")
         else:
-            ds = xr.open_dataset(spec.paths[0], chunks=None, cache=False, decode_timedelta=False,
-                                 mask_and_scale=raw)
+            ds = _netcdf4_first(xr.open_dataset, spec.paths[0], chunks=None, cache=False, decode_timedelta=False,
+                                mask_and_scale=raw)
     except InputError:
         raise
     except Exception as exc:
@@ -223,7 +249,7 @@ def _open_netcdf_or_zarr(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.Dateti
     da = da.drop_vars([c for c in da.coords if c not in ("time", "y", "x")])
     ny, nx = da.sizes["y"], da.sizes["x"]
     tc = _time_chunk(ny, nx, da.dtype.itemsize)
-    da = da.chunk({"time": tc, "y": -1, "x": -1})
+    da = _chunk(da, {"time": tc, "y": -1, "x": -1})
     return da, crs, bounds_month, blocks
 
 
@@ -449,9 +475,12 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
         for p in spec.paths:
             items.append((_date_from_name(spec, p), p))
         items.sort()
+        fast = _uniform_series(spec, items, _one)
+        if fast is not None:
+            da, blocks, first = fast
         arrays = []
-        first = None
-        for k, (t, p) in enumerate(items):
+        first = None if fast is None else first
+        for k, (t, p) in enumerate(items if fast is None else ()):
             a = _one(p, band_chunks=1, index=k)
             if a.sizes["band"] != 1:
                 _fail(spec, f"expected single-band files in a date-named series, found {a.sizes['band']} bands", p)
@@ -464,11 +493,12 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
             # so a glob of thousands of files never holds thousands of descriptors at once
             a.close()
             arrays.append(a.isel(band=0, drop=True))
-        blocks = _geotiff_blocks([p for _, p in items], arrays)
-        da = xr.concat(arrays, dim=pd.Index([t for t, _ in items], name="band"), coords="minimal",
-                       compat="override", join="override")
-        da.attrs = first.attrs
-        da.rio.write_crs(first.rio.crs, inplace=True)
+        if fast is None:
+            blocks = _geotiff_blocks([p for _, p in items], arrays)
+            da = xr.concat(arrays, dim=pd.Index([t for t, _ in items], name="band"), coords="minimal",
+                           compat="override", join="override")
+            da.attrs = first.attrs
+            da.rio.write_crs(first.rio.crs, inplace=True)
     crs_r = da.rio.crs
     if spec.crs:
         crs = CRS.from_user_input(spec.crs)
@@ -482,8 +512,76 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
     if units and "units" not in da.attrs:
         da.attrs["units"] = units
     ny, nx = da.sizes["y"], da.sizes["x"]
-    da = da.chunk({"time": _time_chunk(ny, nx, da.dtype.itemsize), "y": -1, "x": -1})
+    da = _chunk(da, {"time": _time_chunk(ny, nx, da.dtype.itemsize), "y": -1, "x": -1})
     return da, crs, None, blocks
+
+
+def _read_band(path: str, decoded_dtype: str | None) -> np.ndarray:
+    """Band 1 of one file of a series as a (1, y, x) block (a dask task): stored values, or (with
+    ``decoded_dtype``) decoded step by step as rioxarray's ``mask_and_scale=True`` decodes a band
+    (masked read, filled with NaN in the decoded type, then ``* scale + offset`` in that type)."""
+    import rasterio
+
+    with rasterio.open(path) as src:
+        if decoded_dtype is None:
+            return src.read(1)[None]
+        out = np.ma.filled(src.read(1, masked=True).astype(decoded_dtype), np.nan)
+        return (out * src.scales[0] + src.offsets[0])[None]
+
+
+def _uniform_series(spec: SourceSpec, items, open_one):
+    """A glob of single-band files that all share the first file's grid, CRS, data type, no-data value
+    and packing, opened from the first file alone: the others are looked at with plain rasterio
+    (about 1 ms a file, against 10 to 14 ms through rioxarray: 6 s for 460 composites).
+
+    Returns ``(data, blocks, first)`` (``data`` decoded by xarray's own CF decoding, as rioxarray
+    decodes each file), or None where some file differs in anything but its grid (the per-file path
+    then opens every file). A file with several bands or another grid is refused as on that path."""
+    import dask.array as dsa
+    import rasterio
+
+    paths = [p for _, p in items]
+    first = open_one(paths[0], band_chunks=1, index=0)
+    if first.sizes["band"] != 1:
+        _fail(spec, f"expected single-band files in a date-named series, found {first.sizes['band']} bands", paths[0])
+    first.close()
+
+    def profile(path, k):
+        try:
+            with rasterio.open(path) as src:
+                return (src.count, src.shape, src.transform, src.dtypes[0], src.nodata, src.scales[0], src.offsets[0],
+                        src.crs)
+        except Exception as exc:
+            if _out_of_descriptors(exc):
+                _fail(spec, f"the process ran out of file descriptors while opening file {k + 1} of "
+                            f"{len(paths)} (limit {_fd_limit()}; raise it with 'ulimit -n')", path)
+            _fail(spec, f"cannot be opened as GeoTIFF ({exc.__class__.__name__})", path)
+
+    ref = profile(paths[0], 0)
+    same_nodata = (lambda a, b: a == b or (a is not None and b is not None and np.isnan(a) and np.isnan(b)))
+    for k, p in enumerate(paths[1:], start=1):
+        pr = profile(p, k)
+        if pr[0] != 1:
+            _fail(spec, f"expected single-band files in a date-named series, found {pr[0]} bands", p)
+        if pr[1] != ref[1] or not pr[2].almost_equals(ref[2]):
+            _fail(spec, "grid differs from the series' first file", p)
+        if pr[3] != ref[3] or not same_nodata(pr[4], ref[4]) or pr[5:] != ref[5:]:
+            return None
+    if "_Unsigned" in first.attrs or "_Unsigned" in first.encoding:
+        return None  # rioxarray reinterprets the stored type: the per-file path
+    blocks = _geotiff_blocks(paths, [first.isel(band=0, drop=True)])
+    ny, nx = first.sizes["y"], first.sizes["x"]
+    decoded = None if spec.declares_packing else first.dtype.str
+    name = "wbx-series-" + __import__("uuid").uuid4().hex
+    dsk = {(name, i, 0, 0): (_read_band, str(p), decoded) for i, p in enumerate(paths)}
+    data = dsa.Array(dsk, name, chunks=((1,) * len(paths), (ny,), (nx,)), dtype=first.dtype)
+    da = xr.DataArray(data, dims=("band", "y", "x"),
+                      coords={"band": pd.Index([t for t, _ in items], name="band"), "y": first["y"].values,
+                              "x": first["x"].values})
+    da.attrs = dict(first.attrs)
+    da.encoding = dict(first.encoding)
+    da.rio.write_crs(first.rio.crs, inplace=True)
+    return da, blocks, first
 
 
 def _out_of_descriptors(exc: BaseException) -> bool:
@@ -544,8 +642,6 @@ def _combine_duplicates(spec: SourceSpec, da: xr.DataArray, months: pd.DatetimeI
     uniq = pd.DatetimeIndex(months.unique())
     w = (np.asarray(months)[None, :] == np.asarray(uniq)[:, None]).astype(float)
     w /= w.sum(axis=1, keepdims=True)  # the plain mean of the steps in a month
-    from ..temporal import _apply_weights_xarray
-
     return _apply_weights_xarray(da, w, uniq)
 
 
@@ -583,6 +679,7 @@ def open_source(spec: SourceSpec) -> SourceGrid:
     times = _to_datetime_index(spec, da["time"].values)
     step = _source_step(spec, times if bounds_mid is None or spec.time_step else bounds_mid)
     incomplete = 0
+    step_weights = None
     if step == "month":
         stamp = bounds_mid if bounds_mid is not None else times
         months = month_index(stamp)
@@ -601,7 +698,6 @@ def open_source(spec: SourceSpec) -> SourceGrid:
         else:
             factor = flux.monthly_factor(months)
     else:
-        blocks = None  # periods are mapped onto months cell by cell first: the xarray path does that
         if spec.component == "TWSA":
             kind, factor_const = "state", twsa_factor
         else:
@@ -612,8 +708,17 @@ def open_source(spec: SourceSpec) -> SourceGrid:
                 _fail(spec, str(exc))
             kind = "rate" if flux.kind == "rate" else "amount"
         starts = times.normalize()
+        if blocks is not None and not starts.is_monotonic_increasing:
+            blocks = None  # stored order is not time order: the xarray path reorders
         try:
-            da, months, inc = temporal.periods_to_months(starts, step, da.assign_coords(time=starts), kind)
+            if blocks is not None:
+                # the block reader maps stored steps onto months inside its single pass; `data` (read only
+                # where a caller asks for grids) applies the same weights, without building xarray's
+                # resample graph (0.2 s for two years of days) that the extraction would never run
+                months, step_weights, inc = temporal.month_weights(starts, step, kind)
+                da = _apply_weights_xarray(da.assign_coords(time=starts), step_weights, months)
+            else:
+                da, months, inc = temporal.periods_to_months(starts, step, da.assign_coords(time=starts), kind)
         except temporal.TemporalError as exc:
             _fail(spec, f"field 'time_step' {step!r}: {exc}")
         incomplete = len(inc)
@@ -621,4 +726,4 @@ def open_source(spec: SourceSpec) -> SourceGrid:
     da.name = spec.id
     da.attrs = {"units": units}
     return SourceGrid(spec=spec, data=da, crs=crs, factor=np.asarray(factor, float), native_units=units,
-                      native_step=step, incomplete_months=incomplete, blocks=blocks)
+                      native_step=step, incomplete_months=incomplete, blocks=blocks, step_weights=step_weights)

@@ -58,10 +58,45 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                             out[i, b, 1] += w
         return out
 
+    # not parallel: a streaming task hands it one or a few months, and dask already runs a task per core
+    @numba.njit(cache=True, nogil=True)
+    def _accumulate_months(X, cells, indptr, indices, data, nb, nodata, vmin, vmax, codes, w, s0, s1):  # noqa: D401
+        nm = w.shape[0]
+        out = np.zeros((nm, nb, 2))
+        ncode = codes.size
+        clo = codes[0] if ncode else 0.0
+        chi = codes[ncode - 1] if ncode else 0.0
+        nc = cells.size
+        for m in range(nm):
+            a = s0[m]
+            b = s1[m]
+            if b <= a:
+                continue  # an incomplete month: empty
+            acc = np.zeros(nc)
+            good = np.ones(nc, np.bool_)
+            for i in range(a, b):  # one period after the other: rows read in memory order
+                wi = w[m, i]
+                for j in range(nc):
+                    v = X[i, cells[j]]
+                    if v == v and v != nodata and v >= vmin and v <= vmax:
+                        if ncode and v >= clo and v <= chi:
+                            for q in range(ncode):
+                                if v == codes[q]:
+                                    good[j] = False
+                        acc[j] += wi * np.float64(v)
+                    else:
+                        good[j] = False
+            for j in range(nc):
+                if good[j]:  # the cell has a valid value for every period of the month
+                    for k in range(indptr[j], indptr[j + 1]):
+                        out[m, indices[k], 0] += data[k] * acc[j]
+                        out[m, indices[k], 1] += data[k]
+        return out
+
     HAVE_NUMBA = True
 except ImportError:  # pragma: no cover
     HAVE_NUMBA = False
-    _accumulate = None
+    _accumulate = _accumulate_months = None
 
 
 def kernel_args(used: np.ndarray, wu_t) -> tuple:
@@ -85,3 +120,42 @@ def accumulate(X2: np.ndarray, used: np.ndarray, wu_t, nodata: float = np.nan, *
     c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
     return _accumulate(X2, *(args or kernel_args(used, wu_t)), np.float64(nodata),
                        np.float64(valid_min), np.float64(valid_max), c)
+
+
+def accumulate_months(X2: np.ndarray, args: tuple, w: np.ndarray, s0: np.ndarray, s1: np.ndarray,
+                      nodata: float = np.nan, *, valid_min: float = -np.inf, valid_max: float = np.inf,
+                      codes=()) -> np.ndarray:
+    """(t, cells) block of periods -> (months, basins, 2) of [sum W m, sum W valid] over the used cells.
+
+    ``m`` is each cell's monthly value ``sum_i w[month, i] x[i, cell]`` over the periods
+    ``s0[month]:s1[month]`` of the block (the non-zero weights of `wbexplore.temporal.month_weights`);
+    a cell counts in a month only when every one of those values is valid (same mask as `accumulate`).
+    A month with ``s1 <= s0`` is empty (incomplete). Each basin still adds its cells in cell order.
+    """
+    c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
+    if HAVE_NUMBA:
+        return _accumulate_months(X2, *args, np.float64(nodata), np.float64(valid_min), np.float64(valid_max), c,
+                                  np.ascontiguousarray(w, np.float64), np.asarray(s0, np.int64),
+                                  np.asarray(s1, np.int64))
+    return _accumulate_months_numpy(X2, args, w, s0, s1, nodata, valid_min, valid_max, c)  # pragma: no cover
+
+
+def _accumulate_months_numpy(X2, args, w, s0, s1, nodata, vmin, vmax, codes):  # pragma: no cover - without numba
+    import scipy.sparse as sp
+
+    cells, indptr, indices, data, nb = args
+    wu_t = sp.csr_array((data, indices, indptr), shape=(cells.size, nb))
+    Xu = X2[:, cells]
+    bad = np.isnan(Xu) if Xu.dtype.kind == "f" else np.zeros(Xu.shape, bool)
+    bad |= (Xu == nodata) | (Xu < vmin) | (Xu > vmax) | np.isin(Xu, codes)
+    Xf = np.where(bad, 0.0, Xu.astype(np.float64))
+    out = np.zeros((w.shape[0], nb, 2))
+    for m in range(w.shape[0]):
+        a, b = int(s0[m]), int(s1[m])
+        if b <= a:
+            continue
+        good = ~bad[a:b].any(axis=0)
+        v = np.where(good, w[m, a:b] @ Xf[a:b], 0.0)
+        out[m, :, 0] = v @ wu_t
+        out[m, :, 1] = good.astype(np.float64) @ wu_t
+    return out

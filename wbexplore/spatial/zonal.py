@@ -200,27 +200,110 @@ def _sum_strips(*parts) -> np.ndarray:
 
 
 def _finish_packed(parts, covered, gc, scale, offset) -> np.ndarray:
+    """``offset``: one number, or one per month (see `zonal_mean_blocks`)."""
     both = _finish_parts(parts, covered, gc)
-    if scale != 1.0 or offset != 0.0:
+    if scale != 1.0 or np.any(np.asarray(offset) != 0.0):
         both[0] = both[0] * scale + offset  # a mean is linear: unpacking the mean unpacks every value
     return both
 
 
-def zonal_mean_blocks(reader, weights: Weights, time, *, task_bytes: int = TASK_BYTES,
-                      read_bytes: int = READ_BYTES) -> xr.Dataset:
+def _month_spans(month_weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """First and end (exclusive) stored step of each month's non-zero weights; an incomplete month
+    (NaN row) gets an empty span at the position of the month before it."""
+    nm, nt = month_weights.shape
+    s0 = np.zeros(nm, np.int64)
+    s1 = np.zeros(nm, np.int64)
+    pos = 0
+    for m in range(nm):
+        row = month_weights[m]
+        nz = np.flatnonzero(row != 0) if not np.isnan(row).any() else np.zeros(0, np.int64)
+        if nz.size:
+            if nz[-1] - nz[0] + 1 != nz.size:
+                raise ValueError("the periods of a month are not consecutive stored steps")
+            s0[m], s1[m] = nz[0], nz[-1] + 1
+            pos = s1[m]
+        else:
+            s0[m] = s1[m] = min(pos, nt)
+    return s0, s1
+
+
+def _month_tasks(month_weights: np.ndarray, steps: int, sub: int) -> list:
+    """Whole months per task (about ``steps`` stored steps each) and per read inside a task (about
+    ``sub``): ``[(t0, t1, plan), ...]`` with plan ``((m0, m1, r0, r1, w, s0, s1), ...)``: the months
+    m0:m1 of one read of stored steps r0:r1, their weights and their spans relative to r0."""
+    s0, s1 = _month_spans(month_weights)
+    nm = len(s0)
+
+    def groups(lo, hi, size):
+        out, m = [], lo
+        while m < hi:
+            n = m + 1
+            while n < hi and s1[n] - s0[m] <= size:
+                n += 1
+            out.append((m, n))
+            m = n
+        return out
+
+    tasks = []
+    for m0, m1 in groups(0, nm, steps):
+        plan = []
+        for a, b in groups(m0, m1, sub):
+            r0, r1 = int(s0[a:b].min()), int(s1[a:b].max())
+            plan.append((a, b, r0, r1, np.ascontiguousarray(month_weights[a:b, r0:r1]), s0[a:b] - r0, s1[a:b] - r0))
+        tasks.append((min(p[2] for p in plan), max(p[3] for p in plan), tuple(plan)))
+    return tasks
+
+
+def _plan_months(plan) -> int:
+    return plan[-1][1] - plan[0][0]
+
+
+def _read_accumulate_months(reader, t0, t1, r0, r1, c0, c1, args, plan) -> np.ndarray:
+    """One streaming task of sub-monthly steps: read the periods of whole months and form each cell's
+    monthly values while they are in cache; only the (months, basins, 2) sums leave the task."""
+    from ._kernel import accumulate_months
+
+    m_first = plan[0][0]
+    out = np.empty((_plan_months(plan), args[-1], 2))
+    mask = getattr(reader, "mask_args", {})
+    for a, b, q0, q1, w, s0, s1 in plan:
+        if q1 > q0:
+            X = reader.read(q0, q1, r0, r1, c0, c1)
+            out[a - m_first:b - m_first] = accumulate_months(X.reshape(X.shape[0], -1), args, w, s0, s1,
+                                                             reader.fill, **mask)
+        else:
+            out[a - m_first:b - m_first] = 0.0  # incomplete months only
+    return out
+
+
+def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarray | None = None,
+                      task_bytes: int = TASK_BYTES, read_bytes: int = READ_BYTES) -> xr.Dataset:
     """`zonal_mean` straight from a `wbexplore.io.blocks.BlockReader` (lazy, like the dask path).
 
     Each dask task reads one block of stored values (a run of time steps, whole rows of the
     basins' window) and accumulates it, so no grid-sized array ever passes between tasks and
     the read of one block overlaps the accumulation of another. Stored fill values are
     skipped and packing is applied to the means; the result equals decoding every value first.
+
+    Sub-monthly steps (days, pentads, dekads, N-day composites): ``month_weights`` is the
+    (months x stored steps) matrix of `wbexplore.temporal.month_weights` (NaN rows: incomplete
+    months) and ``time`` the months. Each cell's monthly value is formed inside the pass, in the
+    kernel (`_kernel.accumulate_months`), and only then weighted into the basins, so a cell missing
+    one day of a month drops out of that month exactly as when the months are formed on the grid
+    first (the xarray path); summing per-step basin means instead would fill that day with the
+    basin's other cells. Tasks and the reads inside them hold whole months: a period that spans two
+    months at a task boundary (a composite) is read by both tasks, and no month is ever split, so
+    its sums and its valid fraction never depend on where the tasks are cut.
     """
     import dask.array as dsa
 
     nt, ny, nx = reader.shape
     if (ny, nx) != weights.shape:
         raise ValueError(f"reader grid {(ny, nx)} does not match the weights' grid {weights.shape}")
-    if len(time) != nt:
+    if month_weights is not None:
+        if month_weights.shape != (len(time), nt):
+            raise ValueError(f"month weights {month_weights.shape} for {len(time)} months and {nt} stored steps")
+    elif len(time) != nt:
         raise ValueError(f"{len(time)} time stamps for {nt} stored steps")
     rs, cs, _, _ = weights.window()
     rows = _aligned(rs, reader.block_rows, ny)
@@ -251,24 +334,33 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, task_bytes: int = TASK_
     dsk = {(name + "-reader",): reader}
     for i, (*_, args) in enumerate(strips):
         dsk[(name + "-weights", i)] = args
+    if month_weights is None:
+        tasks = [(t0, min(nt, t0 + steps), sub) for t0 in range(0, nt, steps)]
+        n_out = nt
+    else:
+        tasks = _month_tasks(month_weights, steps, sub)
+        n_out = len(time)
     parts = []
-    for j, t0 in enumerate(range(0, nt, steps)):
-        t1 = min(nt, t0 + steps)
+    for j, (t0, t1, plan) in enumerate(tasks):
         keys = []
         for i, (r0, r1, c0, c1, _) in enumerate(strips):
             k = (name + "-part", j, i)
-            dsk[k] = (_read_accumulate, (name + "-reader",), t0, t1, r0, r1, c0, c1, (name + "-weights", i), sub)
+            fn = _read_accumulate if month_weights is None else _read_accumulate_months
+            dsk[k] = (fn, (name + "-reader",), t0, t1, r0, r1, c0, c1, (name + "-weights", i), plan)
             keys.append(k)
         if not keys:
-            parts.append(np.zeros((t1 - t0, nb, 2)))
+            parts.append(np.zeros((t1 - t0 if month_weights is None else _plan_months(plan), nb, 2)))
         elif len(keys) == 1:
             parts.append(keys[0])
         else:
             dsk[(name + "-sum", j)] = (_sum_strips, *keys)
             parts.append((name + "-sum", j))
+    # packing: sum_i w_i (s x_i + o) = s sum_i w_i x_i + o sum_i w_i, so a monthly value's offset is
+    # the offset times its row of weights (days in the month for rates, 1 for states and amounts)
+    offset = float(reader.offset) if month_weights is None else float(reader.offset) * month_weights.sum(axis=1)
     dsk[(name, 0, 0, 0)] = (_finish_packed, parts, weights.covered_area_m2, weights.grid_coverage,
-                            float(reader.scale), float(reader.offset))
-    stacked = dsa.Array(dsk, name, chunks=((2,), (nb,), (nt,)), dtype=np.float64)
+                            float(reader.scale), offset)
+    stacked = dsa.Array(dsk, name, chunks=((2,), (nb,), (n_out,)), dtype=np.float64)
     coords = {"basin": weights.basin, "time": np.asarray(time)}
     return xr.Dataset({"mean": (("basin", "time"), stacked[0]), "valid_fraction": (("basin", "time"), stacked[1])},
                       coords)

@@ -1,0 +1,75 @@
+"""Each command imports only what it needs (checked in a child process by inspecting ``sys.modules``).
+
+Start-up counts in a whole-process run (benchmarks/products.py): the display stack (panel, bokeh,
+holoviews), dask.distributed and, for a catalog of netCDF files, the GeoTIFF stack (rasterio,
+rioxarray) cost seconds of imports that `check` and a local `extract` never use.
+"""
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from utils import box_basins, lonlat_grid, write_catalog, write_nc
+
+ROOT = Path(__file__).resolve().parents[1]
+DISPLAY = ("panel", "bokeh", "holoviews", "hvplot", "ipywidgets")
+NOT_FOR_NETCDF = DISPLAY + ("distributed", "rasterio", "rioxarray")
+
+CHILD = """
+import json, sys, warnings
+warnings.simplefilter("ignore")
+from wbexplore.cli import main
+try:
+    rc = main(sys.argv[1:])
+except SystemExit as exc:  # --help
+    rc = exc.code
+print(json.dumps({"rc": rc, "modules": sorted(m.split(".")[0] for m in sys.modules if sys.modules[m] is not None)}))
+"""
+
+
+def _run(argv, cwd):
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    r = subprocess.run([sys.executable, "-c", CHILD, *map(str, argv)], capture_output=True, text=True, cwd=cwd,
+                       env=env, timeout=300)
+    last = r.stdout.strip().splitlines()[-1]
+    return json.loads(last), r
+
+
+@pytest.fixture(scope="module")
+def tiny(tmp_path_factory):
+    d = tmp_path_factory.mktemp("startup")
+    lon, lat = lonlat_grid(-1, 1, 0, 1, 0.25)
+    write_nc(d / "p.nc", np.ones((12, lat.size, lon.size)), lon, lat,
+             pd.date_range("2020-01-01", periods=12, freq="MS"), units="mm/month")
+    days = pd.date_range("2020-01-01", "2020-03-31", freq="D")  # a daily source: months formed while streaming
+    write_nc(d / "e.nc", np.ones((len(days), lat.size, lon.size)), lon, lat, days, units="mm/day")
+    box_basins(d / "basins.geojson", [(-1, 0, 1, 1)])
+    return write_catalog(d, [{"id": "p", "component": "P", "path": "p.nc"},
+                             {"id": "e", "component": "ET", "path": "e.nc"}])
+
+
+def test_check_imports_no_display_distributed_or_geotiff_stack(tiny):
+    out, r = _run(["check", tiny], tiny.parent)
+    assert out["rc"] == 0, r.stderr
+    assert [m for m in NOT_FOR_NETCDF if m in out["modules"]] == []
+    assert "xarray" in out["modules"]  # the child did read the catalog's product
+
+
+def test_local_extract_imports_no_display_distributed_or_geotiff_stack(tiny):
+    out, r = _run(["extract", tiny, "--out", tiny.parent / "o.nc", "--quiet", "--force",
+                   "--cache-dir", tiny.parent / "cache"], tiny.parent)
+    assert out["rc"] == 0, r.stderr
+    assert (tiny.parent / "o.nc").exists()
+    assert [m for m in NOT_FOR_NETCDF if m in out["modules"]] == []
+
+
+def test_help_imports_neither_pandas_nor_pint(tiny):
+    out, r = _run(["--help"], tiny.parent)
+    assert out["rc"] == 0 and "extract" in r.stdout
+    assert [m for m in ("pandas", "pint", "xarray", "numpy") if m in out["modules"]] == []
