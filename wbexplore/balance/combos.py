@@ -147,8 +147,8 @@ def best_selection(ds: xr.Dataset, basin: str, options: ClosureOptions | None = 
     opts = ClosureOptions.from_kwargs(options, **kwargs)
     r = rank(ds, basin, opts, by=by)
     row = r.iloc[0]
-    return Selection(basin=basin, P=row["P"], ET=row["ET"], TWSA=row["TWSA"], start=opts.start,
-                     end=opts.end, storage_change=opts.storage_change, matched=opts.matched, lag=opts.lag)
+    # every option a selection holds, so that the selection scores as the row it was chosen from
+    return Selection.from_options(basin, opts, P=row["P"], ET=row["ET"], TWSA=row["TWSA"])
 
 
 def long_term_all(ds: xr.Dataset, template: Selection) -> pd.DataFrame:
