@@ -198,3 +198,22 @@ def test_old_keywords_and_options_object_agree():
     assert a.equals(b)
     with pytest.raises(TypeError, match="wobble"):
         rank(ds, "B0", wobble=1)
+
+
+def test_flows_in_series_exports_and_by_difference(tmp_path):
+    """Flows reach the CSV and CF exports, and the unknown term by difference balances with them
+    (ET = P - Q - dS + inflows - outflows: the textbook balance solved for ET)."""
+    from wbexplore.balance import by_difference
+    from wbexplore.selection import series_dataset, write_series_csv
+
+    ds, truth = synthetic_series()
+    res = compute_selection(ds, Selection("B0", "P0", "ET0", "TWSA0"), min_valid=12)
+    out = write_series_csv(res, tmp_path / "s.csv")
+    f = pd.read_csv(out, comment="#", index_col="month")
+    assert {"flow_up", "flow_irr", "sigma_flow_up", "net_flow"} <= set(f.columns)
+    assert np.allclose(f["net_flow"], f["flow_up"] - f["flow_irr"], equal_nan=True)
+    cf = series_dataset(res)
+    assert cf["flow_irr"].attrs["units"] == "mm" and "outflow" in cf["flow_irr"].attrs["long_name"]
+    est = by_difference(ds, Selection("B0", "P0", "ET0", "TWSA0"), "ET", min_valid=12)["monthly"]
+    ok = est["estimate"].notna()
+    assert np.allclose(est["estimate"][ok], est["reference"][ok], rtol=0, atol=1e-9)

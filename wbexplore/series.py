@@ -57,6 +57,12 @@ def flow_variables(ds: xr.Dataset) -> list[str]:
     return [str(n) for n, v in ds.variables.items() if n in names and v.attrs.get("role") == ROLE_FLOW]
 
 
+def _source_components() -> tuple:
+    from .balance.terms import SOURCE_COMPONENTS  # the term table knows them (imported when used: no cycle)
+
+    return SOURCE_COMPONENTS
+
+
 def _where(ds) -> str:
     return str(ds.attrs.get("source") or "series")
 
@@ -76,9 +82,9 @@ def validate_series(ds: xr.Dataset) -> xr.Dataset:
         role = v.attrs.get("role")
         if role in (ROLE_SOURCE, ROLE_FLOW, ROLE_DISCHARGE) and tuple(v.dims) != ("basin", "time"):
             raise InputError(f"{where}: variable {n!r}: dims {tuple(v.dims)} are not ('basin', 'time')")
-        if role == ROLE_SOURCE and v.attrs.get("component") not in ("P", "ET", "TWSA"):
+        if role == ROLE_SOURCE and v.attrs.get("component") not in _source_components():
             raise InputError(f"{where}: variable {n!r}: field 'component' {v.attrs.get('component')!r} "
-                             "is not one of P, ET, TWSA")
+                             f"is not one of {', '.join(_source_components())}")
         if role == ROLE_FLOW:
             fid = v.attrs.get("flow_id")
             if not isinstance(fid, str) or flow_name(fid) != n:

@@ -7,6 +7,7 @@ reads files. Everything the explorer shows for a selection comes from
 
 from __future__ import annotations
 
+import re
 from dataclasses import asdict, dataclass, field, fields, replace
 
 import numpy as np
@@ -95,6 +96,7 @@ class SelectionResult:
     area_km2: float
     basin_name: str
     messages: list = field(default_factory=list)
+    terms: tuple = BASE_TERMS  # the balance's `Term` rows, flows included (frame columns by name)
 
     @property
     def n_valid(self) -> int:
@@ -260,7 +262,8 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     return SelectionResult(selection=sel, frame=frame, metrics=metrics,
                            area_km2=float(ds["basin_area_km2"].values[b]) if "basin_area_km2" in ds.coords else float("nan"),
                            basin_name=str(ds["basin_name"].values[b]) if "basin_name" in ds.coords else str(sel.basin),
-                           messages=msgs + [f"uncertainty: P {srcP}, ET {srcE}, TWSA {srcM}, Q {q_relative_error:.0%} of flow"])
+                           messages=msgs + [f"uncertainty: P {srcP}, ET {srcE}, TWSA {srcM}, Q {q_relative_error:.0%} of flow"],
+                           terms=a["terms"])
 
 
 def _span(months, ok):
@@ -281,8 +284,9 @@ def _no_overlap_message(ds, sel, terms, mask, months) -> str:
             + "; ".join(parts))
 
 
-_FLUX_COLS = ("P", "ET", "Q", "dS", "residual", "Qhat", "P_raw", "ET_raw", "Q_raw", "residual_unmatched",
-              "sigma_P", "sigma_ET", "sigma_Q", "sigma_dS", "sigma_residual")
+_FLUX_COLS = (*(t.name for t in BASE_TERMS), "residual", "Qhat", *(f"{t.name}_raw" for t in BASE_TERMS if not t.storage),
+              "residual_unmatched", *(f"sigma_{t.name}" for t in BASE_TERMS), "sigma_residual", "net_flow")
+_FLOW_COL = re.compile(r"(sigma_)?flow_.*")
 
 
 def to_unit_system(frame: pd.DataFrame, area_km2: float, system: str) -> pd.DataFrame:
@@ -297,7 +301,7 @@ def to_unit_system(frame: pd.DataFrame, area_km2: float, system: str) -> pd.Data
     out = frame.copy()
     area_m2 = area_km2 * 1e6
     months = pd.DatetimeIndex(frame.index)
-    for c in _FLUX_COLS:
+    for c in [c for c in out if c in _FLUX_COLS or _FLOW_COL.fullmatch(str(c))]:
         if c in out:
             out[c] = mm_to_m3(out[c].values, area_m2) if system == "m3" else \
                 mm_per_month_to_flow_m3s(out[c].values, months, area_m2)

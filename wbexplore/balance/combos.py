@@ -13,7 +13,11 @@ from .metrics import METRICS, check_metric, sort_key
 from .options import ClosureOptions
 from .terms import SOURCE_COMPONENTS
 
-__all__ = ["rank", "rank_all", "combination_terms", "best_selection", "best_scores", "long_term_all"]
+__all__ = ["RANK_TABLE_COLUMNS", "rank", "rank_all", "combination_terms", "best_selection", "best_scores", "long_term_all"]
+
+
+# the columns a ranking shows (command line, explorer, report)
+RANK_TABLE_COLUMNS = ("rank", *SOURCE_COMPONENTS, "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid")
 
 
 def combination_terms(ds: xr.Dataset, basin: str | None, *, storage_change_method: str = "central",

@@ -28,7 +28,7 @@ import xarray as xr
 from ..series import DIRECTIONS, DISCHARGE, FLOW_UNITS, flow_variables
 
 __all__ = ["Term", "KINDS", "P", "ET", "Q", "DS", "BASE_TERMS", "SOURCE_COMPONENTS", "FLUX_COMPONENTS",
-           "balance_terms", "flow_terms", "term_signs", "signs_of", "term"]
+           "balance_terms", "flow_terms", "balance_text", "term_signs", "signs_of", "term"]
 
 KINDS = ("gridded flux", "gridded storage", "station flux", "station storage")
 
@@ -100,6 +100,12 @@ def flow_terms(ds: xr.Dataset) -> tuple[Term, ...]:
 def balance_terms(ds: xr.Dataset | None = None) -> tuple[Term, ...]:
     """Every term of the balance of ``ds``: P, ET, Q, dS, then its flows (none without ``ds``)."""
     return BASE_TERMS + (flow_terms(ds) if ds is not None else ())
+
+
+def balance_text(terms: tuple[Term, ...] = BASE_TERMS) -> str:
+    """The residual as text: "P - ET - Q - dS" (+ each flow with its sign)."""
+    parts = [f"{'-' if t.sign < 0 else '+'} {t.name}" for t in terms]
+    return " ".join(parts)[2:] if parts[0].startswith("+") else " ".join(parts)
 
 
 def term(name: str, terms: tuple[Term, ...] = BASE_TERMS) -> Term:

@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from ..balance.closure import to_unit_system
+from ..balance.terms import SOURCE_COMPONENTS
 from ..escape import html_text, md_text
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -22,7 +23,8 @@ __all__ = ["COLORS", "SEASON_COLORS", "UNIT_LABEL", "component_bars", "residual_
            "basin_map", "multi_basin", "summary_html", "warnings_for", "warnings_markdown", "explain"]
 
 COLORS = {"P": "#0072B2", "ET": "#009E73", "Q": "#56B4E9", "dS": "#CC79A7", "residual": "#D55E00",
-          "band": "#E69F00", "gap": "#BBBBBB"}
+          "band": "#E69F00", "gap": "#BBBBBB",
+          "flow": "#999933"}
 SEASON_COLORS = {"DJF": "#0072B2", "MAM": "#009E73", "JJA": "#E69F00", "SON": "#CC79A7"}
 UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s"}
 GRAVIMETRY_MIN_KM2 = 200_000  # rule of thumb for satellite-gravimetry storage (e.g. Longuevergne et al. 2010, WRR)
@@ -58,14 +60,16 @@ def _nodata(result) -> str | None:
 
 
 def component_bars(result, unit_system: str = "mm"):
-    """Period means of P (in), ET, Q, dS (out) and the residual."""
+    """Period means of every balance term (P and inflows in; ET, Q, outflows, dS out) and the residual."""
     hv = _hv()
     f = to_unit_system(result.frame, result.area_km2, unit_system)
     ok = result.frame["valid"].values
-    terms = ["P", "ET", "Q", "dS", "residual"]
+    rows = getattr(result, "terms", None) or ()
+    terms = [t.name for t in rows] + ["residual"]
+    roles = ["storage" if t.storage else ("inflow" if t.sign > 0 else "outflow") for t in rows] + ["imbalance"]
     vals = [float(f.loc[ok, k].mean()) if ok.any() else 0.0 for k in terms]
-    df = pd.DataFrame({"term": terms, "value": vals, "color": [COLORS[k] for k in terms],
-                       "role": ["inflow", "outflow", "outflow", "storage", "imbalance"]})
+    df = pd.DataFrame({"term": terms, "value": vals, "color": [COLORS.get(k, COLORS["flow"]) for k in terms],
+                       "role": roles})
     unit = UNIT_LABEL[unit_system]
     msg = _nodata(result)
     bars = hv.Bars(df, kdims=["term"], vdims=["value", "color", "role"]).opts(
@@ -199,7 +203,7 @@ def warnings_for(result, series) -> list[str]:
         out.append(f"Basin area {result.area_km2:,.0f} km2 is below the ~{GRAVIMETRY_MIN_KM2:,} km2 that satellite-"
                    "gravimetry storage resolves (rule of thumb, e.g. Longuevergne et al. 2010): treat dS with care.")
     f = result.frame
-    for comp in ("P", "ET", "TWSA"):
+    for comp in SOURCE_COMPONENTS:
         vf = f[f"valid_fraction_{comp}"].replace(0, np.nan).mean()
         if np.isfinite(vf) and vf < 0.9:
             out.append(f"{comp} product covers only {vf:.0%} of the basin on average.")
