@@ -218,24 +218,26 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
         vr = vr + sig_flows[t.name] ** 2
     sr = np.sqrt(vr)
     valid = np.isfinite(res)
-    frame = pd.DataFrame({
+    cols = {
         "P": P, "ET": ET, "Q": Q, "dS": dS, "TWSA": M_raw, "residual": res, "Qhat": qhat,
         "P_raw": P_raw, "ET_raw": ET_raw, "Q_raw": Q_raw,
         "residual_unmatched": res_unmatched,
         "sigma_P": sig[0], "sigma_ET": sig[1], "sigma_Q": sig[2], "sigma_dS": sig[3], "sigma_residual": sr,
         "beyond_2sigma": valid & np.isfinite(sr) & (np.abs(res) > 2 * sr),
         "valid": valid, "twsa_filled": a["filled"][0, 0],
-    }, index=pd.Index(months, name="month"))
+    }
     for comp in SOURCE_COMPONENTS:
         name = valid_fraction_name(getattr(sel, comp))
-        frame[f"valid_fraction_{comp}"] = _values(ds, name)[b] if name in ds.variables else np.nan
+        cols[f"valid_fraction_{comp}"] = (_values(ds, name)[b] if name in ds.variables
+                                          else np.full(months.size, np.nan))
     for t in flows:
-        frame[t.name] = a[t.name][0]
-        frame[f"{t.name}_raw"] = a[f"{t.name}_raw"][0]
-        frame[f"sigma_{t.name}"] = sig_flows[t.name]
+        cols[t.name] = a[t.name][0]
+        cols[f"{t.name}_raw"] = a[f"{t.name}_raw"][0]
+        cols[f"sigma_{t.name}"] = sig_flows[t.name]
     if flows:
-        frame["net_flow"] = net
-    frame = frame.loc[mask]
+        cols["net_flow"] = net
+    # one frame built at once (inserting columns one by one costs more than the balance itself)
+    frame = pd.DataFrame({k: v[mask] for k, v in cols.items()}, index=pd.Index(months[mask], name="month"))
     pm = months[mask]
     f = frame
     metrics = metrics_arrays(f["residual"].values, f["Qhat"].values, f["Q"].values, f["P"].values, pm, opts,

@@ -35,15 +35,34 @@ def combination_terms(ds: xr.Dataset, basin: str | None, *, storage_change_metho
     return a["ids"], P, ET, dS, Q
 
 
-def _table(ids, i: int, m: dict, explain: bool) -> pd.DataFrame:
-    """One basin's combinations (P, ET, TWSA ids in meshgrid order) with every metric (``m``: metric name ->
-    array over (basin, P, ET, TWSA), or broadcastable to it)."""
-    shape = tuple(len(ids[c]) for c in SOURCE_COMPONENTS)
+def _ranked(a: dict, m: dict, by: str, min_valid: int) -> pd.DataFrame:
+    """Every basin's combinations in one table, best first within each basin (basins in series order).
+
+    Columns: basin, rank, P, ET, TWSA, every metric of `METRICS`, undefined, scored. Ties keep the catalog
+    order of the sources (stable sort). Basins without any valid month are left out.
+    """
+    ids, basins = a["ids"], a["basins"]
+    shape = (len(basins),) + tuple(len(ids[c]) for c in SOURCE_COMPONENTS)
     idx = np.meshgrid(*(np.arange(n) for n in shape), indexing="ij")
-    cols = {c: np.asarray(ids[c])[x.ravel()] for c, x in zip(SOURCE_COMPONENTS, idx)}
-    for k in tuple(METRICS) + (("undefined",) if explain else ()):
-        v = np.asarray(m[k])
-        cols[k] = np.broadcast_to(v[i] if v.ndim == 4 else v, shape).ravel()
+    n_valid = np.broadcast_to(m["n_valid"], shape).ravel().astype(int)
+    scored = n_valid >= min_valid
+    key = np.where(scored, sort_key(by, np.broadcast_to(m[by], shape).ravel()), np.inf)
+    order = np.lexsort((key, idx[0].ravel()))  # by basin, then key; stable for ties
+    keep = np.zeros(len(basins), dtype=bool)
+    keep[np.unique(idx[0].ravel()[n_valid > 0])] = True
+    order = order[keep[idx[0].ravel()[order]]]
+    b_of = idx[0].ravel()[order]
+    # position within the basin, 1-based
+    first = np.searchsorted(b_of, b_of, side="left")
+    pos = np.arange(order.size) - first + 1
+    cols = {"basin": np.asarray(basins, dtype=object)[b_of],
+            "rank": np.where(scored[order], pos, 0)}
+    for c, x in zip(SOURCE_COMPONENTS, idx[1:]):
+        cols[c] = np.asarray(ids[c], dtype=object)[x.ravel()[order]]
+    for k in METRICS:
+        cols[k] = n_valid[order] if k == "n_valid" else np.broadcast_to(m[k], shape).ravel()[order]
+    cols["undefined"] = np.broadcast_to(m["undefined"], shape).ravel()[order]
+    cols["scored"] = scored[order]
     return pd.DataFrame(cols)
 
 
@@ -55,16 +74,6 @@ def _metrics(ds, opts, basins=None):
     c = combination_arrays(a, mask)
     pm = a["months"][mask]
     return a, pm, metrics_arrays(c["residual"], c["Qhat"], c["Q"], c["P"], pm, opts, explain=True)
-
-
-def _finish_rank(df, by, min_valid):
-    df["n_valid"] = df["n_valid"].astype(int)
-    df["scored"] = df["n_valid"] >= min_valid
-    key = np.where(df["scored"], sort_key(by, df[by].values), np.inf)
-    order = np.argsort(key, kind="stable")
-    df = df.iloc[order].reset_index(drop=True)
-    df.insert(0, "rank", np.where(df["scored"], np.arange(1, len(df) + 1), 0))
-    return df
 
 
 def _attrs(opts: ClosureOptions, pm: pd.DatetimeIndex, by: str) -> dict:
@@ -89,17 +98,16 @@ def rank(ds: xr.Dataset, basin: str, options: ClosureOptions | None = None, *, b
     check_metric(by)
     opts = ClosureOptions.from_kwargs(options, **kwargs)
     a, pm, m = _metrics(ds, opts, [basin])
-    ids = a["ids"]
-    df = _table(ids, 0, m, True)
-    if (df["n_valid"] == 0).all():
-        months = a["months"]
+    df = _ranked(a, m, by, opts.min_valid)
+    if not len(df):
+        ids, months = a["ids"], a["months"]
         src, b = a["ds"], int(a["b"][0])  # the series with ensembles, where asked
         spans = [f"{v} {_span(months, np.isfinite(src[v].values[b]))}"
                  for v in ["discharge"] + ids["P"] + ids["ET"] + ids["TWSA"] if v in src]
         raise InputError(
             f"no month in {pm[0]:%Y-%m}..{pm[-1]:%Y-%m} has P, ET, storage change and discharge together for basin "
             f"{basin!r}; data cover: " + ", ".join(spans).replace("discharge ", "discharge covers ", 1))
-    df = _finish_rank(df, by, opts.min_valid)
+    df = df.drop(columns="basin")
     df.attrs = {"basin": basin, **_attrs(opts, pm, by)}
     return df
 
@@ -130,17 +138,9 @@ def rank_all(ds: xr.Dataset, options: ClosureOptions | None = None, *, by: str =
     check_metric(by)
     opts = ClosureOptions.from_kwargs(options, **kwargs)
     a, pm, m = _metrics(ds, opts)
-    parts = []
-    for i, b in enumerate(a["basins"]):
-        df = _table(a["ids"], i, m, True)
-        if (df["n_valid"] == 0).all():
-            continue
-        df = _finish_rank(df, by, opts.min_valid)
-        df.insert(0, "basin", b)
-        parts.append(df)
-    if not parts:
+    out = _ranked(a, m, by, opts.min_valid)
+    if not len(out):
         raise InputError("no basin has a valid month for any combination")
-    out = pd.concat(parts, ignore_index=True)
     out.attrs = _attrs(opts, pm, by)
     return out
 
