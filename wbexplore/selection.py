@@ -21,7 +21,7 @@ import pandas as pd
 import yaml
 
 from . import __version__
-from .balance import Selection, compute_selection, to_unit_system
+from .balance import ClosureOptions, Selection, compute_selection, to_unit_system
 from .balance.closure import MAX_LAG_MONTHS, Q_RELATIVE_ERROR, UNIT_SYSTEMS
 from .balance.storage import METHODS
 from .balance.terms import BASE_TERMS, SOURCE_COMPONENTS
@@ -327,9 +327,10 @@ def _validate(doc: dict, p: Path) -> Selection:
         # null is how a metric that could not be computed (NaN) is written; .inf and -.inf stay numbers
         if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))):
             c.fail(f"metrics.{name}", f"{_show(v)} must be a number or null")
-    return Selection(basin=basin_id, P=ids["P"], ET=ids["ET"], TWSA=ids["TWSA"], start=months["start"],
-                     end=months["end"], storage_change=method, matched=matched, fill_gaps=fill, lag=lag,
-                     min_valid_fraction=mvf, water_year_start=wy)
+    # the same ClosureOptions the library and the command line use (fields already checked one by one above)
+    opts = ClosureOptions(start=months["start"], end=months["end"], storage_change=method, matched=matched,
+                          fill_gaps=fill, lag=lag, min_valid_fraction=mvf, water_year_start=wy)
+    return Selection.from_options(basin_id, opts, **ids)
 
 
 def load_selection(path) -> tuple[dict, Selection, Path]:
