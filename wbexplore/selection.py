@@ -24,7 +24,7 @@ from . import __version__
 from .balance import ClosureOptions, Selection, compute_selection, to_unit_system
 from .balance.closure import MAX_LAG_MONTHS, Q_RELATIVE_ERROR, UNIT_SYSTEMS
 from .balance.storage import METHODS
-from .balance.terms import BASE_TERMS, SOURCE_COMPONENTS
+from .balance.terms import BASE_TERMS, SOURCE_COMPONENTS, balance_text
 from .errors import InputError, ReplayMismatch, SelectionError
 from .io.catalog import Catalog, file_sha256, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output, same_file
@@ -543,7 +543,7 @@ def series_dataset(result, *, doc: dict | None = None):
         ds["net_flow"] = ("time", f["net_flow"].to_numpy(dtype=float))
         ds["net_flow"].attrs = {"long_name": "inflows minus outflows as depth over the basin", "units": "mm",
                                 "cell_methods": "time: sum area: mean"}
-        ds["residual"].attrs["long_name"] = "water-balance residual P - ET - Q - dS + inflows - outflows"
+        ds["residual"].attrs["long_name"] = f"water-balance residual {balance_text(result.terms)}"
     for comp in SOURCE_COMPONENTS:
         name = f"valid_fraction_{comp}"
         ds[name] = ("time", f[name].to_numpy(dtype=float))

@@ -190,9 +190,10 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     P_raw, ET_raw, Q_raw, M_raw, M_used = a["P_raw"][0, 0], a["ET_raw"][0, 0], a["Q_raw"], a["TWSA_raw"][0, 0], a["TWSA"][0, 0]
     Q_raw = Q_raw[0]
     net = None if a["net_flow"] is None else a["net_flow"][0]
-    net_raw = None if a["net_flow_raw"] is None else a["net_flow_raw"][0]
-    res, qhat = combine(P, ET, Q, dS, net)
-    res_unmatched, _ = combine(P_raw, ET_raw, Q_raw, dS, net_raw)
+    terms_ = a["terms"]
+    res, qhat = combine({t.name: (a[t.name][0, 0] if t.gridded else a[t.name][0]) for t in terms_}, terms_)
+    res_unmatched, _ = combine({t.name: (a[t.name][0, 0] if t.storage else a[f"{t.name}_raw"][0, 0] if t.gridded
+                                         else a[f"{t.name}_raw"][0]) for t in terms_}, terms_)
     sP, srcP = _sigma_component(ds, sel, "P", b, P_raw)
     sE, srcE = _sigma_component(ds, sel, "ET", b, ET_raw)
     sM, srcM = _sigma_component(ds, sel, "TWSA", b, M_used)

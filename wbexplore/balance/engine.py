@@ -23,7 +23,7 @@ from ..series import DISCHARGE, source_ids, valid_fraction_name
 from .metrics import METRICS, metrics_from_residual
 from .options import ClosureOptions
 from .storage import fill_gaps, match_window, shift_later, storage_change
-from .terms import BASE_TERMS, DS, SOURCE_COMPONENTS, flow_terms
+from .terms import BASE_TERMS, DS, Q, SOURCE_COMPONENTS, combine, flow_terms
 
 __all__ = ["closure_terms", "closure_metrics", "closure_arrays", "combination_arrays", "metrics_arrays", "ENSEMBLE_PREFIX", "with_ensembles", "SOURCE_DIMS"]
 
@@ -168,20 +168,6 @@ def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sour
     return out
 
 
-def combine(P, ET, Q, dS, net=None):
-    """(residual, Qhat) of broadcastable terms: P - ET - Q - dS (+ net flows), P - ET - dS (+ net flows).
-
-    The operation order is that of the balance before flows existed, so that without flows the numbers are
-    bitwise those of earlier versions.
-    """
-    res = P - ET - Q - dS
-    qhat = P - ET - dS
-    if net is not None:
-        res = res + net
-        qhat = qhat + net
-    return res, qhat
-
-
 def closure_terms(ds: xr.Dataset, options: ClosureOptions | None = None, *, basins=None,
                   sources: dict | None = None, **kwargs) -> xr.Dataset:
     """Every balance term of every combination, over the period (mm/month; TWSA mm).
@@ -219,11 +205,21 @@ def combination_arrays(a: dict, mask) -> dict:
     Returns dict with ``residual``, ``Qhat`` (basin, P, ET, TWSA, time), and ``P``, ``Q`` broadcastable to
     them (the inputs `metrics_arrays` needs besides), ``net`` (basin, time) or None.
     """
-    P, ET, dS, Q = (a[k][..., mask] for k in ("P", "ET", "dS", "Q"))
+    # each term on the axes it depends on: basin, then P, ET, TWSA source, then time
+    axes = {c: i + 1 for i, c in enumerate(SOURCE_COMPONENTS)}
+    values = {}
+    for t in a["terms"]:
+        v = a[t.name][..., mask]
+        if t.gridded:  # (basin, source, time) -> its source axis
+            shape = [v.shape[0], 1, 1, 1, v.shape[-1]]
+            shape[axes[t.component]] = v.shape[1]
+            v = v.reshape(shape)
+        else:
+            v = v[:, None, None, None]
+        values[t.name] = v
+    res, qhat = combine(values, a["terms"])
     net = None if a["net_flow"] is None else a["net_flow"][..., mask]
-    res, qhat = combine(P[:, :, None, None], ET[:, None, :, None], Q[:, None, None, None], dS[:, None, None, :],
-                        None if net is None else net[:, None, None, None])
-    return {"residual": res, "Qhat": qhat, "P": P[:, :, None, None], "Q": Q[:, None, None, None], "net": net}
+    return {"residual": res, "Qhat": qhat, "P": values["P"], "Q": values[Q.name], "net": net}
 
 
 def _to_dataset(a: dict, opts: ClosureOptions, mask) -> xr.Dataset:

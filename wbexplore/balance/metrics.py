@@ -34,6 +34,7 @@ import warnings
 import numpy as np
 
 from ..errors import InputError
+from .terms import BASE_TERMS, combine
 
 __all__ = ["METRICS", "compute_metrics", "metrics_from_residual", "sort_key", "kge", "kge_prime", "nse", "pbias", "check_metric"]
 
@@ -151,8 +152,7 @@ def compute_metrics(P, ET, Q, dS, *, month_of_year=None, water_year=None, min_va
     dict of metric name -> array over the leading axes
     """
     P, ET, Q, dS = _mask(P, ET, Q, dS)
-    res = P - ET - Q - dS
-    qhat = P - ET - dS
+    res, qhat = combine({"P": P, "ET": ET, "Q": Q, "dS": dS}, BASE_TERMS)
     return _from_masked(res, qhat, Q, P, month_of_year=month_of_year, water_year=water_year, min_valid=min_valid,
                         explain=explain)
 

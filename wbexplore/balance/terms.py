@@ -28,7 +28,7 @@ import xarray as xr
 from ..series import DIRECTIONS, DISCHARGE, FLOW_UNITS, flow_variables
 
 __all__ = ["Term", "KINDS", "P", "ET", "Q", "DS", "BASE_TERMS", "SOURCE_COMPONENTS", "FLUX_COMPONENTS",
-           "balance_terms", "flow_terms", "balance_text", "term_signs", "signs_of", "term"]
+           "balance_terms", "flow_terms", "balance_text", "combine", "term_signs", "signs_of", "term"]
 
 KINDS = ("gridded flux", "gridded storage", "station flux", "station storage")
 
@@ -106,6 +106,29 @@ def balance_text(terms: tuple[Term, ...] = BASE_TERMS) -> str:
     """The residual as text: "P - ET - Q - dS" (+ each flow with its sign)."""
     parts = [f"{'-' if t.sign < 0 else '+'} {t.name}" for t in terms]
     return " ".join(parts)[2:] if parts[0].startswith("+") else " ".join(parts)
+
+
+def _accumulate(acc, v, sign):
+    if acc is None:
+        return v if sign > 0 else -v
+    return acc + v if sign > 0 else acc - v
+
+
+def combine(values: dict, terms) -> tuple:
+    """(residual, Qhat) of broadcastable term values (``values``: term name -> array).
+
+    residual = sum of sign * term over ``terms`` in table order (P - ET - Q - dS + inflows - outflows);
+    Qhat the same without the gauged discharge Q (the discharge the other terms predict). Added and
+    subtracted term by term in table order: without flows this is bitwise ((P - ET) - Q) - dS, as before
+    the term table existed.
+    """
+    res = qhat = None
+    for t in terms:
+        v = values[t.name]
+        res = _accumulate(res, v, t.sign)
+        if t.name != Q.name:
+            qhat = _accumulate(qhat, v, t.sign)
+    return res, qhat
 
 
 def term(name: str, terms: tuple[Term, ...] = BASE_TERMS) -> Term:

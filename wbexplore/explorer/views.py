@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from ..balance.closure import to_unit_system
-from ..balance.terms import SOURCE_COMPONENTS
+from ..balance.terms import BASE_TERMS, SOURCE_COMPONENTS, balance_text
 from ..escape import html_text, md_text
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -59,12 +59,17 @@ def _nodata(result) -> str | None:
 # explanation in its title), so the explorer can update them in place as DynamicMaps.
 
 
+def _terms(result):
+    """The balance's terms of a selection result (older results: the four base terms)."""
+    return getattr(result, "terms", None) or BASE_TERMS
+
+
 def component_bars(result, unit_system: str = "mm"):
     """Period means of every balance term (P and inflows in; ET, Q, outflows, dS out) and the residual."""
     hv = _hv()
     f = to_unit_system(result.frame, result.area_km2, unit_system)
     ok = result.frame["valid"].values
-    rows = getattr(result, "terms", None) or ()
+    rows = _terms(result)
     terms = [t.name for t in rows] + ["residual"]
     roles = ["storage" if t.storage else ("inflow" if t.sign > 0 else "outflow") for t in rows] + ["imbalance"]
     vals = [float(f.loc[ok, k].mean()) if ok.any() else 0.0 for k in terms]
@@ -113,7 +118,7 @@ def residual_series(result, unit_system: str = "mm"):
     sel = result.selection
     msg = _nodata(result)
     overlay = vsp * band * curve * pts * hv.HLine(0).opts(color="black", line_width=1)
-    return overlay.opts(responsive=True, height=300, ylabel=f"P - ET - Q - dS ({unit})",
+    return overlay.opts(responsive=True, height=300, ylabel=f"{balance_text(_terms(result))} ({unit})",
                         xlabel="month", title=msg or f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)",
                         legend_position="top_left", show_grid=True)
 
@@ -152,7 +157,7 @@ def balance_scatter(result, unit_system: str = "mm"):
     msg = _nodata(result)
     title = msg or f"KGE {m['kge']:.2f}  NSE {m['nse']:.2f}  r {m['r']:.2f}  PBIAS {m['pbias']:.1f}%"
     return (pts * yr * line).opts(responsive=True, height=320, xlabel=f"gauged Q ({unit})",
-                                  ylabel=f"P - ET - dS ({unit})", title=title, show_grid=True)
+                                  ylabel=f"{balance_text(tuple(t for t in _terms(result) if t.name != 'Q'))} ({unit})", title=title, show_grid=True)
 
 
 def basin_map(basins, scores: pd.Series, selected: str | None = None, metric: str = "rmse"):
