@@ -191,7 +191,7 @@ def closure_terms(ds: xr.Dataset, options: ClosureOptions | None = None, *, basi
     (basin, TWSA_source, time), ``Q`` and every flow ``flow_<id>`` (basin, time), their ``<name>_raw``
     (before window matching), ``residual`` and ``Qhat`` (basin, P_source, ET_source, TWSA_source, time).
     Each term variable carries ``sign``, ``kind`` and ``label`` from the term table; the options are in
-    ``attrs["options"]``.
+    ``attrs["closure_options"]`` (JSON text, `ClosureOptions.from_json`).
     """
     opts = ClosureOptions.from_kwargs(options, **kwargs)
     a = closure_arrays(ds, opts, basins=basins, sources=sources)
@@ -250,7 +250,7 @@ def _to_dataset(a: dict, opts: ClosureOptions, mask) -> xr.Dataset:
     data["residual"] = (full, res, {"units": "mm/month", "label": "Residual"})
     data["Qhat"] = (full, qhat, {"units": "mm/month", "label": "Discharge predicted by the balance"})
     out = xr.Dataset(data, coords=coords)
-    out.attrs = {"options": opts}
+    out.attrs = {"closure_options": opts.to_json()}  # text: the Dataset stays writable to netCDF
     return out
 
 
@@ -277,7 +277,8 @@ def closure_metrics(terms: xr.Dataset, *, explain: bool = False) -> xr.Dataset:
     each variable's attrs), ``scored`` (at least ``options.min_valid`` valid months) and, with
     ``explain``, ``undefined`` (why a metric is NaN on degenerate data).
     """
-    opts = terms.attrs.get("options") or ClosureOptions()
+    opts = ClosureOptions.from_json(terms.attrs["closure_options"]) if "closure_options" in terms.attrs \
+        else ClosureOptions()
     months = pd.DatetimeIndex(terms["time"].values)
     full = terms["residual"].dims
     v = terms.variables

@@ -106,6 +106,21 @@ class ClosureOptions:
     def to_dict(self) -> dict:
         return asdict(self)
 
+    def to_json(self) -> str:
+        """The options as JSON text (what a netCDF attribute or a file can hold)."""
+        import json
+
+        return json.dumps({k: (bool(v) if isinstance(v, np.bool_) else int(v) if isinstance(v, np.integer)
+                               else float(v) if isinstance(v, np.floating) else v)
+                           for k, v in self.to_dict().items()}, sort_keys=True)
+
+    @classmethod
+    def from_json(cls, text: str) -> "ClosureOptions":
+        """`to_json` read back (validated again)."""
+        import json
+
+        return cls(**json.loads(text))
+
     def replace(self, **kw) -> "ClosureOptions":
         return replace(self, **kw)
 
