@@ -198,3 +198,31 @@ def test_closure_terms_write_to_netcdf_and_keep_their_options(tmp_path):
     a, b = closure_metrics(t), closure_metrics(back)
     for k in ("rmse", "annual_bias", "kge"):
         assert np.array_equal(a[k].values, b[k].values, equal_nan=True), k
+
+
+def test_selection_file_records_flows_and_refuses_a_bad_one(tmp_path):
+    """Each flow of the balance is recorded with its direction and the SHA-256 of its station table
+    (hashlib as the outside reference); a selection file with a bad flow entry is refused naming the field."""
+    import hashlib
+    from types import SimpleNamespace
+
+    from wbexplore.errors import SelectionError
+    from wbexplore.selection import _flow_entries, _validate
+
+    ds, _ = synthetic_series()
+    res = compute_selection(ds, Selection("B0", "P0", "ET0", "TWSA0"), min_valid=12)
+    table = tmp_path / "gauges.csv"
+    table.write_text("date,q\n2001-01-01,1.0\n")
+    cat = SimpleNamespace(path=tmp_path / "catalog.yaml", flows=[SimpleNamespace(id="up", path=table)])
+    entries = _flow_entries(cat, res)
+    assert [(e["id"], e["direction"]) for e in entries] == [("up", "in"), ("irr", "out")]
+    assert entries[0]["file"] == {"path": "gauges.csv", "sha256": hashlib.sha256(table.read_bytes()).hexdigest()}
+    assert "file" not in entries[1]
+    doc = {"wbexplore_selection": 1, "catalog": {"path": "catalog.yaml", "sha256": "0" * 64}, "basin": {"id": "B0"},
+           "period": {"start": "2001-01", "end": "2008-12"},
+           "sources": {c: {"id": f"{c}0", "files": []} for c in ("P", "ET", "TWSA")},
+           "storage_change": {"method": "central"}, "metrics": {"rmse": 1.0}, "flows": entries}
+    assert _validate(doc, tmp_path / "s.yaml").basin == "B0"
+    doc["flows"] = [{"id": "up", "direction": "across"}]
+    with pytest.raises(SelectionError, match=r"s.yaml: field 'flows.0.direction': 'across'"):
+        _validate(doc, tmp_path / "s.yaml")
