@@ -23,7 +23,7 @@ from ..series import DISCHARGE, source_ids, valid_fraction_name
 from .metrics import METRICS, metrics_from_residual
 from .options import ClosureOptions
 from .storage import fill_gaps, match_window, shift_later, storage_change
-from .terms import BASE_TERMS, DS, Q, SOURCE_COMPONENTS, combine, flow_terms
+from .terms import BASE_TERMS, DS, P, Q, SOURCE_COMPONENTS, combine, flow_terms
 
 __all__ = ["closure_terms", "closure_metrics", "closure_arrays", "combination_arrays", "metrics_arrays", "ENSEMBLE_PREFIX", "with_ensembles", "SOURCE_DIMS"]
 
@@ -211,15 +211,15 @@ def combination_arrays(a: dict, mask) -> dict:
     for t in a["terms"]:
         v = a[t.name][..., mask]
         if t.gridded:  # (basin, source, time) -> its source axis
-            shape = [v.shape[0], 1, 1, 1, v.shape[-1]]
+            shape = [v.shape[0]] + [1] * len(SOURCE_COMPONENTS) + [v.shape[-1]]
             shape[axes[t.component]] = v.shape[1]
             v = v.reshape(shape)
         else:
-            v = v[:, None, None, None]
+            v = v.reshape((v.shape[0],) + (1,) * len(SOURCE_COMPONENTS) + (v.shape[-1],))
         values[t.name] = v
     res, qhat = combine(values, a["terms"])
     net = None if a["net_flow"] is None else a["net_flow"][..., mask]
-    return {"residual": res, "Qhat": qhat, "P": values["P"], "Q": values[Q.name], "net": net}
+    return {"residual": res, "Qhat": qhat, "P": values[P.name], "Q": values[Q.name], "net": net}
 
 
 def _to_dataset(a: dict, opts: ClosureOptions, mask) -> xr.Dataset:
