@@ -240,9 +240,7 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     # one frame built at once (inserting columns one by one costs more than the balance itself)
     frame = pd.DataFrame({k: v[mask] for k, v in cols.items()}, index=pd.Index(months[mask], name="month"))
     pm = months[mask]
-    f = frame
-    metrics = metrics_arrays(f["residual"].values, f["Qhat"].values, f["Q"].values, f["P"].values, pm, opts,
-                             explain=True)
+    metrics = metrics_arrays(res[mask], qhat[mask], Q[mask], P[mask], pm, opts, explain=True)
     undefined = str(metrics.pop("undefined"))
     metrics = {k: float(v) if np.ndim(v) == 0 else v for k, v in metrics.items()}
     metrics["n_valid"] = int(metrics["n_valid"])

@@ -126,11 +126,15 @@ def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sour
     ``net_flow`` (sum of the flows' signed values, matched; None without flows), ``months``.
     """
     ds, ids = prepare(ds, options, sources)
+    all_ids = basin_ids(ds)
     if basins is None:
         b = np.arange(ds.sizes["basin"])
     else:
-        b = np.array([basin_index(ds, x) for x in basins], dtype=np.intp)
-    all_ids = basin_ids(ds)
+        where = {x: i for i, x in enumerate(all_ids)}
+        for x in basins:
+            if str(x) not in where:
+                raise InputError(f"basin {x!r} is not in the series (known: {', '.join(all_ids)})")
+        b = np.array([where[str(x)] for x in basins], dtype=np.intp)
     mvf = options.min_valid_fraction
     method = options.storage_change
     out = {"ids": ids, "basins": [all_ids[i] for i in b], "b": b, "ds": ds}
