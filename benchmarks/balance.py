@@ -1,9 +1,12 @@
 """Balance-engine benchmark: ranking every combination and recomputing one selection.
 
-Synthetic canonical series with 5 P x 5 ET x 3 TWSA products, 240 months; targets (issue):
-one basin <= 20 ms, 100 basins <= 1 s, one selection <= 5 ms. Medians of repeated runs.
+Synthetic canonical series with 5 P x 5 ET x 3 TWSA products, 240 months; targets (issues 3 and 14):
+one basin <= 20 ms, 100 basins <= 1 s, one selection <= 5 ms, the same with two flows present, and
+``wbexplore rank CATALOG --all`` on 100 basins <= 2 s as a whole process (series cache warm).
+Medians of repeated runs, measured side by side in one run.
 
-    python benchmarks/balance.py
+    python benchmarks/balance.py            # engine only
+    python benchmarks/balance.py --cli      # also the whole-process rank --all (writes a small study)
 """
 
 from __future__ import annotations
@@ -19,7 +22,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import median_time  # noqa: E402
 
 
-def synthetic(nb=100, nt=240, seed=0):
+def synthetic(nb=100, nt=240, seed=0, flows=0):
     rng = np.random.default_rng(seed)
     t = pd.date_range("2001-01-01", periods=nt, freq="MS")
     season = np.sin(2 * np.pi * (t.month.values - 3) / 12)
@@ -36,23 +39,104 @@ def synthetic(nb=100, nt=240, seed=0):
             ds[f"{comp}{j}"] = (("basin", "time"), v, {"role": "source", "component": comp})
             ds[f"valid_fraction_{comp}{j}"] = (("basin", "time"), np.ones_like(v))
     ds["discharge"] = (("basin", "time"), Q, {"component": "Q"})
+    for j in range(flows):
+        v = np.abs(rng.normal(10, 3, (nb, nt)))
+        ds[f"flow_f{j}"] = (("basin", "time"), v, {"role": "flow", "flow_id": f"f{j}", "direction": ("in", "out")[j % 2],
+                                                   "label": f"flow {j}", "units": "mm/month", "component": "flow"})
     return ds
 
 
-def main():
+def engine_times(ds):
     from wbexplore.balance import Selection, compute_selection, rank, rank_all
 
-    ds = synthetic()
-    one = ds.isel(basin=[0])
     t1, r = median_time(lambda: rank(ds, "B000"), repeat=21)
     t100, _ = median_time(lambda: rank_all(ds), repeat=5)
     sel = Selection("B000", "P0", "ET0", "TWSA0")
     ts, _ = median_time(lambda: compute_selection(ds, sel), repeat=51)
-    del one
-    print(f"rank 5 x 5 x 3 combinations, 240 months, one basin: {t1 * 1e3:7.2f} ms   target <= 20 ms  ({len(r)} rows)")
+    return t1, t100, ts, len(r)
+
+
+def write_study(d: Path, nb=100, nt=240, seed=0):
+    """A catalog of ``nb`` box basins on a small grid, 5 P, 5 ET, 3 TWSA netCDF products, long discharge CSV."""
+    import geopandas as gpd
+    import shapely
+    import yaml
+
+    rng = np.random.default_rng(seed)
+    d.mkdir(parents=True, exist_ok=True)
+    side = int(np.ceil(np.sqrt(nb)))
+    res = 0.5
+    lon = np.arange(res / 2, side * 2, res)
+    lat = np.arange(res / 2, side * 2, res)
+    t = pd.date_range("2001-01-01", periods=nt, freq="MS")
+    ids = [f"B{i:03d}" for i in range(nb)]
+    boxes = [shapely.box(2 * (i % side) + 0.1, 2 * (i // side) + 0.1, 2 * (i % side) + 1.9, 2 * (i // side) + 1.9)
+             for i in range(nb)]
+    gpd.GeoDataFrame({"basin_id": ids}, geometry=boxes, crs="EPSG:4326").to_file(d / "b.geojson", driver="GeoJSON")
+    season = np.sin(2 * np.pi * (t.month.values - 3) / 12)[:, None, None]
+    sources = []
+    for comp, k, base, units in (("P", 5, 90 + 60 * season, "mm/month"), ("ET", 5, 55 + 30 * season, "mm/month"),
+                                 ("TWSA", 3, 40 * season, "mm")):
+        for j in range(k):
+            v = (base + rng.normal(0, 5, (nt, lat.size, lon.size))).astype("float32")
+            xr.Dataset({"v": (("time", "lat", "lon"), v)}, coords={"time": t, "lat": lat, "lon": lon}).to_netcdf(
+                d / f"{comp}{j}.nc")
+            sources.append({"id": f"{comp.lower()}{j}", "component": comp, "path": f"{comp}{j}.nc", "variable": "v",
+                            "units": units, "crs": "EPSG:4326"})
+    q = pd.DataFrame({"date": np.tile(t.strftime("%Y-%m-%d"), nb), "basin_id": np.repeat(ids, nt),
+                      "q": np.abs(rng.normal(20, 5, nb * nt))})
+    q.to_csv(d / "q.csv", index=False)
+    cat = {"catalog_version": 1, "title": "benchmark", "basins": {"path": "b.geojson", "id_field": "basin_id"},
+           "discharge": {"path": "q.csv", "time_field": "date", "basin_field": "basin_id", "value_field": "q",
+                         "units": "mm/month"}, "sources": sources}
+    (d / "c.yaml").write_text(yaml.safe_dump(cat, sort_keys=False))
+    return d / "c.yaml"
+
+
+def cli_times(repeat=5):
+    """Whole-process `wbexplore rank CATALOG --all` (warm series cache) and, side by side, `wbexplore --version`."""
+    import subprocess
+    import tempfile
+    import time
+
+    with tempfile.TemporaryDirectory() as tmp:
+        cat = write_study(Path(tmp) / "study")
+        env = {**__import__("os").environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
+        cmd = [sys.executable, "-m", "wbexplore.cli", "rank", str(cat), "--all", "--format", "csv",
+               "--cache-dir", str(Path(tmp) / "cache")]
+        subprocess.run(cmd, check=True, capture_output=True, env=env)  # fills the series cache
+
+        def run(c):
+            t = time.perf_counter()
+            p = subprocess.run(c, check=True, capture_output=True, env=env)
+            return time.perf_counter() - t, p.stdout
+
+        ts, tv = [], []
+        for _ in range(repeat):
+            dt, out = run(cmd)
+            ts.append(dt)
+            tv.append(run([sys.executable, "-m", "wbexplore.cli", "--version"])[0])
+        rows = out.decode().count("\n") - 1
+    import statistics
+
+    return statistics.median(ts), statistics.median(tv), rows
+
+
+def main():
+    ds = synthetic()
+    t1, t100, ts, n = engine_times(ds)
+    f1, f100, fs, _ = engine_times(synthetic(flows=2))
+    print(f"rank 5 x 5 x 3 combinations, 240 months, one basin: {t1 * 1e3:7.2f} ms   target <= 20 ms  ({n} rows)")
     print(f"rank all combinations for 100 basins:               {t100 * 1e3:7.1f} ms   target <= 1000 ms")
     print(f"recompute one selection (series, sigma, metrics):    {ts * 1e3:7.2f} ms   target <= 5 ms")
-    print(f"ratios to target: {t1 / 0.020:.2f}, {t100 / 1.0:.2f}, {ts / 0.005:.2f}")
+    print(f"with two flows: one basin {f1 * 1e3:.2f} ms, 100 basins {f100 * 1e3:.1f} ms, one selection {fs * 1e3:.2f} ms")
+    print(f"ratios to target: {t1 / 0.020:.2f}, {t100 / 1.0:.2f}, {ts / 0.005:.2f}; "
+          f"with two flows: {f1 / 0.020:.2f}, {f100 / 1.0:.2f}, {fs / 0.005:.2f}")
+    print(f"two flows / none: {f1 / t1:.2f}, {f100 / t100:.2f}, {fs / ts:.2f}")
+    if "--cli" in sys.argv:
+        tc, tv, rows = cli_times()
+        print(f"wbexplore rank --all, 100 basins, whole process:     {tc:7.2f} s    target <= 2 s  ({rows} rows); "
+              f"ratio {tc / 2.0:.2f}; bare `wbexplore --version` {tv:.2f} s")
 
 
 if __name__ == "__main__":

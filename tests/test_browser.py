@@ -9,7 +9,6 @@ import sys
 import time
 import urllib.request
 import warnings
-from pathlib import Path
 
 import pytest
 

@@ -14,7 +14,7 @@ import yaml
 from conftest import copy_demo
 from wbexplore.balance import Selection, compute_selection
 from wbexplore.cli import main
-from wbexplore.selection import export_selection, replay, series_dataset, write_series_csv, write_series_netcdf
+from wbexplore.selection import series_dataset, write_series_csv, write_series_netcdf
 
 
 @pytest.fixture

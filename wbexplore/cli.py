@@ -59,9 +59,38 @@ def _check_listen(address: str, port: int) -> None:
             raise InputError(f"--address {address!r} --port {port}: cannot listen there ({exc.strerror})") from None
 
 
-def _add_selection_args(p, *, sources: bool):
+def _fraction(text: str) -> float:
+    """A share between 0 and 1 (argparse type)."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not 0.0 <= v <= 1.0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be between 0 and 1")
+    return v
+
+
+def _month_number(text: str) -> int:
+    """A calendar month number, 1..12 (argparse type)."""
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a month number") from None
+    if not 1 <= n <= 12:
+        raise argparse.ArgumentTypeError(f"{text!r} must be between 1 and 12")
+    return n
+
+
+def _add_selection_args(p, *, sources: bool, every_basin: bool = False):
     p.add_argument("catalog", help="catalog YAML file")
-    p.add_argument("--basin", required=True, help="basin id")
+    if every_basin:
+        g = p.add_mutually_exclusive_group(required=True)
+        g.add_argument("--basin", help="basin id")
+        g.add_argument("--all", action="store_true", help="every basin: one table, sorted by basin then rank")
+    else:
+        p.add_argument("--basin", required=True, help="basin id")
+    p.add_argument("--incremental", action="store_true",
+                   help="the basin's incremental unit (its area minus its upstream basins; needs basins: downstream_field)")
     if sources:
         p.add_argument("--P", required=True, metavar="SRC", help="precipitation source id")
         p.add_argument("--ET", required=True, metavar="SRC", help="evapotranspiration source id")
@@ -73,6 +102,10 @@ def _add_selection_args(p, *, sources: bool):
     p.add_argument("--unmatched", action="store_true",
                    help="compare the storage difference with raw monthly fluxes (default: window-matched)")
     p.add_argument("--lag", type=int, default=0, metavar="K", help="compare gauged Q K months later (default 0)")
+    p.add_argument("--min-valid-fraction", type=_fraction, default=0.5, metavar="F",
+                   help="months where a product covers less of the basin are missing (default 0.5)")
+    p.add_argument("--water-year-start", type=_month_number, default=1, metavar="M",
+                   help="first month of the water year, for annual metrics (default 1)")
     p.add_argument("--cache-dir", metavar="DIR", help="weights and series cache (default ~/.cache/wbexplore)")
 
 
@@ -111,8 +144,8 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="overwrite FILE")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
-    p = sub.add_parser("rank", help="rank every P x ET x TWSA combination for a basin")
-    _add_selection_args(p, sources=False)
+    p = sub.add_parser("rank", help="rank every P x ET x TWSA combination for a basin (or every basin)")
+    _add_selection_args(p, sources=False, every_basin=True)
     p.add_argument("--by", default="rmse", metavar="METRIC", help="ranking metric (default rmse)")
     p.add_argument("--format", default="table", choices=["table", "csv", "json"])
     p.add_argument("--ensemble", action="store_true", help="add the per-component ensemble mean as a source")
@@ -127,6 +160,7 @@ def _parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("replay", help="recompute a selection file and compare every metric")
     p.add_argument("selection", metavar="FILE.yaml")
+    p.add_argument("--incremental", action="store_true", help="the selection's basin as its incremental unit")
     p.add_argument("--cache-dir", metavar="DIR")
 
     p = sub.add_parser("report", help="self-contained HTML report of one combination")
@@ -285,56 +319,108 @@ def _cmd_extract(args) -> int:
     return 0
 
 
+def _options(args):
+    """The one `ClosureOptions` of a rank / export / report command line (validated once, before any work)."""
+    from .balance import ClosureOptions
+
+    kw = {}
+    if hasattr(args, "min_valid"):
+        kw["min_valid"] = args.min_valid
+    if hasattr(args, "ensemble"):
+        kw["ensemble"] = args.ensemble
+    return ClosureOptions(start=args.start, end=args.end, storage_change=args.storage_change,
+                          matched=not args.unmatched, lag=args.lag, min_valid_fraction=args.min_valid_fraction,
+                          water_year_start=args.water_year_start, **kw)
+
+
+def _check_incremental(catalog, basin) -> None:
+    """Refuse ``--incremental`` for a basin without an upstream basin (one line, exit 2), before any work."""
+    from .io.catalog import open_catalog
+
+    cat = catalog if hasattr(catalog, "basins") else open_catalog(catalog)
+    if not getattr(cat.basins, "downstream_field", None):
+        raise InputError(f"{cat.path}: --incremental: basin {basin!r} has no upstream basin "
+                         "(the catalog has no basins: downstream_field)")
+    import inspect
+
+    from .pipeline import load_series
+
+    if "incremental" not in inspect.signature(load_series).parameters:
+        raise InputError(f"{cat.path}: --incremental: incremental units are not available in this wbexplore yet")
+
+
 def _series(args):
     from .pipeline import load_series
 
-    return load_series(args.catalog, cache_dir=getattr(args, "cache_dir", None), progress=sys.stderr.isatty())
+    kw = {}
+    if getattr(args, "incremental", False):
+        kw["incremental"] = True
+    return load_series(args.catalog, cache_dir=getattr(args, "cache_dir", None), progress=sys.stderr.isatty(), **kw)
+
+
+def _print_rank_table(df, by: str, *, head: str) -> None:
+    from .balance.combos import RANK_TABLE_COLUMNS
+
+    cols = list(RANK_TABLE_COLUMNS) if "basin" not in df else ["basin", *RANK_TABLE_COLUMNS]
+    show = df[cols].copy()
+    show["rank"] = [str(r) if s else "-" for r, s in zip(df["rank"], df["scored"])]
+    print(head)
+    print(show.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+    print("rmse, bias in mm/month; rel_imbalance in %; '-' = too few valid months to score")
+    for why in dict.fromkeys(w for w in df["undefined"] if w):
+        print(f"NaN: {why}")
 
 
 def _cmd_rank(args) -> int:
-    from .balance import rank
-    from .balance.closure import check_lag
+    from .balance import rank, rank_all
     from .balance.metrics import check_metric
 
     check_metric(args.by)
-    check_lag(args.lag)  # before the series are loaded: a bad option fails fast
+    opts = _options(args)  # before the series are loaded: a bad option fails fast
+    if args.incremental:
+        if args.all:
+            raise InputError("--incremental goes with --basin ID (--all already lists every incremental unit)")
+        _check_incremental(args.catalog, args.basin)
     ds = _series(args)
-    df = rank(ds, args.basin, start=args.start, end=args.end, storage_change=args.storage_change,
-              matched=not args.unmatched, by=args.by, ensemble=args.ensemble, min_valid=args.min_valid,
-              lag=args.lag)
+    if args.all:
+        import numpy as np
+
+        df = rank_all(ds, opts, by=args.by)
+        attrs = df.attrs
+        order = np.argsort(df["basin"].to_numpy(dtype=str), kind="stable")  # by basin, then rank (kept)
+        df = df.iloc[order].reset_index(drop=True)
+        df.attrs = attrs
+    else:
+        df = rank(ds, args.basin, opts, by=args.by)
+    what = {"basins": sorted(set(df["basin"]))} if args.all else {"basin": args.basin}
     if args.format == "csv":
         df.to_csv(sys.stdout, index=False, float_format="%.6g")
     elif args.format == "json":
-        json.dump({"basin": args.basin, "by": args.by, "period": [df.attrs["start"], df.attrs["end"]],
+        json.dump({**what, "by": args.by, "period": [df.attrs["start"], df.attrs["end"]],
                    "storage_change": args.storage_change, "matched": not args.unmatched,
                    "rows": json.loads(df.to_json(orient="records"))}, sys.stdout, indent=1)
         print()
     else:
-        cols = ["rank", "P", "ET", "TWSA", "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid"]
-        show = df[cols].copy()
-        show["rank"] = [str(r) if s else "-" for r, s in zip(df["rank"], df["scored"])]
-        print(f"basin {args.basin}, {df.attrs['start']}..{df.attrs['end']}, storage change {args.storage_change}"
-              f"{' (unmatched)' if args.unmatched else ' (window-matched)'}, ranked by {args.by}")
-        print(show.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
-        print("rmse, bias in mm/month; rel_imbalance in %; '-' = too few valid months to score")
-        for why in dict.fromkeys(w for w in df["undefined"] if w):
-            print(f"NaN: {why}")
+        who = f"{len(what['basins'])} basins" if args.all else f"basin {args.basin}"
+        _print_rank_table(df, args.by, head=(
+            f"{who}, {df.attrs['start']}..{df.attrs['end']}, storage change {args.storage_change}"
+            f"{' (unmatched)' if args.unmatched else ' (window-matched)'}, ranked by {args.by}"))
     return 0
 
 
 def _selection_from_args(args, P=None, ET=None, TWSA=None):
     from .balance import Selection
-    from .balance.closure import check_lag
 
-    check_lag(args.lag)
-    return Selection(basin=args.basin, P=P or args.P, ET=ET or args.ET, TWSA=TWSA or args.TWSA, start=args.start,
-                     end=args.end, storage_change=args.storage_change, matched=not args.unmatched, lag=args.lag)
+    return Selection.from_options(args.basin, _options(args), P=P or args.P, ET=ET or args.ET,
+                                  TWSA=TWSA or args.TWSA)
 
 
 def _cmd_export(args) -> int:
     from .selection import export_selection
 
     sel = _selection_from_args(args)
+    if args.incremental:
+        _check_incremental(args.catalog, args.basin)
     out = export_selection(args.catalog, sel, args.out, overwrite=args.force, series=args.series,
                            unit_system=args.units, cache_dir=args.cache_dir)
     print(f"wrote {out['selection']}" + (f" and {out['series']}" if out.get("series") else ""))
@@ -342,8 +428,11 @@ def _cmd_export(args) -> int:
 
 
 def _cmd_replay(args) -> int:
-    from .selection import replay
+    from .selection import load_selection, replay
 
+    if args.incremental:
+        _, sel, cat_path = load_selection(args.selection)
+        _check_incremental(cat_path, sel.basin)
     try:
         res = replay(args.selection, cache_dir=args.cache_dir)
     except ReplayMismatch as exc:
@@ -360,20 +449,21 @@ def _cmd_report(args) -> int:
     from .balance import best_selection
     from .io.catalog import open_catalog
     from .io.writers import check_output
-    from .balance.closure import check_lag
     from .report import write_report
 
-    check_lag(args.lag)  # before the series are loaded
+    opts = _options(args)  # before the series are loaded
     # refused before the series are loaded (write_report checks again just before writing)
-    check_output(args.out, overwrite=args.force, protect=open_catalog(args.catalog))
+    cat = open_catalog(args.catalog)
+    check_output(args.out, overwrite=args.force, protect=cat)
+    if args.incremental:
+        _check_incremental(cat, args.basin)
     ds = _series(args)
     if args.P and args.ET and args.TWSA:
         sel = _selection_from_args(args)
     elif args.P or args.ET or args.TWSA:
         raise InputError("give all of --P, --ET and --TWSA, or none (then the best-ranked combination is used)")
     else:
-        sel = best_selection(ds, args.basin, start=args.start, end=args.end, storage_change=args.storage_change,
-                             matched=not args.unmatched, lag=args.lag, by=args.by)
+        sel = best_selection(ds, args.basin, opts, by=args.by)
     out = write_report(args.catalog, ds, sel, args.out, overwrite=args.force, by=args.by)
     print(f"wrote {out}")
     return 0

@@ -632,7 +632,6 @@ def _write(folder: Path, *, progress: bool):
 
     # --- products
     g = folder / "grids"
-    lon_r = lon_c
     anom = M - M.mean(axis=0, keepdims=True)
     yfrac_c = (lat_c - REGION["lat0"]) / (REGION["lat1"] - REGION["lat0"])
     del yfrac_c

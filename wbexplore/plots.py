@@ -47,12 +47,26 @@ __all__ = [
 ]
 
 COLORS = {"P": "#0072B2", "ET": "#009E73", "Q": "#56B4E9", "dS": "#CC79A7", "residual": "#D55E00",
-          "band": "#E69F00", "gap": "#BBBBBB"}
+          "band": "#E69F00", "gap": "#BBBBBB", "flow": "#999933"}
 SEASON_COLORS = {"DJF": "#0072B2", "MAM": "#009E73", "JJA": "#E69F00", "SON": "#CC79A7"}
 UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s"}
 ERROR_METRICS = ("rmse", "mae", "annual_rmse")  # smaller is better: the map's colours are reversed for them
 TERMS = ("P", "ET", "Q", "dS", "residual")
 ROLES = ("inflow", "outflow", "outflow", "storage", "imbalance")
+
+
+def _terms(result):
+    """The balance terms of a selection result, in the term table's order (older results: the base four)."""
+    from .balance.terms import BASE_TERMS
+
+    return getattr(result, "terms", None) or BASE_TERMS
+
+
+def _balance_label(result, *, without_q: bool = False) -> str:
+    """"P - ET - Q - dS" (+ each flow with its sign), from the term table; without Q for Qhat."""
+    from .balance.terms import balance_text
+
+    return balance_text(tuple(t for t in _terms(result) if not (without_q and t.name == "Q")))
 
 
 def _short(message: str, n: int = 110) -> str:
@@ -119,7 +133,7 @@ class _Plot:
 
 
 class BarsPlot(_Plot):
-    """Period means of P (in), ET, Q, dS (out) and the residual (one bar each)."""
+    """Period means of every balance term (P and inflows in; ET, Q, outflows, dS out) and the residual."""
 
     def _build(self, width):
         from bokeh.models import ColumnDataSource, HoverTool, VBar
@@ -135,7 +149,13 @@ class BarsPlot(_Plot):
     def update(self, result, unit_system: str = "mm") -> None:
         f = to_unit_system(result.frame, result.area_km2, unit_system)
         ok = result.frame["valid"].values
-        self.src.data = dict(self.src.data, value=[float(f.loc[ok, k].mean()) if ok.any() else 0.0 for k in TERMS])
+        rows = _terms(result)
+        terms = [t.name for t in rows] + ["residual"]
+        roles = ["storage" if t.storage else ("inflow" if t.sign > 0 else "outflow") for t in rows] + ["imbalance"]
+        if list(self.fig.x_range.factors) != terms:  # flows add bars (P and inflows in; ET, Q, outflows out)
+            self.fig.x_range.factors = terms
+        self.src.data = {"term": terms, "value": [float(f.loc[ok, k].mean()) if ok.any() else 0.0 for k in terms],
+                         "color": [COLORS.get(k, COLORS["flow"]) for k in terms], "role": roles}
         self.fig.yaxis.axis_label = f"mean over valid months ({UNIT_LABEL[unit_system]})"
         self.fig.title.text = _nodata(result) or f"Component means, {result.n_valid} valid months"
 
@@ -192,7 +212,7 @@ class ResidualPlot(_Plot):
         self.gaps.data = {"x0": np.array([t[a] - half for a, _ in runs], dtype="datetime64[ns]"),
                           "x1": np.array([t[b] + half for _, b in runs], dtype="datetime64[ns]")}
         sel = result.selection
-        self.fig.yaxis.axis_label = f"P - ET - Q - dS ({UNIT_LABEL[unit_system]})"
+        self.fig.yaxis.axis_label = f"{_balance_label(result)} ({UNIT_LABEL[unit_system]})"
         self.fig.title.text = _nodata(result) or f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)"
 
 
@@ -241,7 +261,7 @@ class ScatterPlot(_Plot):
         self.line.data = {"x": lim, "y": lim}
         unit = UNIT_LABEL[unit_system]
         self.fig.xaxis.axis_label = f"gauged Q ({unit})"
-        self.fig.yaxis.axis_label = f"P - ET - dS ({unit})"
+        self.fig.yaxis.axis_label = f"{_balance_label(result, without_q=True)} ({unit})"
         m = result.metrics
         self.fig.title.text = _nodata(result) or (
             f"KGE {m['kge']:.2f}  NSE {m['nse']:.2f}  r {m['r']:.2f}  PBIAS {m['pbias']:.1f}%")

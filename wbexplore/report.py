@@ -13,6 +13,8 @@ import numpy as np
 
 from . import __version__
 from .balance import compute_selection, rank
+from .balance.combos import RANK_TABLE_COLUMNS
+from .balance.terms import balance_text
 from .escape import html_text
 from .io.catalog import Catalog, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output
@@ -27,7 +29,7 @@ areas (Snyder 1987 authalic formula); cells without data drop out and the valid 
 and a month with a missing day is left empty.</li>
 <li>TWSA products give monthly <em>mean</em> storage. The storage change is a {method} difference of monthly means;
 {matched}</li>
-<li>Residual r = P - ET - Q - dS (mm/month). KGE (Gupta et al. 2009), KGE' (Kling et al. 2012), NSE (Nash and
+<li>Residual r = {balance} (mm/month). KGE (Gupta et al. 2009), KGE' (Kling et al. 2012), NSE (Nash and
 Sutcliffe 1970), cyclostationary NSE (Lehmann et al. 2022) and PBIAS (Moriasi et al. 2007) compare
 P - ET - dS with gauged Q.</li>
 <li>Uncertainty: per component from stated product errors or the spread of the available products; Q from a
@@ -54,15 +56,13 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
     from .pipeline import load_basins
 
     res = compute_selection(ds, sel)
-    ranking = rank(ds, sel.basin, start=sel.start, end=sel.end, storage_change=sel.storage_change,
-                   matched=sel.matched, lag=sel.lag, by=by)
+    ranking = rank(ds, sel.basin, sel.options(), by=by)
     basins = load_basins(cat)
     import pandas as pd
 
     from .balance import rank_all
 
-    best = rank_all(ds, by=by, start=sel.start, end=sel.end, storage_change=sel.storage_change,
-                    matched=sel.matched)
+    best = rank_all(ds, sel.options(), by=by)
     scores = best[best["rank"] == 1].set_index("basin")[by] if len(best) else pd.Series(dtype=float)
     figs = [plots.basin_map(basins, scores, sel.basin, by, width=950,
                             title=f"Basins coloured by best {by}; {sel.basin} outlined"),
@@ -70,7 +70,7 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
             plots.balance_scatter(res, width=950)]
     m = res.metrics
     mrows = "".join(f"<tr><td>{html_text(k)}</td><td style='text-align:right'>{html_text(_fmt(v, '.4g'))}</td></tr>" for k, v in m.items())
-    cols = ["rank", "P", "ET", "TWSA", "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid"]
+    cols = list(RANK_TABLE_COLUMNS)
     trows = "".join("<tr>" + "".join(f"<td>{html_text(_fmt(r[c], '.3f') if isinstance(r[c], float) else str(r[c]))}</td>"
                                      for c in cols) + "</tr>" for _, r in ranking.iterrows())
     head = (f"<h1>wbexplore report: {html_text(res.basin_name)} ({html_text(sel.basin)})</h1>"
@@ -80,7 +80,7 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
             f"ET = {html_text(sel.ET)}, TWSA = {html_text(sel.TWSA)}. Basin area {res.area_km2:,.0f} km2. "
             f"wbexplore {__version__}.</p>")
     warn = "".join(f"<li>{html_text(w)}</li>" for w in views.warnings_for(res, ds))
-    notes = METHOD_NOTES.format(method=html_text(sel.storage_change),
+    notes = METHOD_NOTES.format(method=html_text(sel.storage_change), balance=html_text(balance_text(res.terms)),
                                 matched="P, ET and Q are filtered with the same window (window-matched)."
                                 if sel.matched else "fluxes are compared as monthly totals (not window-matched).")
     tail = (f"<h2>Selection metrics</h2><table class='metrics'>{mrows}</table>"

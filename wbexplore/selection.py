@@ -21,9 +21,10 @@ import pandas as pd
 import yaml
 
 from . import __version__
-from .balance import Selection, compute_selection, to_unit_system
+from .balance import ClosureOptions, Selection, compute_selection, to_unit_system
 from .balance.closure import MAX_LAG_MONTHS, Q_RELATIVE_ERROR, UNIT_SYSTEMS
 from .balance.storage import METHODS
+from .balance.terms import BASE_TERMS, SOURCE_COMPONENTS, balance_text
 from .errors import InputError, ReplayMismatch, SelectionError
 from .io.catalog import Catalog, file_sha256, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output, same_file
@@ -72,7 +73,7 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
                        q_relative_error: float = Q_RELATIVE_ERROR) -> dict:
     """The selection as a plain dict (what `export_selection` writes)."""
     sources = {}
-    for comp in ("P", "ET", "TWSA"):
+    for comp in SOURCE_COMPONENTS:
         spec = cat.source(getattr(sel, comp))
         sources[comp] = {"id": spec.id, "label": spec.display, "files": _file_entries(spec.paths, cat.path.parent)}
     inputs = {"basins": _file_entries([cat.basins.path], cat.path.parent)[0]}
@@ -83,7 +84,8 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
             spread[spec.id] = _file_entries(spec.paths, cat.path.parent)
     if cat.discharge:
         inputs["discharge"] = _file_entries([cat.discharge.path], cat.path.parent)[0]
-    return {
+    flows = _flow_entries(cat, result)
+    doc = {
         "wbexplore_selection": SELECTION_VERSION,
         "created": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "caution": CAUTION,
@@ -103,6 +105,27 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
         "metrics": _clean_metrics(result.metrics),
         "versions": _versions(),
     }
+    if flows:  # only where the balance has flows: a plain catalog's selection file stays as it was
+        doc["flows"] = flows
+    return doc
+
+
+def _catalog_flows(cat: Catalog) -> dict:
+    """flow id -> its catalog entry (``flows`` of a version-2 catalog; none before)."""
+    return {str(f.id): f for f in (getattr(cat, "flows", None) or ())}
+
+
+def _flow_entries(cat: Catalog, result) -> list[dict]:
+    """Each flow of the balance: id, direction, label and the SHA-256 of its station table."""
+    spec = _catalog_flows(cat)
+    out = []
+    for t in result.terms[len(BASE_TERMS):]:
+        fid = t.variable[len("flow_"):] if t.variable.startswith("flow_") else t.variable
+        entry = {"id": fid, "direction": "in" if t.sign > 0 else "out", "label": t.label}
+        if fid in spec and getattr(spec[fid], "path", None) is not None:
+            entry["file"] = _file_entries([spec[fid].path], cat.path.parent)[0]
+        out.append(entry)
+    return out
 
 
 def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, series: str | None = None,
@@ -130,7 +153,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
         check_output(series, overwrite=overwrite, protect=cat)
         if same_file(out, series):
             raise InputError(f"{series}: the series file is the selection file {out}; give two different files")
-    for comp in ("P", "ET", "TWSA"):
+    for comp in SOURCE_COMPONENTS:
         spec = cat.source(getattr(sel, comp))
         if spec.component != comp:
             raise InputError(f"{cat.path}: source {spec.id!r} is a {spec.component} product, not {comp}")
@@ -264,7 +287,7 @@ def _validate(doc: dict, p: Path) -> Selection:
         c.fail("period", f"start {months['start']} is after end {months['end']}")
     sources = c.mapping(doc["sources"], "sources")
     ids = {}
-    for comp in ("P", "ET", "TWSA"):
+    for comp in SOURCE_COMPONENTS:
         entry = c.mapping(c.get(sources, f"sources.{comp}", comp), f"sources.{comp}")
         ids[comp] = c.text(c.get(entry, f"sources.{comp}.id", "id"), f"sources.{comp}.id")
         c.files(entry.get("files", []), f"sources.{comp}.files")
@@ -288,14 +311,26 @@ def _validate(doc: dict, p: Path) -> Selection:
     unit_system = doc.get("unit_system", "mm")
     if unit_system not in UNIT_SYSTEMS:
         c.fail("unit_system", f"{_show(unit_system)} is not one of {', '.join(UNIT_SYSTEMS)}")
+    flows = doc.get("flows")
+    if flows is not None:
+        if not isinstance(flows, list):
+            c.fail("flows", f"{_show(flows)} must be a list of {{id, direction, label, file}} entries")
+        for i, f in enumerate(flows):
+            c.mapping(f, f"flows.{i}")
+            c.text(c.get(f, f"flows.{i}.id", "id"), f"flows.{i}.id")
+            if f.get("direction") not in ("in", "out"):
+                c.fail(f"flows.{i}.direction", f"{_show(f.get('direction'))} is not 'in' or 'out'")
+            if f.get("file") is not None:
+                c.file_entry(f["file"], f"flows.{i}.file")
     metrics = c.mapping(doc["metrics"], "metrics")
     for name, v in metrics.items():
         # null is how a metric that could not be computed (NaN) is written; .inf and -.inf stay numbers
         if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))):
             c.fail(f"metrics.{name}", f"{_show(v)} must be a number or null")
-    return Selection(basin=basin_id, P=ids["P"], ET=ids["ET"], TWSA=ids["TWSA"], start=months["start"],
-                     end=months["end"], storage_change=method, matched=matched, fill_gaps=fill, lag=lag,
-                     min_valid_fraction=mvf, water_year_start=wy)
+    # the same ClosureOptions the library and the command line use (fields already checked one by one above)
+    opts = ClosureOptions(start=months["start"], end=months["end"], storage_change=method, matched=matched,
+                          fill_gaps=fill, lag=lag, min_valid_fraction=mvf, water_year_start=wy)
+    return Selection.from_options(basin_id, opts, **ids)
 
 
 def load_selection(path) -> tuple[dict, Selection, Path]:
@@ -353,7 +388,7 @@ def replay(path, *, cache_dir=None) -> dict:
     if cat.sha256 != doc["catalog"]["sha256"]:
         rows.append(("catalog", doc["catalog"]["path"], "sha256 changed"))
     known = {s.id: s for s in cat.sources}
-    for comp in ("P", "ET", "TWSA"):
+    for comp in SOURCE_COMPONENTS:
         sid = getattr(sel, comp)
         if sid not in known:
             raise SelectionError(f"{path}: field 'sources.{comp}.id': source {sid!r} is not in the catalog "
@@ -384,7 +419,7 @@ def replay(path, *, cache_dir=None) -> dict:
     def is_store(spec):
         return spec.format == "zarr"
 
-    for comp in ("P", "ET", "TWSA"):
+    for comp in SOURCE_COMPONENTS:
         spec = known[getattr(sel, comp)]
         check(doc["sources"][comp].get("files") or [], spec.paths, f"source {spec.id}", store_ok=is_store(spec))
     for sid, files in (doc.get("uncertainty_sources") or {}).items():
@@ -402,6 +437,19 @@ def replay(path, *, cache_dir=None) -> dict:
         check([entry], [catalog_inputs[key]], key)
     ds = _extract_for(cat, sel, cache_dir)
     res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)))
+    # the balance's flows: the same ones, each from the same file
+    recorded_flows = {str(f["id"]): f for f in doc.get("flows") or []}
+    now_flows = {f["id"]: f for f in _flow_entries(cat, res)}
+    for fid in sorted(recorded_flows.keys() | now_flows.keys()):
+        old, cur = recorded_flows.get(fid), now_flows.get(fid)
+        if cur is None:
+            rows.append((f"flow {fid}", old["direction"], "no longer in the balance"))
+        elif old is None:
+            rows.append((f"flow {fid}", "(not recorded)", f"now in the balance ({cur['direction']})"))
+        elif old["direction"] != cur["direction"]:
+            rows.append((f"flow {fid}", old["direction"], cur["direction"]))
+        elif old.get("file") and cur.get("file"):
+            check([old["file"]], [_catalog_flows(cat)[fid].path], f"flow {fid}")
     new = _clean_metrics(res.metrics)
     n = 0
     for k, old in doc["metrics"].items():
@@ -420,12 +468,18 @@ def replay(path, *, cache_dir=None) -> dict:
 
 
 # --------------------------------------------------------------------------- series export
-_CSV_COLS = ["P", "ET", "Q", "dS", "residual", "TWSA", "sigma_P", "sigma_ET", "sigma_Q", "sigma_dS",
-             "sigma_residual", "beyond_2sigma", "valid_fraction_P", "valid_fraction_ET", "valid_fraction_TWSA"]
+_CSV_COLS = [*(t.name for t in BASE_TERMS), "residual", "TWSA", *(f"sigma_{t.name}" for t in BASE_TERMS),
+             "sigma_residual", "beyond_2sigma", *(f"valid_fraction_{c}" for c in SOURCE_COMPONENTS)]
+
+
+def _flow_cols(result) -> list[str]:
+    """Columns of the balance's flows: each flow (window-matched as the residual uses it), its sigma, the net."""
+    names = [t.name for t in result.terms[len(BASE_TERMS):]]
+    return [c for n in names for c in (n, f"sigma_{n}")] + (["net_flow"] if names else [])
 
 
 def _series_frame(result, unit_system):
-    f = to_unit_system(result.frame, result.area_km2, unit_system)[_CSV_COLS].copy()
+    f = to_unit_system(result.frame, result.area_km2, unit_system)[_CSV_COLS + _flow_cols(result)].copy()
     f.index = pd.Index([f"{m:%Y-%m}" for m in f.index], name="month")
     return f
 
@@ -478,7 +532,19 @@ def series_dataset(result, *, doc: dict | None = None):
         ds[name] = ("time", f[name].to_numpy(dtype=float))
         ds[name].attrs = {"long_name": f"standard error of {comp}", "units": "mm"}
         ds[comp].attrs["ancillary_variables"] = (ds[comp].attrs.get("ancillary_variables", "") + " " + name).strip()
-    for comp in ("P", "ET", "TWSA"):
+    for t in result.terms[len(BASE_TERMS):]:
+        ds[t.name] = ("time", f[t.name].to_numpy(dtype=float))
+        ds[t.name].attrs = {"long_name": f"{t.label} ({'inflow' if t.sign > 0 else 'outflow'}) as depth over the basin",
+                            "units": "mm", "cell_methods": "time: sum area: mean",
+                            "ancillary_variables": f"sigma_{t.name}"}
+        ds[f"sigma_{t.name}"] = ("time", f[f"sigma_{t.name}"].to_numpy(dtype=float))
+        ds[f"sigma_{t.name}"].attrs = {"long_name": f"standard error of {t.name}", "units": "mm"}
+    if "net_flow" in f:
+        ds["net_flow"] = ("time", f["net_flow"].to_numpy(dtype=float))
+        ds["net_flow"].attrs = {"long_name": "inflows minus outflows as depth over the basin", "units": "mm",
+                                "cell_methods": "time: sum area: mean"}
+        ds["residual"].attrs["long_name"] = f"water-balance residual {balance_text(result.terms)}"
+    for comp in SOURCE_COMPONENTS:
         name = f"valid_fraction_{comp}"
         ds[name] = ("time", f[name].to_numpy(dtype=float))
         ds[name].attrs = {"long_name": f"share of basin area with data in the {comp} product", "units": "1"}

@@ -7,53 +7,49 @@ reads files. Everything the explorer shows for a selection comes from
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field, replace
+import re
+from dataclasses import asdict, dataclass, field, fields, replace
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
 from ..errors import InputError
+from ..series import source_ids, valid_fraction_name
 from ..units import mm_per_month_to_flow_m3s, mm_to_m3
-from .metrics import compute_metrics
-from .storage import (METHODS, fill_gaps, match_window, match_window_variance, shift_later, storage_change,
-                      storage_change_variance)
+from .engine import (ENSEMBLE_PREFIX, basin_index, check_source, closure_arrays, combine, metrics_arrays,
+                     water_year, with_ensembles)
+from .options import MAX_LAG_MONTHS, OPTION_NAMES, ClosureOptions, check_lag, period_mask
+from .storage import match_window_variance, storage_change_variance
+from .terms import BASE_TERMS, SOURCE_COMPONENTS, term_signs
 
 __all__ = [
     "Selection", "SelectionResult", "compute_selection", "component_terms", "period_mask",
     "with_ensembles", "source_ids", "UNIT_SYSTEMS", "to_unit_system", "Q_RELATIVE_ERROR",
-    "water_year", "month_labels", "MAX_LAG_MONTHS", "check_lag",
+    "water_year", "month_labels", "MAX_LAG_MONTHS", "check_lag", "ClosureOptions", "ENSEMBLE_PREFIX",
 ]
 
 UNIT_SYSTEMS = ("mm", "m3", "m3/s")
-# Gauged Q is compared at most a year later than the basin terms: a longer routing delay is not a
-# monthly water balance any more, and each month of lag shortens the compared period.
-MAX_LAG_MONTHS = 12
-
-
-def check_lag(lag) -> int:
-    """The discharge lag in months (0..`MAX_LAG_MONTHS`); `InputError` otherwise (one message for every caller)."""
-    if isinstance(lag, bool) or not isinstance(lag, (int, np.integer)) or not 0 <= lag <= MAX_LAG_MONTHS:
-        raise InputError(f"lag {lag} must be between 0 and {MAX_LAG_MONTHS} months")
-    return int(lag)
 
 # Relative error of gauged monthly discharge: a few percent for a rated station (common practice;
 # the 5% used here is from memory of typical stage-discharge uncertainty, not from a standard).
 Q_RELATIVE_ERROR = 0.05
-ENSEMBLE_PREFIX = "ensemble_"
 
 
 @dataclass(frozen=True)
 class Selection:
-    """A combination of sources for one basin and period.
+    """A combination of sources for one basin, with its closure options.
 
     start, end : "YYYY-MM" or None (whole series)
     storage_change : "central" | "backward" | "forward"
-    matched : filter P, ET and Q with the kernel of the storage difference (see `storage`)
+    matched : filter every flux with the kernel of the storage difference (see `storage`)
     fill_gaps : interpolate TWSA gaps linearly (flagged), default off
     lag : months by which gauged Q is compared later than the basin terms (0 = none)
     min_valid_fraction : months where a source covers less of the basin are treated as missing
     water_year_start : first calendar month of the water year (1 = calendar year)
+
+    The option fields are those of `ClosureOptions` (``options()`` gives it, ``from_options`` builds a
+    selection from one).
     """
 
     basin: str
@@ -75,6 +71,22 @@ class Selection:
     def replace(self, **kw) -> "Selection":
         return replace(self, **kw)
 
+    def options(self, **kw) -> ClosureOptions:
+        """The selection's `ClosureOptions` (``kw``: options a selection does not hold, e.g. min_valid)."""
+        own = {f.name: getattr(self, f.name) for f in fields(self) if f.name in OPTION_NAMES}
+        return ClosureOptions(**own, **kw)
+
+    def sources(self) -> dict:
+        """Component -> [source id] (the form `closure_terms` takes)."""
+        return {c: [getattr(self, c)] for c in SOURCE_COMPONENTS}
+
+    @classmethod
+    def from_options(cls, basin: str, options: ClosureOptions, **sources) -> "Selection":
+        """A selection of ``sources`` (P=, ET=, TWSA=) for ``basin`` with every option of ``options`` that a
+        selection holds."""
+        own = {f.name: getattr(options, f.name) for f in fields(cls) if f.name in OPTION_NAMES}
+        return cls(basin=basin, **sources, **own)
+
 
 @dataclass
 class SelectionResult:
@@ -84,88 +96,27 @@ class SelectionResult:
     area_km2: float
     basin_name: str
     messages: list = field(default_factory=list)
+    terms: tuple = BASE_TERMS  # the balance's `Term` rows, flows included (frame columns by name)
 
     @property
     def n_valid(self) -> int:
         return int(self.metrics.get("n_valid", 0))
 
 
-def source_ids(ds: xr.Dataset, component: str) -> list[str]:
-    """Source variables of one component, in dataset order (uses Variables, not DataArrays: fast)."""
-    names = ds.data_vars
-    return [str(n) for n, v in ds.variables.items()
-            if n in names and v.attrs.get("role") == "source" and v.attrs.get("component") == component]
-
-
 def _values(ds: xr.Dataset, name: str) -> np.ndarray:
     return ds.variables[name].values
-
-
-def with_ensembles(ds: xr.Dataset) -> xr.Dataset:
-    """Add ``ensemble_P``, ``ensemble_ET``, ``ensemble_TWSA``: the mean of each component's products
-    (months where every product is valid)."""
-    out = ds.copy()
-    for comp in ("P", "ET", "TWSA"):
-        ids = [s for s in source_ids(ds, comp) if not s.startswith(ENSEMBLE_PREFIX)]
-        if len(ids) < 2:
-            continue
-        stack = xr.concat([ds[s] for s in ids], dim="member")
-        name = f"{ENSEMBLE_PREFIX}{comp}"
-        out[name] = stack.mean("member", skipna=False)
-        out[name].attrs = {"role": "source", "component": comp, "units": ds[ids[0]].attrs.get("units"),
-                           "long_name": f"ensemble mean of {', '.join(ids)}", "source_id": name}
-        vfs = [ds[f"valid_fraction_{s}"] for s in ids if f"valid_fraction_{s}" in ds]
-        if vfs:
-            out[f"valid_fraction_{name}"] = xr.concat(vfs, dim="member").min("member")
-    return out
 
 
 def month_labels(ds: xr.Dataset) -> pd.DatetimeIndex:
     return pd.DatetimeIndex(ds["time"].values)
 
 
-def water_year(months: pd.DatetimeIndex, start_month: int = 1) -> np.ndarray:
-    """Water year of each month, named by the calendar year in which it ends."""
-    y = months.year.values
-    return np.where(months.month.values >= start_month, y + (1 if start_month > 1 else 0), y)
-
-
-def period_mask(months: pd.DatetimeIndex, start: str | None, end: str | None) -> np.ndarray:
-    """Boolean mask of months within start..end (inclusive, "YYYY-MM"); refuses periods outside the data."""
-    def parse(v, what):
-        try:
-            return pd.Timestamp(v).to_period("M").to_timestamp()
-        except Exception:
-            raise InputError(f"{what} {v!r} is not a month (YYYY-MM)") from None
-
-    lo = parse(start, "start") if start else months[0]
-    hi = parse(end, "end") if end else months[-1]
-    if lo > hi:
-        raise InputError(f"period {lo:%Y-%m}..{hi:%Y-%m} ends before it starts")
-    if hi < months[0] or lo > months[-1]:
-        raise InputError(f"period {lo:%Y-%m}..{hi:%Y-%m} is outside the data ({months[0]:%Y-%m}..{months[-1]:%Y-%m})")
-    return np.asarray((months >= lo) & (months <= hi))
-
-
-def _basin_index(ds: xr.Dataset, basin: str) -> int:
-    ids = [str(b) for b in ds.variables["basin"].values]
-    if str(basin) not in ids:
-        raise InputError(f"basin {basin!r} is not in the series (known: {', '.join(ids)})")
-    return ids.index(str(basin))
-
-
-def _source(ds: xr.Dataset, sid: str, component: str) -> xr.DataArray:
-    if sid not in ds.data_vars or ds.variables[sid].attrs.get("role") != "source":
-        if sid.startswith(ENSEMBLE_PREFIX):
-            raise InputError(f"source {sid!r} needs ensembles enabled (at least two {component} products)")
-        raise InputError(f"source {sid!r} is not in the series (known {component}: {', '.join(source_ids(ds, component))})")
-    comp = ds.variables[sid].attrs.get("component")
-    if comp != component:
-        raise InputError(f"source {sid!r} is a {comp} product, not {component}")
+_basin_index = basin_index
+_source = check_source
 
 
 def _valid(ds, sid, b, min_vf):
-    name = f"valid_fraction_{sid}"
+    name = valid_fraction_name(sid)
     if name in ds.variables:
         return _values(ds, name)[b] >= min_vf
     return np.ones(ds.sizes["time"], dtype=bool)
@@ -174,34 +125,16 @@ def _valid(ds, sid, b, min_vf):
 def component_terms(ds: xr.Dataset, sel: Selection) -> dict:
     """Full-length monthly terms of a selection (mm/month; TWSA in mm), before the period cut.
 
-    Keys: P, ET, Q, TWSA, dS, and the window-matched P_w, ET_w, Q_w, and ``filled`` (TWSA
-    months interpolated on request).
+    Keys: P, ET, Q, TWSA, dS, the window-matched P_w, ET_w, Q_w, ``filled`` (TWSA months interpolated on
+    request), and each flow by its variable name (window-matched). A view of `closure_arrays` (kept for
+    old callers).
     """
-    if sel.storage_change not in METHODS:
-        raise InputError(f"storage-change method {sel.storage_change!r} is not one of {', '.join(METHODS)}")
-    if "discharge" not in ds:
-        raise InputError("the series hold no discharge: add 'discharge' to the catalog")
-    b = _basin_index(ds, sel.basin)
-    out = {}
-    for comp in ("P", "ET", "TWSA"):
-        sid = getattr(sel, comp)
-        _source(ds, sid, comp)
-        v = _values(ds, sid)[b].astype(np.float64)
-        v = np.where(_valid(ds, sid, b, sel.min_valid_fraction), v, np.nan)
-        out[comp] = v
-    q = _values(ds, "discharge")[b].astype(np.float64)
-    if check_lag(sel.lag):
-        q = shift_later(q, sel.lag)
-    out["Q"] = q
-    twsa = out["TWSA"]
-    filled = np.zeros(twsa.shape, dtype=bool)
-    if sel.fill_gaps:
-        twsa, filled = fill_gaps(twsa)
-    out["TWSA_used"] = twsa
-    out["filled"] = filled
-    out["dS"] = storage_change(twsa, sel.storage_change)
-    for k in ("P", "ET", "Q"):
-        out[f"{k}_w"] = match_window(out[k], sel.storage_change) if sel.matched else out[k]
+    a = closure_arrays(ds, sel.options(), basins=[sel.basin], sources=sel.sources())
+    out = {"P": a["P_raw"][0, 0], "ET": a["ET_raw"][0, 0], "TWSA": a["TWSA_raw"][0, 0], "Q": a["Q_raw"][0],
+           "TWSA_used": a["TWSA"][0, 0], "filled": a["filled"][0, 0], "dS": a["dS"][0, 0],
+           "P_w": a["P"][0, 0], "ET_w": a["ET"][0, 0], "Q_w": a["Q"][0]}
+    for t in a["terms"][len(BASE_TERMS):]:
+        out[t.name] = a[t.name][0]
     return out
 
 
@@ -226,15 +159,15 @@ def _sigma_component(ds, sel, comp, b, values):
 
 def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float = Q_RELATIVE_ERROR,
                       covariance=None, min_valid: int = 24) -> SelectionResult:
-    """Series, uncertainty and metrics of one selection.
+    """Series, uncertainty and metrics of one selection (a view of the closure pipeline, `closure_arrays`).
 
     Parameters
     ----------
     ds : canonical basin series
     sel : Selection
-    q_relative_error : relative standard error of gauged Q (default 5%)
+    q_relative_error : relative standard error of gauged Q and of every gauged flow (default 5%)
     covariance : optional 4x4 array, correlation matrix of the errors of (P, ET, Q, dS);
-        default independent errors.
+        default independent errors (flows: always independent).
     min_valid : fewer valid months than this and the metrics are NaN (with a message)
 
     Returns
@@ -242,27 +175,37 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     SelectionResult with ``frame`` columns (mm/month unless noted):
     P, ET, Q, dS (window-matched where ``sel.matched``), TWSA (mm), residual, Qhat,
     P_raw, ET_raw, Q_raw, residual_unmatched, sigma_P, sigma_ET, sigma_Q, sigma_dS, sigma_residual,
-    beyond_2sigma (bool), valid (bool), twsa_filled (bool), valid_fraction_P/ET/TWSA (0..1).
+    beyond_2sigma (bool), valid (bool), twsa_filled (bool), valid_fraction_P/ET/TWSA (0..1); with flows,
+    each flow ``flow_<id>`` (window-matched), ``flow_<id>_raw``, ``sigma_flow_<id>`` and ``net_flow``
+    (inflows - outflows).
     """
-    if "ensemble_" in sel.P + sel.ET + sel.TWSA and not any(str(v).startswith(ENSEMBLE_PREFIX) for v in ds.data_vars):
-        ds = with_ensembles(ds)
-    terms = component_terms(ds, sel)
-    months = month_labels(ds)
-    mask = period_mask(months, sel.start, sel.end)
-    b = _basin_index(ds, sel.basin)
-    P, ET, Q, dS = terms["P_w"], terms["ET_w"], terms["Q_w"], terms["dS"]
-    res = P - ET - Q - dS
-    sP, srcP = _sigma_component(ds, sel, "P", b, terms["P"])
-    sE, srcE = _sigma_component(ds, sel, "ET", b, terms["ET"])
-    sM, srcM = _sigma_component(ds, sel, "TWSA", b, terms["TWSA_used"])
-    sQ = q_relative_error * np.abs(terms["Q"])
+    opts = sel.options(min_valid=min_valid)
+    a = closure_arrays(ds, opts, basins=[sel.basin], sources=sel.sources())
+    ds = a["ds"]
+    months = a["months"]
+    mask = opts.period(months)
+    b = int(a["b"][0])
+    flows = a["terms"][len(BASE_TERMS):]
+    P, ET, Q, dS = a["P"][0, 0], a["ET"][0, 0], a["Q"][0], a["dS"][0, 0]
+    P_raw, ET_raw, Q_raw, M_raw, M_used = a["P_raw"][0, 0], a["ET_raw"][0, 0], a["Q_raw"], a["TWSA_raw"][0, 0], a["TWSA"][0, 0]
+    Q_raw = Q_raw[0]
+    net = None if a["net_flow"] is None else a["net_flow"][0]
+    terms_ = a["terms"]
+    res, qhat = combine({t.name: (a[t.name][0, 0] if t.gridded else a[t.name][0]) for t in terms_}, terms_)
+    res_unmatched, _ = combine({t.name: (a[t.name][0, 0] if t.storage else a[f"{t.name}_raw"][0, 0] if t.gridded
+                                         else a[f"{t.name}_raw"][0]) for t in terms_}, terms_)
+    sP, srcP = _sigma_component(ds, sel, "P", b, P_raw)
+    sE, srcE = _sigma_component(ds, sel, "ET", b, ET_raw)
+    sM, srcM = _sigma_component(ds, sel, "TWSA", b, M_used)
+    sQ = q_relative_error * np.abs(Q_raw)
+
     def flux_var(sd):
         return match_window_variance(sd**2, sel.storage_change) if sel.matched else sd**2
 
     vP, vE, vQ = flux_var(sP), flux_var(sE), flux_var(sQ)
     vS = storage_change_variance(sM**2, sel.storage_change)
     sig = np.sqrt(np.stack([vP, vE, vQ, vS]))
-    g = np.array([1.0, -1.0, -1.0, -1.0])
+    g = term_signs(BASE_TERMS)
     if covariance is None:
         vr = np.sum(sig**2, axis=0)
     else:
@@ -270,31 +213,41 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
         if C.shape != (4, 4):
             raise InputError("covariance must be a 4x4 correlation matrix for (P, ET, Q, dS)")
         vr = np.einsum("i,it,ij,jt,j->t", g, sig, C, sig, g)
+    sig_flows = {}
+    for t in flows:
+        sig_flows[t.name] = np.sqrt(flux_var(q_relative_error * np.abs(a[f"{t.name}_raw"][0])))
+        vr = vr + sig_flows[t.name] ** 2
     sr = np.sqrt(vr)
     valid = np.isfinite(res)
-    frame = pd.DataFrame({
-        "P": P, "ET": ET, "Q": Q, "dS": dS, "TWSA": terms["TWSA"], "residual": res, "Qhat": P - ET - dS,
-        "P_raw": terms["P"], "ET_raw": terms["ET"], "Q_raw": terms["Q"],
-        "residual_unmatched": terms["P"] - terms["ET"] - terms["Q"] - dS,
+    cols = {
+        "P": P, "ET": ET, "Q": Q, "dS": dS, "TWSA": M_raw, "residual": res, "Qhat": qhat,
+        "P_raw": P_raw, "ET_raw": ET_raw, "Q_raw": Q_raw,
+        "residual_unmatched": res_unmatched,
         "sigma_P": sig[0], "sigma_ET": sig[1], "sigma_Q": sig[2], "sigma_dS": sig[3], "sigma_residual": sr,
         "beyond_2sigma": valid & np.isfinite(sr) & (np.abs(res) > 2 * sr),
-        "valid": valid, "twsa_filled": terms["filled"],
-    }, index=pd.Index(months, name="month"))
-    for comp in ("P", "ET", "TWSA"):
-        name = f"valid_fraction_{getattr(sel, comp)}"
-        frame[f"valid_fraction_{comp}"] = _values(ds, name)[b] if name in ds.variables else np.nan
-    frame = frame.loc[mask]
+        "valid": valid, "twsa_filled": a["filled"][0, 0],
+    }
+    for comp in SOURCE_COMPONENTS:
+        name = valid_fraction_name(getattr(sel, comp))
+        cols[f"valid_fraction_{comp}"] = (_values(ds, name)[b] if name in ds.variables
+                                          else np.full(months.size, np.nan))
+    for t in flows:
+        cols[t.name] = a[t.name][0]
+        cols[f"{t.name}_raw"] = a[f"{t.name}_raw"][0]
+        cols[f"sigma_{t.name}"] = sig_flows[t.name]
+    if flows:
+        cols["net_flow"] = net
+    # one frame built at once (inserting columns one by one costs more than the balance itself)
+    frame = pd.DataFrame({k: v[mask] for k, v in cols.items()}, index=pd.Index(months[mask], name="month"))
     pm = months[mask]
-    wy = water_year(pm, sel.water_year_start)
-    f = frame
-    metrics = compute_metrics(f["P"].values, f["ET"].values, f["Q"].values, f["dS"].values,
-                              month_of_year=pm.month.values, water_year=wy, min_valid=min_valid, explain=True)
+    metrics = metrics_arrays(res[mask], qhat[mask], Q[mask], P[mask], pm, opts, explain=True)
     undefined = str(metrics.pop("undefined"))
     metrics = {k: float(v) if np.ndim(v) == 0 else v for k, v in metrics.items()}
     metrics["n_valid"] = int(metrics["n_valid"])
     metrics["n_beyond_2sigma"] = int(frame["beyond_2sigma"].sum())
     msgs = []
     n = metrics["n_valid"]
+    terms = {"P": P_raw, "ET": ET_raw, "dS": a["dS"][0, 0], "Q": Q_raw}
     if n == 0:
         msgs.append(_no_overlap_message(ds, sel, terms, mask, months))
     elif n < min_valid:
@@ -304,12 +257,14 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
         msgs.append(f"{n_gap} months without storage change (TWSA gap or series edge)")
     if undefined:
         msgs.append(undefined)
-    if terms["filled"][mask].any():
-        msgs.append(f"{int(terms['filled'][mask].sum())} TWSA months interpolated across a gap (flagged)")
+    filled = a["filled"][0, 0]
+    if filled[mask].any():
+        msgs.append(f"{int(filled[mask].sum())} TWSA months interpolated across a gap (flagged)")
     return SelectionResult(selection=sel, frame=frame, metrics=metrics,
                            area_km2=float(ds["basin_area_km2"].values[b]) if "basin_area_km2" in ds.coords else float("nan"),
                            basin_name=str(ds["basin_name"].values[b]) if "basin_name" in ds.coords else str(sel.basin),
-                           messages=msgs + [f"uncertainty: P {srcP}, ET {srcE}, TWSA {srcM}, Q {q_relative_error:.0%} of flow"])
+                           messages=msgs + [f"uncertainty: P {srcP}, ET {srcE}, TWSA {srcM}, Q {q_relative_error:.0%} of flow"],
+                           terms=a["terms"])
 
 
 def _span(months, ok):
@@ -330,8 +285,9 @@ def _no_overlap_message(ds, sel, terms, mask, months) -> str:
             + "; ".join(parts))
 
 
-_FLUX_COLS = ("P", "ET", "Q", "dS", "residual", "Qhat", "P_raw", "ET_raw", "Q_raw", "residual_unmatched",
-              "sigma_P", "sigma_ET", "sigma_Q", "sigma_dS", "sigma_residual")
+_FLUX_COLS = (*(t.name for t in BASE_TERMS), "residual", "Qhat", *(f"{t.name}_raw" for t in BASE_TERMS if not t.storage),
+              "residual_unmatched", *(f"sigma_{t.name}" for t in BASE_TERMS), "sigma_residual", "net_flow")
+_FLOW_COL = re.compile(r"(sigma_)?flow_.*")
 
 
 def to_unit_system(frame: pd.DataFrame, area_km2: float, system: str) -> pd.DataFrame:
@@ -346,7 +302,7 @@ def to_unit_system(frame: pd.DataFrame, area_km2: float, system: str) -> pd.Data
     out = frame.copy()
     area_m2 = area_km2 * 1e6
     months = pd.DatetimeIndex(frame.index)
-    for c in _FLUX_COLS:
+    for c in [c for c in out if c in _FLUX_COLS or _FLOW_COL.fullmatch(str(c))]:
         if c in out:
             out[c] = mm_to_m3(out[c].values, area_m2) if system == "m3" else \
                 mm_per_month_to_flow_m3s(out[c].values, months, area_m2)

@@ -17,10 +17,13 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError
+from .terms import BASE_TERMS, term_signs
 
 __all__ = ["constrained_correction", "correct_frame", "G_BALANCE"]
 
-G_BALANCE = np.array([1.0, -1.0, -1.0, -1.0])
+# the balance row over (P, ET, Q, dS): the signs of the term table
+_TERMS = BASE_TERMS
+G_BALANCE = term_signs(_TERMS)
 
 
 def constrained_correction(x, cov, *, G=G_BALANCE, g: float = 0.0, fraction: float = 1.0):
@@ -58,7 +61,8 @@ def correct_frame(frame: pd.DataFrame, *, fraction: float = 1.0, variances: dict
     Adds P_corr, ET_corr, Q_corr, dS_corr, their posterior sigmas, residual_corr, and
     ``negative_flux`` (a corrected P, ET or Q below zero).
     """
-    comps = ("P", "ET", "Q", "dS")
+    comps = tuple(t.name for t in _TERMS)
+    fluxes = [i for i, t in enumerate(_TERMS) if not t.storage]
     x = frame[list(comps)].to_numpy(dtype=float)
     if variances is not None:
         v = np.array([[variances[c] for c in comps]] * len(frame), dtype=float)
@@ -78,5 +82,5 @@ def correct_frame(frame: pd.DataFrame, *, fraction: float = 1.0, variances: dict
         out[f"{c}_corr"] = xn[:, i]
         out[f"sigma_{c}_corr"] = np.sqrt(vn[:, i])
     out["residual_corr"] = xn @ G_BALANCE
-    out["negative_flux"] = np.any(xn[:, :3] < 0, axis=1)
+    out["negative_flux"] = np.any(xn[:, fluxes] < 0, axis=1)
     return out

@@ -34,8 +34,9 @@ import warnings
 import numpy as np
 
 from ..errors import InputError
+from .terms import BASE_TERMS, combine
 
-__all__ = ["METRICS", "compute_metrics", "sort_key", "kge", "kge_prime", "nse", "pbias", "check_metric"]
+__all__ = ["METRICS", "compute_metrics", "metrics_from_residual", "sort_key", "kge", "kge_prime", "nse", "pbias", "check_metric"]
 
 # name -> (higher is better | "abs" for closest to zero, units, short description)
 METRICS = {
@@ -151,8 +152,37 @@ def compute_metrics(P, ET, Q, dS, *, month_of_year=None, water_year=None, min_va
     dict of metric name -> array over the leading axes
     """
     P, ET, Q, dS = _mask(P, ET, Q, dS)
-    res = P - ET - Q - dS
-    qhat = P - ET - dS
+    res, qhat = combine({"P": P, "ET": ET, "Q": Q, "dS": dS}, BASE_TERMS)
+    return _from_masked(res, qhat, Q, P, month_of_year=month_of_year, water_year=water_year, min_valid=min_valid,
+                        explain=explain)
+
+
+def metrics_from_residual(residual, qhat, Q, P, *, month_of_year=None, water_year=None, min_valid: int = 1,
+                          explain: bool = False) -> dict:
+    """All closure metrics from the residual and the balance estimate of discharge (time on the last axis).
+
+    Parameters
+    ----------
+    residual : array-like, mm/month
+        sum over the balance terms of sign * term (`wbexplore.balance.terms`), flows included.
+    qhat : array-like, mm/month
+        residual + Q: the discharge the other terms predict.
+    Q : array-like, mm/month
+        gauged discharge, compared with ``qhat``.
+    P : array-like, mm/month
+        precipitation (denominator of ``rel_imbalance``).
+    month_of_year, water_year, min_valid, explain : as `compute_metrics`
+
+    Every input broadcasts to one shape; a month counts where all four are finite. With the four base
+    terms this gives bitwise what `compute_metrics(P, ET, Q, dS)` gives (the same operations in the same
+    order on the same months).
+    """
+    residual, qhat, Q, P = _mask(residual, qhat, Q, P)
+    return _from_masked(residual, qhat, Q, P, month_of_year=month_of_year, water_year=water_year,
+                        min_valid=min_valid, explain=explain)
+
+
+def _from_masked(res, qhat, Q, P, *, month_of_year, water_year, min_valid, explain):
     n = np.sum(np.isfinite(res), axis=-1)
     out = {}
     mr = _nanmean(res)

@@ -1,6 +1,6 @@
 """The unknown term by difference, with propagated uncertainty.
 
-    ET = P - Q - dS,   Q = P - ET - dS,   dS = P - ET - Q
+    ET = P - Q - dS,   Q = P - ET - dS,   dS = P - ET - Q     (each + inflows - outflows, with flows)
 
 monthly, and as long-term means over whole years, where the storage term largely
 vanishes (ET = P - Q is the classic long-term form; the dS term is reported).
@@ -33,9 +33,10 @@ def by_difference(ds: xr.Dataset, sel: Selection, unknown: str = "ET", **kwargs)
         raise InputError(f"unknown term {unknown!r} is not one of {', '.join(UNKNOWNS)}")
     res = compute_selection(ds, sel, **kwargs)
     f = res.frame
-    terms = {"P": f["P"], "ET": f["ET"], "Q": f["Q"], "dS": f["dS"]}
+    rows_ = res.terms  # the term table's rows, flows included
+    terms = {t.name: f[t.name] for t in rows_}
     sig = {k: f[f"sigma_{k}"] for k in terms}
-    sign = {"P": 1.0, "ET": -1.0, "Q": -1.0, "dS": -1.0}
+    sign = {t.name: t.sign for t in rows_}
     others = [k for k in terms if k not in (unknown, "P")]
     est = terms["P"].copy()
     for k in others:
@@ -52,7 +53,7 @@ def by_difference(ds: xr.Dataset, sel: Selection, unknown: str = "ET", **kwargs)
         if m.sum() == 12 and blk["estimate"].notna().all():
             nos = None
             if unknown != "dS":
-                nos_terms = terms["P"][m] - sum(terms[k][m] for k in others if k != "dS")
+                nos_terms = terms["P"][m] + sum(sign[k] * terms[k][m] for k in others if k != "dS")
                 nos = float(-(nos_terms.sum()) / sign[unknown])
             rows.append({"year": int(y), "estimate": float(blk["estimate"].sum()),
                          "sigma": float(np.sqrt((blk["sigma"] ** 2).sum())),

@@ -21,6 +21,8 @@ import numpy as np
 import pandas as pd
 
 from .. import plots
+from ..balance.combos import RANK_TABLE_COLUMNS
+from ..balance.terms import SOURCE_COMPONENTS
 from ..errors import InputError
 from ..escape import md_text, public_message, safe_filename, study_relative
 from ..io.writers import CAUTION
@@ -29,10 +31,10 @@ from .state import ClosureState
 
 __all__ = ["Explorer", "explore", "serve", "load_state", "default_export_dir"]
 
-_DEPS = ("basin", "P", "ET", "TWSA", "period", "storage_change", "matched", "unit_system", "metric")
-_SEL_DEPS = ("basin", "P", "ET", "TWSA", "period", "storage_change", "matched", "unit_system")
+_DEPS = ("basin", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system", "metric")
+_SEL_DEPS = ("basin", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system")
 _MAP_DEPS = ("basin", "period", "storage_change", "matched", "metric")
-_MULTI_DEPS = ("P", "ET", "TWSA", "period", "storage_change", "matched")
+_MULTI_DEPS = (*SOURCE_COMPONENTS, "period", "storage_change", "matched")
 
 
 def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureState:
@@ -73,7 +75,7 @@ class Explorer:
                                                      case_sensitive=False, search_strategy="includes",
                                                      min_characters=1, placeholder="type an id or a name", width=260)
         self.w_src = {}
-        for comp in ("P", "ET", "TWSA"):
+        for comp in SOURCE_COMPONENTS:
             opts = {f"{s.labels.get(i, i)} [{i}]": i for i in getattr(s.param, comp).objects}
             self.w_src[comp] = pn.widgets.Select(name=getattr(s.param, comp).label, options=opts,
                                                  value=getattr(s, comp), width=260)
@@ -106,7 +108,7 @@ class Explorer:
         self.w_download = pn.widgets.FileDownload(callback=self._csv_bytes, filename="series.csv",
                                                   label="Download series CSV", width=260, button_type="light")
         s.param.watch(self._refresh_table, list(_DEPS))
-        s.param.watch(lambda *e: setattr(self.w_download, "filename", self._csv_name()), ["basin", "P", "ET", "TWSA"])
+        s.param.watch(lambda *e: setattr(self.w_download, "filename", self._csv_name()), ["basin", *SOURCE_COMPONENTS])
 
     # ----------------------------------------------------------------- wiring widgets <-> state
     def _wire(self):
@@ -138,7 +140,7 @@ class Explorer:
 
     def _rank_view(self) -> pd.DataFrame:
         r = self.state.ranking()
-        cols = ["rank", "P", "ET", "TWSA", "rmse", "bias", "rel_imbalance", "kge", "nse", "n_valid"]
+        cols = list(RANK_TABLE_COLUMNS)
         metric = self.state.metric
         if metric not in cols:
             cols.insert(4, metric)

@@ -11,9 +11,10 @@ import numpy as np
 import pandas as pd
 import param
 
-from ..balance import METHODS, METRICS, UNIT_SYSTEMS, Selection, compute_selection, long_term_all, rank
-from ..balance.combos import best_scores
-from ..balance.closure import source_ids
+from ..balance import (METHODS, METRICS, UNIT_SYSTEMS, ClosureOptions, Selection, best_scores, compute_selection,
+                       long_term_all, rank)
+from ..balance.terms import SOURCE_COMPONENTS
+from ..series import source_ids
 from ..errors import InputError
 
 __all__ = ["ClosureState"]
@@ -47,7 +48,7 @@ class ClosureState(param.Parameterized):
         ids = [str(b) for b in series["basin"].values]
         self.param.basin.objects = ids
         labels = {}
-        for comp in ("P", "ET", "TWSA"):
+        for comp in SOURCE_COMPONENTS:
             opts = source_ids(series, comp)
             if not opts:
                 raise InputError(f"the series hold no {comp} source")
@@ -60,7 +61,7 @@ class ClosureState(param.Parameterized):
         with param.parameterized.discard_events(self):
             self.period = params.get("period", (0, n - 1))
             self.basin = params.get("basin", ids[0])
-            for comp in ("P", "ET", "TWSA"):
+            for comp in SOURCE_COMPONENTS:
                 if comp not in params:
                     setattr(self, comp, getattr(self.param, comp).objects[0])
         if "P" not in params:
@@ -75,9 +76,13 @@ class ClosureState(param.Parameterized):
     def end(self) -> str:
         return f"{self.months[int(self.period[1])]:%Y-%m}"
 
+    def options(self) -> ClosureOptions:
+        """The closure options the widgets set (one `ClosureOptions`, as the library and the CLI use)."""
+        return ClosureOptions(start=self.start, end=self.end, storage_change=self.storage_change,
+                              matched=self.matched, min_valid=self.min_valid)
+
     def selection(self) -> Selection:
-        return Selection(basin=self.basin, P=self.P, ET=self.ET, TWSA=self.TWSA, start=self.start, end=self.end,
-                         storage_change=self.storage_change, matched=self.matched)
+        return Selection.from_options(self.basin, self.options(), **{c: getattr(self, c) for c in SOURCE_COMPONENTS})
 
     def _cached(self, key, fn):
         if key not in self._memo:
@@ -93,15 +98,14 @@ class ClosureState(param.Parameterized):
                             lambda: compute_selection(self.series, sel, min_valid=self.min_valid))
 
     def _rank_for(self, basin: str) -> pd.DataFrame:
-        key = ("rank", basin, self.start, self.end, self.storage_change, self.matched, self.metric, self.min_valid)
+        opts = self.options()
+        key = ("rank", basin, opts, self.metric)
 
         def run():
             try:
-                return rank(self.series, basin, start=self.start, end=self.end,
-                            storage_change=self.storage_change, matched=self.matched, by=self.metric,
-                            min_valid=self.min_valid)
+                return rank(self.series, basin, opts, by=self.metric)
             except InputError as exc:
-                df = pd.DataFrame(columns=["rank", "P", "ET", "TWSA", "scored", *METRICS])
+                df = pd.DataFrame(columns=["rank", *SOURCE_COMPONENTS, "scored", *METRICS])
                 df.attrs["message"] = str(exc)
                 return df
 
@@ -113,12 +117,12 @@ class ClosureState(param.Parameterized):
 
     def basin_scores(self) -> pd.Series:
         """Best score of the ranking metric per basin (for the map)."""
-        key = ("scores", self.start, self.end, self.storage_change, self.matched, self.metric, self.min_valid)
+        opts = self.options()
+        key = ("scores", opts, self.metric)
 
         def run():
             try:
-                return best_scores(self.series, by=self.metric, start=self.start, end=self.end,
-                                   storage_change=self.storage_change, matched=self.matched, min_valid=self.min_valid)
+                return best_scores(self.series, opts, by=self.metric)
             except InputError:
                 return pd.Series(np.nan, index=self.param.basin.objects)
 

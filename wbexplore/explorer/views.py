@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from .. import plots
+from ..balance.terms import SOURCE_COMPONENTS
 from ..escape import html_text, md_text
 from ..plots import COLORS, SEASON_COLORS, UNIT_LABEL
 
@@ -63,7 +64,7 @@ def warnings_for(result, series) -> list[str]:
         out.append(f"Basin area {result.area_km2:,.0f} km2 is below the ~{GRAVIMETRY_MIN_KM2:,} km2 that satellite-"
                    "gravimetry storage resolves (rule of thumb, e.g. Longuevergne et al. 2010): treat dS with care.")
     f = result.frame
-    for comp in ("P", "ET", "TWSA"):
+    for comp in SOURCE_COMPONENTS:
         vf = f[f"valid_fraction_{comp}"].replace(0, np.nan).mean()
         if np.isfinite(vf) and vf < 0.9:
             out.append(f"{comp} product covers only {vf:.0%} of the basin on average.")

@@ -1,0 +1,301 @@
+"""The one closure pipeline: canonical series in, balance terms of every combination out.
+
+``closure_terms(ds, options)`` returns one `xarray.Dataset` over ``(basin, P_source, ET_source, TWSA_source,
+time)``: each term of the balance (`wbexplore.balance.terms`) on the dims it depends on, window-matched with
+the storage kernel where ``options.matched`` (every flux: P, ET, Q and every flow), and
+
+    residual = P - ET - Q - dS + inflows - outflows
+    Qhat     = P - ET - dS + inflows - outflows
+
+over every combination. ``closure_metrics(terms)`` reduces over time. Masking (valid fraction), storage
+change, lag, gap filling and window matching happen here and nowhere else; `rank`, `rank_all`,
+`best_scores`, `best_selection` and `compute_selection` are views of these results.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from ..errors import InputError
+from ..series import DISCHARGE, source_ids, valid_fraction_name
+from .metrics import METRICS, metrics_from_residual
+from .options import ClosureOptions
+from .storage import fill_gaps, match_window, shift_later, storage_change
+from .terms import BASE_TERMS, DS, P, Q, SOURCE_COMPONENTS, combine, flow_terms
+
+__all__ = ["closure_terms", "closure_metrics", "closure_arrays", "combination_arrays", "metrics_arrays", "ENSEMBLE_PREFIX", "with_ensembles", "SOURCE_DIMS"]
+
+ENSEMBLE_PREFIX = "ensemble_"
+SOURCE_DIMS = {c: f"{c}_source" for c in SOURCE_COMPONENTS}
+
+
+def with_ensembles(ds: xr.Dataset) -> xr.Dataset:
+    """Add ``ensemble_<component>`` for every source component: the mean of its products (months where
+    every product is valid)."""
+    out = ds.copy()
+    for comp in SOURCE_COMPONENTS:
+        ids = [s for s in source_ids(ds, comp) if not s.startswith(ENSEMBLE_PREFIX)]
+        if len(ids) < 2:
+            continue
+        stack = xr.concat([ds[s] for s in ids], dim="member")
+        name = f"{ENSEMBLE_PREFIX}{comp}"
+        out[name] = stack.mean("member", skipna=False)
+        out[name].attrs = {"role": "source", "component": comp, "units": ds[ids[0]].attrs.get("units"),
+                           "long_name": f"ensemble mean of {', '.join(ids)}", "source_id": name}
+        vfs = [ds[valid_fraction_name(s)] for s in ids if valid_fraction_name(s) in ds]
+        if vfs:
+            out[valid_fraction_name(name)] = xr.concat(vfs, dim="member").min("member")
+    return out
+
+
+def basin_ids(ds: xr.Dataset) -> list[str]:
+    return [str(b) for b in ds.variables["basin"].values]
+
+
+def basin_index(ds: xr.Dataset, basin: str) -> int:
+    ids = basin_ids(ds)
+    if str(basin) not in ids:
+        raise InputError(f"basin {basin!r} is not in the series (known: {', '.join(ids)})")
+    return ids.index(str(basin))
+
+
+def check_source(ds: xr.Dataset, sid: str, component: str) -> None:
+    """`InputError` unless ``sid`` is a source of ``component`` in ``ds``."""
+    if sid not in ds.data_vars or ds.variables[sid].attrs.get("role") != "source":
+        if sid.startswith(ENSEMBLE_PREFIX):
+            raise InputError(f"source {sid!r} needs ensembles enabled (at least two {component} products)")
+        raise InputError(f"source {sid!r} is not in the series (known {component}: {', '.join(source_ids(ds, component))})")
+    comp = ds.variables[sid].attrs.get("component")
+    if comp != component:
+        raise InputError(f"source {sid!r} is a {comp} product, not {component}")
+
+
+def prepare(ds: xr.Dataset, options: ClosureOptions, sources: dict | None = None):
+    """(series, source ids per component) for ``options``: ensembles added when asked (or when a named
+    source is one), every named source checked."""
+    if DISCHARGE not in ds:
+        raise InputError("the series hold no discharge: add 'discharge' to the catalog")
+    if sources is not None:
+        wanted = [s for v in sources.values() for s in v]
+        if any(s.startswith(ENSEMBLE_PREFIX) for s in wanted) and not any(
+                str(v).startswith(ENSEMBLE_PREFIX) for v in ds.data_vars):
+            ds = with_ensembles(ds)
+        for comp, v in sources.items():
+            for s in v:
+                check_source(ds, s, comp)
+        return ds, {c: list(sources[c]) for c in SOURCE_COMPONENTS}
+    if options.ensemble:
+        ds = with_ensembles(ds)
+    ids = {c: [s for s in source_ids(ds, c) if options.ensemble or not s.startswith(ENSEMBLE_PREFIX)]
+           for c in SOURCE_COMPONENTS}
+    for c, v in ids.items():
+        if not v:
+            raise InputError(f"the series hold no {c} source")
+    return ds, ids
+
+
+def _stack(ds, ids, min_vf, b):
+    """(n_basins, n_sources, T) float64, months below the valid fraction masked (b: index array)."""
+    out = []
+    for s in ids:
+        v = ds.variables[s].values[b].astype(np.float64)
+        name = valid_fraction_name(s)
+        if name in ds.variables:
+            v = np.where(ds.variables[name].values[b] >= min_vf, v, np.nan)
+        out.append(v)
+    return np.stack(out, axis=1)
+
+
+def _station(ds, name, b, min_vf):
+    v = ds.variables[name].values[b].astype(np.float64)
+    vf = valid_fraction_name(name)
+    if vf in ds.variables:
+        v = np.where(ds.variables[vf].values[b] >= min_vf, v, np.nan)
+    return v
+
+
+def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sources: dict | None = None) -> dict:
+    """Full-length terms as numpy arrays (the numpy core of `closure_terms`; time is the last axis).
+
+    Keys: ``ids`` (sources per component), ``basins`` (ids), ``b`` (their indices), ``terms`` (the
+    `Term` rows, flows included), per gridded component ``<c>`` (matched where asked) and ``<c>_raw``
+    (basin, source, time), ``TWSA`` (as used: gaps filled where asked), ``TWSA_raw``, ``filled``, ``dS``,
+    ``Q`` / ``Q_raw`` (basin, time; lagged), each flow's variable name (matched) and ``<name>_raw``,
+    ``net_flow`` (sum of the flows' signed values, matched; None without flows), ``months``.
+    """
+    ds, ids = prepare(ds, options, sources)
+    all_ids = basin_ids(ds)
+    if basins is None:
+        b = np.arange(ds.sizes["basin"])
+    else:
+        where = {x: i for i, x in enumerate(all_ids)}
+        for x in basins:
+            if str(x) not in where:
+                raise InputError(f"basin {x!r} is not in the series (known: {', '.join(all_ids)})")
+        b = np.array([where[str(x)] for x in basins], dtype=np.intp)
+    mvf = options.min_valid_fraction
+    method = options.storage_change
+    out = {"ids": ids, "basins": [all_ids[i] for i in b], "b": b, "ds": ds}
+    for t in BASE_TERMS:
+        if t.gridded and not t.storage:
+            raw = _stack(ds, ids[t.component], mvf, b)
+            out[f"{t.name}_raw"] = raw
+            out[t.name] = match_window(raw, method) if options.matched else raw
+    M = _stack(ds, ids[DS.component], mvf, b)
+    out["TWSA_raw"] = M
+    filled = np.zeros(M.shape, dtype=bool)
+    if options.fill_gaps:
+        M, filled = fill_gaps(M)
+    out["TWSA"] = M
+    out["filled"] = filled
+    out["dS"] = storage_change(M, method)
+    q = ds.variables[DISCHARGE].values[b].astype(np.float64)
+    if options.lag:
+        q = shift_later(q, options.lag)
+    out["Q_raw"] = q
+    out["Q"] = match_window(q, method) if options.matched else q
+    flows = flow_terms(ds)
+    net = net_raw = None
+    for t in flows:
+        raw = _station(ds, t.variable, b, mvf)
+        val = match_window(raw, method) if options.matched else raw
+        out[f"{t.name}_raw"] = raw
+        out[t.name] = val
+        net = t.sign * val if net is None else net + t.sign * val
+        net_raw = t.sign * raw if net_raw is None else net_raw + t.sign * raw
+    out["net_flow"] = net
+    out["net_flow_raw"] = net_raw
+    out["terms"] = BASE_TERMS + flows
+    out["months"] = pd.DatetimeIndex(ds["time"].values)
+    return out
+
+
+def closure_terms(ds: xr.Dataset, options: ClosureOptions | None = None, *, basins=None,
+                  sources: dict | None = None, **kwargs) -> xr.Dataset:
+    """Every balance term of every combination, over the period (mm/month; TWSA mm).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Canonical basin series (`wbexplore.series`).
+    options : ClosureOptions, optional
+        Default ``ClosureOptions()``; keyword arguments (the old option names) are laid over it.
+    basins : list of str, optional
+        Basins to keep (default all).
+    sources : dict, optional
+        Component -> list of source ids (default every source of each component).
+
+    Returns
+    -------
+    xarray.Dataset with dims (basin, P_source, ET_source, TWSA_source, time), time cut to the period
+    (terms are computed on the full series first, so the window and storage kernels reach the months next
+    to the period). Variables: ``P``, ``ET`` (basin, <c>_source, time), ``TWSA``, ``dS``, ``filled``
+    (basin, TWSA_source, time), ``Q`` and every flow ``flow_<id>`` (basin, time), their ``<name>_raw``
+    (before window matching), ``residual`` and ``Qhat`` (basin, P_source, ET_source, TWSA_source, time).
+    Each term variable carries ``sign``, ``kind`` and ``label`` from the term table; the options are in
+    ``attrs["closure_options"]`` (JSON text, `ClosureOptions.from_json`).
+    """
+    opts = ClosureOptions.from_kwargs(options, **kwargs)
+    a = closure_arrays(ds, opts, basins=basins, sources=sources)
+    mask = opts.period(a["months"])
+    return _to_dataset(a, opts, mask)
+
+
+def combination_arrays(a: dict, mask) -> dict:
+    """Residual and Qhat of every combination over the period's months (numpy core of `closure_terms`).
+
+    Returns dict with ``residual``, ``Qhat`` (basin, P, ET, TWSA, time), and ``P``, ``Q`` broadcastable to
+    them (the inputs `metrics_arrays` needs besides), ``net`` (basin, time) or None.
+    """
+    # each term on the axes it depends on: basin, then P, ET, TWSA source, then time
+    axes = {c: i + 1 for i, c in enumerate(SOURCE_COMPONENTS)}
+    values = {}
+    for t in a["terms"]:
+        v = a[t.name][..., mask]
+        if t.gridded:  # (basin, source, time) -> its source axis
+            shape = [v.shape[0]] + [1] * len(SOURCE_COMPONENTS) + [v.shape[-1]]
+            shape[axes[t.component]] = v.shape[1]
+            v = v.reshape(shape)
+        else:
+            v = v.reshape((v.shape[0],) + (1,) * len(SOURCE_COMPONENTS) + (v.shape[-1],))
+        values[t.name] = v
+    res, qhat = combine(values, a["terms"])
+    net = None if a["net_flow"] is None else a["net_flow"][..., mask]
+    return {"residual": res, "Qhat": qhat, "P": values[P.name], "Q": values[Q.name], "net": net}
+
+
+def _to_dataset(a: dict, opts: ClosureOptions, mask) -> xr.Dataset:
+    ds = a["ds"]
+    ids = a["ids"]
+    c = combination_arrays(a, mask)
+    res, qhat, net = c["residual"], c["Qhat"], c["net"]
+    dims = {c: ("basin", SOURCE_DIMS[c], "time") for c in SOURCE_COMPONENTS}
+    full = ("basin",) + tuple(SOURCE_DIMS.values()) + ("time",)
+    coords = {"basin": a["basins"], "time": a["months"][mask],
+              **{SOURCE_DIMS[c]: ids[c] for c in SOURCE_COMPONENTS}}
+    for c in ("basin_name", "basin_area_km2"):
+        if c in ds.coords:
+            coords[c] = ("basin", ds[c].values[a["b"]])
+    data = {}
+    for t in a["terms"]:
+        d = dims[t.component] if t.gridded else ("basin", "time")
+        attrs = {"sign": t.sign, "kind": t.kind, "label": t.label, "units": t.units, "component": t.component}
+        data[t.name] = (d, a[t.name][..., mask], attrs)
+        if t.storage:
+            data["TWSA"] = (d, a["TWSA"][..., mask], {"units": "mm", "label": "Storage anomaly (as used)"})
+            data["TWSA_raw"] = (d, a["TWSA_raw"][..., mask], {"units": "mm"})
+            data["filled"] = (d, a["filled"][..., mask])
+        else:
+            data[f"{t.name}_raw"] = (d, a[f"{t.name}_raw"][..., mask], attrs)
+    if net is not None:
+        data["net_flow"] = (("basin", "time"), net, {"units": "mm/month", "label": "Inflows - outflows"})
+    data["residual"] = (full, res, {"units": "mm/month", "label": "Residual"})
+    data["Qhat"] = (full, qhat, {"units": "mm/month", "label": "Discharge predicted by the balance"})
+    out = xr.Dataset(data, coords=coords)
+    out.attrs = {"closure_options": opts.to_json()}  # text: the Dataset stays writable to netCDF
+    return out
+
+
+def water_year(months: pd.DatetimeIndex, start_month: int = 1) -> np.ndarray:
+    """Water year of each month, named by the calendar year in which it ends."""
+    y = months.year.values
+    return np.where(months.month.values >= start_month, y + (1 if start_month > 1 else 0), y)
+
+
+def metrics_arrays(residual, qhat, Q, P, months: pd.DatetimeIndex, options: ClosureOptions, *,
+                   explain: bool = False) -> dict:
+    """`metrics_from_residual` with the month of year and water year of ``months`` and ``options``."""
+    return metrics_from_residual(residual, qhat, Q, P, month_of_year=months.month.values,
+                                 water_year=water_year(months, options.water_year_start),
+                                 min_valid=options.min_valid, explain=explain)
+
+
+def closure_metrics(terms: xr.Dataset, *, explain: bool = False) -> xr.Dataset:
+    """Metrics of every combination of `closure_terms` output, reduced over time.
+
+    Returns
+    -------
+    xarray.Dataset over (basin, P_source, ET_source, TWSA_source): every metric of `METRICS` (units in
+    each variable's attrs), ``scored`` (at least ``options.min_valid`` valid months) and, with
+    ``explain``, ``undefined`` (why a metric is NaN on degenerate data).
+    """
+    opts = ClosureOptions.from_json(terms.attrs["closure_options"]) if "closure_options" in terms.attrs \
+        else ClosureOptions()
+    months = pd.DatetimeIndex(terms["time"].values)
+    full = terms["residual"].dims
+    v = terms.variables
+    P = v["P"].values[:, :, None, None]
+    Q = v["Q"].values[:, None, None, None]
+    m = metrics_arrays(v["residual"].values, v["Qhat"].values, Q, P, months, opts, explain=explain)
+    shape = terms["residual"].shape[:-1]
+    data = {k: (full[:-1], np.broadcast_to(m[k], shape), {"units": METRICS[k][1], "description": METRICS[k][2]})
+            for k in METRICS}
+    data["scored"] = (full[:-1], np.broadcast_to(m["n_valid"] >= opts.min_valid, shape))
+    if explain:
+        data["undefined"] = (full[:-1], np.broadcast_to(m["undefined"], shape))
+    coords = {k: v for k, v in terms.coords.items() if "time" not in v.dims}
+    out = xr.Dataset(data, coords=coords)
+    out.attrs = dict(terms.attrs)
+    return out
