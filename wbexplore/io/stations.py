@@ -64,6 +64,9 @@ class StationTable:
     ``monthly``: DataFrame indexed by (station, month) with ``value`` (base unit: m3/s mean flow,
     mm/month depth or m level; NaN where the month is empty) and ``coverage`` (0..1 share of the
     month's days present for daily stations; 1 or 0 for monthly ones).
+    ``days``: for daily (and sub-daily) stations, DataFrame with columns ``station``, ``t`` (the day)
+    and ``v`` (daily mean in the base unit for flows and levels, in the table's own unit for depths);
+    None when no station is daily. Water levels need it for end-of-month states.
     """
 
     path: object
@@ -73,6 +76,7 @@ class StationTable:
     daily: set[str]
     monthly: pd.DataFrame
     notes: list[str] = field(default_factory=list)
+    days: pd.DataFrame | None = None
 
 
 def _short(v) -> str:
@@ -312,8 +316,10 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
     if sub:
         notes.append(f"sub-daily records averaged to days: {', '.join(sorted(sub))}")
     parts = []
+    base_days = None
     if is_daily.any():
         days = station_daily_means(frame.loc[is_daily, ["station", "t", "v"]])
+        base_days = days if unit_kind == "depth" else days.assign(v=days["v"] * factor)
         m = station_monthly_means(days, spec.min_coverage)
         m = m.rename(columns={"mean": "value"})
         if unit_kind == "depth":
@@ -350,7 +356,8 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
         parts.append(pd.concat(full, ignore_index=True).set_index(["station", "month"]))
     monthly = pd.concat(parts).sort_index()
     return StationTable(path=path, layout=spec.layout, unit_kind=unit_kind,
-                        stations=sorted(frame["station"].unique()), daily=sub | daily, monthly=monthly, notes=notes)
+                        stations=sorted(frame["station"].unique()), daily=sub | daily, monthly=monthly, notes=notes,
+                        days=base_days)
 
 
 def _station_basins(spec: StationTableSpec, table_stations: list[str], basin_ids) -> dict[str, str]:
