@@ -344,3 +344,67 @@ def test_one_hm3_per_30_day_month_in_m3s():
     assert got == pytest.approx(0.38580, abs=5e-6)
     assert got == pytest.approx(via_pint, rel=1e-12)
     assert got == pytest.approx(1e6 / (30 * 86400), rel=1e-15)
+
+
+# ---- P and E over the water surface, pan evaporation, unit views ---------------------------------
+
+def _months(n=4, start="2011-01-01"):
+    return pd.date_range(start, periods=n, freq="MS")
+
+
+def test_depth_over_outline_and_over_surface_at_level(study):
+    """mm/month x m2 / 1000 = m3/month (pint: mm * km2 to m3); the level option uses the curve's area."""
+    import pint
+
+    from wbexplore.balance.waterbody import surface_area_at_level, surface_volume
+
+    d, cat = study
+    wb = read_waterbodies(open_catalog(_write(d, cat)))
+    t = wb.level_mean["time"]
+    depth = xr.DataArray(np.full((2, t.size), 30.0), dims=("waterbody", "time"),
+                         coords={"waterbody": ["RES1", "RES2"], "time": t}, attrs={"units": "mm/month"})
+    outline = xr.DataArray(wb.outlines["area_km2"].to_numpy() * 1e6, dims="waterbody",
+                           coords={"waterbody": list(wb.outlines.index)}, attrs={"units": "m2"})
+    v = surface_volume(depth, outline_area_m2=outline)
+    ureg = pint.UnitRegistry()
+    exp = (30 * ureg.mm * (wb.outlines.loc["RES1", "area_km2"] * ureg.km**2)).to("m^3").magnitude
+    assert v.attrs["units"] == "m3/month" and v.sel(waterbody="RES1").values[0] == pytest.approx(exp, rel=1e-12)
+    area = surface_area_at_level(wb.level_mean, {w: c.area for w, c in wb.curves.items()})
+    v2 = surface_volume(depth, outline_area_m2=outline, surface_area_m2=area, area="level")
+    # RES2 is a prism of 2 km2 at every level; RES1 a cone: A = pi K^2 (h - bottom)^2 at the month's mean level
+    np.testing.assert_allclose(v2.sel(waterbody="RES2").values, 30e-3 * 2e6, rtol=1e-12)
+    h = wb.level_mean.sel(waterbody="RES1").values - BOTTOM
+    np.testing.assert_allclose(v2.sel(waterbody="RES1").values, 30e-3 * _cone_area(h), rtol=2e-3)
+    with pytest.raises(InputError, match="area='level' needs"):
+        surface_volume(depth, outline_area_m2=outline, area="level")
+    with pytest.raises(InputError, match="units 'mm', expected 'mm/month'"):
+        surface_volume(depth.assign_attrs(units="mm"), outline_area_m2=outline)
+
+
+def test_pan_coefficient_common_practice():
+    from wbexplore.balance.waterbody import PAN_COEFFICIENT, pan_to_lake_evaporation
+
+    pan = xr.DataArray([100.0, 150.0], dims="time", coords={"time": _months(2)}, attrs={"units": "mm/month"})
+    assert PAN_COEFFICIENT == 0.7  # common practice
+    np.testing.assert_allclose(pan_to_lake_evaporation(pan).values, [70.0, 105.0])
+    np.testing.assert_allclose(pan_to_lake_evaporation(pan, coefficient=0.8).values, [80.0, 120.0])
+    with pytest.raises(InputError, match="outside"):
+        pan_to_lake_evaporation(pan, coefficient=7)
+
+
+def test_volumes_in_hm3_m3s_and_mm():
+    """One hm3 in each of February 2011 (28 days), April (30) and May (31): m3/s with the real days
+    (stdlib calendar), and as mm over 2 km2 (1e6 m3 / 2e6 m2 = 0.5 m)."""
+    from wbexplore.balance.waterbody import express_volume
+
+    t = pd.DatetimeIndex(["2011-02-01", "2011-04-01", "2011-05-01"])
+    v = xr.DataArray(np.full(3, 1e6), dims="time", coords={"time": t}, attrs={"units": "m3/month"})
+    q = express_volume(v, "m3/s")
+    days = [calendar.monthrange(ts.year, ts.month)[1] for ts in t]
+    np.testing.assert_allclose(q.values, [1e6 / (n * 86400) for n in days], rtol=1e-15)
+    assert q.values[1] == pytest.approx(0.38580, abs=5e-6) and q.attrs["units"] == "m3/s"
+    np.testing.assert_allclose(express_volume(v, "hm3/month").values, 1.0)
+    area = xr.DataArray(2e6, attrs={"units": "m2"})
+    np.testing.assert_allclose(express_volume(v, "mm/month", area_m2=area).values, 500.0)
+    with pytest.raises(InputError, match="needs the area"):
+        express_volume(v, "mm/month")
