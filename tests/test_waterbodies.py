@@ -408,3 +408,30 @@ def test_volumes_in_hm3_m3s_and_mm():
     np.testing.assert_allclose(express_volume(v, "mm/month", area_m2=area).values, 500.0)
     with pytest.raises(InputError, match="needs the area"):
         express_volume(v, "mm/month")
+
+
+def test_waterbody_without_levels_is_refused(study):
+    d, cat = study
+    _daily_levels().drop(columns="RES2").to_csv(d / "levels.csv", index=False)
+    with pytest.raises(InputError, match=r"levels.csv: water body 'RES2' of lakes.gpkg has no level series"):
+        read_waterbodies(open_catalog(_write(d, cat)))
+
+
+def test_levels_by_state_daily_and_monthly_stations(study):
+    """A long table with one daily station (RES1) and one monthly station (RES2)."""
+    d, cat = study
+    lv = _daily_levels()
+    daily = pd.DataFrame({"wb": "RES1", "date": lv["date"], "h": lv["RES1"]})
+    mon = lv.assign(m=pd.DatetimeIndex(DAYS).to_period("M")).groupby("m")["RES2"].mean()
+    monthly = pd.DataFrame({"wb": "RES2", "date": [str(p.start_time.date()) for p in mon.index], "h": mon.values})
+    pd.concat([daily, monthly]).to_csv(d / "levels.csv", index=False)
+    cat["waterbodies"]["level"] = {"path": "levels.csv", "time_field": "date", "station_field": "wb",
+                                   "value_field": "h", "units": "m"}
+    wb = read_waterbodies(open_catalog(_write(d, cat)))
+    by = wb.levels_by_state()
+    assert list(by["end_of_month"]["waterbody"].values) == ["RES1"]
+    assert list(by["monthly_mean"]["waterbody"].values) == ["RES2"]
+    np.testing.assert_allclose(by["monthly_mean"].sel(waterbody="RES2").values, mon.values, rtol=1e-12)
+    for state, lv_da in by.items():
+        ds = volume_storage_change(level_volumes(lv_da, wb.curve_callables()))
+        assert ds.attrs["state"] == state and np.isfinite(ds.values).sum() >= 15

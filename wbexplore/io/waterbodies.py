@@ -221,6 +221,23 @@ class Waterbodies:
     level_end: xr.DataArray | None
     evaporation_source: str | None = None
 
+    def levels_by_state(self) -> dict[str, xr.DataArray]:
+        """The levels that give each water body's storage, by volume state.
+
+        ``{"end_of_month": ..., "monthly_mean": ...}`` (a key only where some water body has it): water
+        bodies with daily levels use their end-of-month levels, the others their monthly means. Pass each
+        to `wbexplore.balance.storage.level_volumes`, then `volume_storage_change`.
+        """
+        out = {}
+        daily = [] if self.level_end is None else [
+            w for w in self.level_end["waterbody"].values if np.isfinite(self.level_end.sel(waterbody=w)).any()]
+        if daily:
+            out["end_of_month"] = self.level_end.sel(waterbody=daily)
+        rest = [w for w in self.level_mean["waterbody"].values if w not in daily]
+        if rest:
+            out["monthly_mean"] = self.level_mean.sel(waterbody=rest)
+        return out
+
     def curve_callables(self) -> dict:
         """Water-body id -> volume(level_m) for `wbexplore.balance.storage.level_volumes`."""
         return {wb: c.volume for wb, c in self.curves.items()}
@@ -240,8 +257,8 @@ def read_waterbodies(catalog: Catalog, *, basin_ids=None) -> Waterbodies:
     ------
     InputError
         One line naming file, field and value: an id shared with a basin, a level series of an unknown
-        water body, a water body without a curve, a curve of an unknown water body, a curve that is not
-        monotone (see `read_storage_curves`).
+        water body, a water body without a level series or without a curve, a curve of an unknown water
+        body, a curve that is not monotone (see `read_storage_curves`).
     """
     spec = catalog.waterbodies
     if spec is None:
@@ -260,5 +277,9 @@ def read_waterbodies(catalog: Catalog, *, basin_ids=None) -> Waterbodies:
     if missing:
         raise InputError(f"{spec.storage_curve.path}: water body {_short(missing[0])} has no storage curve")
     mean, end = read_levels(spec, ids)
+    without = [w for w in ids if w not in set(mean["waterbody"].values)]
+    if without:
+        raise InputError(f"{spec.level.path}: water body {_short(without[0])} of {spec.path.name} has no level "
+                         "series (its storage change needs one)")
     return Waterbodies(outlines=outlines, curves=curves, level_mean=mean, level_end=end,
                        evaporation_source=spec.evaporation_source)
