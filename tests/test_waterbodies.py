@@ -435,3 +435,14 @@ def test_levels_by_state_daily_and_monthly_stations(study):
     for state, lv_da in by.items():
         ds = volume_storage_change(level_volumes(lv_da, wb.curve_callables()))
         assert ds.attrs["state"] == state and np.isfinite(ds.values).sum() >= 15
+
+
+def test_summary_lines_for_check(study):
+    d, cat = study
+    wb = read_waterbodies(open_catalog(_write(d, cat)))
+    lines = wb.summary()
+    vmax = float(_cone_curve_rows()["volume"].iloc[-1])  # hm3, as written in the curve file
+    assert lines[0].startswith("RES1 (Upper lake): outline ")
+    assert "levels 2010-01 to 2011-06 (daily); curve 100 to 140 m, 0 to " in lines[0]
+    assert lines[0].endswith(f" to {vmax:g} hm3")
+    assert lines[1].endswith("curve 40 to 60 m, 0 to 40 hm3")

@@ -238,6 +238,24 @@ class Waterbodies:
             out["monthly_mean"] = self.level_mean.sel(waterbody=rest)
         return out
 
+    def summary(self) -> list[str]:
+        """One line per water body for ``wbexplore check``: id, name, outline area, level period (and
+        whether daily), curve range (levels in m, volumes in hm3)."""
+        lines = []
+        for wb in self.outlines.index:
+            row = self.outlines.loc[wb]
+            s = self.level_mean.sel(waterbody=wb)
+            t = pd.DatetimeIndex(s["time"].values)[np.isfinite(s.values)]
+            daily = self.level_end is not None and wb in self.level_end["waterbody"].values and bool(
+                np.isfinite(self.level_end.sel(waterbody=wb)).any())
+            period = f"{t.min():%Y-%m} to {t.max():%Y-%m}" if t.size else "no month"
+            c = self.curves[wb]
+            lo, hi = c.level_range
+            lines.append(f"{wb} ({row['name']}): outline {row['area_km2']:.3g} km2; levels {period} "
+                         f"({'daily' if daily else 'monthly'}); curve {lo:g} to {hi:g} m, "
+                         f"{c.volume_m3[0] / 1e6:g} to {c.volume_m3[-1] / 1e6:g} hm3")
+        return lines
+
     def curve_callables(self) -> dict:
         """Water-body id -> volume(level_m) for `wbexplore.balance.storage.level_volumes`."""
         return {wb: c.volume for wb, c in self.curves.items()}
