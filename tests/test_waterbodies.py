@@ -22,15 +22,19 @@ import pandas as pd
 import pytest
 import xarray as xr
 import yaml
+from utils import box_basins, lonlat_grid, one_line_error, run_cli, write_nc
 
-from wbexplore.balance.storage import (KERNELS, level_volumes, match_volume_window, storage_change,
-                                       volume_storage_change)
+from wbexplore.balance.storage import (
+    KERNELS,
+    level_volumes,
+    match_volume_window,
+    storage_change,
+    volume_storage_change,
+)
 from wbexplore.errors import InputError, LevelOutsideCurveWarning
 from wbexplore.io.catalog import open_catalog
 from wbexplore.io.waterbodies import StorageCurve, read_storage_curves, read_waterbodies
 from wbexplore.units import m3_per_month_to_flow_m3s
-
-from utils import box_basins, lonlat_grid, one_line_error, run_cli, write_nc
 
 # an inverted cone: radius K * depth above the bottom; A(h) = pi K^2 h^2, V(h) = pi K^2 h^3 / 3
 K = 150.0  # m of radius per m of depth
@@ -189,7 +193,7 @@ def test_catalog_reads_waterbodies(study, capsys):
     assert c.waterbodies.evaporation_source == "e_lake"
     assert c.waterbodies.storage_curve.level_units == "m"  # default: the level series' units
     assert {d / "lakes.gpkg", d / "levels.csv", d / "curves.csv"} <= set(c.input_paths())
-    rc, out, err = run_cli(["check", p], capsys)
+    rc, _out, err = run_cli(["check", p], capsys)
     assert rc == 0, err
 
 
@@ -205,7 +209,7 @@ def test_catalog_reads_waterbodies(study, capsys):
 def test_bad_waterbodies_block_exits_2_in_one_line(study, capsys, change, words):
     d, cat = study
     change(cat["waterbodies"])
-    rc, out, err = run_cli(["check", _write(d, cat)], capsys)
+    rc, _out, err = run_cli(["check", _write(d, cat)], capsys)
     line = one_line_error(rc, err)
     assert "waterbodies: " in line and words in line, line
 
