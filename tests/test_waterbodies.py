@@ -450,3 +450,17 @@ def test_summary_lines_for_check(study):
     assert "levels 2010-01 to 2011-06 (daily); curve 100 to 140 m, 0 to " in lines[0]
     assert lines[0].endswith(f" to {vmax:g} hm3")
     assert lines[1].endswith("curve 40 to 60 m, 0 to 40 hm3")
+
+
+def test_surface_area_at_a_level_outside_the_curve_warns(study):
+    from wbexplore.balance.waterbody import surface_area_at_level
+
+    d, cat = study
+    wb = read_waterbodies(open_catalog(_write(d, cat)))
+    lv = wb.level_mean.copy()
+    lv.loc[{"waterbody": "RES2", "time": "2010-05-01"}] = 39.0  # below the curve's 40 m
+    with pytest.warns(LevelOutsideCurveWarning, match=r"'RES2': level outside the storage curve in 2010-05 "
+                                                      r"\(monthly mean level, surface area\)"):
+        area = surface_area_at_level(lv, {w: c.area for w, c in wb.curves.items()})
+    assert np.isnan(area.sel(waterbody="RES2", time="2010-05-01")) and area.attrs["units"] == "m2"
+    assert np.isfinite(area.sel(waterbody="RES2", time="2010-06-01"))

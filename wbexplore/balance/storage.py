@@ -57,7 +57,7 @@ from ..errors import InputError, LevelOutsideCurveWarning
 
 __all__ = ["METHODS", "KERNELS", "storage_change", "match_window", "apply_kernel", "match_window_variance",
            "storage_change_variance", "shift_later", "fill_gaps", "window_closure",
-           "VOLUME_STATES", "level_volumes", "volume_storage_change", "volume_kernel", "match_volume_window"]
+           "VOLUME_STATES", "level_volumes", "apply_curves", "volume_storage_change", "volume_kernel", "match_volume_window"]
 
 METHODS = ("central", "backward", "forward")
 # weights on F[i-1], F[i], F[i+1]
@@ -216,9 +216,17 @@ def level_volumes(levels: xr.DataArray, curves: Mapping[str, Callable], *, dim: 
         Same dims and ``state``, in m3. A level outside its curve leaves the month empty (NaN) and
         raises one `LevelOutsideCurveWarning` per water body naming it and the months.
     """
+    state = _state(levels)
+    out = apply_curves(levels, curves, dim=dim, what=f"{state.replace('_', '-')} level")
+    return out.assign_attrs(units="m3", state=state, long_name="water-body volume from level")
+
+
+def apply_curves(levels: xr.DataArray, curves: Mapping[str, Callable], *, dim: str = "waterbody",
+                 what: str = "level") -> xr.DataArray:
+    """Each water body's levels (m) through its own curve (volume or area); NaN and one
+    `LevelOutsideCurveWarning` per water body (naming it and the months) where a level is outside."""
     import warnings
 
-    state = _state(levels)
     if levels.attrs.get("units", "m") != "m":
         raise InputError(f"levels: units {levels.attrs.get('units')!r}, expected 'm'")
     lv = levels.transpose(dim, "time")
@@ -234,11 +242,9 @@ def level_volumes(levels: xr.DataArray, curves: Mapping[str, Callable], *, dim: 
         out[i] = v
         if outside.any():
             names = ", ".join(f"{m:%Y-%m}" for m in months[outside])
-            warnings.warn(f"water body {str(wb)!r}: level outside the storage curve in {names} "
-                          f"({state.replace('_', '-')} level); those months are left empty", LevelOutsideCurveWarning,
-                          stacklevel=2)
-    return xr.DataArray(out, dims=(dim, "time"), coords=lv.coords,
-                        attrs={"units": "m3", "state": state, "long_name": "water-body volume from level"})
+            warnings.warn(f"water body {str(wb)!r}: level outside the storage curve in {names} ({what}); "
+                          "those months are left empty", LevelOutsideCurveWarning, stacklevel=3)
+    return xr.DataArray(out, dims=(dim, "time"), coords=lv.coords)
 
 
 def volume_kernel(state: str, method: str = "central") -> tuple[float, float, float]:

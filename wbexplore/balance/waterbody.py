@@ -18,6 +18,7 @@ import xarray as xr
 
 from ..errors import InputError
 from ..units import m3_per_month_to_flow_m3s
+from .storage import apply_curves
 
 __all__ = ["PAN_COEFFICIENT", "SURFACE_AREAS", "surface_area_at_level", "surface_volume", "pan_to_lake_evaporation",
            "express_volume"]
@@ -49,17 +50,12 @@ def surface_area_at_level(levels: xr.DataArray, curves: Mapping[str, Callable], 
     Returns
     -------
     xarray.DataArray
-        ``(dim, time)`` in m2; NaN where the level is missing or outside the curve.
+        ``(dim, time)`` in m2; NaN where the level is missing or outside the curve (a level outside
+        also raises `LevelOutsideCurveWarning` naming the water body and the months).
     """
     _units(levels, "m", "levels")
-    lv = levels.transpose(dim, "time")
-    out = np.full(lv.shape, np.nan)
-    for i, wb in enumerate(lv[dim].values):
-        if str(wb) not in curves:
-            raise InputError(f"water body {str(wb)!r} has no storage curve")
-        out[i] = np.asarray(curves[str(wb)](lv.values[i].astype(float)), dtype=float)
-    return xr.DataArray(out, dims=(dim, "time"), coords=lv.coords,
-                        attrs={"units": "m2", "long_name": "water surface area at the month's level"})
+    out = apply_curves(levels, curves, dim=dim, what="monthly mean level, surface area")
+    return out.assign_attrs(units="m2", long_name="water surface area at the month's level")
 
 
 def surface_volume(depth: xr.DataArray, *, outline_area_m2: xr.DataArray,
