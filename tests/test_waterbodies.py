@@ -464,3 +464,19 @@ def test_surface_area_at_a_level_outside_the_curve_warns(study):
         area = surface_area_at_level(lv, {w: c.area for w, c in wb.curves.items()})
     assert np.isnan(area.sel(waterbody="RES2", time="2010-05-01")) and area.attrs["units"] == "m2"
     assert np.isfinite(area.sel(waterbody="RES2", time="2010-06-01"))
+
+
+def test_end_of_month_state_needs_both_days_round_the_boundary():
+    """The state at 00:00 on the 1st is the mean of the days either side (datetime arithmetic); a missing day
+    on either side empties that month's end state, never borrowed from another day."""
+    from wbexplore.temporal import station_month_end_states
+
+    days = pd.date_range("2012-01-25", "2012-04-05", freq="D")  # 2012: a leap year (February has 29 days)
+    v = pd.Series(np.arange(days.size, dtype=float), index=days)
+    keep = v.index != pd.Timestamp("2012-03-01")  # the first day of March is missing
+    s = station_month_end_states(pd.DataFrame({"station": "L", "t": days[keep], "v": v[keep].to_numpy()}))["state"]
+    jan_end = 0.5 * (v[pd.Timestamp(datetime.date(2012, 1, 31))] + v[pd.Timestamp(datetime.date(2012, 2, 1))])
+    assert s[("L", pd.Timestamp("2012-01-01"))] == jan_end
+    assert np.isnan(s[("L", pd.Timestamp("2012-02-01"))])  # 29 February present, 1 March not
+    assert s[("L", pd.Timestamp("2012-03-01"))] == 0.5 * (v["2012-03-31"] + v["2012-04-01"])
+    assert np.isnan(s[("L", pd.Timestamp("2012-04-01"))])  # the record ends before 1 May

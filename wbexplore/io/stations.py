@@ -64,9 +64,8 @@ class StationTable:
     ``monthly``: DataFrame indexed by (station, month) with ``value`` (base unit: m3/s mean flow,
     mm/month depth or m level; NaN where the month is empty) and ``coverage`` (0..1 share of the
     month's days present for daily stations; 1 or 0 for monthly ones).
-    ``days``: for daily (and sub-daily) stations, DataFrame with columns ``station``, ``t`` (the day)
-    and ``v`` (daily mean in the base unit for flows and levels, in the table's own unit for depths);
-    None when no station is daily. Water levels need it for end-of-month states.
+    ``days``: levels only (``kind="level"``), for daily (and sub-daily) stations: DataFrame with columns
+    ``station``, ``t`` (the day) and ``v`` (daily mean level, m), for end-of-month states; else None.
     """
 
     path: object
@@ -319,7 +318,8 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
     base_days = None
     if is_daily.any():
         days = station_daily_means(frame.loc[is_daily, ["station", "t", "v"]])
-        base_days = days if unit_kind == "depth" else days.assign(v=days["v"] * factor)
+        if unit_kind == "level":  # kept for end-of-month states; flows and depths need only months
+            base_days = days.assign(v=days["v"] * factor)
         m = station_monthly_means(days, spec.min_coverage)
         m = m.rename(columns={"mean": "value"})
         if unit_kind == "depth":
