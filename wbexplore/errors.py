@@ -7,7 +7,8 @@ exit status 2. Anything else is a bug and keeps its traceback.
 
 from __future__ import annotations
 
-__all__ = ["InputError", "CatalogError", "UnitError", "SelectionError", "ReplayMismatch"]
+__all__ = ["InputError", "CatalogError", "UnitError", "SelectionError", "ReplayMismatch",
+           "LevelOutsideCurveWarning"]
 
 
 class InputError(ValueError):
@@ -32,3 +33,8 @@ class ReplayMismatch(Exception):
     def __init__(self, message: str, table: str = ""):
         super().__init__(message)
         self.table = table
+
+
+class LevelOutsideCurveWarning(UserWarning):
+    """A water level lies outside its water body's storage curve: the months it affects are left empty
+    (NaN), never extrapolated; the message names the water body and the months."""

@@ -52,6 +52,7 @@ __all__ = [
     "station_month_range",
     "station_daily_means",
     "station_monthly_means",
+    "station_month_end_states",
 ]
 
 STEPS = ("day", "pentad", "dekad", "8-day", "16-day", "month")
@@ -477,3 +478,36 @@ def station_monthly_means(daily: pd.DataFrame, min_coverage: float = 1.0) -> pd.
     keep = (res["days"] > 0) & (res["coverage"] >= float(min_coverage) - 1e-12)
     res["mean"] = res["mean"].where(keep)
     return res[["mean", "days", "coverage"]]
+
+
+def station_month_end_states(daily: pd.DataFrame) -> pd.DataFrame:
+    """Daily means of a state (a water level) to its value at the end of each calendar month.
+
+    A daily mean stands for the middle of its day, so the state at the boundary between month ``m``
+    and ``m + 1`` (00:00 on the 1st) is taken half-way between the last day of ``m`` and the first day
+    of ``m + 1``: the mean of the two (linear in time between day centres). Either day missing leaves
+    the month's end state empty (NaN), never taken from another day.
+
+    Parameters
+    ----------
+    daily : DataFrame
+        Columns ``station``, ``t`` (the day, 00:00; one row per station and day) and ``v`` (NaN = missing).
+
+    Returns
+    -------
+    DataFrame indexed by (``station``, ``month``: month-start stamps) with ``state`` (unit of ``v``):
+    every month from a station's first to its last record.
+    """
+    parts = []
+    for station, sub in daily.groupby("station", sort=True):
+        v = pd.Series(sub["v"].to_numpy(float), index=pd.DatetimeIndex(sub["t"]))
+        months = station_month_range(v.index.min(), v.index.max())
+        last = months + pd.offsets.MonthEnd(0)
+        first_next = last + pd.Timedelta(days=1)
+        a = v.reindex(last).to_numpy()
+        b = v.reindex(first_next).to_numpy()
+        parts.append(pd.DataFrame({"station": station, "month": months, "state": 0.5 * (a + b)}))
+    if not parts:
+        return pd.DataFrame({"state": []}, index=pd.MultiIndex.from_arrays([[], pd.DatetimeIndex([])],
+                                                                             names=["station", "month"]))
+    return pd.concat(parts, ignore_index=True).set_index(["station", "month"])

@@ -32,6 +32,9 @@ __all__ = [
     "parse_storage_unit",
     "parse_discharge_unit",
     "parse_level_unit",
+    "parse_area_unit",
+    "parse_volume_unit",
+    "m3_per_month_to_flow_m3s",
     "days_in_month",
     "seconds_in_month",
     "flow_m3s_to_mm_per_month",
@@ -188,6 +191,35 @@ def parse_level_unit(text: str, *, where: str = "level") -> float:
     return float(q.to("m").magnitude)
 
 
+def parse_area_unit(text: str, *, where: str = "area") -> float:
+    """Factor taking an area (km2, ha, m2 ...) to m2; anything but an area is refused."""
+    q = _parse(text, what=where)
+    if q.dimensionality != _ureg().Quantity(1, "m^2").dimensionality:
+        raise UnitError(f"{where}: unit {text!r} is not an area (km2, ha, m2)")
+    return float(q.to("m^2").magnitude)
+
+
+# A cubic megametre (pint's reading of "Mm3") is 1e18 m3, a million times the largest lake; a file that
+# says Mm3 almost surely means a million m3 (hm3). Volumes above this are refused rather than taken literally.
+_LARGEST_VOLUME_FACTOR_M3 = 1e12
+
+
+def parse_volume_unit(text: str, *, where: str = "volume") -> float:
+    """Factor taking a volume (hm3, m3, ML ...) to m3; anything but a volume is refused.
+
+    "Mm3" is refused: pint reads it as cubic megametres (1e18 m3), where a reservoir table means a
+    million m3; write hm3 (1 hm3 = 1e6 m3).
+    """
+    q = _parse(text, what=where)
+    if q.dimensionality != _ureg().Quantity(1, "m^3").dimensionality:
+        raise UnitError(f"{where}: unit {text!r} is not a volume (hm3, m3, ML)")
+    f = float(q.to("m^3").magnitude)
+    if f > _LARGEST_VOLUME_FACTOR_M3:
+        raise UnitError(f"{where}: unit {text!r} is {f:.3g} m3 per unit (cubic megametres?); "
+                        "for a million m3 write hm3")
+    return f
+
+
 def _month_index(months) -> pd.DatetimeIndex:
     idx = pd.DatetimeIndex(pd.to_datetime(np.asarray(months)))
     return idx
@@ -221,3 +253,8 @@ def mm_to_m3(depth_mm, area_m2):
 def m3_to_mm(volume_m3, area_m2):
     """Volume (m3) to depth over an area (mm)."""
     return np.asarray(volume_m3, dtype=float) / np.asarray(area_m2, float) * 1000.0
+
+
+def m3_per_month_to_flow_m3s(volume_m3, months):
+    """Volume per calendar month (m3) to mean flow over the month (m3/s), with the real days of each month."""
+    return np.asarray(volume_m3, dtype=float) / seconds_in_month(months)

@@ -28,16 +28,36 @@ still available (`window_closure`).
 Gaps: a month whose difference needs a missing month is NaN (and counted). No
 interpolation across a gap unless asked (``fill="linear"``), and then the filled
 months are flagged.
+
+Water bodies (storage from levels)
+----------------------------------
+A lake's storage comes from its level through a storage curve (level -> volume, m3).
+Two kinds of level series give two kinds of volume state (attribute ``state``):
+
+- ``end_of_month`` (from daily levels, `wbexplore.temporal.station_month_end_states`): the
+  volume at the end of each month, ``V[m]``; the storage change of month ``m`` is
+  ``V[m] - V[m-1]``, exactly the net flux total of month ``m``: the matching window is the
+  month itself (kernel ``(0, 1, 0)``), no smoothing.
+- ``monthly_mean`` (from monthly-mean levels only): the volume at the month's mean level stands
+  for the month's mean storage and is handled exactly as TWSA: `storage_change` with the same
+  method and the same flux kernels (`match_window`). The volume at the mean level is not the mean
+  volume where the curve bends (they differ by about ``A'(h) var(h) / 2`` over the month); daily
+  levels avoid that.
 """
 
 from __future__ import annotations
 
-import numpy as np
+from collections.abc import Callable, Mapping
 
-from ..errors import InputError
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from ..errors import InputError, LevelOutsideCurveWarning
 
 __all__ = ["METHODS", "KERNELS", "storage_change", "match_window", "apply_kernel", "match_window_variance",
-           "storage_change_variance", "shift_later", "fill_gaps", "window_closure"]
+           "storage_change_variance", "shift_later", "fill_gaps", "window_closure",
+           "VOLUME_STATES", "level_volumes", "apply_curves", "volume_storage_change", "volume_kernel", "match_volume_window"]
 
 METHODS = ("central", "backward", "forward")
 # weights on F[i-1], F[i], F[i+1]
@@ -163,3 +183,107 @@ def window_closure(twsa_mm, net_flux_mm, i: int, j: int) -> dict:
     flux = 0.5 * f[i] + np.sum(f[i + 1:j]) + 0.5 * f[j]
     return {"storage_change_mm": float(ds), "net_flux_mm": float(flux), "residual_mm": float(flux - ds),
             "months": int(j - i)}
+
+
+# ---- water bodies: storage from levels -----------------------------------------------------------
+VOLUME_STATES = ("end_of_month", "monthly_mean")
+_END_KERNEL = (0.0, 1.0, 0.0)
+
+
+def _state(da: xr.DataArray) -> str:
+    state = da.attrs.get("state")
+    if state not in VOLUME_STATES:
+        raise InputError(f"{da.name or 'volume'}: attribute 'state' {state!r} is not one of {', '.join(VOLUME_STATES)}")
+    return state
+
+
+def level_volumes(levels: xr.DataArray, curves: Mapping[str, Callable], *, dim: str = "waterbody") -> xr.DataArray:
+    """Volumes (m3) from water levels (m) through each water body's storage curve.
+
+    Parameters
+    ----------
+    levels : xarray.DataArray
+        Dims ``(dim, "time")``, levels in m (``units`` attribute "m"), ``state`` attribute
+        "end_of_month" or "monthly_mean" (carried over to the volumes).
+    curves : mapping of water-body id to callable
+        ``curve(level_m) -> volume_m3``, NaN outside the curve's level range (never extrapolated).
+    dim : str
+        The water-body dimension.
+
+    Returns
+    -------
+    xarray.DataArray
+        Same dims and ``state``, in m3. A level outside its curve leaves the month empty (NaN) and
+        raises one `LevelOutsideCurveWarning` per water body naming it and the months.
+    """
+    state = _state(levels)
+    out = apply_curves(levels, curves, dim=dim, what=f"{state.replace('_', '-')} level")
+    return out.assign_attrs(units="m3", state=state, long_name="water-body volume from level")
+
+
+def apply_curves(levels: xr.DataArray, curves: Mapping[str, Callable], *, dim: str = "waterbody",
+                 what: str = "level") -> xr.DataArray:
+    """Each water body's levels (m) through its own curve (volume or area); NaN and one
+    `LevelOutsideCurveWarning` per water body (naming it and the months) where a level is outside."""
+    import warnings
+
+    if levels.attrs.get("units", "m") != "m":
+        raise InputError(f"levels: units {levels.attrs.get('units')!r}, expected 'm'")
+    lv = levels.transpose(dim, "time")
+    out = np.full(lv.shape, np.nan)
+    months = pd.DatetimeIndex(lv["time"].values)
+    for i, wb in enumerate(lv[dim].values):
+        if str(wb) not in curves:
+            raise InputError(f"water body {str(wb)!r} has no storage curve")
+        h = lv.values[i].astype(float)
+        v = np.asarray(curves[str(wb)](h), dtype=float)
+        outside = np.isfinite(h) & ~np.isfinite(v)
+        v[outside] = np.nan
+        out[i] = v
+        if outside.any():
+            names = ", ".join(f"{m:%Y-%m}" for m in months[outside])
+            warnings.warn(f"water body {str(wb)!r}: level outside the storage curve in {names} ({what}); "
+                          "those months are left empty", LevelOutsideCurveWarning, stacklevel=3)
+    return xr.DataArray(out, dims=(dim, "time"), coords=lv.coords)
+
+
+def volume_kernel(state: str, method: str = "central") -> tuple[float, float, float]:
+    """Weights on F[m-1], F[m], F[m+1] that match flux totals to the storage change of ``state`` volumes."""
+    if state == "end_of_month":
+        return _END_KERNEL
+    if state != "monthly_mean":
+        raise InputError(f"volume state {state!r} is not one of {', '.join(VOLUME_STATES)}")
+    _check(method)
+    return KERNELS[method]
+
+
+def volume_storage_change(volume: xr.DataArray, *, method: str = "central") -> xr.DataArray:
+    """Storage change per month (m3/month) of water-body volumes (m3, time last or named ``time``).
+
+    ``end_of_month`` volumes: ``dS[m] = V[m] - V[m-1]`` (``method`` is not used: the difference of
+    two end states is the month's own change). ``monthly_mean`` volumes: `storage_change` with ``method``
+    (central, backward, forward), as for TWSA. NaN where a needed month is missing.
+    """
+    state = _state(volume)
+    if volume.attrs.get("units", "m3") != "m3":
+        raise InputError(f"volume: units {volume.attrs.get('units')!r}, expected 'm3'")
+    dims = [d for d in volume.dims if d != "time"] + ["time"]
+    v = volume.transpose(*dims)
+    if state == "end_of_month":
+        ds = storage_change(v.values, "backward")
+        how = "end_of_month"
+    else:
+        ds = storage_change(v.values, method)
+        how = method
+    return xr.DataArray(ds, dims=v.dims, coords=v.coords,
+                        attrs={"units": "m3/month", "storage_change": how, "state": state,
+                               "long_name": "water-body storage change"})
+
+
+def match_volume_window(flux: xr.DataArray, *, state: str, method: str = "central") -> xr.DataArray:
+    """Monthly flux totals (any unit per month, ``time`` dim) filtered with the window that matches
+    `volume_storage_change` of ``state`` volumes (end-of-month: unchanged; monthly-mean: the TWSA kernel)."""
+    w = volume_kernel(state, method)
+    dims = [d for d in flux.dims if d != "time"] + ["time"]
+    f = flux.transpose(*dims)
+    return xr.DataArray(apply_kernel(f.values, w), dims=f.dims, coords=f.coords, attrs=dict(flux.attrs))

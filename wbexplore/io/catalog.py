@@ -31,6 +31,8 @@ __all__ = [
     "StationTableSpec",
     "FlowSpec",
     "DIRECTIONS",
+    "WaterbodySpec",
+    "StorageCurveSpec",
     "open_catalog",
     "file_sha256",
 ]
@@ -39,7 +41,8 @@ COMPONENTS = ("P", "ET", "TWSA")
 RESERVED_IDS = {"discharge", "Q", "basin", "time"}
 
 _TOP_KEYS = {"catalog_version": True, "title": False, "description": False, "basins": True,
-             "discharge": False, "sources": True, "flows": False}
+             "discharge": False, "sources": True, "flows": False,
+             "waterbodies": False}
 _BASIN_KEYS = {"path": True, "id_field": True, "name_field": False, "crs": False, "layer": False,
                "downstream_field": False}
 # Station tables (version 2 additions, accepted in both versions; DESIGN.md "Station tables").
@@ -134,6 +137,58 @@ class StationTableSpec:
 DischargeSpec = StationTableSpec  # the discharge table is a station table
 
 
+# ---- waterbodies (issue 15: lake and reservoir balances) -------------------------------------------
+# DESIGN.md "More balance terms (flows), nested basins, waterbodies". Parsed by `_waterbodies` (below,
+# in the same delimited block at the end of this module); read by `wbexplore.io.waterbodies`.
+
+@dataclass(frozen=True)
+class StorageCurveSpec:
+    """A storage curve table: one row per water body and level, with the area and volume at that level.
+
+    ``level_units`` (optional in the catalog): the unit of ``level_field``; default the level series' units.
+    """
+
+    path: Path
+    id_field: str
+    level_field: str
+    area_field: str
+    volume_field: str
+    area_units: str
+    volume_units: str
+    level_units: str
+
+
+@dataclass(frozen=True)
+class WaterbodySpec:
+    """Lakes and reservoirs: outlines, a level series per water body and their storage curves.
+
+    ``level.stations`` maps station id -> water-body id (None: station ids are water-body ids).
+    ``evaporation_source``: an ET product id (None: the ET products, over the water surface).
+    """
+
+    path: Path
+    id_field: str
+    level: StationTableSpec
+    storage_curve: StorageCurveSpec
+    name_field: str | None = None
+    crs: str | None = None
+    layer: str | None = None
+    evaporation_source: str | None = None
+
+    @property
+    def outlines(self) -> BasinSpec:
+        """The outline file described as a basin file (read by the same rules)."""
+        return BasinSpec(path=self.path, id_field=self.id_field, name_field=self.name_field, crs=self.crs,
+                         layer=self.layer)
+
+    def input_paths(self) -> tuple[Path, ...]:
+        out = [self.path, self.level.path, self.storage_curve.path]
+        if self.path.suffix.lower() == ".shp":
+            out += sorted(q for q in self.path.parent.glob(_glob.escape(self.path.stem) + ".*") if q != self.path)
+        return tuple(out)
+# ---- end waterbodies -------------------------------------------------------------------------------
+
+
 @dataclass(frozen=True)
 class FlowSpec:
     """One more balance term measured at a gauge (an inflow, an abstraction, a transfer).
@@ -222,6 +277,7 @@ class Catalog:
                 return f
         known = ", ".join(f.id for f in self.flows) or "none"
         raise CatalogError(f"{self.path}: no flow {flow_id!r} (known: {known})")
+    waterbodies: WaterbodySpec | None = None
 
     def source(self, source_id: str) -> SourceSpec:
         for s in self.sources:
@@ -247,6 +303,8 @@ class Catalog:
             out.append(self.discharge.path)
         for f in self.flows:
             out.append(f.table.path)
+        if self.waterbodies is not None:
+            out.extend(self.waterbodies.input_paths())
         for s in self.sources:
             out.extend(s.paths)
         return tuple(dict.fromkeys(out))
@@ -260,9 +318,10 @@ class Catalog:
         """
         base = self.path.parent
         pats = []
-        b = self.basins.path
-        if b.suffix.lower() == ".shp":
-            pats.append(_glob.escape(str(b.with_suffix(""))) + ".*")
+        shapes = [self.basins.path] + ([self.waterbodies.path] if self.waterbodies is not None else [])
+        for b in shapes:
+            if b.suffix.lower() == ".shp":
+                pats.append(_glob.escape(str(b.with_suffix(""))) + ".*")
         for s in self.sources:
             full = s.path_pattern if os.path.isabs(s.path_pattern) else str(base / s.path_pattern)
             magic = _glob.has_magic(s.path_pattern)
@@ -432,6 +491,9 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
             date_format=date_format, time_start=tstart, time_step=step, **errs, **mask,
         ))
     flows = _flows(cat, data.get("flows"), seen)
+    waterbodies = None
+    if data.get("waterbodies") is not None:
+        waterbodies = _waterbodies(cat, data["waterbodies"], sources)
     return Catalog(
         path=cat,
         title=str(data.get("title") or cat.stem),
@@ -442,6 +504,7 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
         sha256=hashlib.sha256(text).hexdigest(),
         raw=data,
         flows=flows,
+        waterbodies=waterbodies,
     )
 
 
@@ -622,3 +685,52 @@ def _check_crs(cat: Path, where: str, text: str) -> None:
         CRS.from_user_input(text)
     except CRSError:
         _fail(cat, where, f"field 'crs': {text!r} is not a CRS pyproj understands")
+
+
+# ---- waterbodies (issue 15) ------------------------------------------------------------------------
+_WATERBODY_KEYS = {"path": True, "id_field": True, "name_field": False, "crs": False, "layer": False,
+                   "level": True, "storage_curve": True, "evaporation_source": False}
+_CURVE_KEYS = {"path": True, "id_field": True, "level_field": True, "area_field": True, "volume_field": True,
+               "area_units": True, "volume_units": True, "level_units": False}
+
+
+def _waterbodies(cat: Path, d: Any, sources: list[SourceSpec]) -> WaterbodySpec:
+    """Validate the `waterbodies` block (fields only: ids, levels and curves are checked on reading)."""
+    from ..units import parse_area_unit, parse_volume_unit
+
+    where = "waterbodies: "
+    _check_keys(cat, where, d, _WATERBODY_KEYS)
+    path = _resolve(cat, where, "path", _str(cat, where, d, "path"), allow_glob=False)[0]
+    crs = _str(cat, where, d, "crs")
+    if crs is not None:
+        _check_crs(cat, where, crs)
+    level = _station_table(cat, where + "level: ", d["level"], kind="level")
+    cw = where + "storage_curve: "
+    c = d["storage_curve"]
+    _check_keys(cat, cw, c, _CURVE_KEYS)
+    units = {}
+    for key, parse in (("area_units", parse_area_unit), ("volume_units", parse_volume_unit),
+                       ("level_units", parse_level_unit)):
+        text = _str(cat, cw, c, key, level.units if key == "level_units" else None)
+        try:
+            parse(text, where=cw + key)
+        except UnitError as exc:
+            _fail(cat, cw, f"field {key!r}: {exc}")
+        units[key] = text
+    curve = StorageCurveSpec(
+        path=_resolve(cat, cw, "path", _str(cat, cw, c, "path"), allow_glob=False)[0],
+        id_field=_str(cat, cw, c, "id_field"), level_field=_str(cat, cw, c, "level_field"),
+        area_field=_str(cat, cw, c, "area_field"), volume_field=_str(cat, cw, c, "volume_field"), **units)
+    evap = _str(cat, where, d, "evaporation_source")
+    if evap is not None:
+        comp = {s.id: s.component for s in sources}
+        if evap not in comp:
+            close = difflib.get_close_matches(evap, list(comp), n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            _fail(cat, where, f"field 'evaporation_source': {evap!r} is not a product id{hint}")
+        if comp[evap] != "ET":
+            _fail(cat, where, f"field 'evaporation_source': product {evap!r} is {comp[evap]}, not ET")
+    return WaterbodySpec(path=path, id_field=_str(cat, where, d, "id_field"), level=level, storage_curve=curve,
+                         name_field=_str(cat, where, d, "name_field"), crs=crs,
+                         layer=_str(cat, where, d, "layer"), evaporation_source=evap)
+# ---- end waterbodies -------------------------------------------------------------------------------

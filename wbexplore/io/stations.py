@@ -64,6 +64,8 @@ class StationTable:
     ``monthly``: DataFrame indexed by (station, month) with ``value`` (base unit: m3/s mean flow,
     mm/month depth or m level; NaN where the month is empty) and ``coverage`` (0..1 share of the
     month's days present for daily stations; 1 or 0 for monthly ones).
+    ``days``: levels only (``kind="level"``), for daily (and sub-daily) stations: DataFrame with columns
+    ``station``, ``t`` (the day) and ``v`` (daily mean level, m), for end-of-month states; else None.
     """
 
     path: object
@@ -73,6 +75,7 @@ class StationTable:
     daily: set[str]
     monthly: pd.DataFrame
     notes: list[str] = field(default_factory=list)
+    days: pd.DataFrame | None = None
 
 
 def _short(v) -> str:
@@ -314,8 +317,11 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
     if sub:
         notes.append(f"sub-daily records averaged to days: {', '.join(sorted(sub))}")
     parts = []
+    base_days = None
     if is_daily.any():
         days = station_daily_means(frame.loc[is_daily, ["station", "t", "v"]])
+        if unit_kind == "level":  # kept for end-of-month states; flows and depths need only months
+            base_days = days.assign(v=days["v"] * factor)
         m = station_monthly_means(days, spec.min_coverage)
         m = m.rename(columns={"mean": "value"})
         if unit_kind == "depth":
@@ -352,7 +358,8 @@ def read_station_table(spec: StationTableSpec, *, kind: str = "flow",
         parts.append(pd.concat(full, ignore_index=True).set_index(["station", "month"]))
     monthly = pd.concat(parts).sort_index()
     return StationTable(path=path, layout=spec.layout, unit_kind=unit_kind,
-                        stations=sorted(frame["station"].unique()), daily=sub | daily, monthly=monthly, notes=notes)
+                        stations=sorted(frame["station"].unique()), daily=sub | daily, monthly=monthly, notes=notes,
+                        days=base_days)
 
 
 def _station_basins(spec: StationTableSpec, table_stations: list[str], basin_ids) -> dict[str, str]:
