@@ -202,13 +202,12 @@ def truth_series(truth):
     for name, comp, var in (("tP", "P", "P"), ("tET", "ET", "ET"), ("tTWSA", "TWSA", "TWSA")):
         ds[name] = truth[var]
         ds[name].attrs = {"role": "source", "component": comp}
-    # the demo's gauged flows (flow_<id>, attribute direction) enter as a change of the outflow until the
-    # balance takes flows as terms of their own: Q - in + out is what leaves by the outlet net of them
-    q = truth["Q"]
+    ds["discharge"] = truth["Q"].copy()
+    ds["discharge"].attrs = {"role": "discharge", "component": "Q", "units": "mm/month"}
+    # the demo's flows (flow_<id>, attribute direction) are terms of the balance (balance/terms.py)
     for name, v in truth.data_vars.items():
         if name.startswith("flow_"):
-            q = q - v if v.attrs["direction"] == "in" else q + v
-    ds["discharge"] = q
+            ds[name] = v
     return ds
 
 

@@ -44,6 +44,7 @@ def test_a_change_refills_the_same_figures_with_engine_values(explorer):
     s = ex.state
     panes = {css: _figure(page, css) for css in ("wbx-map", "wbx-bars", "wbx-residual", "wbx-scatter", "wbx-multi")}
     figs = {css: p.object for css, p in panes.items()}
+    first, et0 = s.basin, s.ET
     other = next(e for e in s.param.ET.objects if e != s.ET)
     s.ET = other
     assert {css: p.object for css, p in panes.items()} == figs  # same figures: only their data was sent
@@ -54,11 +55,22 @@ def test_a_change_refills_the_same_figures_with_engine_values(explorer):
     np.testing.assert_allclose(res["hi"] - res["lo"], 4 * sigma, rtol=1e-12)
     bars = _source(figs["wbx-bars"], "value").data
     ok = ref.frame["valid"].values
+    # the demo's first basin receives no flow: its bars are the four base terms and the residual
+    assert s.basin not in ("SAR", "SAU") and list(bars["term"]) == ["P", "ET", "Q", "dS", "residual"]
     want = [ref.frame.loc[ok, k].mean() for k in ("P", "ET", "Q", "dS", "residual")]
     np.testing.assert_allclose(bars["value"], want, rtol=1e-12)
+    # a basin with flows shows them as bars (in: P's side, out: the losses), values from the engine
+    s.basin = "SAR"
+    ref = compute_selection(s.series, s.selection())
+    bars = _source(figs["wbx-bars"], "value").data
+    flows = [t for t in bars["term"] if t.startswith("flow_")]
+    assert flows and all(t in ref.frame for t in flows)
+    ok = ref.frame["valid"].values
+    np.testing.assert_allclose(bars["value"], [ref.frame.loc[ok, k].mean() for k in bars["term"]], rtol=1e-12)
     assert other in figs["wbx-residual"].title.text
     pts = _source(figs["wbx-scatter"], "season").data
     np.testing.assert_array_equal(pts["Qhat"], ref.frame["Qhat"].values[ok])
+    s.basin, s.ET = first, et0  # the page is shared by the module's tests
 
 
 def test_map_colours_the_engine_scores_and_outlines_the_basin(explorer):

@@ -105,9 +105,17 @@ def test_demo_still_gives_the_fixture(recorded, demo_series):
     saved = mr.load_series()
     basins = [str(b) for b in saved["basin"].values]
     demo = demo_series.assign_coords(basin=[str(b) for b in demo_series["basin"].values]).sel(basin=basins)
+    daily = set()
     for v in saved.data_vars:
         assert v in demo, v
-        assert np.array_equal(saved[v].values, demo[v].values, equal_nan=True), v
+        if saved[v].attrs.get("source_step") == "day":
+            # daily products are summed to months in float64 inside the block readers' pass since the
+            # fixture was recorded (before: xarray resample of float32 days): the order of the additions
+            # changed, so the last bits may; 1e-12 relative is far below any product's precision
+            np.testing.assert_allclose(demo[v].values, saved[v].values, rtol=1e-12, err_msg=v)
+            daily.add(v)
+        else:
+            assert np.array_equal(saved[v].values, demo[v].values, equal_nan=True), v
     assert np.array_equal(saved["time"].values, demo["time"].values)
     from wbexplore.balance import rank
 
@@ -116,5 +124,9 @@ def test_demo_still_gives_the_fixture(recorded, demo_series):
     for b in basins:
         df = rank(sub, b)
         for c in ("rmse", "kge", "annual_bias", "n_valid"):
-            assert np.array_equal(df[c].to_numpy(), arrays[f"rank/{b}/default/{c}"], equal_nan=True), (b, c)
+            want = arrays[f"rank/{b}/default/{c}"]
+            if daily:  # see above: the daily product's last bits
+                np.testing.assert_allclose(df[c].to_numpy(), want, rtol=1e-9, err_msg=f"{b} {c}")
+            else:
+                assert np.array_equal(df[c].to_numpy(), want, equal_nan=True), (b, c)
         assert list(df["P"]) == texts[f"rank/{b}/default/P"]

@@ -149,7 +149,9 @@ class BarsPlot(_Plot):
     def update(self, result, unit_system: str = "mm") -> None:
         f = to_unit_system(result.frame, result.area_km2, unit_system)
         ok = result.frame["valid"].values
-        rows = _terms(result)
+        # a flow that does not enter this basin is 0.0 in every month by the series schema: no bar for it
+        rows = [t for t in _terms(result) if t.name in ("P", "ET", "Q", "dS")
+                or t.name not in result.frame or result.frame[t.name].fillna(0.0).ne(0.0).any()]
         terms = [t.name for t in rows] + ["residual"]
         roles = ["storage" if t.storage else ("inflow" if t.sign > 0 else "outflow") for t in rows] + ["imbalance"]
         if list(self.fig.x_range.factors) != terms:  # flows add bars (P and inflows in; ET, Q, outflows out)
