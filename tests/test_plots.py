@@ -57,6 +57,7 @@ def test_a_change_refills_the_same_figures_with_engine_values(explorer):
     ok = ref.frame["valid"].values
     # the demo's first basin receives no flow: its bars are the four base terms and the residual
     assert s.basin not in ("SAR", "SAU") and list(bars["term"]) == ["P", "ET", "Q", "dS", "residual"]
+    assert figs["wbx-residual"].yaxis[0].axis_label.startswith("P - ET - Q - dS (")  # no flow enters it
     want = [ref.frame.loc[ok, k].mean() for k in ("P", "ET", "Q", "dS", "residual")]
     np.testing.assert_allclose(bars["value"], want, rtol=1e-12)
     # a basin with flows shows them as bars (in: P's side, out: the losses), values from the engine
@@ -67,6 +68,8 @@ def test_a_change_refills_the_same_figures_with_engine_values(explorer):
     assert flows and all(t in ref.frame for t in flows)
     ok = ref.frame["valid"].values
     np.testing.assert_allclose(bars["value"], [ref.frame.loc[ok, k].mean() for k in bars["term"]], rtol=1e-12)
+    label = figs["wbx-residual"].yaxis[0].axis_label
+    assert all(f in label for f in flows)  # the residual's formula names the flows with their signs
     assert other in figs["wbx-residual"].title.text
     pts = _source(figs["wbx-scatter"], "season").data
     np.testing.assert_array_equal(pts["Qhat"], ref.frame["Qhat"].values[ok])

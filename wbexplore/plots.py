@@ -56,10 +56,15 @@ ROLES = ("inflow", "outflow", "outflow", "storage", "imbalance")
 
 
 def _terms(result):
-    """The balance terms of a selection result, in the term table's order (older results: the base four)."""
+    """The balance terms of a selection result that enter its basin, in the term table's order (older
+    results: the base four). A flow that does not enter the basin is 0.0 in every month by the series
+    schema (`series.py`): it gets no bar and no place in the axis labels."""
     from .balance.terms import BASE_TERMS
 
-    return getattr(result, "terms", None) or BASE_TERMS
+    rows = getattr(result, "terms", None) or BASE_TERMS
+    f = result.frame
+    return tuple(t for t in rows if t.name in ("P", "ET", "Q", "dS") or t.name not in f
+                 or f[t.name].fillna(0.0).ne(0.0).any())
 
 
 def _balance_label(result, *, without_q: bool = False) -> str:
@@ -149,9 +154,7 @@ class BarsPlot(_Plot):
     def update(self, result, unit_system: str = "mm") -> None:
         f = to_unit_system(result.frame, result.area_km2, unit_system)
         ok = result.frame["valid"].values
-        # a flow that does not enter this basin is 0.0 in every month by the series schema: no bar for it
-        rows = [t for t in _terms(result) if t.name in ("P", "ET", "Q", "dS")
-                or t.name not in result.frame or result.frame[t.name].fillna(0.0).ne(0.0).any()]
+        rows = _terms(result)
         terms = [t.name for t in rows] + ["residual"]
         roles = ["storage" if t.storage else ("inflow" if t.sign > 0 else "outflow") for t in rows] + ["imbalance"]
         if list(self.fig.x_range.factors) != terms:  # flows add bars (P and inflows in; ET, Q, outflows out)
@@ -241,9 +244,9 @@ class ScatterPlot(_Plot):
                                 fill_alpha=0.15, line_width=1.5), self.years, legend="year (mean month)")
         _add(fig, Line(x="x", y="y", line_color="grey", line_dash="dashed"), self.line, legend="1:1")
         fig.add_tools(HoverTool(renderers=[pts], tooltips=[("month", "@month"), ("season", "@season"),
-                                                           ("Q", "@Q{0.00}"), ("P - ET - dS", "@Qhat{0.00}")]),
+                                                           ("Q", "@Q{0.00}"), ("Q from the balance", "@Qhat{0.00}")]),
                       HoverTool(renderers=[yrs], tooltips=[("year", "@year"), ("Q", "@Q{0.00}"),
-                                                           ("P - ET - dS", "@Qhat{0.00}")]))
+                                                           ("Q from the balance", "@Qhat{0.00}")]))
         fig.legend.location = "bottom_right"
 
     def update(self, result, unit_system: str = "mm") -> None:
