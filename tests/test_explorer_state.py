@@ -120,3 +120,81 @@ def test_export_and_report_buttons_write_files(state, tmp_path):
         warnings.simplefilter("ignore")
         assert replay(sel[0])["n_metrics"] > 10
     assert "Screening-level" in rep[0].read_text()
+
+
+# --------------------------------------------------------------------------- whole | incremental
+@pytest.fixture(scope="module")
+def demo_incremental(demo_dir):
+    from wbexplore.pipeline import CoverageWarning, extract
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", CoverageWarning)
+        return extract(demo_dir / "catalog.yaml", incremental=True)
+
+
+@pytest.fixture
+def nested_state(demo_series, demo_incremental, demo_dir):
+    from wbexplore.io.catalog import open_catalog
+    from wbexplore.pipeline import load_basins
+
+    return ClosureState(demo_series, basins=load_basins(open_catalog(demo_dir / "catalog.yaml")),
+                        incremental_series=demo_incremental, catalog_path=str(demo_dir / "catalog.yaml"),
+                        basin="VEL")
+
+
+def test_switching_to_the_incremental_unit(nested_state, demo_series, demo_incremental, demo_dir):
+    """The switch changes the area and the residual to what `balance` computes over the incremental unit
+    (areas: `incremental_basins`, checked against pyproj.Geod in tests/test_demo.py)."""
+    from wbexplore.io.basins import incremental_basins
+    from wbexplore.io.catalog import open_catalog
+
+    s = nested_state
+    assert s.has_incremental and s.upstream_of() == ["VEU"]
+    s.param.update(P="heron", ET="tansy", TWSA="quarry")
+    whole = s.result()
+    s.unit = "incremental"
+    inc = s.result()
+    units = incremental_basins(open_catalog(demo_dir / "catalog.yaml").basins)
+    assert inc.area_km2 == pytest.approx(units.loc["VEL", "area_km2"], rel=1e-9)
+    assert whole.area_km2 == pytest.approx(units.loc["VEL", "whole_area_km2"], rel=1e-9)
+    ref = compute_selection(demo_incremental, s.selection())
+    pd.testing.assert_series_equal(inc.frame["residual"], ref.frame["residual"])
+    assert not inc.frame["residual"].equals(whole.frame["residual"])
+    pd.testing.assert_frame_equal(s.ranking().reset_index(drop=True), rank(demo_incremental, "VEL", s.options()))
+    s.unit = "whole"  # and back: the whole basin's numbers again
+    pd.testing.assert_series_equal(s.result().frame["residual"],
+                                   compute_selection(demo_series, s.selection()).frame["residual"])
+
+
+def test_incremental_only_for_basins_with_upstream_basins(nested_state):
+    from wbexplore.errors import InputError
+    from wbexplore.explorer.app import Explorer
+
+    s = nested_state
+    ex = Explorer(s)
+    ex.panel()
+    assert not ex.w_unit.disabled
+    ex.w_unit.value = "incremental"  # the widget writes the state
+    assert s.unit == "incremental" and s.unit_series() is s.incremental_series
+    s.basin = "VEU"  # innermost: no incremental unit; the switch falls back and is disabled
+    assert s.unit == "whole" and ex.w_unit.value == "whole" and ex.w_unit.disabled
+    s.unit = "incremental"
+    assert s.unit == "whole" and s.unit_series() is s.series
+    s.basin = "SAR"
+    assert not ex.w_unit.disabled
+    with pytest.raises(InputError, match="'TIR' has no upstream basin"):
+        ClosureState(s.series, incremental_series=s.incremental_series, basin="TIR", unit="incremental")
+
+
+def test_map_shows_the_nesting(nested_state):
+    from wbexplore import plots
+
+    o = plots.basin_outlines(nested_state.basins)
+    m = plots.MapPlot(o)
+    data = m.src.data
+    down = dict(zip(data["basin"], data["drains_to"]))
+    dash = dict(zip(data["basin"], data["dash"]))
+    assert down["VEU"] == "VEL" and down["SAU"] == "SAR" and down["TIR"] == "-"  # demo.DRAINS_TO
+    assert dash["VEU"] == "dashed" and dash["VEL"] == "solid"
+    tips = dict(m.fig.select_one({"type": __import__("bokeh.models", fromlist=["HoverTool"]).HoverTool}).tooltips)
+    assert tips["drains to"] == "@drains_to"

@@ -335,25 +335,26 @@ def _options(args):
 
 def _check_incremental(catalog, basin) -> None:
     """Refuse ``--incremental`` for a basin without an upstream basin (one line, exit 2), before any work."""
+    from .cache import load_basins, load_incremental_basins
     from .io.catalog import open_catalog
 
     cat = catalog if hasattr(catalog, "basins") else open_catalog(catalog)
     if not getattr(cat.basins, "downstream_field", None):
         raise InputError(f"{cat.path}: --incremental: basin {basin!r} has no upstream basin "
                          "(the catalog has no basins: downstream_field)")
-    import inspect
+    if basin in load_incremental_basins(cat).index:
+        return
+    if basin in load_basins(cat).index:
+        raise InputError(f"{cat.basins.path}: --incremental: basin {basin!r} has no upstream basin "
+                         f"(field {cat.basins.downstream_field!r}), so it has no incremental unit")
+    raise InputError(f"{cat.basins.path}: --incremental: basin {basin!r} not found")
 
-    from .pipeline import load_series
 
-    if "incremental" not in inspect.signature(load_series).parameters:
-        raise InputError(f"{cat.path}: --incremental: incremental units are not available in this wbexplore yet")
-
-
-def _series(args):
+def _series(args, *, incremental=None):
     from .pipeline import load_series
 
     kw = {}
-    if getattr(args, "incremental", False):
+    if getattr(args, "incremental", False) if incremental is None else incremental:
         kw["incremental"] = True
     return load_series(args.catalog, cache_dir=getattr(args, "cache_dir", None), progress=sys.stderr.isatty(), **kw)
 
@@ -361,7 +362,7 @@ def _series(args):
 def _print_rank_table(df, by: str, *, head: str) -> None:
     from .balance.combos import RANK_TABLE_COLUMNS
 
-    cols = list(RANK_TABLE_COLUMNS) if "basin" not in df else ["basin", *RANK_TABLE_COLUMNS]
+    cols = [c for c in ("basin", "unit") if c in df] + list(RANK_TABLE_COLUMNS)
     show = df[cols].copy()
     show["rank"] = [str(r) if s else "-" for r, s in zip(df["rank"], df["scored"])]
     print(head)
@@ -371,8 +372,32 @@ def _print_rank_table(df, by: str, *, head: str) -> None:
         print(f"NaN: {why}")
 
 
+def _rank_every_unit(args, ds, opts):
+    """``rank --all``: every basin's rows (``unit`` whole), then, where the catalog nests basins, every
+    incremental unit's rows (``unit`` incremental); sorted by basin, whole before incremental, then rank."""
+    import numpy as np
+    import pandas as pd
+
+    from .balance import rank_all
+    from .cache import load_incremental_basins
+    from .io.catalog import open_catalog
+
+    df = rank_all(ds, opts, by=args.by)
+    attrs = df.attrs
+    df.insert(1, "unit", "whole")
+    cat = open_catalog(args.catalog)
+    if cat.basins.downstream_field and len(load_incremental_basins(cat)):
+        inc = rank_all(_series(args, incremental=True), opts, by=args.by)
+        inc.insert(1, "unit", "incremental")
+        df = pd.concat([df, inc], ignore_index=True)
+    key = np.char.add(df["basin"].to_numpy(dtype=str), np.where(df["unit"] == "whole", "\x00", "\x01"))
+    df = df.iloc[np.argsort(key, kind="stable")].reset_index(drop=True)  # by basin, unit, then rank (kept)
+    df.attrs = attrs
+    return df
+
+
 def _cmd_rank(args) -> int:
-    from .balance import rank, rank_all
+    from .balance import rank
     from .balance.metrics import check_metric
 
     check_metric(args.by)
@@ -383,16 +408,11 @@ def _cmd_rank(args) -> int:
         _check_incremental(args.catalog, args.basin)
     ds = _series(args)
     if args.all:
-        import numpy as np
-
-        df = rank_all(ds, opts, by=args.by)
-        attrs = df.attrs
-        order = np.argsort(df["basin"].to_numpy(dtype=str), kind="stable")  # by basin, then rank (kept)
-        df = df.iloc[order].reset_index(drop=True)
-        df.attrs = attrs
+        df = _rank_every_unit(args, ds, opts)
     else:
         df = rank(ds, args.basin, opts, by=args.by)
-    what = {"basins": sorted(set(df["basin"]))} if args.all else {"basin": args.basin}
+    what = ({"basins": sorted(set(df["basin"]))} if args.all
+            else {"basin": args.basin, "unit": "incremental" if args.incremental else "whole"})
     if args.format == "csv":
         df.to_csv(sys.stdout, index=False, float_format="%.6g")
     elif args.format == "json":
@@ -401,7 +421,8 @@ def _cmd_rank(args) -> int:
                    "rows": json.loads(df.to_json(orient="records"))}, sys.stdout, indent=1)
         print()
     else:
-        who = f"{len(what['basins'])} basins" if args.all else f"basin {args.basin}"
+        who = (f"{len(what['basins'])} basins" if args.all
+               else f"basin {args.basin}" + (" (incremental unit)" if args.incremental else ""))
         _print_rank_table(df, args.by, head=(
             f"{who}, {df.attrs['start']}..{df.attrs['end']}, storage change {args.storage_change}"
             f"{' (unmatched)' if args.unmatched else ' (window-matched)'}, ranked by {args.by}"))
@@ -422,7 +443,7 @@ def _cmd_export(args) -> int:
     if args.incremental:
         _check_incremental(args.catalog, args.basin)
     out = export_selection(args.catalog, sel, args.out, overwrite=args.force, series=args.series,
-                           unit_system=args.units, cache_dir=args.cache_dir)
+                           unit_system=args.units, cache_dir=args.cache_dir, incremental=args.incremental)
     print(f"wrote {out['selection']}" + (f" and {out['series']}" if out.get("series") else ""))
     return 0
 
@@ -430,9 +451,12 @@ def _cmd_export(args) -> int:
 def _cmd_replay(args) -> int:
     from .selection import load_selection, replay
 
-    if args.incremental:
-        _, sel, cat_path = load_selection(args.selection)
+    if args.incremental:  # the file says which unit it was computed over; the option only confirms it
+        doc, sel, cat_path = load_selection(args.selection)
         _check_incremental(cat_path, sel.basin)
+        if doc.get("unit", "whole") != "incremental":
+            raise InputError(f"{args.selection}: field 'unit': {doc.get('unit', 'whole')!r} (a whole basin's "
+                             "selection): --incremental replays only a selection exported with --incremental")
     try:
         res = replay(args.selection, cache_dir=args.cache_dir)
     except ReplayMismatch as exc:

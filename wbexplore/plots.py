@@ -278,7 +278,7 @@ class Outlines:
 
     xs, ys : exterior ring coordinates in degrees east / north (EPSG:4326), largest basins first so
     that small (nested) ones are drawn on top; basin, name : text of each part's basin;
-    area_km2 : the basin's area.
+    area_km2 : the basin's area; drains_to : the id of the basin it is nested in ("" for none).
     """
 
     xs: tuple
@@ -286,14 +286,15 @@ class Outlines:
     basin: tuple
     name: tuple
     area_km2: tuple
+    drains_to: tuple = ()
 
 
 def basin_outlines(basins) -> Outlines:
-    """`Outlines` of a basin GeoDataFrame (EPSG:4326, indexed by basin id, with ``name`` and ``area_km2``);
-    none for ``None`` (series opened without their outlines)."""
-    xs, ys, ids, names, areas = [], [], [], [], []
+    """`Outlines` of a basin GeoDataFrame (EPSG:4326, indexed by basin id, with ``name`` and ``area_km2``,
+    and ``drains_to`` where the catalog nests basins); none for ``None`` (series opened without their outlines)."""
+    xs, ys, ids, names, areas, down = [], [], [], [], [], []
     if basins is None:
-        return Outlines((), (), (), (), ())
+        return Outlines((), (), (), (), (), ())
     for bid, row in basins.sort_values("area_km2", ascending=False).iterrows():
         for g in getattr(row.geometry, "geoms", [row.geometry]):
             x, y = g.exterior.coords.xy
@@ -302,11 +303,15 @@ def basin_outlines(basins) -> Outlines:
             ids.append(str(bid))
             names.append(str(row["name"]))
             areas.append(float(row["area_km2"]))
-    return Outlines(tuple(xs), tuple(ys), tuple(ids), tuple(names), tuple(areas))
+            d = row["drains_to"] if "drains_to" in basins.columns else None
+            down.append("" if d is None or (isinstance(d, float) and np.isnan(d)) else str(d))
+    return Outlines(tuple(xs), tuple(ys), tuple(ids), tuple(names), tuple(areas), tuple(down))
 
 
 class MapPlot(_Plot):
     """Basin outlines on lon/lat axes (no tiles) coloured by their best closure score; the selected one outlined.
+
+    Nesting: a basin that drains into another is outlined dashed, and its hover names the basin it drains to.
 
     `on_tap(lon, lat)` (explorer) is called with the clicked point in degrees.
     """
@@ -327,18 +332,23 @@ class MapPlot(_Plot):
         from bokeh.palettes import Viridis256
 
         o = self.outlines
+        down = list(o.drains_to) if len(o.drains_to) == len(o.basin) else [""] * len(o.basin)
         self.src = ColumnDataSource({"xs": list(o.xs), "ys": list(o.ys), "basin": list(o.basin),
                                      "name": list(o.name), "area_km2": list(o.area_km2),
+                                     "drains_to": [d or "-" for d in down],
+                                     "dash": ["dashed" if d else "solid" for d in down],
                                      "score": [np.nan] * len(o.basin), "lw": [0.8] * len(o.basin)})
         self.mapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
         self.fig = fig = _figure(width=width, height=360, match_aspect=True, title="Basins (click to select)")
         outline = Patches(xs="xs", ys="ys", fill_color={"field": "score", "transform": self.mapper},
-                          line_color="black", line_width={"field": "lw"}, fill_alpha=0.85)
+                          line_color="black", line_width={"field": "lw"}, line_dash={"field": "dash"},
+                          fill_alpha=0.85)
         _add(fig, outline, self.src).nonselection_glyph = outline  # a tapped basin does not fade the others
         self.colorbar = ColorBar(color_mapper=self.mapper, title="best rmse")
         fig.add_layout(self.colorbar, "right")
         fig.add_tools(HoverTool(tooltips=[("basin", "@basin"), ("name", "@name"), ("score", "@score{0.000}"),
-                                          ("area (km2)", "@area_km2{0,0}")]), TapTool())
+                                          ("area (km2)", "@area_km2{0,0}"), ("drains to", "@drains_to")]),
+                      TapTool())
         fig.xaxis.axis_label = "longitude (deg E)"
         fig.yaxis.axis_label = "latitude (deg N)"
 

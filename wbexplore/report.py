@@ -73,11 +73,18 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
     cols = list(RANK_TABLE_COLUMNS)
     trows = "".join("<tr>" + "".join(f"<td>{html_text(_fmt(r[c], '.3f') if isinstance(r[c], float) else str(r[c]))}</td>"
                                      for c in cols) + "</tr>" for _, r in ranking.iterrows())
-    head = (f"<h1>wbexplore report: {html_text(res.basin_name)} ({html_text(sel.basin)})</h1>"
+    incremental = ds.attrs.get("unit") == "incremental"
+    unit = ""
+    if incremental:
+        b = ds.sel(basin=sel.basin)
+        unit = (f" Incremental unit: the basin minus its upstream basins {html_text(str(b['upstream_basins'].values))}"
+                f" (whole basin {float(b['whole_area_km2']):,.0f} km2); their gauged outflow enters as inflow.")
+    head = (f"<h1>wbexplore report: {html_text(res.basin_name)} ({html_text(sel.basin)})"
+            f"{', incremental unit' if incremental else ''}</h1>"
             f"<p class='caution' style='border:2px solid #D55E00;padding:8px'><b>Caution.</b> {html_text(CAUTION)}</p>"
             f"<p>Catalog: {html_text(cat.title)} ({html_text(cat.path.name)}, sha256 {cat.sha256[:16]}...). "
             f"Period {res.frame.index[0]:%Y-%m}..{res.frame.index[-1]:%Y-%m}. Sources: P = {html_text(sel.P)}, "
-            f"ET = {html_text(sel.ET)}, TWSA = {html_text(sel.TWSA)}. Basin area {res.area_km2:,.0f} km2. "
+            f"ET = {html_text(sel.ET)}, TWSA = {html_text(sel.TWSA)}. {'Incremental area' if incremental else 'Basin area'} {res.area_km2:,.0f} km2.{unit} "
             f"wbexplore {__version__}.</p>")
     warn = "".join(f"<li>{html_text(w)}</li>" for w in views.warnings_for(res, ds))
     notes = METHOD_NOTES.format(method=html_text(sel.storage_change), balance=html_text(balance_text(res.terms)),
@@ -89,7 +96,7 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
             f"style='border-collapse:collapse'><tr>{''.join(f'<th>{c}</th>' for c in cols)}</tr>{trows}</table>"
             f"<h2>Method notes</h2>{notes}")
     layout = column(Div(text=head, width=950), *figs, Div(text=tail, width=950))
-    out = file_html(layout, resources=INLINE, title=f"wbexplore report {sel.basin}")
+    out = file_html(layout, resources=INLINE, title=f"wbexplore report {sel.basin}{' (incremental)' if incremental else ''}")
     # panel (once imported in the process) registers a server-relative module shim, and once a Tabulator
     # widget exists in the process (an explorer in the same notebook) its stylesheet: a standalone
     # file cannot load them and does not need them: drop both so the file makes no request at all

@@ -70,8 +70,9 @@ def _clean_metrics(metrics: dict) -> dict:
 
 
 def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit_system: str = "mm",
-                       q_relative_error: float = Q_RELATIVE_ERROR) -> dict:
-    """The selection as a plain dict (what `export_selection` writes)."""
+                       q_relative_error: float = Q_RELATIVE_ERROR, unit: str = "whole") -> dict:
+    """The selection as a plain dict (what `export_selection` writes); ``unit`` is "whole" or
+    "incremental" (the basin minus its upstream basins), written only for an incremental unit."""
     sources = {}
     for comp in SOURCE_COMPONENTS:
         spec = cat.source(getattr(sel, comp))
@@ -107,6 +108,8 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
     }
     if flows:  # only where the balance has flows: a plain catalog's selection file stays as it was
         doc["flows"] = flows
+    if unit != "whole":  # a whole basin's selection file stays as it was
+        doc["unit"] = unit
     return doc
 
 
@@ -129,7 +132,7 @@ def _flow_entries(cat: Catalog, result) -> list[dict]:
 
 
 def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, series: str | None = None,
-                     unit_system: str = "mm", cache_dir=None, ds=None) -> dict:
+                     unit_system: str = "mm", cache_dir=None, ds=None, incremental: bool = False) -> dict:
     """Compute ``sel`` from the catalog's files and write the selection file (and optionally the series).
 
     Parameters
@@ -140,6 +143,8 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     series : optional path of a series file (``.csv`` or ``.nc``) written alongside
     unit_system : "mm", "m3" or "m3/s" (CSV series)
     ds : canonical series to use; default: extracted afresh for the three sources
+    incremental : the basin's incremental unit (its area minus its upstream basins); recorded as
+        ``unit: incremental`` in the file, and replayed over that unit
 
     Returns
     -------
@@ -158,11 +163,17 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
         if spec.component != comp:
             raise InputError(f"{cat.path}: source {spec.id!r} is a {spec.component} product, not {comp}")
     if ds is None:
-        ds = _extract_for(cat, sel, cache_dir)
+        ds = _extract_for(cat, sel, cache_dir, incremental=incremental)
+    elif (ds.attrs.get("unit") == "incremental") != bool(incremental):
+        raise InputError(f"{cat.path}: the series given are {ds.attrs.get('unit', 'whole')} units, "
+                         f"not {'incremental' if incremental else 'whole'} ones")
     res = compute_selection(ds, sel)
     if res.n_valid == 0:
         raise InputError(res.messages[0])
-    doc = selection_document(cat, sel, res, base=out.resolve().parent, unit_system=unit_system)
+    doc = selection_document(cat, sel, res, base=out.resolve().parent, unit_system=unit_system,
+                             unit="incremental" if incremental else "whole")
+    if incremental:
+        doc["basin"]["whole_area_km2"] = float(ds["whole_area_km2"].sel(basin=sel.basin))
     written = {}
     if series:
         if Path(series).suffix.lower() == ".csv":
@@ -178,7 +189,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     return written
 
 
-def _extract_for(cat: Catalog, sel: Selection, cache_dir):
+def _extract_for(cat: Catalog, sel: Selection, cache_dir, *, incremental: bool = False):
     import warnings
 
     from .pipeline import CoverageWarning, extract
@@ -186,9 +197,10 @@ def _extract_for(cat: Catalog, sel: Selection, cache_dir):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CoverageWarning)
         # every source: the spread of each component's products is its uncertainty
-        return extract(cat, basins=[sel.basin], cache_dir=cache_dir)
+        return extract(cat, basins=[sel.basin], cache_dir=cache_dir, incremental=incremental)
 
 
+UNITS = ("whole", "incremental")  # the balance units a selection file may name (field ``unit``)
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")
 _MONTH = re.compile(r"[0-9]{4}-(0[1-9]|1[0-2])\Z")
 
@@ -308,6 +320,8 @@ def _validate(doc: dict, p: Path) -> Selection:
     mvf = c.number(doc.get("min_valid_fraction", 0.5), "min_valid_fraction", 0.0, 1.0)
     wy = c.integer(doc.get("water_year_start_month", 1), "water_year_start_month", 1, 12)
     c.number(doc.get("q_relative_error", Q_RELATIVE_ERROR), "q_relative_error", 0.0)
+    if doc.get("unit", "whole") not in UNITS:
+        c.fail("unit", f"{_show(doc.get('unit'))} is not one of {', '.join(UNITS)}")
     unit_system = doc.get("unit_system", "mm")
     if unit_system not in UNIT_SYSTEMS:
         c.fail("unit_system", f"{_show(unit_system)} is not one of {', '.join(UNIT_SYSTEMS)}")
@@ -435,7 +449,7 @@ def replay(path, *, cache_dir=None) -> dict:
             rows.append((key, entry["path"], "not an input of the catalog (not opened)"))
             continue
         check([entry], [catalog_inputs[key]], key)
-    ds = _extract_for(cat, sel, cache_dir)
+    ds = _extract_for(cat, sel, cache_dir, incremental=doc.get("unit", "whole") == "incremental")
     res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)))
     # the balance's flows: the same ones, each from the same file
     recorded_flows = {str(f["id"]): f for f in doc.get("flows") or []}

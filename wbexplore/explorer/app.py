@@ -31,8 +31,8 @@ from .state import ClosureState
 
 __all__ = ["Explorer", "explore", "serve", "load_state", "default_export_dir"]
 
-_DEPS = ("basin", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system", "metric")
-_SEL_DEPS = ("basin", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system")
+_DEPS = ("basin", "unit", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system", "metric")
+_SEL_DEPS = ("basin", "unit", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system")
 _MAP_DEPS = ("basin", "period", "storage_change", "matched", "metric")
 _MULTI_DEPS = (*SOURCE_COMPONENTS, "period", "storage_change", "matched")
 
@@ -40,7 +40,7 @@ _MULTI_DEPS = (*SOURCE_COMPONENTS, "period", "storage_change", "matched")
 def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureState:
     """Open a catalog, extract (or reuse cached) series and build the shared state."""
     from ..io.catalog import open_catalog
-    from ..pipeline import CoverageWarning, load_basins, load_series
+    from ..pipeline import CoverageWarning, load_basins, load_incremental_basins, load_series
 
     if hasattr(catalog, "data_vars"):  # already a canonical Dataset
         return ClosureState(catalog)
@@ -48,7 +48,11 @@ def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureSta
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CoverageWarning)  # shown per basin in the page instead
         ds = load_series(cat, cache_dir=cache_dir, progress=progress)
-    return ClosureState(ds, basins=load_basins(cat), catalog_path=str(cat.path), title=str(cat.title or ""))
+        inc = None
+        if cat.basins.downstream_field and len(load_incremental_basins(cat)):  # nested basins: their units too
+            inc = load_series(cat, cache_dir=cache_dir, progress=progress, incremental=True)
+    return ClosureState(ds, basins=load_basins(cat), incremental_series=inc, catalog_path=str(cat.path),
+                        title=str(cat.title or ""))
 
 
 class Explorer:
@@ -90,6 +94,10 @@ class Explorer:
                                                    value=s.unit_system, width=260)
         self.w_metric = pn.widgets.Select(name="Rank by", options=list(s.param.metric.objects), value=s.metric, width=260)
         self.w_best = pn.widgets.Button(name="Best combination", button_type="primary", width=260)
+        # whole basin or its incremental unit (minus its upstream basins): enabled only where there is one
+        self.w_unit = pn.widgets.RadioButtonGroup(name="Balance unit", options=list(s.param.unit.objects),
+                                                  value=s.unit, disabled=not s.has_incremental, width=260,
+                                                  css_classes=["wbx-unit"])
         self._wire()
         view = self._rank_view()
         # "plaintext" escapes the cell value (ids come from the catalog): no cell renders HTML
@@ -137,6 +145,13 @@ class Explorer:
         self.w_units.param.watch(lambda e: setattr(s, "unit_system", e.new), "value")
         self.w_metric.param.watch(lambda e: setattr(s, "metric", e.new), "value")
         self.w_best.on_click(lambda e: s.select_best())
+        self.w_unit.param.watch(lambda e: setattr(s, "unit", e.new), "value")
+
+        def on_unit(e):
+            self.w_unit.disabled = not s.has_incremental
+            self.w_unit.value = s.unit
+
+        s.param.watch(on_unit, ["unit", "basin"])
 
     def _rank_view(self) -> pd.DataFrame:
         r = self.state.ranking()
@@ -154,7 +169,7 @@ class Explorer:
         return out
 
     def _refresh_table(self, *events):
-        if any(e.name in ("basin", "period", "storage_change", "matched", "metric") for e in events):
+        if any(e.name in ("basin", "unit", "period", "storage_change", "matched", "metric") for e in events):
             self.table.value = self._rank_view()
 
     def _on_row(self, event):
@@ -186,7 +201,8 @@ class Explorer:
             if not s.catalog_path:
                 raise InputError(f"{what} needs the explorer to be opened on a catalog file")
             folder.mkdir(parents=True, exist_ok=True)
-            written = write(s, folder, safe_filename(s.basin, s.P, s.ET, s.TWSA, s.start, s.end))
+            unit = ["incremental"] if s.unit_series() is not s.series else []
+            written = write(s, folder, safe_filename(s.basin, *unit, s.P, s.ET, s.TWSA, s.start, s.end))
             self.export_msg.object = "Wrote " + " and ".join(f"*{md_text(self._shown(p))}*" for p in written)
         except (InputError, OSError) as exc:
             msg = public_message(exc, self.study_dir)
@@ -198,7 +214,7 @@ class Explorer:
         def write(s, folder, stem):
             out = export_selection(s.catalog_path, s.selection(), folder / f"selection_{stem}.yaml", overwrite=True,
                                    series=str(folder / f"selection_{stem}.csv"), unit_system=s.unit_system,
-                                   ds=s.series)
+                                   ds=s.unit_series(), incremental=s.unit_series() is not s.series)
             return [out["selection"], out["series"]]
 
         self._write_to_folder("export", write)
@@ -207,7 +223,7 @@ class Explorer:
         from ..report import write_report
 
         def write(s, folder, stem):
-            out = write_report(s.catalog_path, s.series, s.selection(), folder / f"report_{stem}.html",
+            out = write_report(s.catalog_path, s.unit_series(), s.selection(), folder / f"report_{stem}.html",
                                overwrite=True, by=s.metric)
             return [out]
 
@@ -251,11 +267,12 @@ class Explorer:
                              "wbx-scatter")
         summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
                                css_classes=["wbx-summary-pane"], width=260)
-        warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.series), _SEL_DEPS),
+        warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.unit_series()), _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
         multi = self._view(plots.MultiBasinPlot(), lambda p: p.update(s.multi_basin()), _MULTI_DEPS, "wbx-multi")
         controls = pn.Column(
-            pn.pane.Markdown("### Selection"), self.w_basin, self.w_search, self.w_src["P"], self.w_src["ET"],
+            pn.pane.Markdown("### Selection"), self.w_basin, self.w_search,
+            pn.pane.Markdown("Balance unit (incremental: minus the upstream basins)"), self.w_unit, self.w_src["P"], self.w_src["ET"],
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
             self.w_matched, pn.pane.Markdown("Units"), self.w_units, self.w_metric, self.w_best,
             pn.pane.Markdown("### Summary"), summary, warn,
@@ -355,8 +372,8 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
             return _error_page(err, study)
         # each session has its own selection, but the series, the outlines and the memo of
         # computed results are the server's (read-only data, one thread serves all sessions)
-        st = ClosureState(base.series, basins=base.basins, catalog_path=base.catalog_path, title=base.title,
-                          memo=base._memo)
+        st = ClosureState(base.series, basins=base.basins, incremental_series=base.incremental_series,
+                          catalog_path=base.catalog_path, title=base.title, memo=base._memo)
         return Explorer(st, export_dir=out_dir, outlines=outlines).panel()
 
     print(f"wbexplore explorer on http://{address}:{port}/  (Ctrl+C to stop); exports go to "

@@ -24,11 +24,17 @@ class ClosureState(param.Parameterized):
     """Basin, sources, period and options of the closure being explored."""
 
     series = param.Parameter(precedence=-1, doc="canonical basin series (xarray.Dataset)")
+    incremental_series = param.Parameter(default=None, precedence=-1,
+                                         doc="canonical series of the incremental units (``extract(..., "
+                                             "incremental=True)``), or None where the catalog nests no basin")
     basins = param.Parameter(precedence=-1, doc="basin outlines (GeoDataFrame, EPSG:4326)")
     catalog_path = param.String(default="", precedence=-1)
     title = param.String(default="", precedence=-1, doc="catalog title (text from the catalog file)")
 
     basin = param.Selector(objects=[], doc="basin id")
+    unit = param.Selector(objects=["whole", "incremental"], default="whole", label="Balance unit",
+                          doc="the whole basin, or its incremental unit (the basin minus its upstream basins; "
+                              "only for a basin with upstream basins: otherwise it falls back to whole)")
     P = param.Selector(objects=[], label="Precipitation (P)")
     ET = param.Selector(objects=[], label="Evapotranspiration (ET)")
     TWSA = param.Selector(objects=[], label="Storage anomaly (TWSA)")
@@ -64,8 +70,39 @@ class ClosureState(param.Parameterized):
             for comp in SOURCE_COMPONENTS:
                 if comp not in params:
                     setattr(self, comp, getattr(self.param, comp).objects[0])
+        if params.get("unit") == "incremental" and not self.has_incremental:
+            raise InputError(f"basin {self.basin!r} has no upstream basin, so it has no incremental unit")
+        self.param.watch(self._unit_follows_basin, ["basin"])
         if "P" not in params:
             self.select_best()
+
+    # ----------------------------------------------------------------- balance unit
+    @property
+    def has_incremental(self) -> bool:
+        """Whether the current basin has an incremental unit (upstream basins in the catalog's nesting)."""
+        inc = self.incremental_series
+        return inc is not None and self.basin in set(map(str, inc["basin"].values))
+
+    def _unit_follows_basin(self, event) -> None:
+        if self.unit == "incremental" and not self.has_incremental:
+            self.unit = "whole"
+
+    @param.depends("unit", watch=True)
+    def _unit_needs_upstream(self) -> None:
+        if self.unit == "incremental" and not self.has_incremental:
+            self.unit = "whole"  # the switch is disabled for such a basin; a script setting it gets whole back
+
+    def unit_series(self):
+        """The canonical series of the chosen balance unit (whole basins or incremental units)."""
+        return self.incremental_series if self.unit == "incremental" and self.has_incremental else self.series
+
+    def upstream_of(self, basin: str | None = None) -> list[str]:
+        """The basins upstream of ``basin`` (default the current one) that its incremental unit excludes."""
+        b = self.basin if basin is None else basin
+        inc = self.incremental_series
+        if inc is None or b not in set(map(str, inc["basin"].values)) or "upstream_basins" not in inc.coords:
+            return []
+        return [u for u in str(inc["upstream_basins"].sel(basin=b).values).split(",") if u]
 
     # ----------------------------------------------------------------- derived selection
     @property
@@ -92,18 +129,21 @@ class ClosureState(param.Parameterized):
         return self._memo[key]
 
     def result(self):
-        """`SelectionResult` of the current selection."""
+        """`SelectionResult` of the current selection, over the chosen balance unit."""
         sel = self.selection()
-        return self._cached(("result", sel, self.min_valid),
-                            lambda: compute_selection(self.series, sel, min_valid=self.min_valid))
+        ds = self.unit_series()
+        unit = ds.attrs.get("unit", "whole")
+        return self._cached(("result", unit, sel, self.min_valid),
+                            lambda: compute_selection(ds, sel, min_valid=self.min_valid))
 
     def _rank_for(self, basin: str) -> pd.DataFrame:
         opts = self.options()
-        key = ("rank", basin, opts, self.metric)
+        ds = self.unit_series() if basin == self.basin else self.series
+        key = ("rank", ds.attrs.get("unit", "whole"), basin, opts, self.metric)
 
         def run():
             try:
-                return rank(self.series, basin, opts, by=self.metric)
+                return rank(ds, basin, opts, by=self.metric)
             except InputError as exc:
                 df = pd.DataFrame(columns=["rank", *SOURCE_COMPONENTS, "scored", *METRICS])
                 df.attrs["message"] = str(exc)
