@@ -165,7 +165,37 @@ def test_geotiff_series_streams_one_file_per_month(tmp_path):
     src, ref, got = _both(tmp_path, {"id": "p", "component": "P", "path": "g/p_*.tif", "units": "mm",
                                      "date_format": "%Y-%m"})
     assert len(src.blocks.paths) == NT
+    assert src.blocks.sidecar_free  # the folder holds the series alone: GDAL does not list it at every opening
     _assert_same(ref, got, rtol=1e-12)
+
+
+def test_series_folder_with_anything_else_is_listed_by_gdal(tmp_path):
+    # a GDAL side-car (PAM .aux.xml, GDAL's documented format) giving one month a scale and offset must
+    # still be found: only a folder holding nothing but the series is opened without listing it
+    import rasterio
+    from utils import write_tif
+
+    from wbexplore.io.blocks import only_series_files
+
+    vals = _values()
+    (tmp_path / "g").mkdir()
+    for i, m in enumerate(MONTHS):
+        write_tif(tmp_path / "g" / f"p_{m:%Y-%m}.tif", vals[i], LON, LAT)
+    paths = sorted((tmp_path / "g").glob("p_*.tif"))
+    assert only_series_files(paths) and not only_series_files(paths[1:])
+    third = paths[2]
+    (tmp_path / "g" / (third.name + ".aux.xml")).write_text(
+        '<PAMDataset><PAMRasterBand band="1"><Offset>5</Offset><Scale>2</Scale></PAMRasterBand></PAMDataset>')
+    assert not only_series_files(paths)
+    with rasterio.open(third) as s:  # reference: GDAL itself reads the side-car
+        assert (s.scales[0], s.offsets[0]) == (2.0, 5.0)
+        stored = s.read(1, masked=True).filled(np.nan)[::-1]
+    box_basins(tmp_path / "basins.geojson", BOXES)
+    cat = open_catalog(write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "g/p_*.tif", "units": "mm",
+                                                 "date_format": "%Y-%m"}]))
+    src = open_source(cat.sources[0])
+    assert src.blocks is None or not src.blocks.sidecar_free
+    np.testing.assert_allclose(src.data.isel(time=2).sortby("y").values, stored * 2 + 5, rtol=1e-6)
 
 
 @pytest.mark.filterwarnings("ignore:variable 'p' has multiple fill values")  # xarray says so, rightly

@@ -9,7 +9,7 @@ import pytest
 
 from wbexplore.errors import UnitError
 from wbexplore.units import (days_in_month, flow_m3s_to_mm_per_month, m3_to_mm, mm_per_month_to_flow_m3s, mm_to_m3,
-                             parse_discharge_unit, parse_flux_unit, parse_storage_unit)
+                             parse_discharge_unit, parse_flux_unit, parse_level_unit, parse_storage_unit)
 
 ureg = pint.UnitRegistry()
 
@@ -93,3 +93,64 @@ def test_rate_for_twsa_refused(bad):
 def test_unparseable_unit():
     with pytest.raises(UnitError, match="cannot parse"):
         parse_flux_unit("bananas per fortnight!", source="s")
+
+
+# --- the table of common spellings (units._KNOWN) against pint ------------------------------------------
+from wbexplore import units as _units  # noqa: E402
+
+_PUBLIC = {"rate": parse_flux_unit, "per_month": parse_flux_unit, "depth": parse_storage_unit,
+           "mass_depth": parse_storage_unit, "flow": parse_discharge_unit}
+
+
+def _through_pint(monkeypatch, fn, text):
+    with monkeypatch.context() as m:
+        m.setattr(_units, "_KNOWN", {})  # every spelling through pint's registry, as before the table
+        return fn(text)
+
+
+@pytest.mark.parametrize("text", sorted(_units._KNOWN))
+def test_every_table_spelling_equals_pints_conversion(text, monkeypatch):
+    # reference: pint (its registry parses the spelling and converts it; the table must agree to 1e-12)
+    kind, _ = _units._KNOWN[text]
+    fn = _PUBLIC[kind]
+    fast, slow = fn(text), _through_pint(monkeypatch, fn, text)
+    if kind == "flow":
+        assert (fast.kind, fast.flux) == (slow.kind, slow.flux)
+        fast, slow = fast.factor, slow.factor
+    elif fn is parse_flux_unit:
+        assert fast.kind == slow.kind and fast.text == slow.text
+        fast, slow = fast.factor, slow.factor
+    assert fast == pytest.approx(slow, rel=1e-12)
+    # and the same unit read as the other kinds it may stand for
+    if kind in ("rate", "per_month", "depth", "mass_depth"):
+        a, b = parse_discharge_unit(text), _through_pint(monkeypatch, parse_discharge_unit, text)
+        assert (a.kind, a.flux.kind) == (b.kind, b.flux.kind)
+        assert a.flux.factor == pytest.approx(b.flux.factor, rel=1e-12)
+    if kind in ("depth", "mass_depth"):
+        f = parse_flux_unit(text)
+        assert f.kind == "amount" and f.factor == pytest.approx(_through_pint(monkeypatch, parse_flux_unit, text).factor,
+                                                                 rel=1e-12)
+    if kind == "depth":
+        assert parse_level_unit(text) == pytest.approx(_through_pint(monkeypatch, parse_level_unit, text), rel=1e-12)
+
+
+@pytest.mark.parametrize("text, pint_text, to", [("kg m-2 s-1", "mm/s", "mm/day"), ("m/s", "m/s", "mm/day"),
+                                                 ("ML/day", "megaliter/day", "m^3/s"), ("l/s", "liter/s", "m^3/s"),
+                                                 ("m3/day", "m^3/day", "m^3/s"), ("mm/h", "mm/hour", "mm/day")])
+def test_table_factors_against_pint_directly(text, pint_text, to):
+    # reference: pint's own conversion, written in pint's grammar (1 kg m-2 of water = 1 mm: common practice)
+    fn = _PUBLIC[_units._KNOWN[text][0]]
+    got = fn(text).factor
+    assert got == pytest.approx(ureg.Quantity(1, pint_text).to(to).magnitude, rel=1e-12)
+
+
+@pytest.mark.parametrize("text, fn", [("m3/s", parse_flux_unit), ("m3/s", parse_level_unit),
+                                      ("m3/s", parse_storage_unit), ("mm/day", parse_storage_unit),
+                                      ("kg m-2", parse_level_unit), ("mm/month", parse_level_unit)])
+def test_table_spelling_of_the_wrong_kind_fails_as_through_pint(text, fn, monkeypatch):
+    # a table spelling used where its kind does not fit falls through to pint: the same refusal as before
+    with pytest.raises(UnitError) as fast:
+        fn(text)
+    with pytest.raises(UnitError) as slow:
+        _through_pint(monkeypatch, fn, text)
+    assert str(fast.value) == str(slow.value)

@@ -193,11 +193,46 @@ def _tif_handles() -> _HandleCache:
     return hc
 
 
+def only_series_files(paths) -> bool:
+    """Whether the folders of ``paths`` hold nothing but these files (one listing per folder).
+
+    Then no GDAL side-car file (``.aux.xml``, ``.ovr``, ``.msk``, world files ...) can exist beside them,
+    and GDAL need not list the folder on every opening to look for one (`no_sidecars`)."""
+    by_dir: dict = {}
+    for p in paths:
+        d, name = os.path.split(os.path.abspath(str(p)))
+        by_dir.setdefault(d, set()).add(name)
+    try:
+        return all(set(os.listdir(d)) == names for d, names in by_dir.items())
+    except OSError:
+        return False
+
+
+@contextmanager
+def no_sidecars(enabled: bool = True):
+    """GDAL told not to list a file's folder when opening it (``GDAL_DISABLE_READDIR_ON_OPEN=EMPTY_DIR``),
+    for files whose folders `only_series_files` found free of side-car files: GDAL otherwise lists the
+    folder at every opening, which costs more the more files the folder holds (a glob of 460 composites:
+    measured 0.6 to 1.4 ms against 1.0 to 3.0 ms per opening on this 2-core machine). The setting is
+    GDAL's per-thread configuration, so every reading thread enters it itself."""
+    if not enabled:
+        yield
+        return
+    import rasterio
+
+    with rasterio.Env(GDAL_DISABLE_READDIR_ON_OPEN="EMPTY_DIR"):
+        yield
+
+
 @dataclass
 class GeoTIFFBlocks(BlockReader):
-    """A multi-band GeoTIFF (one band per time step) or a list of single-band files, one per step."""
+    """A multi-band GeoTIFF (one band per time step) or a list of single-band files, one per step.
+
+    ``sidecar_free``: the files' folders hold nothing else (`only_series_files`), so GDAL does not
+    list them at every opening (`no_sidecars`)."""
 
     paths: list[str] = field(default_factory=list)
+    sidecar_free: bool = False
 
     def read(self, t0, t1, r0, r1, c0, c1):
         import rasterio
@@ -210,8 +245,9 @@ class GeoTIFFBlocks(BlockReader):
                 src.read(list(range(t0 + 1, t1 + 1)), window=win, out=out)
             return out
 
-        for i, t in enumerate(range(t0, t1)):
-            # one file per step: opened, read and closed (a cache would only hold descriptors)
-            with rasterio.open(self.paths[t]) as src:
-                src.read(1, window=win, out=out[i])
+        with no_sidecars(self.sidecar_free):
+            for i, t in enumerate(range(t0, t1)):
+                # one file per step: opened, read and closed (a cache would only hold descriptors)
+                with rasterio.open(self.paths[t]) as src:
+                    src.read(1, window=win, out=out[i])
         return out

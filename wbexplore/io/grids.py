@@ -29,7 +29,7 @@ from pyproj import CRS
 from ..errors import InputError, UnitError
 from ..temporal import _apply_weights_xarray
 from ..units import parse_flux_unit, parse_storage_unit
-from .blocks import BlockReader, GeoTIFFBlocks, NetCDFBlocks
+from .blocks import BlockReader, GeoTIFFBlocks, NetCDFBlocks, no_sidecars, only_series_files
 from .catalog import SourceSpec
 
 __all__ = ["SourceGrid", "open_source", "month_index", "short_crs", "TARGET_CHUNK_BYTES"]
@@ -516,13 +516,13 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
     return da, crs, None, blocks
 
 
-def _read_band(path: str, decoded_dtype: str | None) -> np.ndarray:
+def _read_band(path: str, decoded_dtype: str | None, sidecar_free: bool = False) -> np.ndarray:
     """Band 1 of one file of a series as a (1, y, x) block (a dask task): stored values, or (with
     ``decoded_dtype``) decoded step by step as rioxarray's ``mask_and_scale=True`` decodes a band
     (masked read, filled with NaN in the decoded type, then ``* scale + offset`` in that type)."""
     import rasterio
 
-    with rasterio.open(path) as src:
+    with no_sidecars(sidecar_free), rasterio.open(path) as src:
         if decoded_dtype is None:
             return src.read(1)[None]
         out = np.ma.filled(src.read(1, masked=True).astype(decoded_dtype), np.nan)
@@ -559,21 +559,25 @@ def _uniform_series(spec: SourceSpec, items, open_one):
 
     ref = profile(paths[0], 0)
     same_nodata = (lambda a, b: a == b or (a is not None and b is not None and np.isnan(a) and np.isnan(b)))
-    for k, p in enumerate(paths[1:], start=1):
-        pr = profile(p, k)
-        if pr[0] != 1:
-            _fail(spec, f"expected single-band files in a date-named series, found {pr[0]} bands", p)
-        if pr[1] != ref[1] or not pr[2].almost_equals(ref[2]):
-            _fail(spec, "grid differs from the series' first file", p)
-        if pr[3] != ref[3] or not same_nodata(pr[4], ref[4]) or pr[5:] != ref[5:]:
-            return None
+    sidecar_free = only_series_files(paths)
+    with no_sidecars(sidecar_free):
+        for k, p in enumerate(paths[1:], start=1):
+            pr = profile(p, k)
+            if pr[0] != 1:
+                _fail(spec, f"expected single-band files in a date-named series, found {pr[0]} bands", p)
+            if pr[1] != ref[1] or not pr[2].almost_equals(ref[2]):
+                _fail(spec, "grid differs from the series' first file", p)
+            if pr[3] != ref[3] or not same_nodata(pr[4], ref[4]) or pr[5:] != ref[5:]:
+                return None
     if "_Unsigned" in first.attrs or "_Unsigned" in first.encoding:
         return None  # rioxarray reinterprets the stored type: the per-file path
     blocks = _geotiff_blocks(paths, [first.isel(band=0, drop=True)])
+    if blocks is not None:
+        blocks.sidecar_free = sidecar_free
     ny, nx = first.sizes["y"], first.sizes["x"]
     decoded = None if spec.declares_packing else first.dtype.str
     name = "wbx-series-" + __import__("uuid").uuid4().hex
-    dsk = {(name, i, 0, 0): (_read_band, str(p), decoded) for i, p in enumerate(paths)}
+    dsk = {(name, i, 0, 0): (_read_band, str(p), decoded, sidecar_free) for i, p in enumerate(paths)}
     data = dsa.Array(dsk, name, chunks=((1,) * len(paths), (ny,), (nx,)), dtype=first.dtype)
     da = xr.DataArray(data, dims=("band", "y", "x"),
                       coords={"band": pd.Index([t for t, _ in items], name="band"), "y": first["y"].values,
