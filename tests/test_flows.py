@@ -215,6 +215,12 @@ def test_incremental_area_in_a_projected_crs(tmp_path):
     ({"OUT": OUT_BOX}, {"OUT": "OUT"}, ["cycle", "OUT -> OUT"]),
     ({"OUT": OUT_BOX, "UP": (1.0, 1.0, 2.0, 2.0)}, {"UP": "OUT"}, ["'downstream_field'", "'UP'", "sticks out",
                                                                     "km2", "50.0%"]),
+    # a basin inside another upstream basin declared as draining to the outlet (skip-level): its outflow is
+    # already inside the other's gauged Q and would enter the outlet's incremental unit twice
+    ({"OUT": OUT_BOX, "UP": UP_BOX, "IN": (-0.8, 1.2, -0.2, 2.0)}, {"UP": "OUT", "IN": "OUT"},
+     ["'downstream_field'", "'UP'", "'IN'", "both drain to 'OUT'", "overlap", "km2", "100.0%"]),
+    ({"OUT": OUT_BOX, "UP": UP_BOX, "SIDE": (-0.5, 1.2, 0.5, 2.0)}, {"UP": "OUT", "SIDE": "OUT"},
+     ["'UP'", "'SIDE'", "overlap", "50.0%"]),  # same latitudes: half of SIDE's width, geodesically too
 ])
 def test_bad_nesting_refused(tmp_path, boxes, drains, words):
     from wbexplore.io.catalog import BasinSpec
@@ -376,3 +382,18 @@ def test_version_1_series_bitwise_as_before_flows(tmp_path):
         else:
             assert a.tolist() == b.tolist(), name
         assert ds[name].attrs == ref[name].attrs, name
+
+
+def test_siblings_apart_and_chained_nesting_accepted(tmp_path):
+    """Two upstream basins side by side, and a basin inside an upstream basin draining into that one (a
+    chain): accepted; each incremental unit subtracts only its direct upstream basins (pyproj.Geod areas)."""
+    from wbexplore.io.catalog import BasinSpec
+
+    boxes = {"OUT": OUT_BOX, "UP": UP_BOX, "IN": (-0.8, 1.2, -0.2, 2.0), "SIDE": (0.2, 1.0, 1.2, 2.5)}
+    write_nested_basins(tmp_path / "b.geojson", boxes, {"UP": "OUT", "IN": "UP", "SIDE": "OUT"})
+    spec = BasinSpec(path=tmp_path / "b.geojson", id_field="basin_id", downstream_field="drains_to")
+    read_basins(spec)
+    inc = incremental_basins(spec)
+    g = {k: geod_area_km2(shapely.box(*v)) for k, v in boxes.items()}
+    assert inc.loc["OUT", "area_km2"] == pytest.approx(g["OUT"] - g["UP"] - g["SIDE"], rel=1e-6)
+    assert inc.loc["UP", "area_km2"] == pytest.approx(g["UP"] - g["IN"], rel=1e-6)
