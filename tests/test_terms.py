@@ -226,3 +226,14 @@ def test_selection_file_records_flows_and_refuses_a_bad_one(tmp_path):
     doc["flows"] = [{"id": "up", "direction": "across"}]
     with pytest.raises(SelectionError, match=r"s.yaml: field 'flows.0.direction': 'across'"):
         _validate(doc, tmp_path / "s.yaml")
+
+
+def test_old_combination_arrays_refuse_a_series_with_flows():
+    """`combination_terms` (old arrays without a place for flows) refuses rather than leave them out."""
+    from wbexplore.balance.combos import combination_terms
+
+    ds, _ = synthetic_series(nb=2, nt=36)
+    with pytest.raises(InputError, match="flow_up"):
+        combination_terms(ds, "B0")
+    ids, P, ET, dS, Q = combination_terms(ds[[v for v in ds.data_vars if not v.startswith("flow_")]], "B0")
+    assert P.shape[0] == len(ids["P"]) and Q.shape == (36,)

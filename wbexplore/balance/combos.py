@@ -11,7 +11,7 @@ from .closure import Selection, _span
 from .engine import closure_arrays, combination_arrays, metrics_arrays, water_year
 from .metrics import METRICS, check_metric, sort_key
 from .options import ClosureOptions
-from .terms import SOURCE_COMPONENTS
+from .terms import SOURCE_COMPONENTS, flow_terms
 
 __all__ = ["RANK_TABLE_COLUMNS", "rank", "rank_all", "combination_terms", "best_selection", "best_scores", "long_term_all"]
 
@@ -24,12 +24,17 @@ def combination_terms(ds: xr.Dataset, basin: str | None, *, storage_change_metho
                       matched: bool = True, lag: int = 0, min_valid_fraction: float = 0.5, ensemble: bool = False):
     """Arrays for all combinations: P (nP, [nb,] T), ET (nE, ...), dS (nS, ...), Q ([nb,] T) and the ids.
 
-    Kept for old callers: a view of `closure_arrays` (flows are not in these arrays; use `closure_terms`).
+    Kept for old callers: a view of `closure_arrays`. These arrays have no place for flows, so a series
+    with flows is refused (its residual would silently leave them out); use `closure_terms`.
     """
+    flows = flow_terms(ds)
+    if flows:
+        raise InputError(f"combination_terms: the series has flows ({', '.join(t.name for t in flows)}) that "
+                         "these arrays cannot carry; use closure_terms")
     opts = ClosureOptions(storage_change=storage_change_method, matched=matched, lag=lag,
                           min_valid_fraction=min_valid_fraction, ensemble=ensemble)
     a = closure_arrays(ds, opts, basins=None if basin is None else [basin])
-    P, ET, dS, Q = (np.moveaxis(a[k], 1, 0) for k in ("P", "ET", "dS")) + (a["Q"],)
+    P, ET, dS, Q = tuple(np.moveaxis(a[k], 1, 0) for k in ("P", "ET", "dS")) + (a["Q"],)
     if basin is not None:
         P, ET, dS, Q = P[:, 0], ET[:, 0], dS[:, 0], Q[0]
     return a["ids"], P, ET, dS, Q
