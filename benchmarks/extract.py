@@ -12,7 +12,6 @@ one run, as medians; the ratios are what to read (the machine is small and noisy
 from __future__ import annotations
 
 import argparse
-import os
 import sys
 import tempfile
 import time

@@ -45,6 +45,12 @@ def test_rank_all_is_every_basins_ranking(study, capsys):
     rc, out, err = run_cli(["rank", cat, "--all", "--format", "json"], capsys)
     doc = json.loads(out)
     assert doc["basins"] == basins and {r["basin"] for r in doc["rows"]} == set(basins)
+    # the JSON carries every option that changes the numbers, and the caution
+    rc, out, err = run_cli(["rank", cat, "--basin", "SAR", "--format", "json", "--lag", "1",
+                            "--water-year-start", "10"], capsys)
+    doc = json.loads(out)
+    assert doc["options"]["lag"] == 1 and doc["options"]["water_year_start"] == 10
+    assert "Screening-level" in doc["caution"]
     rc, out, err = run_cli(["rank", cat, "--all"], capsys)
     assert rc == 0 and out.splitlines()[1].split()[:3] == ["basin", "unit", "rank"]
 

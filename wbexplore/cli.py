@@ -117,6 +117,12 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
 
 
+def _caution() -> str:
+    from .io.writers import CAUTION
+
+    return CAUTION
+
+
 def _parser() -> argparse.ArgumentParser:
     ap = _Parser(
         prog="wbexplore",
@@ -418,6 +424,7 @@ def _cmd_rank(args) -> int:
     elif args.format == "json":
         json.dump({**what, "by": args.by, "period": [df.attrs["start"], df.attrs["end"]],
                    "storage_change": args.storage_change, "matched": not args.unmatched,
+                   "options": json.loads(opts.to_json()), "caution": _caution(),
                    "rows": json.loads(df.to_json(orient="records"))}, sys.stdout, indent=1)
         print()
     else:
