@@ -79,3 +79,18 @@ def test_help_imports_neither_pandas_nor_pint(tiny):
     out, r = _run(["--help"], tiny.parent)
     assert out["rc"] == 0 and "extract" in r.stdout
     assert [m for m in ("pandas", "pint", "xarray", "numpy") if m in out["modules"]] == []
+
+
+def test_rank_from_a_warm_cache_imports_no_geotiff_stack(tmp_path):
+    """rank reads the series cache only: even for a catalog with a GeoTIFF product, neither rasterio nor
+    rioxarray is imported (xarray imports every backend when it has to guess the engine: ~0.6 s)."""
+    from utils import v1_study
+
+    cat = v1_study(tmp_path)
+    argv = ["rank", cat, "--basin", "A", "--min-valid", "6", "--format", "csv", "--cache-dir", tmp_path / "cache"]
+    first, r = _run(argv, tmp_path)  # builds the cache (reads the GeoTIFF)
+    assert first["rc"] == 0, r.stderr
+    assert "rasterio" in first["modules"]  # the test can see the GeoTIFF stack when it is there
+    out, r = _run(argv, tmp_path)
+    assert out["rc"] == 0, r.stderr
+    assert [m for m in NOT_FOR_NETCDF if m in out["modules"]] == []
