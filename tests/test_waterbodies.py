@@ -193,8 +193,14 @@ def test_catalog_reads_waterbodies(study, capsys):
     assert c.waterbodies.evaporation_source == "e_lake"
     assert c.waterbodies.storage_curve.level_units == "m"  # default: the level series' units
     assert {d / "lakes.gpkg", d / "levels.csv", d / "curves.csv"} <= set(c.input_paths())
-    rc, _out, err = run_cli(["check", p], capsys)
+    rc, out, err = run_cli(["check", p], capsys)
     assert rc == 0, err
+    # `check` lists both water bodies: level period of the daily file, curve ranges as written in curves.csv
+    assert "water bodies: 2 in lakes.gpkg" in out
+    vmax = float(_cone_curve_rows()["volume"].iloc[-1])  # hm3
+    lines = {ln.split()[0]: ln for ln in out.splitlines() if ln.startswith("  RES")}
+    assert "levels 2010-01 to 2011-06 (daily); curve 100 to 140 m, 0 to " in lines["RES1"]
+    assert lines["RES1"].endswith(f" to {vmax:g} hm3") and lines["RES2"].endswith("curve 40 to 60 m, 0 to 40 hm3")
 
 
 @pytest.mark.parametrize("change, words", [
