@@ -127,6 +127,31 @@ def _flow_cat(study, *, flows=None, boxes=None, drains=None):
 
 _B1 = (-1, 1, 1, 3)
 
+# a two-point storage curve per water body (level m, area km2, volume hm3), written low to high
+_CURVE = [("RES1", 10.0, 1.0, 0.0), ("RES1", 20.0, 1.5, 12.0)]
+
+
+def _wb_cat(study, *, lake_ids=("RES1",), levels=("RES1",), curve=_CURVE):
+    """A copy of the study's catalog (version 2) with a ``waterbodies`` block: one small lake inside B1
+    per id of ``lake_ids``, monthly levels (m) for each station of ``levels``, the curve rows ``curve``."""
+    import yaml
+
+    box_basins(study / "lakes.geojson", [(-0.2, 1.8, 0.2, 2.2)] * len(lake_ids), ids=list(lake_ids))
+    t = monthly("2001-01", 12)
+    pd.DataFrame({"date": t.strftime("%Y-%m-%d"), **{s: 15.0 for s in levels}}).to_csv(study / "levels.csv",
+                                                                                         index=False)
+    pd.DataFrame(curve, columns=["wb_id", "level", "area", "volume"]).to_csv(study / "curves.csv", index=False)
+    doc = yaml.safe_load((study / C).read_text())
+    doc["catalog_version"] = 2
+    doc["waterbodies"] = {"path": "lakes.geojson", "id_field": "basin_id", "name_field": "name",
+                          "level": {"path": "levels.csv", "layout": "wide", "time_field": "date", "units": "m"},
+                          "storage_curve": {"path": "curves.csv", "id_field": "wb_id", "level_field": "level",
+                                            "area_field": "area", "volume_field": "volume", "area_units": "km2",
+                                            "volume_units": "hm3"}}
+    p = study / "wb_catalog.yaml"
+    p.write_text(yaml.safe_dump(doc, sort_keys=False))
+    return p
+
 
 # (id, argv builder taking the study folder, words the message must contain)
 C = "catalog.yaml"
@@ -169,6 +194,16 @@ CASES = [
                                                                                                     2.5)},
                                                                          drains={"B2": "B1"})), "--out",
                                                str(d / "o.nc")], ["'B2'", "50.0%"]),
+    # water bodies (catalog version 2): the reader's refusals reach `check`
+    ("check level of unknown waterbody", lambda d: ["check", str(_wb_cat(d, levels=("RES1", "RES9")))],
+     ["levels.csv", "'RES9'", "not a water body of lakes.geojson"]),
+    ("check curve repeats a level", lambda d: ["check", str(_wb_cat(d, curve=_CURVE + [("RES1", 20.0, 2.0, 15.0)]))],
+     ["curves.csv", "line 4", "'RES1'", "repeats the level"]),
+    ("check curve volume decreases", lambda d: ["check", str(_wb_cat(d, curve=_CURVE + [("RES1", 25.0, 2.0, 9.0)]))],
+     ["curves.csv", "line 4", "'RES1'", "'volume' decreases"]),
+    ("check waterbody id is a basin id", lambda d: ["check", str(_wb_cat(d, lake_ids=("B1",), levels=("B1",),
+                                                                         curve=[("B1",) + r[1:] for r in _CURVE]))],
+     ["lakes.geojson", "'B1'", "id of a basin"]),
     # extract
     ("extract out folder missing", lambda d: ["extract", str(d / C), "--out", str(d / "no" / "o.nc")], ["no"]),
     ("extract out is a folder", lambda d: ["extract", str(d / C), "--out", str(d), "--force"], ["{study}"]),
@@ -271,3 +306,16 @@ def test_bad_input_exit_2_one_line_nothing_written(study, capsys, argv, expect):
     leftovers = [p for p in study.rglob("*") if p.name.endswith((".tmp", ".partial"))]
     assert not leftovers, leftovers
     assert os.path.isfile(study / C)
+
+
+def test_the_waterbody_catalog_of_the_table_is_good_and_check_lists_it(study, capsys):
+    """The rows above differ from this catalog by one edit each: unedited, `check` accepts it and lists the
+    water body with its level period and the curve's ranges as written in curves.csv (m, hm3)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        rc = main(["check", str(_wb_cat(study))])
+    cap = capsys.readouterr()
+    assert rc == 0, cap.err
+    assert "water bodies: 1 in lakes.geojson" in cap.out
+    line = next(ln for ln in cap.out.splitlines() if ln.strip().startswith("RES1 "))
+    assert "levels 2001-01 to 2001-12 (monthly)" in line and line.endswith("curve 10 to 20 m, 0 to 12 hm3"), line

@@ -193,8 +193,14 @@ def test_catalog_reads_waterbodies(study, capsys):
     assert c.waterbodies.evaporation_source == "e_lake"
     assert c.waterbodies.storage_curve.level_units == "m"  # default: the level series' units
     assert {d / "lakes.gpkg", d / "levels.csv", d / "curves.csv"} <= set(c.input_paths())
-    rc, _out, err = run_cli(["check", p], capsys)
+    rc, out, err = run_cli(["check", p], capsys)
     assert rc == 0, err
+    # `check` lists both water bodies: level period of the daily file, curve ranges as written in curves.csv
+    assert "water bodies: 2 in lakes.gpkg" in out
+    vmax = float(_cone_curve_rows()["volume"].iloc[-1])  # hm3
+    lines = {ln.split()[0]: ln for ln in out.splitlines() if ln.startswith("  RES")}
+    assert "levels 2010-01 to 2011-06 (daily); curve 100 to 140 m, 0 to " in lines["RES1"]
+    assert lines["RES1"].endswith(f" to {vmax:g} hm3") and lines["RES2"].endswith("curve 40 to 60 m, 0 to 40 hm3")
 
 
 @pytest.mark.parametrize("change, words", [
@@ -480,3 +486,52 @@ def test_end_of_month_state_needs_both_days_round_the_boundary():
     assert np.isnan(s[("L", pd.Timestamp("2012-02-01"))])  # 29 February present, 1 March not
     assert s[("L", pd.Timestamp("2012-03-01"))] == 0.5 * (v["2012-03-31"] + v["2012-04-01"])
     assert np.isnan(s[("L", pd.Timestamp("2012-04-01"))])  # the record ends before 1 May
+
+
+# ---- pipeline.waterbody_series --------------------------------------------------------------------
+
+def test_waterbody_series_against_a_hand_computation(study):
+    """Two prism lakes (constant area, so V = A (h - 10 m)): RES1 with monthly-mean levels (central
+    difference, (V[m+1] - V[m-1]) / 2), RES2 with daily levels rising 1 cm a day (end-of-month state = mean
+    of the month's last day and the next month's first day, so dS = days in the month (stdlib calendar) x
+    0.01 m x area). Worked by hand below, not through the package."""
+    from wbexplore.pipeline import waterbody_series
+
+    d, cat = study
+    pd.DataFrame({"wb_id": ["RES1"] * 3 + ["RES2"] * 3, "level": [10.0, 20.0, 30.0] * 2,
+                  "area": [2.0, 2.0, 2.0, 1.0, 1.0, 1.0], "volume": [0.0, 20.0, 40.0, 0.0, 10.0, 20.0]}
+                 ).to_csv(d / "curves.csv", index=False)  # km2, hm3: 2e6 and 1e6 m3 per m of level
+    days = pd.date_range("2001-01-01", "2001-04-30", freq="D")
+    res1 = pd.DataFrame({"wb": "RES1", "date": ["2001-01-01", "2001-02-01", "2001-03-01", "2001-04-01"],
+                         "h": [12.0, 13.0, 15.0, 18.0]})
+    res2 = pd.DataFrame({"wb": "RES2", "date": days.strftime("%Y-%m-%d"), "h": 10.0 + 0.01 * np.arange(days.size)})
+    pd.concat([res1, res2]).to_csv(d / "levels.csv", index=False)
+    cat["waterbodies"]["level"] = {"path": "levels.csv", "time_field": "date", "station_field": "wb",
+                                   "value_field": "h", "units": "m"}
+    ds = waterbody_series(_write(d, cat))
+    assert ds["level"].dims == ("waterbody", "time") and list(ds["waterbody"].values) == ["RES1", "RES2"]
+    assert list(pd.DatetimeIndex(ds["time"].values).strftime("%Y-%m")) == ["2001-01", "2001-02", "2001-03",
+                                                                            "2001-04"]
+    assert (ds["level"].attrs["units"], ds["volume"].attrs["units"], ds["storage_change"].attrs["units"]) == (
+        "m", "m3", "m3/month")
+    assert list(ds["state"].values) == ["monthly_mean", "end_of_month"]
+    assert list(ds["storage_change_method"].values) == ["central", "end_of_month"]
+    assert ds["storage_change"].attrs["storage_change"] == "per water body"
+    nan = np.nan
+    # RES1: V = 2e6 (h - 10): 4e6, 6e6, 10e6, 16e6 m3; central: (10e6 - 4e6) / 2, (16e6 - 6e6) / 2
+    np.testing.assert_allclose(ds["volume"].sel(waterbody="RES1").values, [4e6, 6e6, 10e6, 16e6], rtol=1e-12)
+    np.testing.assert_allclose(ds["storage_change"].sel(waterbody="RES1").values, [nan, 3e6, 5e6, nan], rtol=1e-12)
+    # RES2: end of January = mean of days 30 and 31 (0-based) = 10.305 m; no end state for April (no 1 May)
+    np.testing.assert_allclose(ds["level"].sel(waterbody="RES2").values, [10.305, 10.585, 10.895, nan], rtol=1e-12)
+    exp = [nan] + [calendar.monthrange(2001, m)[1] * 0.01 * 1e6 for m in (2, 3)] + [nan]  # 280000, 310000 m3
+    np.testing.assert_allclose(ds["storage_change"].sel(waterbody="RES2").values, exp, rtol=1e-9)
+    # the same catalog with only monthly levels: one state, the chosen method in the attributes
+    lv = pd.concat([res1, res1.assign(wb="RES2")])
+    lv.to_csv(d / "levels.csv", index=False)
+    back = waterbody_series(_write(d, cat), method="backward")
+    assert back["storage_change"].attrs["storage_change"] == "backward"
+    assert back["storage_change"].attrs["state"] == "monthly_mean"
+    np.testing.assert_allclose(back["storage_change"].sel(waterbody="RES2").values, [nan, 1e6, 2e6, 3e6], rtol=1e-12)
+    with pytest.raises(InputError, match="'sideways'"):
+        waterbody_series(_write(d, cat), method="sideways")
+

@@ -197,6 +197,11 @@ def _cmd_check(args) -> int:
 
     cat = open_catalog(args.catalog)
     basins = load_basins(cat)
+    waterbodies = None
+    if cat.waterbodies is not None:  # read (and refused) before anything is printed
+        from .io.waterbodies import read_waterbodies
+
+        waterbodies = read_waterbodies(cat, basin_ids=basins.index)
     print(f"{cat.title}\n{cat.path}")
     print(f"basins: {len(basins)} in {cat.basins.path.name} "
           f"({basins['area_km2'].min():,.0f} to {basins['area_km2'].max():,.0f} km2)")
@@ -213,6 +218,10 @@ def _cmd_check(args) -> int:
         print("discharge: none (closure metrics need it)")
     _print_flows(cat, basins)
     _print_nesting(cat, basins)
+    if waterbodies is not None:
+        print(f"water bodies: {len(waterbodies.outlines)} in {cat.waterbodies.path.name}")
+        for line in waterbodies.summary():
+            print(f"  {line}")
     rows = [open_source(s).summary() for s in cat.sources]
     cols = ["id", "component", "units", "step", "grid", "period", "crs", "incomplete", "label"]
     width = {c: max(len(c), *(len(str(r[c])) for r in rows)) for c in cols}

@@ -34,7 +34,7 @@ from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
 
 __all__ = ["extract", "load_series", "check_scheduler", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE",
            "source_vars", "valid_var", "default_cache_dir", "load_basins", "load_incremental_basins", "warn_implausible",
-           "ImplausibleValueWarning", "flow_vars"]
+           "ImplausibleValueWarning", "flow_vars", "waterbody_series"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
 
@@ -474,4 +474,73 @@ def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.Pat
     ds = _cache.cached_series(cat, build, cache_dir=cache_dir, use_cache=use_cache, options=options)
     if not built:
         warn_implausible(ds)  # a cache hit names the masked values again, from their attributes
+    return ds
+
+
+def waterbody_series(catalog: Catalog | str | os.PathLike, *, method: str = "central") -> xr.Dataset:
+    """The catalog's water bodies as monthly series of level, volume and storage change (no P or E yet).
+
+    Each water body's storage comes from the levels `wbexplore.io.waterbodies.Waterbodies.levels_by_state`
+    gives it: end-of-month levels where its level series is daily, monthly-mean levels otherwise. Levels go
+    through its storage curve (`wbexplore.balance.storage.level_volumes`) and the volumes into
+    `wbexplore.balance.storage.volume_storage_change`, the one place that knows storage-change methods.
+
+    Parameters
+    ----------
+    catalog : Catalog or path
+        A catalog with a ``waterbodies`` block.
+    method : {"central", "backward", "forward"}
+        Storage-change method for water bodies with monthly-mean levels (end-of-month volumes are always
+        differenced month by month: the difference of two end states is the month's own change).
+
+    Returns
+    -------
+    xarray.Dataset
+        Dims ``(waterbody, time)``, month-start stamps: ``level`` (m), ``volume`` (m3) and ``storage_change``
+        (m3/month). Coordinates ``state`` (waterbody: "end_of_month" or "monthly_mean"),
+        ``storage_change_method`` (waterbody: "end_of_month" or ``method``), ``waterbody_name`` and
+        ``waterbody_area_km2`` (outline, geodesic). The variables' ``state`` and ``storage_change`` attributes
+        hold the common value, or "per water body" when the water bodies differ (see the coordinates).
+
+    Raises
+    ------
+    InputError
+        Everything `wbexplore.io.waterbodies.read_waterbodies` refuses; an unknown ``method``.
+
+    Warns
+    -----
+    LevelOutsideCurveWarning
+        A level outside its curve: that month's volume (and the storage changes that need it) are empty.
+    """
+    from .balance.storage import level_volumes, volume_kernel, volume_storage_change
+    from .io.waterbodies import read_waterbodies
+
+    volume_kernel("monthly_mean", method)  # refuses an unknown method even where every series is daily
+    cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
+    wb = read_waterbodies(cat)
+    curves = wb.curve_callables()
+    parts = []
+    for state, levels in wb.levels_by_state().items():
+        vol = level_volumes(levels, curves)
+        dS = volume_storage_change(vol, method=method)
+        n = levels.sizes["waterbody"]
+        parts.append(xr.Dataset(
+            {"level": levels, "volume": vol, "storage_change": dS},
+            coords={"state": ("waterbody", [state] * n),
+                    "storage_change_method": ("waterbody", [dS.attrs["storage_change"]] * n)}))
+    ds = xr.concat(parts, dim="waterbody", join="outer", combine_attrs="drop")
+    ids = [str(w) for w in wb.outlines.index]
+    ds = ds.reindex(waterbody=ids)
+    ds = ds.assign_coords(waterbody_name=("waterbody", [str(n) for n in wb.outlines["name"]]),
+                          waterbody_area_km2=("waterbody", wb.outlines["area_km2"].to_numpy(float)))
+    states = sorted(set(ds["state"].values.tolist()))
+    methods = sorted(set(ds["storage_change_method"].values.tolist()))
+    state = states[0] if len(states) == 1 else "per water body"
+    how = methods[0] if len(methods) == 1 else "per water body"
+    ds["level"].attrs = {"units": "m", "state": state, "long_name": "water level the volume is read at"}
+    ds["volume"].attrs = {"units": "m3", "state": state, "long_name": "water-body volume from level"}
+    ds["storage_change"].attrs = {"units": "m3/month", "state": state, "storage_change": how,
+                                  "long_name": "water-body storage change"}
+    ds["waterbody_area_km2"].attrs = {"units": "km2"}
+    ds.attrs = {"title": cat.title, "wbexplore_version": __version__}
     return ds
