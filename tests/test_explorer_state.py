@@ -178,7 +178,8 @@ def test_incremental_only_for_basins_with_upstream_basins(nested_state):
     assert s.unit == "incremental" and s.unit_series() is s.incremental_series
     s.basin = "VEU"  # innermost: no incremental unit; the switch falls back and is disabled
     assert s.unit == "whole" and ex.w_unit.value == "whole" and ex.w_unit.disabled
-    s.unit = "incremental"
+    with pytest.raises(InputError, match="'VEU' has no upstream basin"):  # a script is told, not given whole
+        s.unit = "incremental"
     assert s.unit == "whole" and s.unit_series() is s.series
     s.basin = "SAR"
     assert not ex.w_unit.disabled

@@ -90,7 +90,11 @@ class ClosureState(param.Parameterized):
     @param.depends("unit", watch=True)
     def _unit_needs_upstream(self) -> None:
         if self.unit == "incremental" and not self.has_incremental:
-            self.unit = "whole"  # the switch is disabled for such a basin; a script setting it gets whole back
+            # the page's switch is disabled for such a basin; a script asking for it is told, not served the
+            # whole basin under the name of an incremental unit
+            self.unit = "whole"
+            raise InputError(f"basin {self.basin!r} has no upstream basin: it has no incremental unit "
+                             "(the unit stays 'whole')")
 
     def unit_series(self):
         """The canonical series of the chosen balance unit (whole basins or incremental units)."""
