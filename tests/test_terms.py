@@ -237,3 +237,16 @@ def test_old_combination_arrays_refuse_a_series_with_flows():
         combination_terms(ds, "B0")
     ids, P, ET, dS, Q = combination_terms(ds[[v for v in ds.data_vars if not v.startswith("flow_")]], "B0")
     assert P.shape[0] == len(ids["P"]) and Q.shape == (36,)
+
+
+def test_selection_mirrors_the_closure_options():
+    """`Selection` carries the option fields of `ClosureOptions` (besides basin and sources) with the same
+    defaults: one drifting from the other would score a selection differently from its ranking row."""
+    from dataclasses import MISSING, fields
+
+    opts = {f.name: f.default for f in fields(ClosureOptions)}
+    mirrored = {f.name: f.default for f in fields(Selection) if f.name in opts}
+    assert mirrored and all(mirrored[k] == opts[k] for k in mirrored), (mirrored, opts)
+    assert all(f.default is not MISSING for f in fields(Selection) if f.name in opts)
+    sel = Selection("B0", "P0", "ET0", "TWSA0")
+    assert sel.options() == ClosureOptions()
