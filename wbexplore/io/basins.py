@@ -226,9 +226,7 @@ def _nesting(spec: BasinSpec, native: gpd.GeoDataFrame, ids: list[str]) -> tuple
         if part.is_empty or part.area <= 0:
             outside[u] = 0.0
             continue
-        part = _polygonal(part) if part.geom_type not in ("Polygon", "MultiPolygon") else part
-        sub = gpd.GeoDataFrame(geometry=[part, gu], crs=native.crs, index=[u, u])
-        a_out, a_u = geodesic_area_m2(_to_lonlat(spec, sub, [u, u])) / 1e6
+        a_out, a_u = _areas_km2(spec, native, [part, gu], [u, u])
         outside[u] = float(a_out)
         share = a_out / a_u if a_u > 0 else 1.0
         if share > MAX_OUTSIDE_SHARE:
@@ -237,6 +235,13 @@ def _nesting(spec: BasinSpec, native: gpd.GeoDataFrame, ids: list[str]) -> tuple
                              f"{100 * MAX_OUTSIDE_SHARE:g}% is accepted and clipped)")
     _siblings_apart(spec, native, drains)
     return drains, outside
+
+
+def _areas_km2(spec: BasinSpec, native: gpd.GeoDataFrame, geoms, ids) -> np.ndarray:
+    """Geodesic areas (km2) of shapes in the basin file's CRS (pieces of basins: a difference or an
+    intersection may hold lines or points, which are dropped); ``ids`` name them in messages."""
+    sub = gpd.GeoDataFrame(geometry=[_polygonal(g) for g in geoms], crs=native.crs, index=list(ids))
+    return geodesic_area_m2(_to_lonlat(spec, sub, list(ids))) / 1e6
 
 
 def _siblings_apart(spec: BasinSpec, native: gpd.GeoDataFrame, drains: dict) -> None:
@@ -254,9 +259,7 @@ def _siblings_apart(spec: BasinSpec, native: gpd.GeoDataFrame, drains: dict) -> 
                 both = shapely.intersection(ga, gb)
                 if both.is_empty or both.area <= 0:
                     continue
-                both = _polygonal(both) if both.geom_type not in ("Polygon", "MultiPolygon") else both
-                sub = gpd.GeoDataFrame(geometry=[both, ga, gb], crs=native.crs, index=[a, a, b])
-                a_both, a_a, a_b = geodesic_area_m2(_to_lonlat(spec, sub, [a, a, b])) / 1e6
+                a_both, a_a, a_b = _areas_km2(spec, native, [both, ga, gb], [a, a, b])
                 share = a_both / min(a_a, a_b) if min(a_a, a_b) > 0 else 1.0
                 if share > MAX_SIBLING_OVERLAP:
                     raise InputError(
