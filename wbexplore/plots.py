@@ -51,8 +51,6 @@ COLORS = {"P": "#0072B2", "ET": "#009E73", "Q": "#56B4E9", "dS": "#CC79A7", "res
 SEASON_COLORS = {"DJF": "#0072B2", "MAM": "#009E73", "JJA": "#E69F00", "SON": "#CC79A7"}
 UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s"}
 ERROR_METRICS = ("rmse", "mae", "annual_rmse")  # smaller is better: the map's colours are reversed for them
-TERMS = ("P", "ET", "Q", "dS", "residual")
-ROLES = ("inflow", "outflow", "outflow", "storage", "imbalance")
 
 
 def _terms(result):
@@ -62,9 +60,17 @@ def _terms(result):
     from .balance.terms import BASE_TERMS
 
     rows = getattr(result, "terms", None) or BASE_TERMS
+    base = {t.name for t in BASE_TERMS}
     f = result.frame
-    return tuple(t for t in rows if t.name in ("P", "ET", "Q", "dS") or t.name not in f
-                 or f[t.name].fillna(0.0).ne(0.0).any())
+    return tuple(t for t in rows if t.name in base or t.name not in f or f[t.name].fillna(0.0).ne(0.0).any())
+
+
+def _bar_columns(rows) -> dict:
+    """Name, colour and role of one bar per term (in the term table's order), then the residual's."""
+    terms = [t.name for t in rows] + ["residual"]
+    return {"term": terms, "color": [COLORS.get(k, COLORS["flow"]) for k in terms],
+            "role": ["storage" if t.storage else ("inflow" if t.sign > 0 else "outflow") for t in rows]
+            + ["imbalance"]}
 
 
 def _balance_label(result, *, without_q: bool = False) -> str:
@@ -143,9 +149,11 @@ class BarsPlot(_Plot):
     def _build(self, width):
         from bokeh.models import ColumnDataSource, HoverTool, VBar
 
-        self.src = ColumnDataSource({"term": list(TERMS), "value": [0.0] * len(TERMS),
-                                     "color": [COLORS[k] for k in TERMS], "role": list(ROLES)})
-        self.fig = fig = _figure(width=width, height=280, x_range=list(TERMS))
+        from .balance.terms import BASE_TERMS
+
+        cols = _bar_columns(BASE_TERMS)
+        self.src = ColumnDataSource({**cols, "value": [0.0] * len(cols["term"])})
+        self.fig = fig = _figure(width=width, height=280, x_range=list(cols["term"]))
         _add(fig, VBar(x="term", top="value", width=0.8, fill_color={"field": "color"}, line_color=None), self.src)
         _zero_line(fig)
         fig.add_tools(HoverTool(tooltips=[("term", "@term"), ("value", "@value{0.00}"), ("role", "@role")]))
@@ -154,13 +162,11 @@ class BarsPlot(_Plot):
     def update(self, result, unit_system: str = "mm") -> None:
         f = to_unit_system(result.frame, result.area_km2, unit_system)
         ok = result.frame["valid"].values
-        rows = _terms(result)
-        terms = [t.name for t in rows] + ["residual"]
-        roles = ["storage" if t.storage else ("inflow" if t.sign > 0 else "outflow") for t in rows] + ["imbalance"]
+        cols = _bar_columns(_terms(result))
+        terms = cols["term"]
         if list(self.fig.x_range.factors) != terms:  # flows add bars (P and inflows in; ET, Q, outflows out)
             self.fig.x_range.factors = terms
-        self.src.data = {"term": terms, "value": [float(f.loc[ok, k].mean()) if ok.any() else 0.0 for k in terms],
-                         "color": [COLORS.get(k, COLORS["flow"]) for k in terms], "role": roles}
+        self.src.data = {**cols, "value": [float(f.loc[ok, k].mean()) if ok.any() else 0.0 for k in terms]}
         self.fig.yaxis.axis_label = f"mean over valid months ({UNIT_LABEL[unit_system]})"
         self.fig.title.text = _nodata(result) or f"Component means, {result.n_valid} valid months"
 
