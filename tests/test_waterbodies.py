@@ -535,3 +535,27 @@ def test_waterbody_series_against_a_hand_computation(study):
     with pytest.raises(InputError, match="'sideways'"):
         waterbody_series(_write(d, cat), method="sideways")
 
+
+
+def test_flow_into_a_waterbody_is_not_a_basin_flow(study, capsys):
+    # DESIGN.md: inflows and outflows of a water body are `flows` entries whose `basin` is its id. Such a flow
+    # enters the water body's balance only: `check` lists it, and the basin series do not carry it.
+    d, cat = study
+    pd.DataFrame({"date": DAYS.strftime("%Y-%m-%d"), "IN-1": 2.0}).to_csv(d / "inflow.csv", index=False)
+    cat["flows"] = [{"id": "feeder", "basin": "RES1", "direction": "in", "path": "inflow.csv", "layout": "wide",
+                     "time_field": "date", "station": "IN-1", "units": "m3/s", "label": "Feeder stream"}]
+    p = _write(d, cat)
+    rc, out, err = run_cli(["check", p], capsys)
+    assert rc == 0, err
+    row = [ln for ln in out.splitlines() if ln.strip().startswith("feeder")]
+    assert row and "RES1" in row[0] and "in" in row[0].split()
+    from wbexplore.pipeline import extract, split_flows
+
+    to_basins, to_waterbodies = split_flows(open_catalog(p))
+    assert (to_basins, [f.id for f in to_waterbodies]) == ((), ["feeder"])
+    ds = extract(p, use_cache=False)
+    assert not [v for v in ds.data_vars if v.startswith("flow_")]
+    # a flow naming neither a basin nor a water body is still refused, naming the id
+    cat["flows"][0]["basin"] = "RES9"
+    rc, out, err = run_cli(["check", _write(d, cat)], capsys)
+    assert rc == 2 and "RES9" in err and len(err.strip().splitlines()) == 1

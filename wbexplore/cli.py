@@ -237,12 +237,21 @@ def _print_flows(cat, basins) -> None:
     if not cat.flows:
         return
     from .io.stations import read_flow_series
+    from .pipeline import split_flows
 
-    fds = read_flow_series(cat.flows, basins["area_km2"], catalog=cat.path)
+    to_basins, to_waterbodies = split_flows(cat)
+    fds = read_flow_series(to_basins, basins["area_km2"], catalog=cat.path) if to_basins else None
+    wds = None
+    if to_waterbodies:  # a flow into a lake or reservoir: a depth over its outline
+        from .io.waterbodies import read_waterbody_outlines
+
+        wds = read_flow_series(to_waterbodies, read_waterbody_outlines(cat.waterbodies)["area_km2"],
+                               catalog=cat.path)
     print(f"flows: {len(cat.flows)}")
     rows = []
     for f in cat.flows:
-        v = fds[f.var].sel(basin=f.basin)
+        src = wds if f in to_waterbodies else fds
+        v = src[f.var].sel(basin=f.basin)
         has = v.notnull().values
         t = v["time"].values.astype("datetime64[M]")
         rows.append({"id": f.id, "basin": f.basin, "direction": f.direction, "station": f.station,

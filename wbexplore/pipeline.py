@@ -195,7 +195,8 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
         gdf = gdf.loc[list(basins)]
     specs: list[SourceSpec] = [cat.source(s) for s in sources] if sources else list(cat.sources)
     # flows are read before any product: a flow naming an unknown basin or station fails at once
-    flows = read_flow_series(cat.flows, load_basins(cat)["area_km2"], catalog=cat.path) if cat.flows else None
+    basin_flows = split_flows(cat)[0]
+    flows = read_flow_series(basin_flows, load_basins(cat)["area_km2"], catalog=cat.path) if basin_flows else None
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be at least 1, got {workers}")
     from contextlib import ExitStack
@@ -330,8 +331,8 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta, *, incremental: bool = F
             if name != "discharge":
                 ds[name] = qds[name].reindex(time=full, fill_value=0.0)
                 ds[name].attrs = dict(qds[name].attrs)
-    if flows is None and cat.flows:
-        flows = read_flow_series(cat.flows, whole["area_km2"], catalog=cat.path)
+    if flows is None and split_flows(cat)[0]:
+        flows = read_flow_series(split_flows(cat)[0], whole["area_km2"], catalog=cat.path)
     if incremental:
         _incremental_terms(ds, cat, whole, gdf, qds["discharge"] if q is not None else None, full, flows)
     elif flows is not None:
@@ -444,6 +445,15 @@ def _incremental_terms(ds: xr.Dataset, cat: Catalog, whole, units, q_whole, full
                           "long_name": f"outflow of upstream basin {whole.loc[u, 'name']}", "units": "mm/month",
                           "station": station, "basin": target, "upstream_basin": u,
                           "source_units": cat.discharge.units}
+
+
+def split_flows(cat: Catalog) -> tuple[tuple, tuple]:
+    """`wbexplore.io.waterbodies.split_flows`: (basin flows, water-body flows); imported when called."""
+    if cat.waterbodies is None:
+        return tuple(cat.flows), ()
+    from .io.waterbodies import split_flows as split
+
+    return split(cat)
 
 
 def _station_of(cat: Catalog, basin: str) -> str:

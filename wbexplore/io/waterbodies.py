@@ -202,6 +202,17 @@ def read_levels(spec: WaterbodySpec, waterbody_ids) -> tuple[xr.DataArray, xr.Da
     return mean_da, end_da
 
 
+def split_flows(catalog: Catalog) -> tuple[tuple, tuple]:
+    """(basin flows, water-body flows) of the catalog's ``flows``: a flow whose ``basin`` is a water-body id
+    enters that water body's balance and no basin series; every other flow is a basin's (the basin reader
+    refuses an id that is neither). Reads the outline file only when the catalog has water bodies."""
+    flows = tuple(catalog.flows)
+    if catalog.waterbodies is None or not flows:
+        return flows, ()
+    ids = {str(i) for i in read_waterbody_outlines(catalog.waterbodies).index}
+    return tuple(f for f in flows if f.basin not in ids), tuple(f for f in flows if f.basin in ids)
+
+
 def check_distinct_ids(waterbody_ids, basin_ids, *, path) -> None:
     """Refuse a water-body id that is also a basin id (ids are unique across both; DESIGN.md)."""
     basins = {str(b) for b in basin_ids}
