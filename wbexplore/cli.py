@@ -328,7 +328,7 @@ def _no_distributed_probe():
 
 def _cmd_extract(args) -> int:
     from .io.catalog import open_catalog
-    from .io.writers import atomic_path, check_output
+    from .io.writers import check_output, write_netcdf
     from .pipeline import extract
 
     # refused before the (long) extraction: an existing file without --force, and always an input of the catalog
@@ -336,8 +336,8 @@ def _cmd_extract(args) -> int:
     check_output(args.out, overwrite=args.force, protect=cat)
     ds = extract(args.catalog, scheduler=args.scheduler, workers=args.workers, progress=not args.quiet,
                  cache_dir=args.cache_dir)
-    with atomic_path(args.out, overwrite=args.force, protect=cat) as tmp, _no_distributed_probe():
-        ds.to_netcdf(tmp, format="NETCDF4")
+    with _no_distributed_probe():
+        write_netcdf(ds, args.out, overwrite=args.force, protect=cat, time_step="month")
     print(f"wrote {args.out}: {ds.sizes['basin']} basins x {ds.sizes['time']} months, "
           f"{len([v for v in ds.data_vars if ds[v].attrs.get('role') == 'source'])} sources")
     return 0

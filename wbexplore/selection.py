@@ -27,7 +27,7 @@ from .balance.storage import METHODS
 from .balance.terms import BASE_TERMS, SOURCE_COMPONENTS, balance_text
 from .errors import InputError, ReplayMismatch, SelectionError
 from .io.catalog import Catalog, file_sha256, open_catalog
-from .io.writers import CAUTION, atomic_path, check_output, same_file
+from .io.writers import CAUTION, atomic_path, cf_ready, check_output, same_file, write_netcdf
 from .io.yamlsafe import load_yaml
 
 __all__ = ["SELECTION_VERSION", "export_selection", "selection_document", "load_selection", "replay",
@@ -577,17 +577,12 @@ def series_dataset(result, *, doc: dict | None = None):
     }
     if doc:
         ds.attrs["catalog_sha256"] = doc["catalog"]["sha256"]
+    ds = ds.assign_coords(basin=((), str(sel.basin), {"long_name": "basin identifier"}))
     for v in ds.variables:
-        if v not in ("time",):
-            ds[v].encoding = {}
-    return ds
+        ds[v].encoding = {}
+    return cf_ready(ds, time_step=None)  # the bounds are the month's, built above
 
 
 def write_series_netcdf(result, path, *, doc: dict | None = None, overwrite: bool = False, protect=None) -> Path:
     """Write `series_dataset` as CF netCDF-4; ``protect`` as for `write_series_csv`."""
-    ds = series_dataset(result, doc=doc)
-    with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
-        ds.to_netcdf(tmp, format="NETCDF4", encoding={"time": {"units": "days since 1970-01-01", "dtype": "float64"},
-                                                       "time_bnds": {"units": "days since 1970-01-01",
-                                                                     "dtype": "float64"}})
-    return Path(path)
+    return write_netcdf(series_dataset(result, doc=doc), path, overwrite=overwrite, protect=protect)

@@ -9,6 +9,10 @@ only on success) and therefore through `check_output`, which refuses, even when 
 - a new file whose name matches a product's glob pattern (it would silently join that product);
 - a target that is a folder, a device, a FIFO, a socket or anything else that is not a regular file, or a
   symlink to one of those (replacing them is never what ``--force`` means).
+
+Every netCDF file wbexplore writes goes through `write_netcdf`, which makes the Dataset CF-1.8 ready with
+`cf_ready` (the one place that knows what CF asks of our outputs) and writes it atomically; `read_netcdf`
+reads such a file back into the in-memory form.
 """
 
 from __future__ import annotations
@@ -25,7 +29,8 @@ from pathlib import Path
 
 from ..errors import InputError
 
-__all__ = ["CAUTION", "atomic_path", "check_output", "same_file", "terminate_unwinds"]
+__all__ = ["CAUTION", "CF_STANDARD_NAMES", "atomic_path", "cf_ready", "check_output", "read_netcdf", "same_file",
+           "terminate_unwinds", "write_netcdf"]
 
 CAUTION = ("Screening-level analysis: results depend on the products and gauges used and carry their errors. "
            "For water-allocation, flood or drought decisions, defer to gauged data, local codes and "
@@ -201,3 +206,190 @@ def atomic_path(path: str | os.PathLike, *, overwrite: bool = False, protect=Non
                 os.unlink(tmp)
             except OSError:
                 pass
+
+
+# --------------------------------------------------------------------------- CF-1.8 netCDF
+#: CF standard names of the balance components, by the units family the values are stored in. Only names that
+#: exist in the CF standard-name table and whose canonical units the stored units convert to (checked against
+#: the table bundled with ``compliance-checker`` and against UDUNITS by ``cf_units`` in tests/test_cf.py).
+#: Deliberately absent: ET as a depth (the table has ``water_evapotranspiration_amount`` in kg m-2 only, no
+#: ``lwe_thickness_of_`` form), storage anomaly, storage change, discharge as a depth and the residual (no CF
+#: name), and every flux stored as ``mm/month``: a UDUNITS "month" is a fixed 1/12 year, so a rate standard name
+#: would invite a conversion that is wrong for every calendar month (the values are calendar-month totals).
+CF_STANDARD_NAMES = {("P", "mm"): "lwe_thickness_of_precipitation_amount"}
+
+_TIME_UNITS = "days since 1970-01-01"  # month starts are whole days: exact in float64
+_TIME_CALENDAR = "proleptic_gregorian"  # what xarray writes by default; CF-1.8 section 4.4.1
+_INSTANCE_ID = "{}_id"  # on file, the time-series instance variable (cf_role timeseries_id) is <dim>_id
+
+
+def _bounds_names(ds) -> set:
+    return {str(v.attrs["bounds"]) for v in ds.variables.values() if "bounds" in v.attrs}
+
+
+def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None):
+    """A copy of ``ds`` that `xarray.Dataset.to_netcdf` writes as CF-1.8 (numbers unchanged; idempotent).
+
+    What it does (CF-1.8 section in brackets):
+
+    - ``time`` (datetime64) is written as float64 ``days since 1970-01-01``, calendar ``proleptic_gregorian``,
+      with ``standard_name = "time"``, ``axis = "T"`` and a ``long_name`` [2.2, 4.4]; with ``time_step`` (a
+      `wbexplore.temporal.STEPS` name, e.g. ``"month"``) and no bounds yet, ``time_bnds`` (period start, exclusive
+      end) are added [7.1];
+    - no ``_FillValue`` on coordinates or bounds [2.5.1, 7.1];
+    - the time-series instance dimension ``instance`` (the basins): its string labels are written as the
+      variable ``<instance>_id`` (``cf_role = "timeseries_id"``), since a coordinate variable must be numeric and
+      monotonic; a scalar ``<instance>`` coordinate (one selected basin) is renamed the same way; then
+      ``featureType = "timeSeries"`` [9, appendix H.2];
+    - a ``long_name`` on every variable that has neither ``long_name`` nor ``standard_name`` (its ``label``, or its
+      name) [3.2];
+    - ``ancillary_variables`` of ``X`` lists ``sigma_X`` (standard error, same units; its ``standard_name`` is
+      ``"<X's standard name> standard_error"`` when X has one) and ``valid_fraction_X`` when they exist [3.4,
+      appendix C];
+    - a ``standard_name`` from `CF_STANDARD_NAMES` on variables whose ``component`` and ``units`` match and that
+      have none [3.3]; ``Conventions = "CF-1.8"``.
+
+    Units attributes are left as they are: the canonical series' ``mm/month`` is valid UDUNITS and the schema's
+    spelling (`wbexplore.series.FLOW_UNITS`), so the project's reader keeps reading it. No
+    ``standard_name_vocabulary`` is written (the checker would try to download that table version).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Series to write (not modified).
+    instance : str, keyword-only
+        Name of the time-series instance dimension or scalar coordinate (default ``"basin"``).
+    time_step : str or None, keyword-only
+        Time step of ``time`` (``"month"`` for the canonical series) to add its bounds; None: no bounds added.
+
+    Returns
+    -------
+    xarray.Dataset
+        The CF-ready copy, with the encodings set on its variables.
+    """
+    import numpy as np
+
+    out = ds.copy(deep=False)
+    for v in out.variables.values():
+        v.attrs = dict(v.attrs)
+        v.encoding = dict(v.encoding)
+    out.attrs = dict(ds.attrs)
+    vid = _INSTANCE_ID.format(instance)
+    if instance in out.dims and instance in out.indexes and out[instance].dtype.kind in "OUS":
+        keep = {k: v for k, v in out[instance].attrs.items() if k not in ("cf_role",)}
+        labels = np.asarray(out[instance].values).astype(str).astype(object)
+        out = out.drop_vars(instance)
+        out = out.assign_coords({vid: (instance, labels, keep)})
+    elif instance in out.coords and out[instance].ndim == 0 and vid not in out.variables:
+        out = out.rename_vars({instance: vid})
+    if vid in out.variables:
+        out[vid].attrs.setdefault("long_name", f"{instance} identifier")
+        out[vid].attrs["cf_role"] = "timeseries_id"
+        out[vid].encoding.pop("_FillValue", None)
+        if "time" in out.dims:
+            out.attrs["featureType"] = "timeSeries"
+    if "time" in out.variables and np.issubdtype(out["time"].dtype, np.datetime64):
+        t = out["time"]
+        for k in ("units", "calendar"):
+            t.attrs.pop(k, None)
+        t.attrs.setdefault("long_name", "time")
+        t.attrs.update(standard_name="time", axis="T")
+        if time_step is not None and "bounds" not in t.attrs and "time" in out.dims:
+            from ..temporal import period_ends
+
+            starts = out.indexes["time"]
+            out["time_bnds"] = (("time", "nv"), np.stack([starts.values, period_ends(starts, time_step).values],
+                                                         axis=1))
+            out["time"].attrs["bounds"] = "time_bnds"
+        tb = out["time"].attrs.get("bounds")
+        for n in ["time"] + ([tb] if tb in out.variables else []):
+            var = out.variables[n]
+            for k in ("units", "calendar"):
+                var.attrs.pop(k, None)
+            var.encoding.update(units=_TIME_UNITS, calendar=_TIME_CALENDAR, dtype="float64")
+    bounds = _bounds_names(out)
+    for n, var in out.variables.items():
+        if n in out.coords or n in bounds:
+            var.encoding["_FillValue"] = None
+        if n in bounds:
+            var.encoding["coordinates"] = None  # bounds are the coordinate's metadata: no coordinates of their own
+            continue
+        if "long_name" not in var.attrs and "standard_name" not in var.attrs:
+            var.attrs["long_name"] = str(var.attrs.get("label") or str(n).replace("_", " "))
+    for n in list(out.data_vars):
+        attrs = out[n].attrs
+        std = CF_STANDARD_NAMES.get((attrs.get("component"), attrs.get("units")))
+        if std and "standard_name" not in attrs:
+            attrs["standard_name"] = std
+    for n in list(out.data_vars):
+        attrs = out[n].attrs
+        linked = [a for a in (f"sigma_{n}", f"valid_fraction_{n}") if a in out.data_vars]
+        if not linked:
+            continue
+        have = str(attrs.get("ancillary_variables", "")).split()
+        attrs["ancillary_variables"] = " ".join(have + [a for a in linked if a not in have])
+        sig = f"sigma_{n}"
+        if sig in out.data_vars and "standard_name" in attrs and "standard_name" not in out[sig].attrs:
+            out[sig].attrs["standard_name"] = f"{attrs['standard_name']} standard_error"
+    out.attrs["Conventions"] = "CF-1.8"
+    return out
+
+
+def write_netcdf(ds, path: str | os.PathLike, *, overwrite: bool = False, protect=None,
+                 instance: str = "basin", time_step: str | None = None) -> Path:
+    """Write ``ds`` as CF-1.8 netCDF-4 (`cf_ready`) through `atomic_path`: the one netCDF writer of wbexplore.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Series to write (not modified); values are written as they are (float64 stays float64).
+    path : path-like
+        Output file.
+    overwrite, protect : keyword-only
+        As for `atomic_path` (``--force``; the catalog whose inputs must never be replaced).
+    instance, time_step : keyword-only
+        As for `cf_ready`.
+
+    Returns
+    -------
+    pathlib.Path
+        ``path``.
+
+    Examples
+    --------
+    >>> write_netcdf(series, "out.nc", protect=catalog, time_step="month")  # doctest: +SKIP
+    """
+    ready = cf_ready(ds, instance=instance, time_step=time_step)
+    with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
+        ready.to_netcdf(tmp, format="NETCDF4", engine="netcdf4")
+    return Path(path)
+
+
+def read_netcdf(path: str | os.PathLike, *, instance: str = "basin"):
+    """Read a file written by `write_netcdf` back into memory, the instance labels as the ``instance`` index.
+
+    The inverse of `cf_ready` for the values: ``<instance>_id`` along the ``instance`` dimension becomes the
+    ``instance`` index coordinate again (a scalar ``<instance>_id`` stays as it is); times decode to datetime64.
+
+    Parameters
+    ----------
+    path : path-like
+        A netCDF file.
+    instance : str, keyword-only
+        As for `cf_ready`.
+
+    Returns
+    -------
+    xarray.Dataset
+        Loaded into memory (the file is closed).
+    """
+    import xarray as xr
+
+    with xr.open_dataset(path, engine="netcdf4") as f:
+        ds = f.load()
+    vid = _INSTANCE_ID.format(instance)
+    if vid in ds.variables and ds[vid].dims == (instance,) and instance not in ds.variables:
+        attrs = {k: v for k, v in ds[vid].attrs.items() if k != "cf_role"}
+        labels = ds[vid].values.astype(str)
+        ds = ds.drop_vars(vid).assign_coords({instance: (instance, labels, attrs)})
+    return ds
