@@ -336,8 +336,12 @@ def _cmd_extract(args) -> int:
     check_output(args.out, overwrite=args.force, protect=cat)
     ds = extract(args.catalog, scheduler=args.scheduler, workers=args.workers, progress=not args.quiet,
                  cache_dir=args.cache_dir)
+    from .cache import load_basins
+    from .io.basins import representative_points
+
     with _no_distributed_probe():
-        write_netcdf(ds, args.out, overwrite=args.force, protect=cat, time_step="month")
+        write_netcdf(ds, args.out, overwrite=args.force, protect=cat, time_step="month",
+                     positions=representative_points(load_basins(cat)))
     print(f"wrote {args.out}: {ds.sizes['basin']} basins x {ds.sizes['time']} months, "
           f"{len([v for v in ds.data_vars if ds[v].attrs.get('role') == 'source'])} sources")
     return 0

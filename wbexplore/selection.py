@@ -179,7 +179,8 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
         if Path(series).suffix.lower() == ".csv":
             write_series_csv(res, series, unit_system=unit_system, overwrite=overwrite, protect=cat)
         else:
-            write_series_netcdf(res, series, doc=doc, overwrite=overwrite, protect=cat)
+            write_series_netcdf(res, series, doc=doc, overwrite=overwrite, protect=cat,
+                                positions=_positions(cat, incremental=incremental))
         written["series"] = str(series)
     with atomic_path(out, overwrite=overwrite, protect=cat) as tmp:
         tmp.write_text("# wbexplore selection file: replay with `wbexplore replay " + out.name + "`\n"
@@ -583,6 +584,17 @@ def series_dataset(result, *, doc: dict | None = None):
     return cf_ready(ds, time_step=None)  # the bounds are the month's, built above
 
 
-def write_series_netcdf(result, path, *, doc: dict | None = None, overwrite: bool = False, protect=None) -> Path:
-    """Write `series_dataset` as CF netCDF-4; ``protect`` as for `write_series_csv`."""
-    return write_netcdf(series_dataset(result, doc=doc), path, overwrite=overwrite, protect=protect)
+def _positions(cat, *, incremental: bool = False):
+    """A point inside each basin (or incremental unit) of ``cat``: the position of its series in CF files."""
+    from .cache import load_basins, load_incremental_basins
+    from .io.basins import representative_points
+
+    return representative_points(load_incremental_basins(cat) if incremental else load_basins(cat))
+
+
+def write_series_netcdf(result, path, *, doc: dict | None = None, overwrite: bool = False, protect=None,
+                        positions=None) -> Path:
+    """Write `series_dataset` as CF netCDF-4 (`wbexplore.io.writers.write_netcdf`); ``protect`` as for
+    `write_series_csv`; ``positions`` (a point inside the basin: lat, lon by basin id) as for `cf_ready`."""
+    return write_netcdf(series_dataset(result, doc=doc), path, overwrite=overwrite, protect=protect,
+                        positions=positions)

@@ -12,7 +12,7 @@ import shapely
 from ..errors import InputError
 from .catalog import BasinSpec
 
-__all__ = ["read_basins", "incremental_basins", "BasinRepairWarning", "geodesic_area_m2", "unwrap_lonlat",
+__all__ = ["read_basins", "incremental_basins", "representative_points", "BasinRepairWarning", "geodesic_area_m2", "unwrap_lonlat",
            "MAX_OUTSIDE_SHARE"]
 
 
@@ -80,6 +80,17 @@ def read_basins(spec: BasinSpec) -> gpd.GeoDataFrame:
         out["drains_to"] = pd.Series([drains.get(b) for b in ids], index=out.index, dtype=object)
         out["outside_km2"] = [outside.get(b, 0.0) for b in ids]
     return out
+
+
+def representative_points(gdf: gpd.GeoDataFrame) -> pd.DataFrame:
+    """A point inside each basin (`shapely.point_on_surface` of its lon/lat outline), in degrees.
+
+    The position CF asks of each time series (`wbexplore.io.writers.cf_ready`); not a centroid, which may
+    lie outside a crescent-shaped basin. Returns a frame indexed like ``gdf`` with columns ``lat``, ``lon``.
+    """
+    geoms = gdf.to_crs("EPSG:4326").geometry.values if gdf.crs is not None else gdf.geometry.values
+    pts = shapely.point_on_surface(np.asarray(geoms, dtype=object))
+    return pd.DataFrame({"lat": shapely.get_y(pts), "lon": shapely.get_x(pts)}, index=gdf.index)
 
 
 def incremental_basins(spec: BasinSpec) -> gpd.GeoDataFrame:

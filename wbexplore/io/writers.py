@@ -227,7 +227,7 @@ def _bounds_names(ds) -> set:
     return {str(v.attrs["bounds"]) for v in ds.variables.values() if "bounds" in v.attrs}
 
 
-def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None):
+def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None, positions=None):
     """A copy of ``ds`` that `xarray.Dataset.to_netcdf` writes as CF-1.8 (numbers unchanged; idempotent).
 
     What it does (CF-1.8 section in brackets):
@@ -240,14 +240,15 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None):
     - the time-series instance dimension ``instance`` (the basins): its string labels are written as the
       variable ``<instance>_id`` (``cf_role = "timeseries_id"``), since a coordinate variable must be numeric and
       monotonic; a scalar ``<instance>`` coordinate (one selected basin) is renamed the same way; then
-      ``featureType = "timeSeries"`` [9, appendix H.2];
+      ``featureType = "timeSeries"`` [9, appendix H.2]; with ``positions``, each series' ``lat`` and ``lon``
+      (a point inside the basin: CF asks a time series for a position [9.5]);
     - a ``long_name`` on every variable that has neither ``long_name`` nor ``standard_name`` (its ``label``, or its
       name) [3.2];
     - ``ancillary_variables`` of ``X`` lists ``sigma_X`` (standard error, same units; its ``standard_name`` is
       ``"<X's standard name> standard_error"`` when X has one) and ``valid_fraction_X`` when they exist [3.4,
       appendix C];
     - a ``standard_name`` from `CF_STANDARD_NAMES` on variables whose ``component`` and ``units`` match and that
-      have none [3.3]; ``Conventions = "CF-1.8"``.
+      have none [3.3]; ``Conventions = "CF-1.8"``, and a ``title`` and ``history`` where missing [2.6.2].
 
     Units attributes are left as they are: the canonical series' ``mm/month`` is valid UDUNITS and the schema's
     spelling (`wbexplore.series.FLOW_UNITS`), so the project's reader keeps reading it. No
@@ -261,6 +262,14 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None):
         Name of the time-series instance dimension or scalar coordinate (default ``"basin"``).
     time_step : str or None, keyword-only
         Time step of ``time`` (``"month"`` for the canonical series) to add its bounds; None: no bounds added.
+    positions : pandas.DataFrame or None, keyword-only
+        Columns ``lat`` and ``lon`` (degrees north, east), indexed by the instance labels (e.g.
+        `wbexplore.io.basins.representative_points`); rows for every series. None: no position written.
+
+    Raises
+    ------
+    InputError
+        ``positions`` without a row for one of the series (naming it).
 
     Returns
     -------
@@ -282,6 +291,15 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None):
         out = out.assign_coords({vid: (instance, labels, keep)})
     elif instance in out.coords and out[instance].ndim == 0 and vid not in out.variables:
         out = out.rename_vars({instance: vid})
+    if vid in out.variables and positions is not None and "lat" not in out.variables:
+        labels = np.atleast_1d(np.asarray(out[vid].values).astype(str))
+        missing = [b for b in labels if b not in positions.index]
+        if missing:
+            raise InputError(f"{instance} {missing[0]!r}: no position (lat, lon) to write for it")
+        for axis, std, units in (("lat", "latitude", "degrees_north"), ("lon", "longitude", "degrees_east")):
+            vals = positions.loc[list(labels), axis].to_numpy(dtype=np.float64)
+            out = out.assign_coords({axis: (out[vid].dims, vals.reshape(out[vid].shape), {
+                "standard_name": std, "units": units, "long_name": f"{std} of a point inside the {instance}"})})
     if vid in out.variables:
         out[vid].attrs.setdefault("long_name", f"{instance} identifier")
         out[vid].attrs["cf_role"] = "timeseries_id"
@@ -332,11 +350,19 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None):
         if sig in out.data_vars and "standard_name" in attrs and "standard_name" not in out[sig].attrs:
             out[sig].attrs["standard_name"] = f"{attrs['standard_name']} standard_error"
     out.attrs["Conventions"] = "CF-1.8"
+    if not out.attrs.get("title"):
+        out.attrs["title"] = "wbexplore series"
+    if not out.attrs.get("history"):
+        import datetime as _dt
+
+        from .. import __version__
+
+        out.attrs["history"] = f"{_dt.datetime.now(_dt.timezone.utc):%Y-%m-%dT%H:%M:%SZ} wbexplore {__version__}"
     return out
 
 
 def write_netcdf(ds, path: str | os.PathLike, *, overwrite: bool = False, protect=None,
-                 instance: str = "basin", time_step: str | None = None) -> Path:
+                 instance: str = "basin", time_step: str | None = None, positions=None) -> Path:
     """Write ``ds`` as CF-1.8 netCDF-4 (`cf_ready`) through `atomic_path`: the one netCDF writer of wbexplore.
 
     Parameters
@@ -347,7 +373,7 @@ def write_netcdf(ds, path: str | os.PathLike, *, overwrite: bool = False, protec
         Output file.
     overwrite, protect : keyword-only
         As for `atomic_path` (``--force``; the catalog whose inputs must never be replaced).
-    instance, time_step : keyword-only
+    instance, time_step, positions : keyword-only
         As for `cf_ready`.
 
     Returns
@@ -359,7 +385,7 @@ def write_netcdf(ds, path: str | os.PathLike, *, overwrite: bool = False, protec
     --------
     >>> write_netcdf(series, "out.nc", protect=catalog, time_step="month")  # doctest: +SKIP
     """
-    ready = cf_ready(ds, instance=instance, time_step=time_step)
+    ready = cf_ready(ds, instance=instance, time_step=time_step, positions=positions)
     with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
         ready.to_netcdf(tmp, format="NETCDF4", engine="netcdf4")
     return Path(path)
