@@ -243,17 +243,23 @@ def test_cf_ready_keeps_its_input_and_is_idempotent(study):
 
 
 def test_cached_series_unchanged_by_the_cf_writer(study, tmp_path, recwarn):
-    """The cache keeps its own netCDF payload (never a CF output file): `CACHE_FORMAT` is unchanged, an entry
-    written before is read without a rebuild, and writing a CF file from the series does not alter them."""
-    from wbexplore.cache import CACHE_FORMAT, CacheRebuiltWarning
+    """The cache keeps its own netCDF payload, the in-memory form (``basin`` labels, no CF rewrite): what it
+    stores did not change, so `CACHE_FORMAT` needs no bump; an entry is read back without a rebuild, and writing
+    a CF file from the series does not alter them."""
+    import netCDF4
+
+    from wbexplore.cache import CacheRebuiltWarning
     from wbexplore.io.writers import write_netcdf
     from wbexplore.pipeline import load_series
 
-    assert CACHE_FORMAT == "wbx-cache-2"
     cache = tmp_path / "cache"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         first = load_series(study, cache_dir=cache)
+    (entry,) = cache.rglob("series-*.wbxc")
+    payload = entry.read_bytes().split(b"\n", 1)[1]  # one header line, then the netCDF payload (cache.py)
+    with netCDF4.Dataset("payload.nc", mode="r", memory=payload) as nc:
+        assert "basin" in nc.variables and "basin_id" not in nc.variables and "time_bnds" not in nc.variables
     kept = first.copy(deep=True)
     write_netcdf(first, tmp_path / "o.nc", time_step="month")
     xr.testing.assert_identical(first, kept)
