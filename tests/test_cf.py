@@ -268,3 +268,51 @@ def test_cached_series_unchanged_by_the_cf_writer(study, tmp_path, recwarn):
         warnings.simplefilter("error", CacheRebuiltWarning)
         again = load_series(study, cache_dir=cache)
     xr.testing.assert_identical(again, kept)
+
+
+# --------------------------------------------------------------------------- the helper other writers call
+def test_a_one_basin_result_with_uncertainties_passes_through_write_netcdf(study, tmp_path, offline):
+    """What an estimate or merge output looks like (one basin selected, a standard error per term) passes the
+    checker through `write_netcdf` alone, and reads back with the same numbers."""
+    from wbexplore.cache import load_basins
+    from wbexplore.io.basins import representative_points
+    from wbexplore.io.catalog import open_catalog
+    from wbexplore.io.writers import read_netcdf, write_netcdf
+
+    one = _series(study).sel(basin="B")  # a scalar `basin` coordinate is left by .sel
+    one["sigma_rain"] = 0.1 * one["rain"]
+    one["sigma_rain"].attrs = {"units": "mm/month"}
+    cat = open_catalog(study)
+    p = write_netcdf(one, tmp_path / "one.nc", positions=representative_points(load_basins(cat)), time_step="month")
+    bad = cf_failures(p)
+    assert bad["errors"] == bad["warnings"] == bad["exceptions"] == [], bad
+    back = read_netcdf(p)
+    assert str(back["basin_id"].values) == "B" and back["rain"].attrs["ancillary_variables"] == \
+        "sigma_rain valid_fraction_rain"
+    for n in one.data_vars:
+        np.testing.assert_array_equal(back[n].values, one[n].values)
+
+
+def test_positions_lie_inside_their_basins(study, extracted):
+    """The written lat/lon of each series is inside its basin outline (shapely, on the basin file itself)."""
+    import geopandas as gpd
+    import shapely
+
+    from wbexplore.io.writers import read_netcdf
+
+    back = read_netcdf(extracted)
+    gdf = gpd.read_file(study.parent / "basins.geojson").set_index("basin_id")
+    for b in back["basin"].values:
+        pt = shapely.Point(float(back["lon"].sel(basin=b)), float(back["lat"].sel(basin=b)))
+        assert gdf.geometry[b].contains(pt), b
+
+
+def test_positions_missing_a_basin_is_refused(study, tmp_path):
+    from wbexplore.errors import InputError
+    from wbexplore.io.writers import write_netcdf
+
+    ds = _series(study)
+    pos = pd.DataFrame({"lat": [1.0], "lon": [0.0]}, index=["A"])
+    with pytest.raises(InputError, match=r"x\.nc: basin 'B': no position"):
+        write_netcdf(ds, tmp_path / "x.nc", positions=pos)
+    assert not (tmp_path / "x.nc").exists() and not list(tmp_path.glob(".x.nc*"))

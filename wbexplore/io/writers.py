@@ -295,7 +295,7 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None, posit
         labels = np.atleast_1d(np.asarray(out[vid].values).astype(str))
         missing = [b for b in labels if b not in positions.index]
         if missing:
-            raise InputError(f"{instance} {missing[0]!r}: no position (lat, lon) to write for it")
+            raise InputError(f"{instance} {str(missing[0])!r}: no position (lat, lon) to write for it")
         for axis, std, units in (("lat", "latitude", "degrees_north"), ("lon", "longitude", "degrees_east")):
             vals = positions.loc[list(labels), axis].to_numpy(dtype=np.float64)
             out = out.assign_coords({axis: (out[vid].dims, vals.reshape(out[vid].shape), {
@@ -385,7 +385,10 @@ def write_netcdf(ds, path: str | os.PathLike, *, overwrite: bool = False, protec
     --------
     >>> write_netcdf(series, "out.nc", protect=catalog, time_step="month")  # doctest: +SKIP
     """
-    ready = cf_ready(ds, instance=instance, time_step=time_step, positions=positions)
+    try:
+        ready = cf_ready(ds, instance=instance, time_step=time_step, positions=positions)
+    except InputError as exc:
+        raise InputError(f"{path}: {exc}") from None
     with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
         ready.to_netcdf(tmp, format="NETCDF4", engine="netcdf4")
     return Path(path)
