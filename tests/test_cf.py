@@ -23,7 +23,6 @@ import pandas as pd
 import pytest
 import xarray as xr
 import yaml
-
 from utils import run_cli, v1_study
 
 FLOWS = [
@@ -172,9 +171,8 @@ def test_standard_names_exist_and_units_convert():
 
 
 def test_units_are_udunits_and_schema_spelling_is_kept(extracted):
-    from cf_units import Unit
-
     import netCDF4
+    from cf_units import Unit
 
     with netCDF4.Dataset(extracted) as nc:
         for name, var in nc.variables.items():

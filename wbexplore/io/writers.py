@@ -357,7 +357,7 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None, posit
 
         from .. import __version__
 
-        out.attrs["history"] = f"{_dt.datetime.now(_dt.timezone.utc):%Y-%m-%dT%H:%M:%SZ} wbexplore {__version__}"
+        out.attrs["history"] = f"{_dt.datetime.now(_dt.UTC):%Y-%m-%dT%H:%M:%SZ} wbexplore {__version__}"
     return out
 
 
