@@ -334,21 +334,23 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None, posit
             continue
         if "long_name" not in var.attrs and "standard_name" not in var.attrs:
             var.attrs["long_name"] = str(var.attrs.get("label") or str(n).replace("_", " "))
-    for n in list(out.data_vars):
-        attrs = out[n].attrs
+    names = [str(n) for n in out.data_vars]
+    vs = out.variables  # Variables, not DataArrays: one attrs dict each, nothing built per access
+    for n in names:
+        attrs = vs[n].attrs
         std = CF_STANDARD_NAMES.get((attrs.get("component"), attrs.get("units")))
         if std and "standard_name" not in attrs:
             attrs["standard_name"] = std
-    for n in list(out.data_vars):
-        attrs = out[n].attrs
-        linked = [a for a in (f"sigma_{n}", f"valid_fraction_{n}") if a in out.data_vars]
+    for n in names:
+        attrs = vs[n].attrs
+        linked = [a for a in (f"sigma_{n}", f"valid_fraction_{n}") if a in names]
         if not linked:
             continue
         have = str(attrs.get("ancillary_variables", "")).split()
         attrs["ancillary_variables"] = " ".join(have + [a for a in linked if a not in have])
         sig = f"sigma_{n}"
-        if sig in out.data_vars and "standard_name" in attrs and "standard_name" not in out[sig].attrs:
-            out[sig].attrs["standard_name"] = f"{attrs['standard_name']} standard_error"
+        if sig in names and "standard_name" in attrs and "standard_name" not in vs[sig].attrs:
+            vs[sig].attrs["standard_name"] = f"{attrs['standard_name']} standard_error"
     out.attrs["Conventions"] = "CF-1.8"
     if not out.attrs.get("title"):
         out.attrs["title"] = "wbexplore series"
