@@ -314,3 +314,30 @@ def test_positions_missing_a_basin_is_refused(study, tmp_path):
     with pytest.raises(InputError, match=r"x\.nc: basin 'B': no position"):
         write_netcdf(ds, tmp_path / "x.nc", positions=pos)
     assert not (tmp_path / "x.nc").exists() and not list(tmp_path.glob(".x.nc*"))
+
+
+def test_incremental_series_export_passes_and_its_position_is_in_the_unit(study, tmp_path, capsys, offline):
+    """The incremental unit (outer basin minus the inner one: a ring-like outline whose centroid may fall
+    outside it) gets a position inside the unit itself (shapely), and its file passes the checker."""
+    import geopandas as gpd
+    import shapely
+
+    from wbexplore.io.writers import read_netcdf
+
+    boxes = {"A": (-1.7, 0.2, 1.8, 2.8), "B": (-1.0, 0.6, 1.2, 2.4)}
+    gpd.GeoDataFrame({"basin_id": list(boxes), "name": ["Outer", "Inner"], "drains_to": [None, "A"]},
+                     geometry=[shapely.box(*b) for b in boxes.values()], crs="EPSG:4326").to_file(
+        study.parent / "basins.geojson", driver="GeoJSON")
+    doc = yaml.safe_load(study.read_text())
+    doc["basins"]["downstream_field"] = "drains_to"
+    study.write_text(yaml.safe_dump(doc, sort_keys=False))
+    out = tmp_path / "inc.nc"
+    rc, _o, err = run_cli(["export", study, "--basin", "A", "--incremental", "--P", "rain", "--ET", "evap",
+                           "--TWSA", "tws", "--out", tmp_path / "inc.yaml", "--series", out], capsys)
+    assert rc == 0, err
+    bad = cf_failures(out)
+    assert bad["errors"] == bad["warnings"] == bad["exceptions"] == [], bad
+    back = read_netcdf(out)
+    unit = shapely.box(*boxes["A"]).difference(shapely.box(*boxes["B"]))
+    assert not unit.contains(unit.centroid)  # the case where a centroid would be wrong
+    assert unit.contains(shapely.Point(float(back["lon"]), float(back["lat"])))

@@ -180,7 +180,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
             write_series_csv(res, series, unit_system=unit_system, overwrite=overwrite, protect=cat)
         else:
             write_series_netcdf(res, series, doc=doc, overwrite=overwrite, protect=cat,
-                                positions=_positions(cat, incremental=incremental))
+                                positions=_positions(cat, sel.basin, incremental=incremental))
         written["series"] = str(series)
     with atomic_path(out, overwrite=overwrite, protect=cat) as tmp:
         tmp.write_text("# wbexplore selection file: replay with `wbexplore replay " + out.name + "`\n"
@@ -584,12 +584,14 @@ def series_dataset(result, *, doc: dict | None = None):
     return cf_ready(ds, time_step=None)  # the bounds are the month's, built above
 
 
-def _positions(cat, *, incremental: bool = False):
-    """A point inside each basin (or incremental unit) of ``cat``: the position of its series in CF files."""
+def _positions(cat, basin: str, *, incremental: bool = False):
+    """A point inside ``basin`` (or its incremental unit): the position of its series in CF files; None for a
+    unit that is not among the catalog's basin outlines (a water body: its file is written without one)."""
     from .cache import load_basins, load_incremental_basins
     from .io.basins import representative_points
 
-    return representative_points(load_incremental_basins(cat) if incremental else load_basins(cat))
+    units = load_incremental_basins(cat) if incremental else load_basins(cat)
+    return representative_points(units.loc[[basin]]) if basin in units.index else None
 
 
 def write_series_netcdf(result, path, *, doc: dict | None = None, overwrite: bool = False, protect=None,

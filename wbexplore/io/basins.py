@@ -12,8 +12,8 @@ import shapely
 from ..errors import InputError
 from .catalog import BasinSpec
 
-__all__ = ["read_basins", "incremental_basins", "representative_points", "BasinRepairWarning", "geodesic_area_m2", "unwrap_lonlat",
-           "MAX_OUTSIDE_SHARE"]
+__all__ = ["read_basins", "incremental_basins", "representative_points", "BasinRepairWarning", "geodesic_area_m2",
+           "unwrap_lonlat", "MAX_OUTSIDE_SHARE"]
 
 
 class BasinRepairWarning(UserWarning):
