@@ -223,6 +223,19 @@ def test_collocation_of_three_is_triple_collocation_and_more_recover_known_error
     # four products: the known error variances within 5% (sampling sd of a variance at 20,000 samples ~1%,
     # collocation's own estimator adds about as much again)
     np.testing.assert_allclose(collocation_error_variances(X, list("abcd")), sd**2, rtol=0.05)
+    # without gaps, one covariance serves every triplet: the mean of triple_collocation over the triplets
+    # holding each product
+    trios = [(0, 1, 2), (0, 1, 3), (0, 2, 3), (1, 2, 3)]
+    per = {i: [] for i in range(4)}
+    for t in trios:
+        tc = triple_collocation(*X[list(t)], names=[str(i) for i in t])
+        for i in t:
+            per[i].append(tc[str(i)]["error_variance"])
+    np.testing.assert_allclose(collocation_error_variances(X, list("abcd")), [np.mean(per[i]) for i in range(4)],
+                               rtol=1e-9)
+    # a gap in one product: each triplet on its own common months, still the known variances
+    X[3, :500] = np.nan
+    np.testing.assert_allclose(collocation_error_variances(X, list("abcd")), sd**2, rtol=0.05)
 
 
 # --------------------------------------------------------------------------- the demo (errors known by construction)

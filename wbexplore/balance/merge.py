@@ -47,7 +47,7 @@ import xarray as xr
 from ..errors import InputError
 from ..series import source_ids, valid_fraction_name
 from .closure import Q_RELATIVE_ERROR
-from .collocation import triple_collocation
+from .collocation import collocation_from_covariance, triple_collocation
 from .correction import constrained_projection
 from .engine import ENSEMBLE_PREFIX, basin_ids
 from .options import ClosureOptions
@@ -122,14 +122,21 @@ def collocation_error_variances(stack, names, *, min_samples: int = MIN_COLLOCAT
     k = stack.shape[0]
     if k < 3:
         raise InputError(f"collocation needs at least 3 products, got {k}")
-    sums = np.zeros(k)
-    counts = np.zeros(k)
-    for trio in combinations(range(k), 3):
-        tc = triple_collocation(*stack[list(trio)], names=[str(i) for i in trio], min_samples=min_samples)
-        for i in trio:
-            sums[i] += tc[str(i)]["error_variance"]
-            counts[i] += 1
-    return sums / counts
+    finite = np.isfinite(stack)
+    common = np.all(finite, axis=0)
+    if k == 3 or not np.all(finite == finite[0]):
+        sums = np.zeros(k)
+        counts = np.zeros(k)
+        for trio in combinations(range(k), 3):  # each triplet on its own common valid months
+            tc = triple_collocation(*stack[list(trio)], names=[str(i) for i in trio], min_samples=min_samples)
+            for i in trio:
+                sums[i] += tc[str(i)]["error_variance"]
+                counts[i] += 1
+        return sums / counts
+    n = int(common.sum())  # every triplet has the same months: one covariance serves them all
+    if n < min_samples:
+        raise InputError(f"triple collocation needs at least {min_samples} common valid samples, got {n}")
+    return collocation_from_covariance(np.cov(stack[:, common]))
 
 
 def _stated(ds, sid, values) -> np.ndarray | None:
@@ -247,20 +254,18 @@ def _rows(values: dict, terms, options: ClosureOptions):
 def _pr_weights(x, G, T, terms) -> np.ndarray:
     """Proportional redistribution's weight of each unknown: the mean, over the rows that use it, of
     ``|term value in that row| / sum(coefficients of the term in that row ^ 2)``."""
-    Gd = G.toarray()
-    n_terms = len(terms)
-    w = np.zeros(x.size)
-    cnt = np.zeros(x.size)
+    coo = G.tocoo()
+    term = coo.col // T
     x0 = np.where(np.isfinite(x), x, 0.0)
-    for j in range(n_terms):
-        blk = Gd[:, j * T:(j + 1) * T]
-        mag = np.abs(blk @ x0[j * T:(j + 1) * T])  # |sign * term| per row
-        k2 = np.sum(blk**2, axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            per_row = np.where(k2 > 0, mag / k2, 0.0)
-        use = blk != 0
-        w[j * T:(j + 1) * T] = per_row @ use
-        cnt[j * T:(j + 1) * T] = use.sum(axis=0)
+    R = G.shape[0]
+    n_terms = len(terms)
+    key = coo.row * n_terms + term  # (row, term) pairs
+    value = np.bincount(key, weights=coo.data * x0[coo.col], minlength=R * n_terms)
+    k2 = np.bincount(key, weights=coo.data**2, minlength=R * n_terms)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        per = np.where(k2 > 0, np.abs(value) / k2, 0.0)
+    w = np.bincount(coo.col, weights=per[key], minlength=x.size)
+    cnt = np.bincount(coo.col, minlength=x.size)
     return np.where(cnt > 0, w / np.maximum(cnt, 1), 0.0)
 
 
