@@ -554,7 +554,7 @@ def _cmd_merge(args) -> int:
     merged = merge_products(ds, method=args.method, basins=None if args.all else [args.basin], options=opts)
     merged.attrs.update({"Conventions": "CF-1.8", "title": f"{cat.title}: merged best estimates ({args.method})",
                          "source": f"wbexplore {__version__} merge of catalog {Path(args.catalog).name}",
-                         "wbexplore_version": __version__})
+                         "wbexplore_version": __version__, "caution": _caution()})
     with atomic_path(args.out, overwrite=args.force, protect=cat) as tmp, _no_distributed_probe():
         merged.to_netcdf(tmp, format="NETCDF4", engine="netcdf4")
     worst = float(abs(merged["residual_after"]).max(skipna=True)) if merged["residual_after"].notnull().any() \

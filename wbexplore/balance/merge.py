@@ -339,10 +339,8 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
     ``merged_<flow>`` (adjusted station terms, mm/month) with standard errors; ``residual_before`` (the
     merged products with gauged Q, mm/month) and ``residual_after``; ``error_variance`` (basin, product; mm2;
     NaN where the variance varies by month, i.e. stated errors). Attributes name the method, the closure
-    form and the caution text.
+    form (the command line adds the caution text).
     """
-    from ..io.writers import CAUTION
-
     _check_method(method)
     opts = options or ClosureOptions()
     if opts.lag or opts.fill_gaps:
@@ -403,7 +401,7 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
             if not t.storage:
                 negative += int(np.sum(out[n][bi] < 0))
     return _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, products, err_src, terms,
-                    station, method, opts, q_relative_error, negative, CAUTION)
+                    station, method, opts, q_relative_error, negative)
 
 
 def _residual(values, terms, opts) -> np.ndarray:
@@ -417,7 +415,7 @@ def _residual(values, terms, opts) -> np.ndarray:
 
 
 def _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, products, err_src, terms, station,
-             method, opts, q_rel, negative, caution) -> xr.Dataset:
+             method, opts, q_rel, negative) -> xr.Dataset:
     what = MERGE_METHODS[method]
     form = (f"{opts.storage_change} storage difference against "
             f"{'window-matched' if opts.matched else 'raw monthly'} fluxes")
@@ -461,7 +459,7 @@ def _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, produc
     res = xr.Dataset(data, coords=coords)
     res.attrs = {"merge_method": method, "merge_method_description": what,
                  "closure_form": form, "closure_options": opts.to_json(), "q_relative_error": float(q_rel),
-                 "negative_flux_months": int(negative), "caution": caution,
+                 "negative_flux_months": int(negative),
                  "references": "Pan and Wood 2006 (constrained Kalman filter); Stoffelen 1998 and McColl et al. "
                                "2014 (collocation); Abolafia-Rosenzweig et al. 2021 (closure techniques compared)"}
     return res
