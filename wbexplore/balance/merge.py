@@ -100,7 +100,8 @@ def _products(ds: xr.Dataset, component: str) -> list[str]:
 
 
 def _stack(ds, ids, b, min_vf) -> np.ndarray:
-    """(products, time) values of basin index ``b``, months below the valid fraction missing."""
+    """(products, time) values of basin index ``b`` ((products, basins, time) for an index array), months below
+    the valid fraction missing."""
     out = []
     for s in ids:
         v = ds.variables[s].values[b].astype(np.float64)
@@ -139,8 +140,7 @@ def collocation_error_variances(stack, names, *, min_samples: int = MIN_COLLOCAT
     return collocation_from_covariance(np.cov(stack[:, common]))
 
 
-def _stated(ds, sid, values) -> np.ndarray | None:
-    a = ds.variables[sid].attrs
+def _stated(a: dict, values) -> np.ndarray | None:
     if a.get("relative_error") is None and a.get("absolute_error_mm") is None:
         return None
     rel = float(a.get("relative_error") or 0.0)
@@ -162,8 +162,15 @@ def product_error_variances(ds: xr.Dataset, component: str, basin: str, *, metho
     ids = _products(ds, component)
     b = basin_ids(ds).index(str(basin))
     X = _stack(ds, ids, b, min_valid_fraction)
+    attrs = [ds.variables[s].attrs for s in ids]
+    return X, _component_errors(X, ids, attrs, component=component, basin=basin, method=method,
+                                variances=variances, months=ds["time"].values)
+
+
+def _component_errors(X, ids, attrs, *, component, basin, method, variances, months) -> ComponentErrors:
+    """`ComponentErrors` of the (products, time) values ``X`` (the core of `product_error_variances`)."""
     where = f"basin {basin!r}: {component}"
-    stated = [_stated(ds, s, X[i]) for i, s in enumerate(ids)]
+    stated = [_stated(a, X[i]) for i, a in enumerate(attrs)]
     missing = [s for s, v in zip(ids, stated) if v is None]
     if variances is not None and ids and all(s in variances for s in ids):
         V = np.stack([np.full(X.shape[1], float(variances[s])) for s in ids])
@@ -188,13 +195,13 @@ def product_error_variances(ds: xr.Dataset, component: str, basin: str, *, metho
     bad = np.isfinite(X) & ~(np.isfinite(V) & (V > 0))
     if bad.any():
         i, t = np.argwhere(bad)[0]
-        month = "" if src in ("collocation", "given") else f" in {str(ds['time'].values[t])[:7]}"
+        month = "" if src in ("collocation", "given") else f" in {str(months[t])[:7]}"
         hint = (" (collocation sees no error in a scaled copy of the truth, and errors shared between products "
                 "or a short period push its estimate below zero; state errors in the catalog instead)"
                 if src == "collocation" else "")
         raise InputError(f"{where}: {src} error variance of product {ids[i]!r}{month} is {float(V[i, t]):.6g} "
                          f"mm2, not positive and finite{hint}")
-    return X, ComponentErrors(component, tuple(ids), src, V)
+    return ComponentErrors(component, tuple(ids), src, V)
 
 
 def inverse_variance_merge(values, variances) -> tuple:
@@ -371,13 +378,28 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
     err_var = np.full((len(wanted), len(products)), np.nan)
     err_src = {}
     negative = 0
+    b_all = np.array([all_ids.index(x) for x in wanted], dtype=np.intp)
+    stacks = {}
+    for c in SOURCE_COMPONENTS:  # (products, basins, time), read once
+        ids = _products(ds, c)
+        stacks[c] = (ids, [ds.variables[s].attrs for s in ids],
+                     _stack(ds, ids, b_all, opts.min_valid_fraction) if ids else np.zeros((0, len(wanted), T)))
+    station_values = {}
+    for t in station:
+        q = ds.variables[t.variable].values[b_all].astype(np.float64)
+        vf = valid_fraction_name(t.variable)
+        if vf in ds.variables:
+            q = np.where(ds.variables[vf].values[b_all] >= opts.min_valid_fraction, q, np.nan)
+        station_values[t.name] = q
+    months = ds["time"].values
     for bi, basin in enumerate(wanted):
-        b = all_ids.index(basin)
         vals, vars_ = {}, {}
         for t in terms:
             if t.gridded:
-                X, errs = product_error_variances(ds, t.component, basin, method=method,
-                                                  min_valid_fraction=opts.min_valid_fraction, variances=variances)
+                ids, attrs, stack = stacks[t.component]
+                X = stack[:, bi]
+                errs = _component_errors(X, ids, attrs, component=t.component, basin=basin, method=method,
+                                         variances=variances, months=months)
                 m, mv, n = inverse_variance_merge(X, errs.variance)
                 vals[t.name], vars_[t.name] = m, mv
                 counts[t.component][bi] = n
@@ -386,10 +408,7 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
                     for i, s in enumerate(errs.products):
                         err_var[bi, products.index(s)] = errs.variance[i, 0]
             else:
-                q = ds.variables[t.variable].values[b].astype(np.float64)
-                vf = valid_fraction_name(t.variable)
-                if vf in ds.variables:
-                    q = np.where(ds.variables[vf].values[b] >= opts.min_valid_fraction, q, np.nan)
+                q = station_values[t.name][bi]
                 vals[t.name], vars_[t.name] = q, (q_relative_error * q) ** 2
         adj, post, res, _rows_ = force_closure(vals, vars_, terms, opts, method=method)
         after = _residual(adj, terms, opts)
