@@ -87,19 +87,25 @@ def cli(repeat=5):
         subprocess.run(merge, check=True, capture_output=True, env=env)  # fills the series cache
 
         def run(c):
+            import resource
+
+            before = resource.getrusage(resource.RUSAGE_CHILDREN)
             t = time.perf_counter()
             subprocess.run(c, check=True, capture_output=True, env=env)
-            return time.perf_counter() - t
+            wall = time.perf_counter() - t
+            after = resource.getrusage(resource.RUSAGE_CHILDREN)
+            return wall, (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
 
         tm, tr, tv = [], [], []
         for _ in range(repeat):
             tm.append(run(merge))
             tr.append(run(rank))
             tv.append(run([sys.executable, "-m", "wbexplore.cli", "--version"]))
-    m, r, v = (statistics.median(x) for x in (tm, tr, tv))
-    print(f"whole process, 100 basins, warm series cache (medians of {repeat}): merge --all {m:.2f} s "
-          f"(target 5 s: {m / 5:.2f} of it), rank --all {r:.2f} s (merge / rank {m / r:.2f}), "
-          f"--version {v:.2f} s")
+    (m, mc), (r, rc), (v, vc) = ((statistics.median(a for a, _ in x), statistics.median(b for _, b in x))
+                                 for x in (tm, tr, tv))
+    print(f"whole process, 100 basins, warm series cache (medians of {repeat}): merge --all {m:.2f} s wall, "
+          f"{mc:.2f} s CPU (target 5 s: {m / 5:.2f}, CPU {mc / 5:.2f}); rank --all {r:.2f} s wall, {rc:.2f} s CPU "
+          f"(merge / rank {m / r:.2f}, CPU {mc / rc:.2f}); --version {v:.2f} s wall, {vc:.2f} s CPU")
 
 
 if __name__ == "__main__":
