@@ -13,11 +13,10 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from utils import box_basins, canonical_series, lonlat_grid, monthly, run_cli, one_line_error, write_catalog, write_nc
+from utils import box_basins, canonical_series, lonlat_grid, monthly, one_line_error, run_cli, write_catalog, write_nc
 from wbexplore.balance import ClosureOptions, closure_terms, constrained_correction, rank, triple_collocation
-from wbexplore.balance.merge import (MERGE_METHODS, collocation_error_variances, force_closure,
-                                     inverse_variance_merge, merge_products, proportional_redistribution,
-                                     with_merged)
+from wbexplore.balance.merge import (MERGE_METHODS, collocation_error_variances, force_closure, inverse_variance_merge,
+                                     merge_products, proportional_redistribution, with_merged)
 from wbexplore.balance.terms import BASE_TERMS, term_signs
 from wbexplore.errors import InputError
 
@@ -35,7 +34,7 @@ def _one_month():
 def test_proportional_redistribution_hand_case():
     values = _one_month()
     var = {k: np.ones(2) for k in values}
-    adj, post, res, rows = force_closure(values, var, BASE_TERMS, UNMATCHED_BACKWARD, method="pr")
+    adj, _, res, rows = force_closure(values, var, BASE_TERMS, UNMATCHED_BACKWARD, method="pr")
     # residual = P - ET - Q - dS = 100 - 60 - 30 - 4 = 6; magnitudes 100 + 60 + 30 + 4 = 194
     r, total = 6.0, 194.0
     assert res[1] == pytest.approx(r, abs=1e-12) and np.isnan(res[0]) and list(rows) == [1]
@@ -118,7 +117,7 @@ def test_posterior_variance_by_monte_carlo():
     projected errors with the posterior variance (within 3%: the sampling error of a variance at 20,000
     draws is about 1%)."""
     opts = ClosureOptions()
-    values, var = _series_case(T=8)
+    _, var = _series_case(T=8)
     names = [t.name for t in BASE_TERMS]
     T = 8
     n = 4 * T

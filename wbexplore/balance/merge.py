@@ -410,7 +410,7 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
             else:
                 q = station_values[t.name][bi]
                 vals[t.name], vars_[t.name] = q, (q_relative_error * q) ** 2
-        adj, post, res, _rows_ = force_closure(vals, vars_, terms, opts, method=method)
+        adj, post, res, _ = force_closure(vals, vars_, terms, opts, method=method)
         after = _residual(adj, terms, opts)
         res_before[bi], res_after[bi] = res, after
         for t in terms:
