@@ -158,6 +158,7 @@ def test_merged_budget_closes_in_the_engine_and_rank_takes_the_merged_sources(me
         assert a["ancillary_variables"] == f"merged_{c}_standard_error" and a["error_variance_source"] == "stated"
         assert (m[f"merged_{c}_standard_error"] > 0).all()
     assert m.attrs["merge_method"] == method and m.attrs["closure_form"].startswith(opts.storage_change)
+    assert all(v.attrs.get("merge_method") == method for v in m.data_vars.values())  # the variant, everywhere
     # the engine, fed the merged sources and the adjusted gauged terms, finds a zero residual
     closed = with_merged(ds, m)
     closed["discharge"] = (("basin", "time"), m["merged_Q"].values, dict(ds["discharge"].attrs))

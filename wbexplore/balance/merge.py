@@ -465,7 +465,8 @@ def _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, produc
             "units": units, "long_name": f"posterior standard error of {name} [{method}]", "merge_method": method})
         if t.gridded:
             data[f"{name}_count"] = (("basin", "time"), counts[t.component], {
-                "long_name": f"number of {t.component} products merged in the month", "units": "1"})
+                "long_name": f"number of {t.component} products merged in the month", "units": "1",
+                "merge_method": method})
     data["residual_before"] = (("basin", "time"), res_before, {
         "units": "mm/month", "long_name": f"residual of the merged products with gauged terms ({form})",
         "merge_method": method})
