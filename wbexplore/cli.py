@@ -1,4 +1,4 @@
-"""Command line: ``wbexplore demo | check | extract | rank | export | replay | report | serve``.
+"""Command line: ``wbexplore demo | check | extract | rank | export | replay | report | merge | serve``.
 
 Exit status 0 on success, 2 on bad input (one line naming the file, field or value),
 1 when ``replay`` finds different numbers. No partial output file is left behind.
@@ -117,6 +117,10 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
 
 
+# the techniques of `wbexplore.balance.merge.MERGE_METHODS` (spelled here so that --help imports no numpy)
+MERGE_METHOD_NAMES = ("pr", "ckf", "collocation")
+
+
 def _caution() -> str:
     from .io.writers import CAUTION
 
@@ -177,6 +181,24 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--by", default="rmse", metavar="METRIC")
     p.add_argument("--out", required=True, metavar="FILE.html")
     p.add_argument("--force", action="store_true")
+
+    p = sub.add_parser("merge", help="merged best estimates of P, ET and TWSA, budget forced to close (CF netCDF)")
+    p.add_argument("catalog", help="catalog YAML file")
+    g = p.add_mutually_exclusive_group(required=True)
+    g.add_argument("--basin", help="basin id")
+    g.add_argument("--all", action="store_true", help="every basin")
+    p.add_argument("--method", required=True, choices=list(MERGE_METHOD_NAMES),
+                   help="closure technique: pr (proportional redistribution), ckf (constrained Kalman filter), "
+                        "collocation (multiple collocation, then the filter)")
+    p.add_argument("--out", required=True, metavar="FILE.nc")
+    p.add_argument("--storage-change", default="central", choices=["central", "backward", "forward"],
+                   help="difference of TWSA monthly means the budget closes against (default central)")
+    p.add_argument("--unmatched", action="store_true",
+                   help="close against raw monthly fluxes (default: window-matched, as rank does)")
+    p.add_argument("--min-valid-fraction", type=_fraction, default=0.5, metavar="F",
+                   help="months where a product covers less of the basin are missing (default 0.5)")
+    p.add_argument("--cache-dir", metavar="DIR")
+    p.add_argument("--force", action="store_true", help="overwrite FILE")
 
     p = sub.add_parser("serve", help="the explorer as a web page")
     p.add_argument("catalog")
@@ -522,6 +544,32 @@ def _cmd_report(args) -> int:
     return 0
 
 
+def _cmd_merge(args) -> int:
+    from .balance import ClosureOptions
+    from .balance.merge import merge_products
+    from .io.catalog import open_catalog
+    from .io.writers import atomic_path, check_output
+
+    opts = ClosureOptions(storage_change=args.storage_change, matched=not args.unmatched,
+                          min_valid_fraction=args.min_valid_fraction)
+    cat = open_catalog(args.catalog)
+    check_output(args.out, overwrite=args.force, protect=cat)  # before the series are loaded
+    ds = _series(args)
+    merged = merge_products(ds, method=args.method, basins=None if args.all else [args.basin], options=opts)
+    merged.attrs.update({"Conventions": "CF-1.8", "title": f"{cat.title}: merged best estimates ({args.method})",
+                         "source": f"wbexplore {__version__} merge of catalog {Path(args.catalog).name}",
+                         "wbexplore_version": __version__, "caution": _caution()})
+    with atomic_path(args.out, overwrite=args.force, protect=cat) as tmp, _no_distributed_probe():
+        merged.to_netcdf(tmp, format="NETCDF4", engine="netcdf4")
+    worst = float(abs(merged["residual_after"]).max(skipna=True)) if merged["residual_after"].notnull().any() \
+        else float("nan")
+    print(f"wrote {args.out}: {merged.sizes['basin']} basin(s) x {merged.sizes['time']} months, method "
+          f"{args.method}; largest residual after closure {worst:.1e} mm/month")
+    if merged.attrs.get("negative_flux_months"):
+        print(f"note: {merged.attrs['negative_flux_months']} basin-months with a negative adjusted flux")
+    return 0
+
+
 def _cmd_serve(args) -> int:
     from .explorer.app import serve
 
@@ -557,7 +605,8 @@ def _copy_templates(out: Path) -> Path:
 
 
 _COMMANDS = {"demo": _cmd_demo, "check": _cmd_check, "extract": _cmd_extract, "rank": _cmd_rank,
-             "export": _cmd_export, "replay": _cmd_replay, "report": _cmd_report, "serve": _cmd_serve}
+             "export": _cmd_export, "replay": _cmd_replay, "report": _cmd_report, "merge": _cmd_merge,
+             "serve": _cmd_serve}
 
 
 def main(argv=None) -> int:

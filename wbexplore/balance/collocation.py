@@ -16,7 +16,7 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["triple_collocation"]
+__all__ = ["triple_collocation", "collocation_from_covariance"]
 
 
 def triple_collocation(*series, names=None, min_samples: int = 10) -> dict:
@@ -50,4 +50,24 @@ def triple_collocation(*series, names=None, min_samples: int = 10) -> dict:
             rho2 = Q[i, j] * Q[i, k] / (Q[i, i] * Q[j, k])
         out[names[i]] = {"error_variance": float(ev), "error_sd": float(np.sqrt(ev)) if ev > 0 else float("nan"),
                          "rho": float(np.sqrt(rho2)) if rho2 > 0 else float("nan"), "n": n}
+    return out
+
+
+def collocation_from_covariance(Q) -> np.ndarray:
+    """Error variance of each of k >= 3 products from their (k, k) sample covariance (units of the data, squared).
+
+    Each product's estimate is the mean of its triple-collocation estimates ``Q[i,i] - Q[i,j] Q[i,k] / Q[j,k]``
+    over every pair (j, k) of the other products (for k = 3: the covariance form of `triple_collocation`; for
+    more, a multiple-collocation estimate). The samples must be the same for every product (common valid months).
+    """
+    Q = np.asarray(Q, dtype=np.float64)
+    k = Q.shape[0]
+    if Q.shape != (k, k) or k < 3:
+        raise InputError(f"collocation needs at least 3 products, got {k}")
+    j, m = np.triu_indices(k, 1)
+    out = np.empty(k)
+    for i in range(k):
+        pair = (j != i) & (m != i)
+        a, b = j[pair], m[pair]
+        out[i] = np.mean(Q[i, i] - Q[i, a] * Q[i, b] / Q[a, b])
     return out

@@ -1,0 +1,502 @@
+"""Merged best estimates of P, ET and TWSA per basin and month, then a budget forced to close.
+
+Two steps, per basin (pure computation: series in, series out):
+
+1. **Merging.** The products of each component are combined month by month with inverse-error-variance
+   weights, ``x = sum(x_k / v_k) / sum(1 / v_k)``, ``var(x) = 1 / sum(1 / v_k)`` (independent errors; a month
+   uses the products that have it). The error variances ``v_k`` (mm2) are, in order: the errors the catalog
+   states for every product of the component (``relative_error``, ``absolute_error_mm``: what the analyst
+   knows wins, as for the uncertainty of one selection); else collocation where the component has at least
+   three products (triple collocation, Stoffelen 1998; with more, each product's estimate is the mean of its
+   triple-collocation estimates over every triplet that holds it: a multiple-collocation estimate); else the
+   merge is refused with the number of products. Method ``collocation`` takes collocation errors only (three
+   products or more for every component). Collocation estimates errors *after* a linear rescaling of each
+   product: a product that is a scaled copy of the truth (a multiplicative bias, a damped seasonal cycle) has
+   a collocation error near zero, and a sampling estimate at or below zero is refused, never floored.
+2. **Forced closure.** The merged P, ET, TWSA monthly means, the gauged Q and every gauged flow are moved,
+   as little as their weights allow, until the balance closes in the engine's own form
+   (`wbexplore.balance.engine`: window-matched fluxes against the storage difference, or raw fluxes when
+   not matched) in every month that has all its terms. The rows share unknowns (a month's TWSA enters two
+   storage differences; a matched flux three months), so the constraint is solved for the whole series at
+   once (`wbexplore.balance.correction.constrained_projection`). Techniques (after the comparison of
+   Abolafia-Rosenzweig et al. 2021, Remote Sensing of Environment; from memory):
+
+   ``pr``           proportional redistribution: each month's residual is split among its terms in proportion
+                    to their magnitudes (weights ``|term| / sum(kernel^2)``; for one month alone this is
+                    exactly ``term_k - sign_k * residual * |term_k| / sum |term_j|``). Error variances are
+                    carried through that linear map.
+   ``ckf``          the constrained Kalman filter (Pan and Wood 2006): weights are the error variances of
+                    step 1 and of gauged Q (`Q_RELATIVE_ERROR`); posterior ``C - C G' (G C G')^-1 G C``.
+   ``collocation``  multiple collocation for every component (no stated errors), then the filter.
+
+The merged series become sources: ``merged_P``, ``merged_ET``, ``merged_TWSA`` (``role="source"``) with
+``<name>_standard_error`` (mm/month; TWSA mm) as ancillary variables, beside the adjusted station terms
+``merged_Q`` and ``merged_<flow>`` (``role="merged_station"``). With those in place of the gauged ones, the
+engine's residual of the merged combination is zero (to rounding). `with_merged` adds the sources to a series
+so that `rank`, export and the explorer treat them like any product.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from itertools import combinations
+
+import numpy as np
+import xarray as xr
+
+from ..errors import InputError
+from ..series import source_ids, valid_fraction_name
+from .closure import Q_RELATIVE_ERROR
+from .collocation import collocation_from_covariance, triple_collocation
+from .correction import constrained_projection
+from .engine import ENSEMBLE_PREFIX, basin_ids
+from .options import ClosureOptions
+from .storage import match_window, storage_change
+from .terms import SOURCE_COMPONENTS, balance_terms
+
+__all__ = ["MERGE_METHODS", "MERGED_PREFIX", "MIN_COLLOCATION_MONTHS", "ComponentErrors", "merge_products",
+           "product_error_variances", "collocation_error_variances", "inverse_variance_merge", "force_closure",
+           "proportional_redistribution", "with_merged", "merged_name"]
+
+MERGE_METHODS = {
+    "pr": "proportional redistribution of the residual",
+    "ckf": "constrained Kalman filter (Pan and Wood 2006)",
+    "collocation": "multiple collocation, then the constrained Kalman filter",
+}
+MERGED_PREFIX = "merged_"
+# Fewer common months than this and collocation error variances are refused: with n samples the sampling
+# error of a variance is about sqrt(2 / n) of it (70% at 4 months, 29% at 24), common practice asks for years.
+MIN_COLLOCATION_MONTHS = 24
+
+
+def merged_name(term_or_component: str) -> str:
+    """Variable of a merged term (``merged_P``, ``merged_TWSA``, ``merged_Q``, ``merged_flow_<id>``)."""
+    return f"{MERGED_PREFIX}{term_or_component}"
+
+
+@dataclass(frozen=True)
+class ComponentErrors:
+    """Error variances of the products of one component in one basin.
+
+    component : "P" | "ET" | "TWSA"
+    products : product ids, in series order
+    source : "collocation" | "stated"
+    variance : (products, time) error variances, mm2 (mm/month squared for fluxes)
+    """
+
+    component: str
+    products: tuple
+    source: str
+    variance: np.ndarray
+
+
+def _check_method(method: str) -> None:
+    if method not in MERGE_METHODS:
+        raise InputError(f"merge method {method!r} is not one of {', '.join(MERGE_METHODS)}")
+
+
+def _products(ds: xr.Dataset, component: str) -> list[str]:
+    return [s for s in source_ids(ds, component) if not s.startswith((ENSEMBLE_PREFIX, MERGED_PREFIX))]
+
+
+def _stack(ds, ids, b, min_vf) -> np.ndarray:
+    """(products, time) values of basin index ``b`` ((products, basins, time) for an index array), months below
+    the valid fraction missing."""
+    out = []
+    for s in ids:
+        v = ds.variables[s].values[b].astype(np.float64)
+        vf = valid_fraction_name(s)
+        if vf in ds.variables:
+            v = np.where(ds.variables[vf].values[b] >= min_vf, v, np.nan)
+        out.append(v)
+    return np.stack(out)
+
+
+def collocation_error_variances(stack, names, *, min_samples: int = MIN_COLLOCATION_MONTHS) -> np.ndarray:
+    """Error variance (units of the data, squared) of each of three or more products by collocation.
+
+    Three products: triple collocation (`wbexplore.balance.collocation.triple_collocation`). More: the
+    mean, for each product, of its triple-collocation estimates over every triplet that holds it (a
+    multiple-collocation estimate; each triplet uses its own common valid months).
+    """
+    stack = np.asarray(stack, dtype=np.float64)
+    k = stack.shape[0]
+    if k < 3:
+        raise InputError(f"collocation needs at least 3 products, got {k}")
+    finite = np.isfinite(stack)
+    common = np.all(finite, axis=0)
+    if k == 3 or not np.all(finite == finite[0]):
+        sums = np.zeros(k)
+        counts = np.zeros(k)
+        for trio in combinations(range(k), 3):  # each triplet on its own common valid months
+            tc = triple_collocation(*stack[list(trio)], names=[str(i) for i in trio], min_samples=min_samples)
+            for i in trio:
+                sums[i] += tc[str(i)]["error_variance"]
+                counts[i] += 1
+        return sums / counts
+    n = int(common.sum())  # every triplet has the same months: one covariance serves them all
+    if n < min_samples:
+        raise InputError(f"triple collocation needs at least {min_samples} common valid samples, got {n}")
+    return collocation_from_covariance(np.cov(stack[:, common]))
+
+
+def _stated(a: dict, values) -> np.ndarray | None:
+    if a.get("relative_error") is None and a.get("absolute_error_mm") is None:
+        return None
+    rel = float(a.get("relative_error") or 0.0)
+    ab = float(a.get("absolute_error_mm") or 0.0)
+    return (rel * np.abs(values)) ** 2 + ab**2
+
+
+def product_error_variances(ds: xr.Dataset, component: str, basin: str, *, method: str = "ckf",
+                            min_valid_fraction: float = 0.5, variances: dict | None = None) -> tuple:
+    """(values, `ComponentErrors`) of the products of ``component`` in ``basin``.
+
+    ``values`` is (products, time) in mm/month (TWSA mm), months below ``min_valid_fraction`` missing.
+    ``variances`` (product id -> mm2, constant over time) overrides both collocation and stated errors.
+    Refusals (`InputError`, one line): no or too few products for collocation (with the count), too few
+    common months for collocation (with the minimum), and a variance that is not positive and finite where
+    the product has a value (naming the basin, product, month and value).
+    """
+    _check_method(method)
+    ids = _products(ds, component)
+    b = basin_ids(ds).index(str(basin))
+    X = _stack(ds, ids, b, min_valid_fraction)
+    attrs = [ds.variables[s].attrs for s in ids]
+    return X, _component_errors(X, ids, attrs, component=component, basin=basin, method=method,
+                                variances=variances, months=ds["time"].values)
+
+
+def _component_errors(X, ids, attrs, *, component, basin, method, variances, months) -> ComponentErrors:
+    """`ComponentErrors` of the (products, time) values ``X`` (the core of `product_error_variances`)."""
+    where = f"basin {basin!r}: {component}"
+    stated = [_stated(a, X[i]) for i, a in enumerate(attrs)]
+    missing = [s for s, v in zip(ids, stated) if v is None]
+    if variances is not None and ids and all(s in variances for s in ids):
+        V = np.stack([np.full(X.shape[1], float(variances[s])) for s in ids])
+        src = "given"
+    elif method != "collocation" and ids and not missing:
+        V = np.stack(stated)
+        src = "stated"
+    elif len(ids) >= 3:
+        try:
+            ev = collocation_error_variances(X, ids)
+        except InputError as exc:
+            raise InputError(f"{where}: {exc}") from None
+        V = np.repeat(ev[:, None], X.shape[1], axis=1)
+        src = "collocation"
+    elif method == "collocation":
+        raise InputError(f"{where} has {len(ids)} product(s) ({', '.join(ids) or 'none'}); method 'collocation' "
+                         f"needs at least 3 products of every component")
+    else:
+        raise InputError(f"{where} has {len(ids)} product(s) ({', '.join(ids) or 'none'}): collocation needs "
+                         f"at least 3, and {', '.join(missing) or 'none'} state no error (relative_error or "
+                         f"absolute_error_mm in the catalog)")
+    bad = np.isfinite(X) & ~(np.isfinite(V) & (V > 0))
+    if bad.any():
+        i, t = np.argwhere(bad)[0]
+        month = "" if src in ("collocation", "given") else f" in {str(months[t])[:7]}"
+        hint = (" (collocation sees no error in a scaled copy of the truth, and errors shared between products "
+                "or a short period push its estimate below zero; state errors in the catalog instead)"
+                if src == "collocation" else "")
+        raise InputError(f"{where}: {src} error variance of product {ids[i]!r}{month} is {float(V[i, t]):.6g} "
+                         f"mm2, not positive and finite{hint}")
+    return ComponentErrors(component, tuple(ids), src, V)
+
+
+def inverse_variance_merge(values, variances) -> tuple:
+    """Inverse-error-variance mean over axis 0 (products), month by month.
+
+    Returns (merged, merged_variance, count): ``sum(x/v) / sum(1/v)``, ``1 / sum(1/v)`` over the products
+    that have a value, and how many did (NaN and 0 where none).
+    """
+    X = np.asarray(values, dtype=np.float64)
+    V = np.asarray(variances, dtype=np.float64)
+    ok = np.isfinite(X)
+    w = np.where(ok, 1.0 / np.where(ok, V, 1.0), 0.0)
+    sw = w.sum(axis=0)
+    n = ok.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        merged = np.where(n > 0, np.sum(w * np.where(ok, X, 0.0), axis=0) / sw, np.nan)
+        var = np.where(n > 0, 1.0 / sw, np.nan)
+    return merged, var, n
+
+
+def _kernel(fn, method) -> np.ndarray:
+    """Weights on months (i-1, i, i+1) of a linear monthly operator of `storage` (one place knows them)."""
+    return fn(np.eye(3), method)[:, 1]
+
+
+def _rows(values: dict, terms, options: ClosureOptions):
+    """Balance rows of one basin: (G as (row, column, coefficient) lists, residual before, row months).
+
+    Unknowns are laid out term by term in table order, each over all months; a row is a month whose
+    residual (the engine's form) is defined.
+    """
+    T = next(iter(values.values())).size
+    method = options.storage_change
+    flux_k = _kernel(match_window, method) if options.matched else np.array([0.0, 1.0, 0.0])
+    ds_k = _kernel(storage_change, method)
+    res = np.zeros(T)
+    coef = []
+    for j, t in enumerate(terms):
+        k = ds_k if t.storage else flux_k
+        x = values[t.name]
+        term_val = storage_change(x, method) if t.storage else (match_window(x, method) if options.matched else x)
+        res = res + t.sign * term_val
+        coef.append((j, t.sign * k))
+    months = np.flatnonzero(np.isfinite(res))
+    r_idx = np.arange(months.size)
+    rows, cols, data = [], [], []
+    for j, k in coef:
+        for off, w in zip((-1, 0, 1), k):
+            if w != 0.0:
+                rows.append(r_idx)
+                cols.append(j * T + months + off)
+                data.append(np.full(months.size, w))
+    cat = (lambda parts, dt: np.concatenate(parts).astype(dt) if parts else np.zeros(0, dt))
+    return (cat(rows, np.intp), cat(cols, np.intp), cat(data, np.float64)), res, months
+
+
+def _pr_weights(x, G, T, terms) -> np.ndarray:
+    """Proportional redistribution's weight of each unknown: the mean, over the rows that use it, of
+    ``|term value in that row| / sum(coefficients of the term in that row ^ 2)``."""
+    coo = G.tocoo()
+    term = coo.col // T
+    x0 = np.where(np.isfinite(x), x, 0.0)
+    R = G.shape[0]
+    n_terms = len(terms)
+    key = coo.row * n_terms + term  # (row, term) pairs
+    value = np.bincount(key, weights=coo.data * x0[coo.col], minlength=R * n_terms)
+    k2 = np.bincount(key, weights=coo.data**2, minlength=R * n_terms)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        per = np.where(k2 > 0, np.abs(value) / k2, 0.0)
+    w = np.bincount(coo.col, weights=per[key], minlength=x.size)
+    cnt = np.bincount(coo.col, minlength=x.size)
+    return np.where(cnt > 0, w / np.maximum(cnt, 1), 0.0)
+
+
+def proportional_redistribution(terms, signs) -> np.ndarray:
+    """One month's terms with the residual split in proportion to their magnitudes (the published arithmetic).
+
+    ``terms`` (..., n) and ``signs`` (n,): returns ``terms - signs * residual * |terms| / sum |terms|`` with
+    ``residual = sum(signs * terms)``. (`force_closure` with ``method="pr"`` gives the same for a month whose
+    terms no other month shares.)
+    """
+    x = np.asarray(terms, dtype=np.float64)
+    s = np.asarray(signs, dtype=np.float64)
+    r = x @ s
+    a = np.abs(x) / np.sum(np.abs(x), axis=-1, keepdims=True)
+    return x - s * a * r[..., None]
+
+
+def force_closure(values: dict, variances: dict, terms, options: ClosureOptions, *, method: str) -> tuple:
+    """Move the terms of one basin until its balance closes in every month that has all of them.
+
+    Parameters
+    ----------
+    values, variances : term name -> (time,) array
+        Fluxes in mm/month, the storage term as monthly-mean storage (mm); error variances in mm2.
+    terms : the `Term` rows (`wbexplore.balance.terms.balance_terms`)
+    options : `ClosureOptions` (storage-change method, window matching)
+    method : "pr" | "ckf" | "collocation"
+
+    Returns
+    -------
+    (adjusted, posterior_variance, residual_before, rows) : two dicts like the inputs, the residual of the
+    inputs (mm/month, NaN where a month lacks a term) and the months (indices) the constraint holds in.
+    """
+    from scipy.sparse import csr_matrix
+
+    _check_method(method)
+    names = [t.name for t in terms]
+    T = values[names[0]].size
+    (r, c, d), res, months = _rows(values, terms, options)
+    x = np.concatenate([values[n] for n in names])
+    v = np.concatenate([variances[n] for n in names])
+    G = csr_matrix((d, (r, c)), shape=(months.size, x.size))
+    if method == "pr":
+        xn, vn = constrained_projection(x, _pr_weights(x, G, T, terms), G, variance=np.where(np.isfinite(v), v, 0.0))
+    else:
+        xn, vn = constrained_projection(x, np.where(np.isfinite(v), v, 0.0), G)
+    vn = np.where(np.isfinite(v), vn, np.nan)
+    adj = {n: xn[j * T:(j + 1) * T] for j, n in enumerate(names)}
+    post = {n: np.maximum(vn[j * T:(j + 1) * T], 0.0) for j, n in enumerate(names)}
+    return adj, post, res, months
+
+
+def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: ClosureOptions | None = None,
+                   q_relative_error: float = Q_RELATIVE_ERROR, variances: dict | None = None) -> xr.Dataset:
+    """Merged best estimates of P, ET and TWSA for each basin, with the budget forced to close.
+
+    Parameters
+    ----------
+    ds : canonical basin series (`wbexplore.series`)
+    method : "pr" | "ckf" | "collocation" (see the module text); named in every output variable
+    basins : basin ids (default every basin)
+    options : `ClosureOptions`: the storage-change method, window matching and ``min_valid_fraction`` of the
+        closure form (default ``ClosureOptions()``); a lag or gap filling is refused
+    q_relative_error : relative standard error of gauged Q and of every gauged flow (default 5%)
+    variances : product id -> error variance (mm2), overriding collocation and stated errors
+
+    Returns
+    -------
+    xarray.Dataset (basin, time): ``merged_P``, ``merged_ET`` (mm/month), ``merged_TWSA`` (mm) as sources,
+    each with ``<name>_standard_error`` and ``<name>_count`` (products merged that month); ``merged_Q`` and
+    ``merged_<flow>`` (adjusted station terms, mm/month) with standard errors; ``residual_before`` (the
+    merged products with gauged Q, mm/month) and ``residual_after``; ``error_variance`` (basin, product; mm2;
+    NaN where the variance varies by month, i.e. stated errors). Attributes name the method, the closure
+    form (the command line adds the caution text).
+    """
+    _check_method(method)
+    opts = options or ClosureOptions()
+    if opts.lag or opts.fill_gaps:
+        raise InputError("merge: a discharge lag or TWSA gap filling is not supported (use lag 0, no filling)")
+    if not 0.0 <= q_relative_error or not np.isfinite(q_relative_error):
+        raise InputError(f"q_relative_error {q_relative_error!r} must be a finite number >= 0")
+    if variances is not None:
+        for k, val in variances.items():
+            if not (isinstance(val, (int, float, np.floating)) and np.isfinite(val) and val > 0):
+                raise InputError(f"error variance of product {k!r} is {val!r} mm2, not positive and finite")
+    if "discharge" not in ds:
+        raise InputError("the series hold no discharge: add 'discharge' to the catalog")
+    all_ids = basin_ids(ds)
+    wanted = all_ids if basins is None else [str(x) for x in basins]
+    for x in wanted:
+        if x not in all_ids:
+            raise InputError(f"basin {x!r} is not in the series (known: {', '.join(all_ids)})")
+    terms = balance_terms(ds)
+    station = [t for t in terms if not t.gridded]
+    T = ds.sizes["time"]
+    products = [s for c in SOURCE_COMPONENTS for s in _products(ds, c)]
+    out = {n: np.full((len(wanted), T), np.nan) for n in
+           [merged_name(t.component if t.gridded else t.name) for t in terms]}
+    se = {n: np.full((len(wanted), T), np.nan) for n in out}
+    counts = {c: np.zeros((len(wanted), T), dtype=np.int16) for c in SOURCE_COMPONENTS}
+    res_before = np.full((len(wanted), T), np.nan)
+    res_after = np.full((len(wanted), T), np.nan)
+    err_var = np.full((len(wanted), len(products)), np.nan)
+    err_src = {}
+    negative = 0
+    b_all = np.array([all_ids.index(x) for x in wanted], dtype=np.intp)
+    stacks = {}
+    for c in SOURCE_COMPONENTS:  # (products, basins, time), read once
+        ids = _products(ds, c)
+        stacks[c] = (ids, [ds.variables[s].attrs for s in ids],
+                     _stack(ds, ids, b_all, opts.min_valid_fraction) if ids else np.zeros((0, len(wanted), T)))
+    station_values = {}
+    for t in station:
+        q = ds.variables[t.variable].values[b_all].astype(np.float64)
+        vf = valid_fraction_name(t.variable)
+        if vf in ds.variables:
+            q = np.where(ds.variables[vf].values[b_all] >= opts.min_valid_fraction, q, np.nan)
+        station_values[t.name] = q
+    months = ds["time"].values
+    for bi, basin in enumerate(wanted):
+        vals, vars_ = {}, {}
+        for t in terms:
+            if t.gridded:
+                ids, attrs, stack = stacks[t.component]
+                X = stack[:, bi]
+                errs = _component_errors(X, ids, attrs, component=t.component, basin=basin, method=method,
+                                         variances=variances, months=months)
+                m, mv, n = inverse_variance_merge(X, errs.variance)
+                vals[t.name], vars_[t.name] = m, mv
+                counts[t.component][bi] = n
+                err_src.setdefault(t.component, set()).add(errs.source)
+                if errs.source != "stated":
+                    for i, s in enumerate(errs.products):
+                        err_var[bi, products.index(s)] = errs.variance[i, 0]
+            else:
+                q = station_values[t.name][bi]
+                vals[t.name], vars_[t.name] = q, (q_relative_error * q) ** 2
+        adj, post, res, _ = force_closure(vals, vars_, terms, opts, method=method)
+        after = _residual(adj, terms, opts)
+        res_before[bi], res_after[bi] = res, after
+        for t in terms:
+            n = merged_name(t.component if t.gridded else t.name)
+            out[n][bi] = np.where(np.isfinite(vals[t.name]), adj[t.name], np.nan)
+            se[n][bi] = np.sqrt(post[t.name])
+            if not t.storage:
+                negative += int(np.sum(out[n][bi] < 0))
+    return _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, products, err_src, terms,
+                    station, method, opts, q_relative_error, negative)
+
+
+def _residual(values, terms, opts) -> np.ndarray:
+    res = 0.0
+    for t in terms:
+        x = values[t.name]
+        v = storage_change(x, opts.storage_change) if t.storage else (
+            match_window(x, opts.storage_change) if opts.matched else x)
+        res = res + t.sign * v
+    return res
+
+
+def _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, products, err_src, terms, station,
+             method, opts, q_rel, negative) -> xr.Dataset:
+    what = MERGE_METHODS[method]
+    form = (f"{opts.storage_change} storage difference against "
+            f"{'window-matched' if opts.matched else 'raw monthly'} fluxes")
+    b_idx = [basin_ids(ds).index(x) for x in wanted]
+    coords = {"basin": ("basin", np.array(wanted, dtype=object)), "time": ds["time"].values}
+    for c in ("basin_name", "basin_area_km2"):
+        if c in ds.coords:
+            coords[c] = ("basin", ds[c].values[b_idx])
+    data = {}
+    for t in terms:
+        name = merged_name(t.component if t.gridded else t.name)
+        units = "mm" if t.storage else "mm/month"
+        if t.gridded:
+            ids = _products(ds, t.component)
+            src = " / ".join(sorted(err_src.get(t.component, ())))
+            attrs = {"role": "source", "component": t.component, "units": units, "source_id": name,
+                     "long_name": f"merged {t.component} ({', '.join(ids)}; inverse error variance, errors: "
+                                  f"{src}), budget closed by {what} [{method}]",
+                     "label": f"Merged {t.component} ({method})", "products": ", ".join(ids),
+                     "error_variance_source": src}
+        else:
+            attrs = {"role": "merged_station", "component": t.component, "units": units,
+                     "long_name": f"{t.label} adjusted by {what} [{method}] (gauged {t.variable}, "
+                                  f"{q_rel:.0%} relative error)", "adjusts": t.variable}
+        attrs.update({"merge_method": method, "ancillary_variables": f"{name}_standard_error"})
+        data[name] = (("basin", "time"), out[name], attrs)
+        data[f"{name}_standard_error"] = (("basin", "time"), se[name], {
+            "units": units, "long_name": f"posterior standard error of {name} [{method}]", "merge_method": method})
+        if t.gridded:
+            data[f"{name}_count"] = (("basin", "time"), counts[t.component], {
+                "long_name": f"number of {t.component} products merged in the month", "units": "1",
+                "merge_method": method})
+    data["residual_before"] = (("basin", "time"), res_before, {
+        "units": "mm/month", "long_name": f"residual of the merged products with gauged terms ({form})",
+        "merge_method": method})
+    data["residual_after"] = (("basin", "time"), res_after, {
+        "units": "mm/month", "long_name": f"residual after {what} [{method}] ({form})", "merge_method": method})
+    data["error_variance"] = (("basin", "product"), err_var, {
+        "units": "mm2", "long_name": "error variance of each product used for its weight (collocation or given; "
+                                     "NaN: stated errors, which vary by month)", "merge_method": method})
+    coords["product"] = ("product", np.array(products, dtype=object))
+    res = xr.Dataset(data, coords=coords)
+    res.attrs = {"merge_method": method, "merge_method_description": what,
+                 "closure_form": form, "closure_options": opts.to_json(), "q_relative_error": float(q_rel),
+                 "negative_flux_months": int(negative),
+                 "references": "Pan and Wood 2006 (constrained Kalman filter); Stoffelen 1998 and McColl et al. "
+                               "2014 (collocation); Abolafia-Rosenzweig et al. 2021 (closure techniques compared)"}
+    return res
+
+
+def with_merged(ds: xr.Dataset, merged: xr.Dataset) -> xr.Dataset:
+    """``ds`` with the merged sources of ``merged`` (`merge_products`) added as sources like any product.
+
+    The basins of ``merged`` must be those of ``ds``; only ``merged_P``, ``merged_ET`` and ``merged_TWSA``
+    are added (with their standard errors): the gauged terms stay as measured.
+    """
+    if basin_ids(merged) != basin_ids(ds):
+        raise InputError("the merged series cover other basins than the series (merge every basin first)")
+    out = ds.copy()
+    for c in SOURCE_COMPONENTS:
+        n = merged_name(c)
+        out[n] = (("basin", "time"), merged[n].values, dict(merged[n].attrs))
+        out[f"{n}_standard_error"] = (("basin", "time"), merged[f"{n}_standard_error"].values,
+                                      dict(merged[f"{n}_standard_error"].attrs))
+    return out
