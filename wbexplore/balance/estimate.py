@@ -70,7 +70,7 @@ class DifferenceEstimate:
     annual : DataFrame indexed by ``water_year`` (named by the year it ends): ``estimate``,
         ``standard_error`` (mm per water year), ``months``, and for ET and Q ``storage_change`` with its
         ``storage_change_standard_error`` (the dS term the estimate includes)
-    long_term : dict: ``water_years`` (count), ``first``, ``last``, ``estimate`` and ``standard_error``
+    long_term : dict: ``water_years`` (count), ``years`` (their names), ``first``, ``last``, ``estimate`` and ``standard_error``
         (mm/year, storage term left out), ``storage_change`` (mm/year, mean over the years where the TWSA
         product gives it, None otherwise: the term that was left out), ``storage_change_years``
     uncertainty : component -> `uncertainty.ProductError` of each product used
@@ -216,7 +216,7 @@ def estimate_by_difference(ds: xr.Dataset, sel: Selection, term: str = "ET", *,
         sel_y = (wy == y) & mask
         if sel_y.sum() == 12 and all(np.all(np.isfinite(pick(f"{t.name}_raw")[sel_y])) for t, _v in fluxes):
             years.append(int(y))
-    lt = {"water_years": len(years), "first": years[0] if years else None, "last": years[-1] if years else None,
+    lt = {"water_years": len(years), "years": years, "first": years[0] if years else None, "last": years[-1] if years else None,
           "estimate": float("nan"), "standard_error": float("nan"), "storage_change": None, "storage_change_years": 0}
     if years:
         sel_all = np.isin(wy, years) & mask
