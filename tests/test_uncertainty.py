@@ -210,3 +210,86 @@ def test_demo_collocation_within_factor_1_5_of_truth(demo_series, demo_truth):
                     tc = unc.collocation_variances(x, ids, component=comp)[s]["error_variance"]
                     # blind to the systematic part: well below the error against the truth
                     assert abs(tc) < 0.5 * raw_ev, (b, s, tc, raw_ev)
+
+
+# --------------------------------------------------------------------------- every output names the source
+def test_closure_terms_record_the_uncertainty_source(demo_series):
+    import json
+
+    from wbexplore.balance import closure_terms
+
+    t = closure_terms(demo_series, basins=["VEL", "TIR"])
+    src = json.loads(t.attrs["uncertainty_source"])
+    # two TWSA products: the spread; the products with random errors: collocation; kestrel and fennel,
+    # whose errors are pure scalings over Velumbe, come out at or below zero (sampling noise around
+    # zero: collocation cannot see a scaling) and fall back to the spread
+    assert src["VEL"] == {"kestrel": "spread", "plover": "collocation", "heron": "collocation",
+                          "sedge": "collocation", "fennel": "spread", "tansy": "collocation",
+                          "quarry": "spread", "cairn": "spread"}
+    assert src["TIR"]["quarry"] == "spread" and src["TIR"]["plover"] == "collocation"
+    # a short period: collocation cannot be estimated, the spread is used (and recorded)
+    short = closure_terms(demo_series, basins=["VEL"], start="2005-01", end="2005-12")
+    assert set(json.loads(short.attrs["uncertainty_source"])["VEL"].values()) == {"spread"}
+
+
+def test_export_and_replay_name_the_uncertainty_source(demo_dir, tmp_path, capsys, monkeypatch):
+    import warnings
+
+    import yaml
+
+    from conftest import copy_demo
+    from wbexplore.cli import main
+
+    study = copy_demo(demo_dir, tmp_path)
+    out, csv = tmp_path / "sel.yaml", tmp_path / "series.csv"
+    argv = ["export", str(study / "catalog.yaml"), "--basin", "VEL", "--P", "plover", "--ET", "tansy", "--TWSA",
+            "quarry", "--out", str(out), "--series", str(csv)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(argv) == 0
+        doc = yaml.safe_load(out.read_text())
+        assert doc["uncertainty_source"] == {"P": "collocation", "ET": "collocation", "TWSA": "spread", "Q": "gauge"}
+        assert doc["uncertainty_notes"].startswith("P collocation (triple collocation with kestrel, heron")
+        head = [line for line in csv.read_text().splitlines() if line.startswith("#")]
+        assert any(line.startswith("# uncertainty_source: P collocation") for line in head)
+        assert main(["replay", str(out)]) == 0
+        # a selection file written before issue 16 (product spread, no uncertainty_source) still replays
+        monkeypatch.setattr(unc, "DEFAULT_METHOD", unc.SPREAD)
+        old = tmp_path / "old.yaml"
+        assert main(argv[:-4] + ["--out", str(old)]) == 0
+        monkeypatch.setattr(unc, "DEFAULT_METHOD", "auto")
+        d = yaml.safe_load(old.read_text())
+        assert d["uncertainty_source"]["P"] == "spread"
+        del d["uncertainty_source"], d["uncertainty_notes"]
+        old.write_text(yaml.safe_dump(d))
+        assert main(["replay", str(old)]) == 0, capsys.readouterr().err
+        # a wrong entry is refused, naming the field
+        d["uncertainty_source"] = {"P": "guess"}
+        old.write_text(yaml.safe_dump(d))
+        assert main(["replay", str(old)]) == 2
+    assert "uncertainty_source.P" in capsys.readouterr().err
+
+
+def test_legend_names_the_source():
+    ds = _series(3)
+    errs = {"P": unc.product_error(ds, "p1", 0)}
+    assert unc.legend_text(errs) == "± 2 sigma (P collocation)"
+    errs = {"P": unc.product_error(_series(2), "p1", 0)}
+    assert unc.legend_text(errs) == "± 2 sigma (P product spread)"
+
+
+def test_non_positive_collocation_falls_back_or_is_refused_when_asked():
+    """Errors of p1 and p2 anti-correlated (p1 = t + e, p2 = t - e: against the assumption of independent
+    errors), so that p0's collocation error variance is negative by the identity:
+    var t - (var t)^2 / (var t - var e) < 0 (arithmetic, var e = 0.3 var t)."""
+    ds = _series(3, months=120)
+    t = ds["p0"].values[0]
+    e = np.random.default_rng(1).standard_normal(t.size)
+    e = e / e.std() * np.sqrt(0.3) * t.std()
+    ds["p1"].values[0] = t + e
+    ds["p2"].values[0] = t - e
+    got = unc.product_error(ds, "p0", 0)
+    assert got.method == unc.SPREAD and "not positive" in got.note
+    with pytest.raises(InputError, match="collocation error variance of 'p0' is -.*not positive"):
+        unc.product_error(ds, "p0", 0, method="collocation")
+    assert unc.product_error(ds, "p0", 0, strict=True).method == unc.SPREAD  # strict is about short periods only

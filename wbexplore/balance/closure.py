@@ -100,6 +100,12 @@ class SelectionResult:
     terms: tuple = BASE_TERMS  # the balance's `Term` rows, flows included (frame columns by name)
     # component -> `uncertainty.ProductError`: where each sigma_<component> came from
     uncertainty: dict = field(default_factory=dict)
+    q_relative_error: float = Q_RELATIVE_ERROR  # of gauged Q and of every flow
+
+    @property
+    def uncertainty_line(self) -> str:
+        """Where each term's uncertainty comes from, one line (CSV headers, notes, reports)."""
+        return unc.uncertainty_text(self.uncertainty, q_relative_error=self.q_relative_error)
 
     @property
     def uncertainty_source(self) -> dict:
@@ -265,7 +271,7 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
                                             f"TWSA {errors['TWSA'].method}, Q {q_relative_error:.0%} of flow"]
                            + [f"uncertainty of {c} ({e.source}): {e.note}" for c, e in errors.items()
                               if "not used" in e.note],
-                           terms=a["terms"], uncertainty=errors)
+                           terms=a["terms"], uncertainty=errors, q_relative_error=float(q_relative_error))
 
 
 def _span(months, ok):

@@ -37,7 +37,8 @@ from .collocation import multiple_collocation
 
 __all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "MIN_COLLOCATION_MONTHS",
            "DEFAULT_METHOD", "product_error", "product_errors", "product_disagreement", "stated_variance",
-           "collocation_variances", "method_label", "uncertainty_text", "check_method", "component_products"]
+           "collocation_variances", "method_label", "uncertainty_text", "legend_text", "check_method",
+           "component_products"]
 
 STATED, COLLOCATION, SPREAD, NONE = "stated", "collocation", "spread", "none"
 METHODS = ("auto", STATED, COLLOCATION, SPREAD)
@@ -186,8 +187,8 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         "auto": stated, else collocation, else spread. An explicit method is used or refused.
     strict : bool
         With "auto", refuse (`InputError`) instead of falling back to the spread when the component has
-        three products or more but collocation cannot be estimated (too short a period, an estimate at
-        or below zero).
+        three products or more but the period is too short to estimate collocation error variances. (An
+        estimate at or below zero falls back to the spread, saying why, unless collocation was asked for.)
 
     Returns
     -------
@@ -214,17 +215,21 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         stack = np.stack([own if s == source else _masked(ds, s, basin_index, min_valid_fraction) for s in ids])
         if period is not None:
             stack = np.where(np.asarray(period, dtype=bool), stack, np.nan)
+        tc = None
         try:
             tc = collocation_variances(stack, ids, component=comp)
-            ev = tc[source]["error_variance"]
-            if not ev > 0:
-                raise InputError(f"collocation error variance of {source!r} is {ev:.3g} mm2 (not positive: its random "
-                                 f"error is below the sampling error of {tc[source]['n']} months)")
         except InputError as exc:
             if method == COLLOCATION or strict:
                 raise
             why = f" (collocation not used: {exc})"
-        else:
+        ev = float("nan") if tc is None else tc[source]["error_variance"]
+        if tc is not None and not ev > 0:
+            msg = (f"collocation error variance of {source!r} is {ev:.3g} mm2, not positive: its random error is "
+                   f"below the sampling error of {tc[source]['n']} months (a systematic error is invisible to it)")
+            if method == COLLOCATION:
+                raise InputError(msg)
+            why = f" (collocation not used: {msg})"
+        if tc is not None and ev > 0:
             kind = "triple" if len(ids) == 3 else f"multiple ({len(ids)} products)"
             note = f"{kind} collocation with {', '.join(s for s in ids if s != source)} over {tc[source]['n']} months"
             return ProductError(source, comp, COLLOCATION, np.where(np.isfinite(x), ev, np.nan), note)
@@ -245,3 +250,11 @@ def uncertainty_text(errors: dict, *, q_relative_error: float | None = None) -> 
     if q_relative_error is not None:
         parts.append(f"Q {q_relative_error:.0%} of flow (gauge error)")
     return "; ".join(parts)
+
+
+_SHORT = {STATED: "stated", COLLOCATION: "collocation", SPREAD: "product spread", NONE: "none"}
+
+
+def legend_text(errors: dict) -> str:
+    """Short text for a band's legend: "± 2 sigma (P collocation, ET stated, TWSA product spread)"."""
+    return "± 2 sigma (" + ", ".join(f"{c} {_SHORT[e.method]}" for c, e in errors.items()) + ")"
