@@ -299,6 +299,8 @@ CASES = [
     ("estimate out not csv or nc", lambda d: _estimate(d / C, "--term", "ET", out="e.xlsx"), ["e.xlsx", ".csv or .nc"]),
     ("estimate unknown uncertainty", lambda d: _estimate(d / C, "--term", "ET", "--uncertainty", "best"),
      ["--uncertainty 'best'"]),
+    ("estimate stated asked, none stated", lambda d: _estimate(d / C, "--term", "ET", "--uncertainty", "stated"),
+     ["'p1'", "no stated error"]),
     ("estimate collocation with two products", lambda d: _estimate(d / C, "--term", "ET", "--uncertainty", "collocation"),
      ["at least three P products", "there are 2 (p1, p2)"]),
     ("estimate stated error infinite", lambda d: _estimate(_err_cat(d, error=("absolute_error_mm", ".inf")), "--term", "ET"),
