@@ -266,13 +266,13 @@ def _uncertainty_sources(a: dict, opts: ClosureOptions, mask) -> str:
     (`uncertainty.product_error`, default method: stated, collocation or spread)."""
     import json
 
-    from .uncertainty import product_error
+    from .uncertainty import all_product_errors
 
     ds = a["ds"]
     out = {}
     for name, b in zip(a["basins"], a["b"]):
-        out[name] = {s: product_error(ds, s, int(b), period=mask, min_valid_fraction=opts.min_valid_fraction).method
-                     for c in SOURCE_COMPONENTS for s in a["ids"][c]}
+        errs = all_product_errors(ds, int(b), sources=a["ids"], period=mask, min_valid_fraction=opts.min_valid_fraction)
+        out[name] = {s: e.method for s, e in errs.items()}
     return json.dumps(out, sort_keys=True)
 
 

@@ -36,7 +36,7 @@ from ..series import source_ids, valid_fraction_name
 from .collocation import multiple_collocation
 
 __all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "MIN_COLLOCATION_MONTHS",
-           "DEFAULT_METHOD", "product_error", "product_errors", "product_disagreement", "stated_variance",
+           "DEFAULT_METHOD", "product_error", "product_errors", "all_product_errors", "product_disagreement", "stated_variance",
            "collocation_variances", "method_label", "uncertainty_text", "legend_text", "check_method",
            "component_products"]
 
@@ -169,7 +169,8 @@ def product_disagreement(ds: xr.Dataset, component: str, basin_index: int, *, mi
 
 
 def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None, period=None,
-                  min_valid_fraction: float = 0.5, method: str = DEFAULT_METHOD, strict: bool = False) -> ProductError:
+                  min_valid_fraction: float = 0.5, method: str = DEFAULT_METHOD, strict: bool = False,
+                  cache: dict | None = None) -> ProductError:
     """Per-month error variance of ``source`` over one basin (see the module text for the order).
 
     Parameters
@@ -189,6 +190,9 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         With "auto", refuse (`InputError`) instead of falling back to the spread when the component has
         three products or more but the period is too short to estimate collocation error variances. (An
         estimate at or below zero falls back to the spread, saying why, unless collocation was asked for.)
+    cache : dict, optional
+        Shared between calls for one basin, period and valid fraction (`all_product_errors`): each
+        component's products are stacked and collocated once.
 
     Returns
     -------
@@ -212,16 +216,23 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         raise InputError(f"source {source!r} is derived from the {comp} products (not independent of them): "
                          "collocation needs independent products")
     if method == COLLOCATION or (method == "auto" and len(ids) >= 3 and source in ids):
-        stack = np.stack([own if s == source else _masked(ds, s, basin_index, min_valid_fraction) for s in ids])
-        if period is not None:
-            stack = np.where(np.asarray(period, dtype=bool), stack, np.nan)
-        tc = None
-        try:
-            tc = collocation_variances(stack, ids, component=comp)
-        except InputError as exc:
+        if cache is not None and comp in cache:
+            tc, failure = cache[comp]
+        else:
+            stack = np.stack([own if s == source else _masked(ds, s, basin_index, min_valid_fraction) for s in ids])
+            if period is not None:
+                stack = np.where(np.asarray(period, dtype=bool), stack, np.nan)
+            tc = failure = None
+            try:
+                tc = collocation_variances(stack, ids, component=comp)
+            except InputError as exc:
+                failure = exc
+            if cache is not None:
+                cache[comp] = (tc, failure)
+        if failure is not None:
             if method == COLLOCATION or strict:
-                raise
-            why = f" (collocation not used: {exc})"
+                raise InputError(str(failure))
+            why = f" (collocation not used: {failure})"
         ev = float("nan") if tc is None else tc[source]["error_variance"]
         if tc is not None and not ev > 0:
             msg = (f"collocation error variance of {source!r} is {ev:.3g} mm2, not positive: its random error is "
@@ -237,6 +248,17 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         sd = _spread(np.stack([_masked(ds, s, basin_index, min_valid_fraction) for s in ids]))
         return ProductError(source, comp, SPREAD, sd**2, f"spread of {', '.join(ids)}{why}")
     return ProductError(source, comp, NONE, np.full(x.shape, np.nan), f"one {comp} product only{why}")
+
+
+def all_product_errors(ds: xr.Dataset, basin_index: int, *, sources: dict | None = None, **kw) -> dict:
+    """source id -> `ProductError` for every source of ``sources`` (component -> list of ids; default every
+    product of each component) over one basin; keywords of `product_error` (each component collocated once)."""
+    from .terms import SOURCE_COMPONENTS
+
+    cache: dict = {}
+    if sources is None:
+        sources = {c: component_products(ds, c) for c in SOURCE_COMPONENTS}
+    return {s: product_error(ds, s, basin_index, cache=cache, **kw) for ids in sources.values() for s in ids}
 
 
 def product_errors(ds: xr.Dataset, sources: dict, basin_index: int, **kw) -> dict:
