@@ -125,6 +125,25 @@ def _flow_cat(study, *, flows=None, boxes=None, drains=None):
     return p
 
 
+def _err_cat(study, *, error=None, third_p=False):
+    """A copy of the study's catalog with a stated error on p1 (``error``: field -> value, YAML text) and,
+    with ``third_p``, a third P product (p2's file again, so that collocation has three products)."""
+    text = (study / C).read_text()
+    if error:
+        field, value = error
+        text = text.replace("  variable: pr\n", f"  variable: pr\n  {field}: {value}\n", 1)
+    if third_p:
+        text = text.replace("sources:\n", "sources:\n- id: p3\n  component: P\n  path: p2.nc\n  variable: pr\n"
+                                           "  units: mm/day\n", 1)
+    p = study / "err_catalog.yaml"
+    p.write_text(text)
+    return p
+
+
+def _estimate(cat, *extra, out="estimate.csv"):
+    return ["estimate", str(cat), "--basin", "B1", "--P", "p1", "--TWSA", "t1", *extra, "--out", str(Path(cat).parent / out)]
+
+
 _B1 = (-1, 1, 1, 3)
 
 # a two-point storage curve per water body (level m, area km2, volume hm3), written low to high
@@ -274,6 +293,27 @@ CASES = [
     ("serve port out of range", lambda d: ["serve", str(d / C), "--port", "99999"], ["99999"]),
     ("serve unknown address", lambda d: ["serve", str(d / C), "--address", "nowhere.invalid"], ["nowhere.invalid"]),
     ("serve port in use", lambda d: ["serve", str(d / C), "--port", str(_busy_port())], ["--port"]),
+    # estimate by difference
+    ("estimate unknown term", lambda d: _estimate(d / C, "--term", "Ev"), ["--term 'Ev'", "ET, Q, dS"]),
+    ("estimate term P", lambda d: _estimate(d / C, "--term", "P"), ["--term 'P'", "ET, Q, dS"]),
+    ("estimate out not csv or nc", lambda d: _estimate(d / C, "--term", "ET", out="e.xlsx"), ["e.xlsx", ".csv or .nc"]),
+    ("estimate unknown uncertainty", lambda d: _estimate(d / C, "--term", "ET", "--uncertainty", "best"),
+     ["--uncertainty 'best'"]),
+    ("estimate stated asked, none stated", lambda d: _estimate(d / C, "--term", "ET", "--uncertainty", "stated"),
+     ["'p1'", "no stated error"]),
+    ("estimate collocation with two products", lambda d: _estimate(d / C, "--term", "ET", "--uncertainty", "collocation"),
+     ["at least three P products", "there are 2 (p1, p2)"]),
+    ("estimate stated error infinite", lambda d: _estimate(_err_cat(d, error=("absolute_error_mm", ".inf")), "--term", "ET"),
+     ["p1", "absolute_error_mm", "inf", "positive finite"]),
+    ("estimate stated error not a number", lambda d: _estimate(_err_cat(d, error=("relative_error", ".nan")), "--term", "ET"),
+     ["p1", "relative_error", "nan", "positive finite"]),
+    ("estimate stated error zero", lambda d: _estimate(_err_cat(d, error=("relative_error", "0")), "--term", "ET"),
+     ["p1", "relative_error", "0", "positive finite"]),
+    ("estimate stated error negative", lambda d: _estimate(_err_cat(d, error=("absolute_error_mm", "-2")), "--term", "ET"),
+     ["p1", "absolute_error_mm", "-2", "positive finite"]),
+    ("estimate period too short for collocation", lambda d: _estimate(_err_cat(d, third_p=True), "--term", "ET",
+                                                                      "--start", "2002-01", "--end", "2002-12"),
+     ["period too short", "12 months", "at least 24 needed"]),
     # demo
     ("demo out is a file", lambda d: ["demo", "--out", str(d / "a_file.txt"), "--no-launch"], ["a_file.txt"]),
 ]

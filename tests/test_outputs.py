@@ -136,14 +136,16 @@ def _argv(command: str, study: Path, out: Path):
         return ["export", cat, *SEL, *TRIPLE, "--out", study.parent / "sel.yaml", "--series", out, "--force"]
     if command == "report":
         return ["report", cat, *SEL, *TRIPLE, "--out", out, "--force"]
+    if command == "estimate":
+        return ["estimate", cat, *SEL, *TRIPLE, "--term", "ET", "--out", out, "--force"]
     raise AssertionError(command)
 
 
-@pytest.mark.parametrize("command", ["extract", "export", "export-series", "report"])
+@pytest.mark.parametrize("command", ["extract", "export", "export-series", "report", "estimate"])
 @pytest.mark.parametrize("kind", KINDS)
 def test_force_never_replaces_an_input_or_a_non_file(command, kind, study, tmp_path, capsys):
     out = _target(kind, study, tmp_path)
-    if command == "export-series" and out.suffix not in (".csv", ".nc"):
+    if command in ("export-series", "estimate") and out.suffix not in (".csv", ".nc"):
         # the series refusal must not be the suffix check: give the same target a series suffix by a link
         link = tmp_path / "series-link.csv"
         link.symlink_to(out)

@@ -176,6 +176,7 @@ def test_report_cli_writes_self_contained_html(study, tmp_path, capsys):
     assert rc == 0
     text = out.read_text()
     assert "Screening-level" in text and "Every combination" in text and "Method notes" in text
+    assert "Used here: P collocation (triple collocation with" in text  # issue 16: the source is named
     assert not re.search(r'<script[^>]+src="(?!data:)', text)  # no external or relative scripts
     assert not re.search(r'<link[^>]+href="http', text)
 

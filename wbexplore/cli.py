@@ -1,4 +1,4 @@
-"""Command line: ``wbexplore demo | check | extract | rank | export | replay | report | merge | serve``.
+"""Command line: ``wbexplore demo | check | extract | rank | export | replay | report | estimate | merge | serve``.
 
 Exit status 0 on success, 2 on bad input (one line naming the file, field or value),
 1 when ``replay`` finds different numbers. No partial output file is left behind.
@@ -199,6 +199,20 @@ def _parser() -> argparse.ArgumentParser:
                    help="months where a product covers less of the basin are missing (default 0.5)")
     p.add_argument("--cache-dir", metavar="DIR")
     p.add_argument("--force", action="store_true", help="overwrite FILE")
+
+    p = sub.add_parser("estimate", help="one balance term by difference (ET, Q or dS) with its standard error")
+    _add_selection_args(p, sources=False)
+    p.add_argument("--term", required=True, metavar="ET|Q|dS", help="the term to estimate from the others")
+    p.add_argument("--P", metavar="SRC", help="precipitation source id")
+    p.add_argument("--ET", metavar="SRC", help="evapotranspiration source id (not needed for --term ET)")
+    p.add_argument("--TWSA", metavar="SRC", help="storage-anomaly source id (not needed for --term dS)")
+    p.add_argument("--uncertainty", default="auto", metavar="auto|stated|collocation|spread",
+                   help="error of each product: auto (default: stated, else collocation with three products "
+                        "or more, else their spread), or one of them explicitly")
+    p.add_argument("--by", default="rmse", metavar="METRIC",
+                   help="without sources: the best-ranked combination by this metric")
+    p.add_argument("--out", required=True, metavar="FILE.csv|FILE.nc")
+    p.add_argument("--force", action="store_true")
 
     p = sub.add_parser("serve", help="the explorer as a web page")
     p.add_argument("catalog")
@@ -570,6 +584,48 @@ def _cmd_merge(args) -> int:
     return 0
 
 
+def _cmd_estimate(args) -> int:
+    from .balance import Selection, best_selection
+    from .balance.estimate import TERMS, estimate_by_difference
+    from .balance.uncertainty import check_method
+    from .io.catalog import open_catalog
+    from .io.estimates import check_format, write_estimate
+    from .io.writers import check_output
+
+    # every refusal that needs no series comes before they are loaded
+    if args.term not in TERMS:
+        raise InputError(f"--term {args.term!r} is not one of {', '.join(TERMS)}")
+    check_method(args.uncertainty)
+    check_format(args.out)
+    opts = _options(args)
+    cat = open_catalog(args.catalog)
+    check_output(args.out, overwrite=args.force, protect=cat)
+    if args.incremental:
+        _check_incremental(cat, args.basin)
+    own = {"ET": "ET", "dS": "TWSA"}.get(args.term)
+    needed = [c for c in ("P", "ET", "TWSA") if c != own]
+    given = {c: getattr(args, c) for c in ("P", "ET", "TWSA")}
+    ds = _series(args)
+    if all(given[c] for c in needed):
+        sel = Selection.from_options(args.basin, opts, **given)
+    elif any(given[c] for c in needed):
+        raise InputError(f"--term {args.term}: give all of {', '.join('--' + c for c in needed)}, or none "
+                         "(then the best-ranked combination is used)")
+    else:
+        from .balance.metrics import check_metric
+
+        check_metric(args.by)
+        best = best_selection(ds, args.basin, opts, by=args.by)
+        sel = best.replace(**{own: given[own]}) if own else best
+    est = estimate_by_difference(ds, sel, args.term, uncertainty=args.uncertainty, strict=True)
+    write_estimate(est, args.out, overwrite=args.force, protect=cat)
+    lt = est.long_term
+    print(f"wrote {args.out}: {est.formula}, basin {sel.basin}, {len(est.monthly)} months, "
+          f"{lt['water_years']} whole water years; long-term {args.term} {lt['estimate']:.1f} +- "
+          f"{lt['standard_error']:.1f} mm/year (random errors only)")
+    return 0
+
+
 def _cmd_serve(args) -> int:
     from .explorer.app import serve
 
@@ -605,7 +661,8 @@ def _copy_templates(out: Path) -> Path:
 
 
 _COMMANDS = {"demo": _cmd_demo, "check": _cmd_check, "extract": _cmd_extract, "rank": _cmd_rank,
-             "export": _cmd_export, "replay": _cmd_replay, "report": _cmd_report, "merge": _cmd_merge,
+             "export": _cmd_export, "replay": _cmd_replay, "report": _cmd_report, "estimate": _cmd_estimate,
+             "merge": _cmd_merge,
              "serve": _cmd_serve}
 
 

@@ -32,8 +32,11 @@ and a month with a missing day is left empty.</li>
 <li>Residual r = {balance} (mm/month). KGE (Gupta et al. 2009), KGE' (Kling et al. 2012), NSE (Nash and
 Sutcliffe 1970), cyclostationary NSE (Lehmann et al. 2022) and PBIAS (Moriasi et al. 2007) compare
 P - ET - dS with gauged Q.</li>
-<li>Uncertainty: per component from stated product errors or the spread of the available products; Q from a
-relative gauge error; residual sigma by propagation of independent errors.</li>
+<li>Uncertainty: the chosen product's own error: stated in the catalog, else its collocation error variance
+(three products or more of the component: Stoffelen 1998; McColl et al. 2014), else the spread of the products
+(their disagreement, not the chosen product's error); Q from a relative gauge error; residual sigma by
+propagation of independent errors. Collocation sees random errors only, not a product's bias.
+Used here: {uncertainty}.</li>
 </ul>
 """
 
@@ -88,6 +91,7 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
             f"wbexplore {__version__}.</p>")
     warn = "".join(f"<li>{html_text(w)}</li>" for w in views.warnings_for(res, ds))
     notes = METHOD_NOTES.format(method=html_text(sel.storage_change), balance=html_text(balance_text(res.terms)),
+                                uncertainty=html_text(res.uncertainty_line),
                                 matched="P, ET and Q are filtered with the same window (window-matched)."
                                 if sel.matched else "fluxes are compared as monthly totals (not window-matched).")
     tail = (f"<h2>Selection metrics</h2><table class='metrics'>{mrows}</table>"

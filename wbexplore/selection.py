@@ -11,6 +11,7 @@ creation time and the caution text. `replay` recomputes and compares.
 from __future__ import annotations
 
 import datetime as _dt
+import json
 import math
 import os
 import re
@@ -102,6 +103,9 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
         "min_valid_fraction": float(sel.min_valid_fraction),
         "water_year_start_month": int(sel.water_year_start),
         "q_relative_error": float(q_relative_error),
+        # where each product's error came from (issue 16); a file without it was made with the product spread
+        "uncertainty_source": {**result.uncertainty_source, "Q": "gauge"},
+        "uncertainty_notes": result.uncertainty_line,
         "unit_system": unit_system,
         "metrics": _clean_metrics(result.metrics),
         "versions": _versions(),
@@ -201,6 +205,7 @@ def _extract_for(cat: Catalog, sel: Selection, cache_dir, *, incremental: bool =
         return extract(cat, basins=[sel.basin], cache_dir=cache_dir, incremental=incremental)
 
 
+_UNCERTAINTY_SOURCES = ("stated", "collocation", "spread", "none")  # `balance.uncertainty` methods
 UNITS = ("whole", "incremental")  # the balance units a selection file may name (field ``unit``)
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")
 _MONTH = re.compile(r"[0-9]{4}-(0[1-9]|1[0-2])\Z")
@@ -321,6 +326,11 @@ def _validate(doc: dict, p: Path) -> Selection:
     mvf = c.number(doc.get("min_valid_fraction", 0.5), "min_valid_fraction", 0.0, 1.0)
     wy = c.integer(doc.get("water_year_start_month", 1), "water_year_start_month", 1, 12)
     c.number(doc.get("q_relative_error", Q_RELATIVE_ERROR), "q_relative_error", 0.0)
+    if doc.get("uncertainty_source") is not None:
+        for comp, how in c.mapping(doc["uncertainty_source"], "uncertainty_source").items():
+            if how not in (*_UNCERTAINTY_SOURCES, "gauge"):
+                c.fail(f"uncertainty_source.{comp}", f"{_show(how)} is not one of "
+                                                     f"{', '.join((*_UNCERTAINTY_SOURCES, 'gauge'))}")
     if doc.get("unit", "whole") not in UNITS:
         c.fail("unit", f"{_show(doc.get('unit'))} is not one of {', '.join(UNITS)}")
     unit_system = doc.get("unit_system", "mm")
@@ -451,7 +461,9 @@ def replay(path, *, cache_dir=None) -> dict:
             continue
         check([entry], [catalog_inputs[key]], key)
     ds = _extract_for(cat, sel, cache_dir, incremental=doc.get("unit", "whole") == "incremental")
-    res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)))
+    # a file written before issue 16 has no uncertainty_source: its n_beyond_2sigma came from the product spread
+    res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)),
+                            uncertainty="auto" if doc.get("uncertainty_source") is not None else "spread")
     # the balance's flows: the same ones, each from the same file
     recorded_flows = {str(f["id"]): f for f in doc.get("flows") or []}
     now_flows = {f["id"]: f for f in _flow_entries(cat, res)}
@@ -511,12 +523,16 @@ def write_series_csv(result, path, *, unit_system: str = "mm", overwrite: bool =
     sel = result.selection
     head = (f"# wbexplore series: basin {sel.basin}, P={sel.P} ET={sel.ET} TWSA={sel.TWSA}, "
             f"storage change {sel.storage_change}{' window-matched' if sel.matched else ''}\n"
+            f"# uncertainty_source: {result.uncertainty_line}\n"
             f"# units: {unit[unit_system]}; valid fractions 0..1\n# {CAUTION}\n")
     with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
         with open(tmp, "w") as fh:
             fh.write(head)
             f.to_csv(fh, float_format="%.17g")
     return Path(path)
+
+
+_SIGMA_COMPONENT = {"P": "P", "ET": "ET", "dS": "TWSA", "Q": None, "residual": None}
 
 
 def series_dataset(result, *, doc: dict | None = None):
@@ -545,7 +561,9 @@ def series_dataset(result, *, doc: dict | None = None):
     for name in ("sigma_P", "sigma_ET", "sigma_Q", "sigma_dS", "sigma_residual"):
         comp = name.split("_", 1)[1]
         ds[name] = ("time", f[name].to_numpy(dtype=float))
-        ds[name].attrs = {"long_name": f"standard error of {comp}", "units": "mm"}
+        how = result.uncertainty[_SIGMA_COMPONENT[comp]].method if _SIGMA_COMPONENT.get(comp) in result.uncertainty \
+            else "gauge" if comp == "Q" else "propagated from the terms"
+        ds[name].attrs = {"long_name": f"standard error of {comp}", "units": "mm", "uncertainty_source": how}
         ds[comp].attrs["ancillary_variables"] = (ds[comp].attrs.get("ancillary_variables", "") + " " + name).strip()
     for t in result.terms[len(BASE_TERMS):]:
         ds[t.name] = ("time", f[t.name].to_numpy(dtype=float))
@@ -574,6 +592,8 @@ def series_dataset(result, *, doc: dict | None = None):
                   f"{' (window-matched)' if sel.matched else ''}",
         "history": f"{_dt.datetime.now(_dt.timezone.utc):%Y-%m-%dT%H:%M:%SZ} wbexplore {__version__}",
         "basin_id": str(sel.basin), "basin_area_km2": float(result.area_km2),
+        "uncertainty_source": json.dumps({**result.uncertainty_source, "Q": "gauge"}, sort_keys=True),
+        "uncertainty_notes": result.uncertainty_line,
         "comment": CAUTION,
     }
     if doc:

@@ -20,6 +20,7 @@ from ..units import mm_per_month_to_flow_m3s, mm_to_m3
 from .engine import (ENSEMBLE_PREFIX, basin_index, check_source, closure_arrays, combine, metrics_arrays,
                      water_year, with_ensembles)
 from .options import MAX_LAG_MONTHS, OPTION_NAMES, ClosureOptions, check_lag, period_mask
+from . import uncertainty as unc
 from .storage import match_window_variance, storage_change_variance
 from .terms import BASE_TERMS, SOURCE_COMPONENTS, term_signs
 
@@ -97,6 +98,19 @@ class SelectionResult:
     basin_name: str
     messages: list = field(default_factory=list)
     terms: tuple = BASE_TERMS  # the balance's `Term` rows, flows included (frame columns by name)
+    # component -> `uncertainty.ProductError`: where each sigma_<component> came from
+    uncertainty: dict = field(default_factory=dict)
+    q_relative_error: float = Q_RELATIVE_ERROR  # of gauged Q and of every flow
+
+    @property
+    def uncertainty_line(self) -> str:
+        """Where each term's uncertainty comes from, one line (CSV headers, notes, reports)."""
+        return unc.uncertainty_text(self.uncertainty, q_relative_error=self.q_relative_error)
+
+    @property
+    def uncertainty_source(self) -> dict:
+        """component -> how its error was obtained ("stated", "collocation", "spread", "none")."""
+        return {c: e.method for c, e in self.uncertainty.items()}
 
     @property
     def n_valid(self) -> int:
@@ -138,27 +152,8 @@ def component_terms(ds: xr.Dataset, sel: Selection) -> dict:
     return out
 
 
-def _sigma_component(ds, sel, comp, b, values):
-    """Per-month standard error (mm) of one component: stated error, else product spread."""
-    sid = getattr(sel, comp)
-    attrs = ds.variables[sid].attrs
-    if attrs.get("relative_error") is not None or attrs.get("absolute_error_mm") is not None:
-        rel = float(attrs.get("relative_error") or 0.0)
-        ab = float(attrs.get("absolute_error_mm") or 0.0)
-        return np.sqrt((rel * np.abs(values)) ** 2 + ab**2), "stated"
-    ids = [s for s in source_ids(ds, comp) if not s.startswith(ENSEMBLE_PREFIX)]
-    if len(ids) >= 2:
-        stack = np.stack([np.where(_valid(ds, s, b, sel.min_valid_fraction), _values(ds, s)[b], np.nan) for s in ids])
-        n = np.sum(np.isfinite(stack), axis=0)
-        with np.errstate(invalid="ignore"):
-            mean = np.nanmean(np.where(n >= 2, stack, 0.0), axis=0)
-            sd = np.sqrt(np.nansum((stack - mean) ** 2, axis=0) / np.maximum(n - 1, 1))
-        return np.where(n >= 2, sd, np.nan), "spread"
-    return np.full(values.shape, np.nan), "none"
-
-
 def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float = Q_RELATIVE_ERROR,
-                      covariance=None, min_valid: int = 24) -> SelectionResult:
+                      covariance=None, min_valid: int = 24, uncertainty: str | None = None) -> SelectionResult:
     """Series, uncertainty and metrics of one selection (a view of the closure pipeline, `closure_arrays`).
 
     Parameters
@@ -169,13 +164,18 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     covariance : optional 4x4 array, correlation matrix of the errors of (P, ET, Q, dS);
         default independent errors (flows: always independent).
     min_valid : fewer valid months than this and the metrics are NaN (with a message)
+    uncertainty : "auto" (default, `uncertainty.DEFAULT_METHOD`) | "stated" | "collocation" | "spread"
+        Where each product's error comes from (`wbexplore.balance.uncertainty`); "auto" falls back to the
+        spread when collocation cannot be estimated over the period, and says so in ``messages``.
 
     Returns
     -------
     SelectionResult with ``frame`` columns (mm/month unless noted):
     P, ET, Q, dS (window-matched where ``sel.matched``), TWSA (mm), residual, Qhat,
     P_raw, ET_raw, Q_raw, residual_unmatched, sigma_P, sigma_ET, sigma_Q, sigma_dS, sigma_residual,
-    beyond_2sigma (bool), valid (bool), twsa_filled (bool), valid_fraction_P/ET/TWSA (0..1); with flows,
+    beyond_2sigma (bool), valid (bool), twsa_filled (bool), valid_fraction_P/ET/TWSA (0..1),
+    disagreement_P/ET/TWSA (standard deviation of the component's products, mm/month, TWSA mm: the
+    "product disagreement", whatever the uncertainty source); with flows,
     each flow ``flow_<id>`` (window-matched), ``flow_<id>_raw``, ``sigma_flow_<id>`` and ``net_flow``
     (inflows - outflows).
     """
@@ -194,16 +194,18 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     res, qhat = combine({t.name: (a[t.name][0, 0] if t.gridded else a[t.name][0]) for t in terms_}, terms_)
     res_unmatched, _ = combine({t.name: (a[t.name][0, 0] if t.storage else a[f"{t.name}_raw"][0, 0] if t.gridded
                                          else a[f"{t.name}_raw"][0]) for t in terms_}, terms_)
-    sP, srcP = _sigma_component(ds, sel, "P", b, P_raw)
-    sE, srcE = _sigma_component(ds, sel, "ET", b, ET_raw)
-    sM, srcM = _sigma_component(ds, sel, "TWSA", b, M_used)
+    method = unc.DEFAULT_METHOD if uncertainty is None else uncertainty
+    kw = {"period": mask, "min_valid_fraction": sel.min_valid_fraction, "method": method}
+    errors = {"P": unc.product_error(ds, sel.P, b, values=P_raw, **kw),
+              "ET": unc.product_error(ds, sel.ET, b, values=ET_raw, **kw),
+              "TWSA": unc.product_error(ds, sel.TWSA, b, values=M_used, **kw)}
     sQ = q_relative_error * np.abs(Q_raw)
 
-    def flux_var(sd):
-        return match_window_variance(sd**2, sel.storage_change) if sel.matched else sd**2
+    def flux_var(v):
+        return match_window_variance(v, sel.storage_change) if sel.matched else v
 
-    vP, vE, vQ = flux_var(sP), flux_var(sE), flux_var(sQ)
-    vS = storage_change_variance(sM**2, sel.storage_change)
+    vP, vE, vQ = flux_var(errors["P"].variance), flux_var(errors["ET"].variance), flux_var(sQ**2)
+    vS = storage_change_variance(errors["TWSA"].variance, sel.storage_change)
     sig = np.sqrt(np.stack([vP, vE, vQ, vS]))
     g = term_signs(BASE_TERMS)
     if covariance is None:
@@ -215,7 +217,7 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
         vr = np.einsum("i,it,ij,jt,j->t", g, sig, C, sig, g)
     sig_flows = {}
     for t in flows:
-        sig_flows[t.name] = np.sqrt(flux_var(q_relative_error * np.abs(a[f"{t.name}_raw"][0])))
+        sig_flows[t.name] = np.sqrt(flux_var((q_relative_error * np.abs(a[f"{t.name}_raw"][0])) ** 2))
         vr = vr + sig_flows[t.name] ** 2
     sr = np.sqrt(vr)
     valid = np.isfinite(res)
@@ -231,6 +233,8 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
         name = valid_fraction_name(getattr(sel, comp))
         cols[f"valid_fraction_{comp}"] = (_values(ds, name)[b] if name in ds.variables
                                           else np.full(months.size, np.nan))
+    for comp in SOURCE_COMPONENTS:
+        cols[f"disagreement_{comp}"] = unc.product_disagreement(ds, comp, b, min_valid_fraction=sel.min_valid_fraction)
     for t in flows:
         cols[t.name] = a[t.name][0]
         cols[f"{t.name}_raw"] = a[f"{t.name}_raw"][0]
@@ -263,8 +267,11 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     return SelectionResult(selection=sel, frame=frame, metrics=metrics,
                            area_km2=float(ds["basin_area_km2"].values[b]) if "basin_area_km2" in ds.coords else float("nan"),
                            basin_name=str(ds["basin_name"].values[b]) if "basin_name" in ds.coords else str(sel.basin),
-                           messages=msgs + [f"uncertainty: P {srcP}, ET {srcE}, TWSA {srcM}, Q {q_relative_error:.0%} of flow"],
-                           terms=a["terms"])
+                           messages=msgs + [f"uncertainty: P {errors['P'].method}, ET {errors['ET'].method}, "
+                                            f"TWSA {errors['TWSA'].method}, Q {q_relative_error:.0%} of flow"]
+                           + [f"uncertainty of {c} ({e.source}): {e.note}" for c, e in errors.items()
+                              if "not used" in e.note],
+                           terms=a["terms"], uncertainty=errors, q_relative_error=float(q_relative_error))
 
 
 def _span(months, ok):

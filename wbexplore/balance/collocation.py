@@ -8,6 +8,11 @@ zero-mean errors and linear scalings, with sample covariances Q,
     rho_x^2  = Qxy Qxz / (Qxx Qyz)          (correlation of x with the truth, squared)
 
 and cyclically for y and z.
+
+With more than three products (`multiple_collocation`), every pair (j, k) of the other products gives
+one estimate of the signal variance of product i, ``Qij Qik / Qjk`` (the same identity as above, for
+every triplet that contains i); their mean over all pairs is subtracted from ``Qii``. With three
+products this is exactly the triple-collocation estimate.
 """
 
 from __future__ import annotations
@@ -16,7 +21,7 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["triple_collocation", "collocation_from_covariance"]
+__all__ = ["triple_collocation", "collocation_from_covariance", "multiple_collocation"]
 
 
 def triple_collocation(*series, names=None, min_samples: int = 10) -> dict:
@@ -70,4 +75,48 @@ def collocation_from_covariance(Q) -> np.ndarray:
         pair = (j != i) & (m != i)
         a, b = j[pair], m[pair]
         out[i] = np.mean(Q[i, i] - Q[i, a] * Q[i, b] / Q[a, b])
+    return out
+
+
+def multiple_collocation(stack, *, names=None, min_samples: int = 10) -> dict:
+    """Error variance of each of N >= 3 products of one truth (units of the data, squared).
+
+    Parameters
+    ----------
+    stack : array (N, T)
+        One row per product (same units, e.g. mm/month); NaN allowed: only samples where every product
+        is valid are used.
+    names : sequence of N str, optional
+        Result keys (default "0", "1", ...).
+    min_samples : int
+        Fewest common valid samples accepted.
+
+    Returns
+    -------
+    dict name -> {"error_variance", "error_sd", "rho", "n", "triplets"}: for each product i the signal
+    variance ``mean over pairs (j, k) of Qij Qik / Qjk`` is subtracted from ``Qii`` (Stoffelen 1998;
+    McColl et al. 2014, GRL 41:6229, for the covariance form); ``triplets`` is how many triplets the
+    mean is over (1 for three products). The error variance may come out zero or negative when a
+    product's random error is small against the sampling error: callers decide what to do then.
+    """
+    arr = np.asarray(stack, dtype=np.float64)
+    if arr.ndim != 2 or arr.shape[0] < 3:
+        n = arr.shape[0] if arr.ndim == 2 else 1
+        raise InputError(f"collocation needs at least three products of one component, got {n}")
+    ok = np.all(np.isfinite(arr), axis=0)
+    n = int(ok.sum())
+    if n < min_samples:
+        raise InputError(f"collocation needs at least {min_samples} common valid samples, got {n}")
+    Q = np.cov(arr[:, ok])
+    m = arr.shape[0]
+    names = [str(i) for i in range(m)] if names is None else [str(x) for x in names]
+    errors = collocation_from_covariance(Q)  # the one covariance form (also used by balance.merge)
+    triplets = (m - 1) * (m - 2) // 2  # pairs (j, k) of the other products
+    out = {}
+    for i in range(m):
+        ev = float(errors[i])
+        signal = float(Q[i, i] - ev)
+        rho2 = signal / Q[i, i] if Q[i, i] > 0 else float("nan")
+        out[names[i]] = {"error_variance": ev, "error_sd": float(np.sqrt(ev)) if ev > 0 else float("nan"),
+                         "rho": float(np.sqrt(rho2)) if rho2 > 0 else float("nan"), "n": n, "triplets": triplets}
     return out

@@ -195,7 +195,9 @@ def closure_terms(ds: xr.Dataset, options: ClosureOptions | None = None, *, basi
     (basin, TWSA_source, time), ``Q`` and every flow ``flow_<id>`` (basin, time), their ``<name>_raw``
     (before window matching), ``residual`` and ``Qhat`` (basin, P_source, ET_source, TWSA_source, time).
     Each term variable carries ``sign``, ``kind`` and ``label`` from the term table; the options are in
-    ``attrs["closure_options"]`` (JSON text, `ClosureOptions.from_json`).
+    ``attrs["closure_options"]`` (JSON text, `ClosureOptions.from_json`); where each product's error would
+    come from in each basin is ``attrs["uncertainty_source"]`` (JSON text {basin: {source: "stated" |
+    "collocation" | "spread" | "none"}}, `wbexplore.balance.uncertainty`).
     """
     opts = ClosureOptions.from_kwargs(options, **kwargs)
     a = closure_arrays(ds, opts, basins=basins, sources=sources)
@@ -254,8 +256,24 @@ def _to_dataset(a: dict, opts: ClosureOptions, mask) -> xr.Dataset:
     data["residual"] = (full, res, {"units": "mm/month", "label": "Residual"})
     data["Qhat"] = (full, qhat, {"units": "mm/month", "label": "Discharge predicted by the balance"})
     out = xr.Dataset(data, coords=coords)
-    out.attrs = {"closure_options": opts.to_json()}  # text: the Dataset stays writable to netCDF
+    out.attrs = {"closure_options": opts.to_json(),  # text: the Dataset stays writable to netCDF
+                 "uncertainty_source": _uncertainty_sources(a, opts, mask)}
     return out
+
+
+def _uncertainty_sources(a: dict, opts: ClosureOptions, mask) -> str:
+    """JSON text {basin: {source: method}}: where each product's error would come from over the period
+    (`uncertainty.product_error`, default method: stated, collocation or spread)."""
+    import json
+
+    from .uncertainty import all_product_errors
+
+    ds = a["ds"]
+    out = {}
+    for name, b in zip(a["basins"], a["b"]):
+        errs = all_product_errors(ds, int(b), sources=a["ids"], period=mask, min_valid_fraction=opts.min_valid_fraction)
+        out[name] = {s: e.method for s, e in errs.items()}
+    return json.dumps(out, sort_keys=True)
 
 
 def water_year(months: pd.DatetimeIndex, start_month: int = 1) -> np.ndarray:

@@ -56,7 +56,7 @@ import xarray as xr
 from ..errors import InputError, LevelOutsideCurveWarning
 
 __all__ = ["METHODS", "KERNELS", "storage_change", "match_window", "apply_kernel", "match_window_variance",
-           "storage_change_variance", "shift_later", "fill_gaps", "window_closure",
+           "storage_change_variance", "DS_KERNELS", "kernel", "sum_variance", "shift_later", "fill_gaps", "window_closure",
            "VOLUME_STATES", "level_volumes", "apply_curves", "volume_storage_change", "volume_kernel", "match_volume_window"]
 
 METHODS = ("central", "backward", "forward")
@@ -132,6 +132,53 @@ def storage_change_variance(variance, method: str = "central") -> np.ndarray:
     """Variance (mm2) of `storage_change` from the monthly TWSA error variances (independent months)."""
     _check(method)
     return apply_kernel(variance, _DS_VARIANCE_KERNELS[method])
+
+
+# weights on M[i-1], M[i], M[i+1] of `storage_change` (signed; `_DS_VARIANCE_KERNELS` are their squares)
+DS_KERNELS = {"central": (-0.5, 0.0, 0.5), "backward": (-1.0, 1.0, 0.0), "forward": (0.0, -1.0, 1.0)}
+
+
+def kernel(term: str, method: str = "central", *, matched: bool = True) -> tuple[float, float, float]:
+    """Weights on month i-1, i, i+1 of the raw monthly series that give a balance term at month i.
+
+    ``term`` "dS": the storage difference of TWSA monthly means (`DS_KERNELS`); any flux: the window of
+    `match_window` where ``matched``, else the month itself (0, 1, 0).
+    """
+    _check(method)
+    if term == "dS":
+        return DS_KERNELS[method]
+    return KERNELS[method] if matched else (0.0, 1.0, 0.0)
+
+
+def sum_variance(variance, weights, select) -> np.ndarray:
+    """Variance (mm2) of the sum over the selected months of a kernel-filtered series.
+
+    For ``y[i] = sum_k w_k x[i + k - 1]`` with independent monthly errors of variance ``variance[j]``
+    (last axis: time), ``sum_{i in select} y[i] = sum_j c_j x[j]`` with ``c = K^T 1_select``; the result
+    is ``sum_j c_j^2 variance[j]`` (the filtered months share raw months, so their variances do not add).
+
+    Parameters
+    ----------
+    variance : array (..., T), mm2
+    weights : (w_prev, w_same, w_next)
+    select : bool array (T,) or (..., T): the months summed
+
+    Returns
+    -------
+    array (...): NaN where a raw month that carries weight has no variance.
+    """
+    v = np.asarray(variance, dtype=np.float64)
+    a = np.broadcast_to(np.asarray(select, dtype=np.float64), v.shape)
+    w0, w1, w2 = weights
+    c = w1 * a
+    # c[j] = sum_i a[i] K[i, j] with K[i, i-1] = w0, K[i, i] = w1, K[i, i+1] = w2
+    c[..., :-1] = c[..., :-1] + w0 * a[..., 1:]
+    c[..., 1:] = c[..., 1:] + w2 * a[..., :-1]
+    used = c != 0
+    with np.errstate(invalid="ignore"):
+        terms = np.where(used, c * c * v, 0.0)
+    out = terms.sum(axis=-1)
+    return np.where(np.any(used & ~np.isfinite(v), axis=-1), np.nan, out)
 
 
 def shift_later(values, months: int) -> np.ndarray:

@@ -1,11 +1,12 @@
-"""The unknown term by difference, with propagated uncertainty.
+"""The unknown term by difference, in the form older callers take: a view of `estimate.estimate_by_difference`.
 
     ET = P - Q - dS,   Q = P - ET - dS,   dS = P - ET - Q     (each + inflows - outflows, with flows)
 
-monthly, and as long-term means over whole years, where the storage term largely
-vanishes (ET = P - Q is the classic long-term form; the dS term is reported).
-Errors of the terms are taken as independent between terms and between months
-(optimistic for systematic product errors: say so when you quote the band).
+Monthly, per water year, and as long-term means over whole water years (the mean of the yearly estimates,
+which keep the storage term, beside the mean without it). The standard errors are those of `estimate`
+(random errors through the kernels); the long-term one treats the years as independent (the window-matched
+months at two years' boundary share a raw month: slightly optimistic). New code should use
+`estimate.estimate_by_difference` directly.
 """
 
 from __future__ import annotations
@@ -15,49 +16,42 @@ import pandas as pd
 import xarray as xr
 
 from ..errors import InputError
-from .closure import Selection, compute_selection, water_year
+from .closure import Q_RELATIVE_ERROR, Selection, compute_selection
+from .engine import water_year
+from .estimate import TERMS, estimate_by_difference
 
 __all__ = ["by_difference", "UNKNOWNS"]
 
-UNKNOWNS = ("ET", "Q", "dS")
+UNKNOWNS = TERMS
 
 
 def by_difference(ds: xr.Dataset, sel: Selection, unknown: str = "ET", **kwargs) -> dict:
     """Estimate ``unknown`` from the other terms of ``sel``.
 
-    Returns dict with ``monthly`` (DataFrame: estimate, sigma, and the term as the selection
-    has it, ``reference``), ``annual`` (complete years: estimate, sigma), and ``long_term``
-    (mean annual estimate with and without the storage term, its sigma, years used).
+    ``kwargs`` go to `compute_selection` (``q_relative_error``, ``min_valid``, ``uncertainty``, ...).
+
+    Returns dict with ``monthly`` (DataFrame: estimate, sigma, and the term as the selection has it,
+    ``reference``), ``annual`` (whole water years: year, estimate, sigma, without_storage, dS_total),
+    ``long_term`` (mean annual estimate with and without the storage term, its sigma, years used) and
+    ``selection`` (the `SelectionResult`).
     """
     if unknown not in UNKNOWNS:
         raise InputError(f"unknown term {unknown!r} is not one of {', '.join(UNKNOWNS)}")
     res = compute_selection(ds, sel, **kwargs)
-    f = res.frame
-    rows_ = res.terms  # the term table's rows, flows included
-    terms = {t.name: f[t.name] for t in rows_}
-    sig = {k: f[f"sigma_{k}"] for k in terms}
-    sign = {t.name: t.sign for t in rows_}
-    others = [k for k in terms if k not in (unknown, "P")]
-    est = terms["P"].copy()
-    for k in others:
-        est = est + sign[k] * terms[k]
-    est = -est / sign[unknown]
-    var = sig["P"] ** 2 + sum(sig[k] ** 2 for k in others)
-    monthly = pd.DataFrame({"estimate": est, "sigma": np.sqrt(var), "reference": terms[unknown]})
-    months = pd.DatetimeIndex(f.index)
-    wy = water_year(months, sel.water_year_start)
+    est = estimate_by_difference(ds, sel, unknown, q_relative_error=kwargs.get("q_relative_error", Q_RELATIVE_ERROR),
+                                 uncertainty=kwargs.get("uncertainty"))
+    m = est.monthly
+    monthly = pd.DataFrame({"estimate": m["estimate"].to_numpy(), "sigma": m["standard_error"].to_numpy(),
+                            "reference": res.frame[unknown].to_numpy()}, index=res.frame.index)
+    a = est.annual
+    wy = water_year(pd.DatetimeIndex(m.index), sel.water_year_start)
+    ds_month = res.frame["dS"].to_numpy()
     rows = []
-    for y in np.unique(wy):
-        m = wy == y
-        blk = monthly[m]
-        if m.sum() == 12 and blk["estimate"].notna().all():
-            nos = None
-            if unknown != "dS":
-                nos_terms = terms["P"][m] + sum(sign[k] * terms[k][m] for k in others if k != "dS")
-                nos = float(-(nos_terms.sum()) / sign[unknown])
-            rows.append({"year": int(y), "estimate": float(blk["estimate"].sum()),
-                         "sigma": float(np.sqrt((blk["sigma"] ** 2).sum())),
-                         "without_storage": nos, "dS_total": float(terms["dS"][m].sum())})
+    for y, r in a.iterrows():
+        dS_total = float(r["storage_change"]) if "storage_change" in a else float(ds_month[wy == y].sum())
+        rows.append({"year": int(y), "estimate": float(r["estimate"]), "sigma": float(r["standard_error"]),
+                     "without_storage": float(r["estimate"] + r["storage_change"]) if unknown != "dS" else None,
+                     "dS_total": dS_total})
     annual = pd.DataFrame(rows)
     if len(annual):
         lt = {"years": int(len(annual)), "estimate_mm_per_year": float(annual["estimate"].mean()),

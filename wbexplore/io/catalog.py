@@ -475,8 +475,8 @@ def open_catalog(path: str | os.PathLike) -> Catalog:
         for key in ("relative_error", "absolute_error_mm"):
             if s.get(key) is not None:
                 val = s[key]
-                if not isinstance(val, (int, float)) or isinstance(val, bool) or not val > 0:
-                    _fail(cat, where, f"field {key!r}: {val!r} must be a positive number")
+                if not isinstance(val, (int, float)) or isinstance(val, bool) or not 0 < val < float("inf"):
+                    _fail(cat, where, f"field {key!r}: {val!r} must be a positive finite number")
                 errs[key] = float(val)
         fmt_paths = paths
         date_format = _str(cat, where, s, "date_format")

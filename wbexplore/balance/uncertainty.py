@@ -1,0 +1,282 @@
+"""The error of the chosen product, not of the crowd: per-month error variances of a source.
+
+In order (``method="auto"``), the error variance of a gridded source for each month is
+
+1. ``stated``: the catalog states it (``relative_error``, ``absolute_error_mm``: standard errors, as
+   ``sqrt((relative_error * value)^2 + absolute_error_mm^2)``);
+2. ``collocation``: the component has at least three products with at least `MIN_COLLOCATION_MONTHS`
+   common valid months in the period: the collocation error variance of the product (triple
+   collocation, Stoffelen 1998; covariance form of McColl et al. 2014, GRL 41:6229; with more than three
+   products the multiple-collocation mean over triplets, `collocation.multiple_collocation`), the same
+   for every month;
+3. ``spread``: the standard deviation of the component's products in each month, which measures their
+   disagreement, not the error of the chosen one (labelled so wherever it is shown).
+
+What was used is recorded (`ProductError.method`, `method_label`) and travels with every output that
+carries an uncertainty. The product spread stays available on its own as `product_disagreement`.
+
+What collocation measures: the *random* error of a product around a linear calibration of the truth
+(``x = a + b t + e``, errors independent of the truth and of each other). A multiplicative bias or a
+damped seasonal cycle is part of ``a + b t`` and is not in the error variance: collocation is blind to
+systematic errors. A collocation estimate at or below zero (a product whose random error is small
+against the sampling error) is not used: ``auto`` falls back to the spread and says why.
+
+Pure computation: no files, no prints.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import xarray as xr
+
+from ..errors import InputError
+from ..series import source_ids, valid_fraction_name
+from .collocation import multiple_collocation
+
+__all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "MIN_COLLOCATION_MONTHS",
+           "DEFAULT_METHOD", "product_error", "product_errors", "all_product_errors", "product_disagreement", "stated_variance",
+           "collocation_variances", "method_label", "uncertainty_text", "legend_text", "check_method",
+           "component_products"]
+
+STATED, COLLOCATION, SPREAD, NONE = "stated", "collocation", "spread", "none"
+METHODS = ("auto", STATED, COLLOCATION, SPREAD)
+# Two years of common months: the sampling standard error of a variance estimate is about sqrt(2 / n)
+# of it (normal errors), 29% at n = 24; fewer months and the estimate is mostly noise (common practice).
+MIN_COLLOCATION_MONTHS = 24
+DEFAULT_METHOD = "auto"
+
+_LABELS = {
+    STATED: "stated product error (catalog)",
+    COLLOCATION: "collocation error variance of the product",
+    SPREAD: "product spread (disagreement between products, not the chosen product's error)",
+    NONE: "no error estimate",
+}
+
+
+def method_label(method: str) -> str:
+    """The name of an uncertainty source for legends, notes and reports."""
+    if method not in _LABELS:
+        raise InputError(f"uncertainty source {method!r} is not one of {', '.join(_LABELS)}")
+    return _LABELS[method]
+
+
+def check_method(method: str) -> str:
+    """``method`` if it is one of `METHODS`, else `InputError`."""
+    if method not in METHODS:
+        raise InputError(f"--uncertainty {method!r} is not one of {', '.join(METHODS)}")
+    return method
+
+
+@dataclass(frozen=True)
+class ProductError:
+    """Per-month error variance of one source.
+
+    source : source id
+    component : "P" | "ET" | "TWSA"
+    method : `STATED` | `COLLOCATION` | `SPREAD` | `NONE`
+    variance : array (T,), mm2 (P, ET: (mm/month)^2; TWSA: mm^2), NaN where unknown
+    note : how it was obtained (products, months) or why ``auto`` fell back
+    """
+
+    source: str
+    component: str
+    method: str
+    variance: np.ndarray
+    note: str = ""
+
+    @property
+    def sigma(self) -> np.ndarray:
+        """Standard error per month (mm/month; TWSA mm)."""
+        return np.sqrt(self.variance)
+
+    @property
+    def label(self) -> str:
+        return method_label(self.method)
+
+
+def component_products(ds: xr.Dataset, component: str) -> list[str]:
+    """The products of ``component`` (ensemble means left out: they are not independent of their members)."""
+    from .engine import ENSEMBLE_PREFIX
+
+    return [s for s in source_ids(ds, component) if not s.startswith(ENSEMBLE_PREFIX)]
+
+
+def _masked(ds, sid, b, min_vf):
+    v = ds.variables[sid].values[b].astype(np.float64)
+    name = valid_fraction_name(sid)
+    if name in ds.variables:
+        return np.where(ds.variables[name].values[b] >= min_vf, v, np.nan)
+    return v
+
+
+def stated_variance(attrs: dict, values, *, source: str) -> np.ndarray | None:
+    """Variance (mm2) per month from the stated errors in ``attrs``, or None when none is stated.
+
+    `InputError` naming the source and field for a stated error that is not a positive finite number.
+    """
+    rel, ab = attrs.get("relative_error"), attrs.get("absolute_error_mm")
+    if rel is None and ab is None:
+        return None
+    for field, v in (("relative_error", rel), ("absolute_error_mm", ab)):
+        if v is None:
+            continue
+        try:
+            f = float(v)
+        except (TypeError, ValueError):
+            f = float("nan")
+        if isinstance(v, bool) or not np.isfinite(f) or f <= 0:
+            raise InputError(f"source {source!r}: field {field!r}: {v!r} must be a positive finite number")
+    x = np.asarray(values, dtype=np.float64)
+    return (float(rel or 0.0) * x) ** 2 + float(ab or 0.0) ** 2
+
+
+def collocation_variances(stack, names, *, component: str = "", min_months: int = MIN_COLLOCATION_MONTHS) -> dict:
+    """Collocation error variance (mm2) of each of N >= 3 products (rows of ``stack``, time last).
+
+    `InputError` with fewer than three products (saying how many there are) or fewer than ``min_months``
+    months where every product is valid (naming the minimum).
+    """
+    stack = np.asarray(stack, dtype=np.float64)
+    what = f"{component} " if component else ""
+    if stack.shape[0] < 3:
+        raise InputError(f"collocation needs at least three {what}products; there {'is' if stack.shape[0] == 1 else 'are'} "
+                         f"{stack.shape[0]} ({', '.join(names) or 'none'})")
+    n = int(np.all(np.isfinite(stack), axis=0).sum())
+    if n < min_months:
+        raise InputError(f"period too short to estimate error variances by collocation: {n} months where every "
+                         f"{what}product ({', '.join(names)}) is valid, at least {min_months} needed")
+    return multiple_collocation(stack, names=names, min_samples=min_months)
+
+
+def _spread(stack) -> np.ndarray:
+    """Sample standard deviation of the products in each month (NaN where fewer than two are valid)."""
+    n = np.sum(np.isfinite(stack), axis=0)
+    with np.errstate(invalid="ignore"):
+        mean = np.nanmean(np.where(n >= 2, stack, 0.0), axis=0)
+        sd = np.sqrt(np.nansum((stack - mean) ** 2, axis=0) / np.maximum(n - 1, 1))
+    return np.where(n >= 2, sd, np.nan)
+
+
+def product_disagreement(ds: xr.Dataset, component: str, basin_index: int, *, min_valid_fraction: float = 0.5) -> np.ndarray:
+    """Standard deviation (mm/month; TWSA mm) of ``component``'s products in each month: how much they
+    disagree (NaN where fewer than two are valid). Not the error of any one product."""
+    ids = component_products(ds, component)
+    if len(ids) < 2:
+        return np.full(ds.sizes["time"], np.nan)
+    return _spread(np.stack([_masked(ds, s, basin_index, min_valid_fraction) for s in ids]))
+
+
+def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None, period=None,
+                  min_valid_fraction: float = 0.5, method: str = DEFAULT_METHOD, strict: bool = False,
+                  cache: dict | None = None) -> ProductError:
+    """Per-month error variance of ``source`` over one basin (see the module text for the order).
+
+    Parameters
+    ----------
+    ds : canonical basin series
+    source : source id (a P, ET or TWSA product)
+    basin_index : the basin's index in ``ds``
+    values : array (T,), optional
+        The source as the balance uses it (e.g. TWSA with gaps filled), for stated relative errors;
+        default the series' values (months below ``min_valid_fraction`` missing).
+    period : bool array (T,), optional
+        Months over which collocation error variances are estimated (default all).
+    min_valid_fraction : months where a product covers less of the basin are missing (0..1)
+    method : "auto" | "stated" | "collocation" | "spread"
+        "auto": stated, else collocation, else spread. An explicit method is used or refused.
+    strict : bool
+        With "auto", refuse (`InputError`) instead of falling back to the spread when the component has
+        three products or more but the period is too short to estimate collocation error variances. (An
+        estimate at or below zero falls back to the spread, saying why, unless collocation was asked for.)
+    cache : dict, optional
+        Shared between calls for one basin, period and valid fraction (`all_product_errors`): each
+        component's products are stacked and collocated once.
+
+    Returns
+    -------
+    ProductError
+    """
+    check_method(method)
+    attrs = ds.variables[source].attrs
+    comp = attrs.get("component")
+    own = _masked(ds, source, basin_index, min_valid_fraction)
+    x = own if values is None else np.asarray(values, dtype=np.float64)
+    if method in ("auto", STATED):
+        v = stated_variance(attrs, x, source=source)
+        if v is not None:
+            return ProductError(source, comp, STATED, v, "stated in the catalog")
+        if method == STATED:
+            raise InputError(f"source {source!r}: no stated error in the catalog (fields 'relative_error', "
+                             "'absolute_error_mm')")
+    ids = component_products(ds, comp)
+    why = ""
+    if source not in ids and method == COLLOCATION:
+        raise InputError(f"source {source!r} is derived from the {comp} products (not independent of them): "
+                         "collocation needs independent products")
+    if method == COLLOCATION or (method == "auto" and len(ids) >= 3 and source in ids):
+        if cache is not None and comp in cache:
+            tc, failure = cache[comp]
+        else:
+            stack = np.stack([own if s == source else _masked(ds, s, basin_index, min_valid_fraction) for s in ids])
+            if period is not None:
+                stack = np.where(np.asarray(period, dtype=bool), stack, np.nan)
+            tc = failure = None
+            try:
+                tc = collocation_variances(stack, ids, component=comp)
+            except InputError as exc:
+                failure = exc
+            if cache is not None:
+                cache[comp] = (tc, failure)
+        if failure is not None:
+            if method == COLLOCATION or strict:
+                raise InputError(str(failure))
+            why = f" (collocation not used: {failure})"
+        ev = float("nan") if tc is None else tc[source]["error_variance"]
+        if tc is not None and not ev > 0:
+            msg = (f"collocation error variance of {source!r} is {ev:.3g} mm2, not positive: its random error is "
+                   f"below the sampling error of {tc[source]['n']} months (a systematic error is invisible to it)")
+            if method == COLLOCATION:
+                raise InputError(msg)
+            why = f" (collocation not used: {msg})"
+        if tc is not None and ev > 0:
+            kind = "triple" if len(ids) == 3 else f"multiple ({len(ids)} products)"
+            note = f"{kind} collocation with {', '.join(s for s in ids if s != source)} over {tc[source]['n']} months"
+            return ProductError(source, comp, COLLOCATION, np.where(np.isfinite(x), ev, np.nan), note)
+    if len(ids) >= 2:
+        sd = _spread(np.stack([_masked(ds, s, basin_index, min_valid_fraction) for s in ids]))
+        return ProductError(source, comp, SPREAD, sd**2, f"spread of {', '.join(ids)}{why}")
+    return ProductError(source, comp, NONE, np.full(x.shape, np.nan), f"one {comp} product only{why}")
+
+
+def all_product_errors(ds: xr.Dataset, basin_index: int, *, sources: dict | None = None, **kw) -> dict:
+    """source id -> `ProductError` for every source of ``sources`` (component -> list of ids; default every
+    product of each component) over one basin; keywords of `product_error` (each component collocated once)."""
+    from .terms import SOURCE_COMPONENTS
+
+    cache: dict = {}
+    if sources is None:
+        sources = {c: component_products(ds, c) for c in SOURCE_COMPONENTS}
+    return {s: product_error(ds, s, basin_index, cache=cache, **kw) for ids in sources.values() for s in ids}
+
+
+def product_errors(ds: xr.Dataset, sources: dict, basin_index: int, **kw) -> dict:
+    """component -> `ProductError` for ``sources`` (component -> source id); keywords of `product_error`."""
+    return {c: product_error(ds, s, basin_index, **kw) for c, s in sources.items()}
+
+
+def uncertainty_text(errors: dict, *, q_relative_error: float | None = None) -> str:
+    """One line naming the source of each component's uncertainty ("P collocation (...); ET ...")."""
+    parts = [f"{c} {e.method} ({e.note})" for c, e in errors.items()]
+    if q_relative_error is not None:
+        parts.append(f"Q {q_relative_error:.0%} of flow (gauge error)")
+    return "; ".join(parts)
+
+
+_SHORT = {STATED: "stated", COLLOCATION: "collocation", SPREAD: "product spread", NONE: "none"}
+
+
+def legend_text(errors: dict) -> str:
+    """Short text for a band's legend: "± 2 sigma (P collocation, ET stated, TWSA product spread)"."""
+    return "± 2 sigma (" + ", ".join(f"{c} {_SHORT[e.method]}" for c, e in errors.items()) + ")"
