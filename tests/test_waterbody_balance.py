@@ -419,3 +419,66 @@ def test_level_outside_the_curve_holds_through_rank(tmp_path, capsys):
     with pytest.warns(LevelOutsideCurveWarning, match="2011-03"):
         ds = _series(cat)
     assert np.isnan(ds["levels"].sel(basin="RES1", time="2011-03-01").item())
+
+
+# ---- pan evaporation: a third way to E --------------------------------------------------------------
+
+def _with_pan(cat_path, *, coefficient=None, units="mm/day"):
+    """Add a daily pan station for RES1 whose readings x 0.7 are the true lake evaporation."""
+    d = cat_path.parent
+    _, e_rate, *_ = _true_terms()
+    days = pd.date_range(MONTHS[0], MONTHS[-1] + pd.offsets.MonthEnd(0), freq="D")
+    rate = e_rate[(days.year - MONTHS[0].year) * 12 + days.month - 1]
+    pd.DataFrame({"date": days.strftime("%Y-%m-%d"), "PAN1": rate / 0.7}).to_csv(d / "pan.csv", index=False)
+    cat = yaml.safe_load(cat_path.read_text())
+    cat["waterbodies"]["pan"] = {"path": "pan.csv", "layout": "wide", "time_field": "date", "units": units,
+                                 "stations": {"PAN1": "RES1"}}
+    if coefficient is not None:
+        cat["waterbodies"]["pan"]["coefficient"] = coefficient
+    cat_path.write_text(yaml.safe_dump(cat, sort_keys=False))
+    return cat_path
+
+
+def test_pan_evaporation_is_an_et_source(study):
+    """pan x 0.7 (the default coefficient, common practice) = the lake evaporation written by hand."""
+    ds = _series(_with_pan(study))
+    assert ds["pan"].attrs["component"] == "ET" and ds["pan"].attrs["pan_coefficient"] == 0.7
+    np.testing.assert_allclose(ds["pan"].sel(time=MONTHS).values[0], ds["evap_true"].sel(time=MONTHS).values[0],
+                               rtol=1e-12)
+    df = rank(ds, "RES1", ClosureOptions())
+    assert len(df) == 2 * 3
+    best = df[(df["P"] == "rain_true") & (df["ET"] == "pan")].iloc[0]
+    assert best["exchange_m3s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+
+
+def test_pan_coefficient_and_units_are_checked(study, capsys, tmp_path):
+    ds = _series(_with_pan(study, coefficient=0.8))
+    np.testing.assert_allclose(ds["pan"].sel(time=MONTHS).values[0],
+                               ds["evap_true"].sel(time=MONTHS).values[0] / 0.7 * 0.8, rtol=1e-12)
+    rc, _, err = run_cli(["check", _with_pan(study, coefficient=2.0)], capsys)
+    assert "'coefficient'" in one_line_error(rc, err)
+    rc, _, err = run_cli(["check", _with_pan(study, units="m3/s")], capsys)
+    assert "pan evaporation is a depth" in one_line_error(rc, err)
+
+
+def test_cli_export_replay_with_pan(study, capsys, tmp_path):
+    cat = _with_pan(study)
+    sel = tmp_path / "sel.yaml"
+    rc, out, err = run_cli(["export", cat, "--basin", "RES1", "--P", "rain_true", "--ET", "pan", "--out", sel],
+                           capsys)
+    assert rc == 0, err
+    doc = yaml.safe_load(sel.read_text())
+    assert doc["sources"]["ET"]["id"] == "pan" and doc["sources"]["ET"]["files"][0]["path"] == "pan.csv"
+    rc, out, err = run_cli(["replay", sel], capsys)
+    assert rc == 0 and "replay ok" in out, err
+
+
+@pytest.mark.parametrize("taken", ["levels", "pan"])
+def test_a_product_may_not_take_the_name_of_a_water_body_series(study, taken):
+    from wbexplore.io.catalog import open_catalog
+
+    cat = yaml.safe_load(study.read_text())
+    cat["sources"][1]["id"] = taken
+    study.write_text(yaml.safe_dump(cat, sort_keys=False))
+    with pytest.raises(InputError, match=f"product id '{taken}' is the name of a water body's own series"):
+        open_catalog(study)

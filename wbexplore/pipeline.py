@@ -442,6 +442,8 @@ def _add_sources(ds: xr.Dataset, specs, computed, meta, full) -> None:
 def _assemble_waterbodies(cat: Catalog, gdf, specs, computed, meta, wbs, flows) -> xr.Dataset:
     """The water bodies' series (see `extract` with ``waterbodies=True``), before the storage from levels."""
     months = set(pd.DatetimeIndex(wbs.level_mean["time"].values))
+    if wbs.pan is not None:
+        months.update(pd.DatetimeIndex(wbs.pan["time"].values))
     for zm in computed.values():
         months.update(pd.DatetimeIndex(zm["time"].values))
     full = pd.date_range(min(months), max(months), freq="MS")
@@ -455,6 +457,17 @@ def _assemble_waterbodies(cat: Catalog, gdf, specs, computed, meta, wbs, flows) 
                                                              "reference area of every depth"}
     ds["time"].attrs = {"long_name": "calendar month (month start)"}
     _add_sources(ds, specs, computed, meta, full)
+    if wbs.pan is not None:  # a third way to E: pan readings x coefficient (`balance.waterbody`)
+        from .balance.waterbody import pan_to_lake_evaporation
+
+        lake = pan_to_lake_evaporation(wbs.pan, coefficient=wbs.pan_coefficient)
+        ds["pan"] = (("basin", "time"), lake.reindex(waterbody=list(ids), time=full).values)
+        ds["pan"].attrs = {"role": "source", "component": "ET", "units": "mm/month", "source_id": "pan",
+                           "long_name": f"lake evaporation: pan x {wbs.pan_coefficient:g}",
+                           "pan_coefficient": wbs.pan_coefficient, "source_units": wbs.pan.attrs["source_units"],
+                           "description": "evaporation-pan station series times the pan coefficient "
+                                          "(0.7 by default: common practice)",
+                           "cell_methods": "time: sum"}
     if flows is not None:
         _add_flows(ds, flows.reindex(basin=ids), full)
     ds.attrs = {

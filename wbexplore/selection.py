@@ -79,9 +79,10 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
     when it is not "whole"; ``area`` (where P and E fall) is written for water bodies."""
     sources = {}
     for comp in SOURCE_COMPONENTS:
-        if unit == "waterbody" and comp == DS.component:  # the storage from levels: the water-body files
-            sources[comp] = {"id": LEVELS, "label": DS_LEVELS.label,
-                             "files": _file_entries(_levels_paths(cat), cat.path.parent)}
+        own = _own_paths(cat, getattr(sel, comp)) if unit == "waterbody" else None
+        if own is not None:  # the storage from levels, the pan evaporation: the water bodies' own files
+            sources[comp] = {"id": getattr(sel, comp), "label": _OWN_LABELS[getattr(sel, comp)],
+                             "files": _file_entries(own, cat.path.parent)}
             continue
         spec = cat.source(getattr(sel, comp))
         sources[comp] = {"id": spec.id, "label": spec.display, "files": _file_entries(spec.paths, cat.path.parent)}
@@ -121,6 +122,18 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
     if sel.area != "outline" or unit == "waterbody":  # where P and E fall (water bodies)
         doc["area"] = sel.area
     return doc
+
+
+_OWN_LABELS = {LEVELS: DS_LEVELS.label, "pan": "Lake evaporation from pan"}
+
+
+def _own_paths(cat: Catalog, sid: str) -> tuple | None:
+    """The files of a water body's own series ("levels": outlines, levels, curve; "pan": the pan table), else None."""
+    if sid == LEVELS:
+        return _levels_paths(cat)
+    if sid == "pan" and cat.waterbodies is not None and cat.waterbodies.pan is not None:
+        return (cat.waterbodies.pan.path,)
+    return None
 
 
 def _levels_paths(cat: Catalog) -> tuple:
@@ -183,6 +196,8 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
             if sel.TWSA != LEVELS:
                 raise InputError(f"{cat.path}: water body {sel.basin!r}: its storage comes from levels "
                                  f"(TWSA source {LEVELS!r}), not {sel.TWSA!r}")
+            continue
+        if waterbody and _own_paths(cat, getattr(sel, comp)) is not None:
             continue
         spec = cat.source(getattr(sel, comp))
         if spec.component != comp:
@@ -436,8 +451,8 @@ def replay(path, *, cache_dir=None) -> dict:
     waterbody = doc.get("unit", "whole") == "waterbody"
     for comp in SOURCE_COMPONENTS:
         sid = getattr(sel, comp)
-        if waterbody and comp == DS.component:
-            continue  # the storage from levels: checked below against the catalog's water-body files
+        if waterbody and _own_paths(cat, sid) is not None:
+            continue  # the storage from levels, the pan: checked below against the catalog's water-body files
         if sid not in known:
             raise SelectionError(f"{path}: field 'sources.{comp}.id': source {sid!r} is not in the catalog "
                                  f"{doc['catalog']['path']!r}")
@@ -468,8 +483,9 @@ def replay(path, *, cache_dir=None) -> dict:
         return spec.format == "zarr"
 
     for comp in SOURCE_COMPONENTS:
-        if waterbody and comp == DS.component:
-            check(doc["sources"][comp].get("files") or [], _levels_paths(cat), f"source {LEVELS}")
+        if waterbody and _own_paths(cat, getattr(sel, comp)) is not None:
+            check(doc["sources"][comp].get("files") or [], _own_paths(cat, getattr(sel, comp)),
+                  f"source {getattr(sel, comp)}")
             continue
         spec = known[getattr(sel, comp)]
         check(doc["sources"][comp].get("files") or [], spec.paths, f"source {spec.id}", store_ok=is_store(spec))
