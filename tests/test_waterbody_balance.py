@@ -482,3 +482,15 @@ def test_a_product_may_not_take_the_name_of_a_water_body_series(study, taken):
     study.write_text(yaml.safe_dump(cat, sort_keys=False))
     with pytest.raises(InputError, match=f"product id '{taken}' is the name of a water body's own series"):
         open_catalog(study)
+
+
+def test_load_series_caches_water_bodies_apart_from_basins(study, tmp_path):
+    """The series cache key holds waterbodies=True: the basins' and the water bodies' series never mix."""
+    from wbexplore.pipeline import load_series
+
+    wb = load_series(study, cache_dir=tmp_path / "cache", waterbodies=True)
+    basins = load_series(study, cache_dir=tmp_path / "cache")
+    again = load_series(study, cache_dir=tmp_path / "cache", waterbodies=True)
+    assert wb["basin"].values.tolist() == ["RES1"] and basins["basin"].values.tolist() == ["B0"]
+    xr.testing.assert_identical(wb[["levels", "rain_true"]], again[["levels", "rain_true"]])
+    assert again.attrs["unit"] == "waterbody" and again["storage_state"].values.tolist() == ["end_of_month"]

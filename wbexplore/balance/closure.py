@@ -272,7 +272,9 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     return SelectionResult(selection=sel, frame=frame, metrics=metrics,
                            area_km2=float(ds["basin_area_km2"].values[b]) if "basin_area_km2" in ds.coords else float("nan"),
                            basin_name=str(ds["basin_name"].values[b]) if "basin_name" in ds.coords else str(sel.basin),
-                           messages=msgs + [f"uncertainty: P {srcP}, ET {srcE}, TWSA {srcM}, Q {q_relative_error:.0%} of flow"],
+                           messages=msgs + [f"uncertainty: P {srcP}, ET {srcE}, TWSA {srcM}, "
+                                            + (f"flows {q_relative_error:.0%} of flow" if no_q
+                                               else f"Q {q_relative_error:.0%} of flow")],
                            terms=a["terms"])
 
 
