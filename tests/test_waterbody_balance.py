@@ -494,3 +494,24 @@ def test_load_series_caches_water_bodies_apart_from_basins(study, tmp_path):
     assert wb["basin"].values.tolist() == ["RES1"] and basins["basin"].values.tolist() == ["B0"]
     xr.testing.assert_identical(wb[["levels", "rain_true"]], again[["levels", "rain_true"]])
     assert again.attrs["unit"] == "waterbody" and again["storage_state"].values.tolist() == ["end_of_month"]
+
+
+def test_monthly_levels_give_monthly_mean_storage(tmp_path):
+    """Monthly levels: the storage state is the monthly mean and dS the TWSA difference of the volumes over the
+    outline (central: (V[m+1] - V[m-1]) / 2, checked with plain numpy), P window-matched with the TWSA kernel."""
+    from wbexplore.balance import closure_terms
+    from wbexplore.balance.storage import KERNELS
+
+    h = H0 + 10.0 + 2.0 * np.sin(2 * np.pi * np.arange(MONTHS.size) / 12)
+    cat = write_study(tmp_path, levels=pd.DataFrame({"date": MONTHS.strftime("%Y-%m-%d"), "RES1": h}))
+    ds = _series(cat)
+    assert ds["storage_state"].values.tolist() == ["monthly_mean"]
+    area = float(ds["basin_area_km2"].values[0]) * 1e6
+    depth = (h - H0) * CURVE_AREA_KM2 * 1e6 / area * 1000.0  # prism: V = (h - H0) A_curve, mm over the outline
+    out = closure_terms(ds, ClosureOptions(storage_change="central"), sources={"P": ["rain_true"],
+                                                                                "ET": ["evap_true"], "TWSA": ["levels"]})
+    ds_mm = out["dS"].sel(time=MONTHS).values.ravel()
+    np.testing.assert_allclose(ds_mm[1:-1], (depth[2:] - depth[:-2]) / 2, rtol=1e-9)
+    p = ds["rain_true"].sel(time=MONTHS).values[0]
+    w = KERNELS["central"]
+    assert out["P"].sel(time=MONTHS[5]).item() == pytest.approx(w[0] * p[4] + w[1] * p[5] + w[2] * p[6], rel=1e-12)
