@@ -78,6 +78,7 @@ def _metrics(ds, opts, basins=None):
     a = closure_arrays(ds, opts, basins=basins)
     mask = opts.period(a["months"])
     c = combination_arrays(a, mask)
+    a["combination"] = c  # kept for views that need the residuals themselves (a water body's exchange)
     pm = a["months"][mask]
     return a, pm, metrics_arrays(c["residual"], c["Qhat"], c["Q"], c["P"], pm, opts, explain=True)
 
@@ -132,20 +133,21 @@ def _with_exchange(df: pd.DataFrame, a: dict, opts: ClosureOptions) -> pd.DataFr
     from .waterbody import exchange_summary
 
     mask = opts.period(a["months"])
-    c = combination_arrays(a, mask)
+    c = a["combination"]
     ds, b = a["ds"], int(a["b"][0])
     surf = ds.variables[SURFACE_AREA].values[b][mask] * 1e6 if SURFACE_AREA in ds.variables else \
         np.full(int(mask.sum()), float(ds["basin_area_km2"].values[b]) * 1e6)
     summ = exchange_summary(c["residual"][0], a["months"][mask],
                             reference_area_m2=float(ds["basin_area_km2"].values[b]) * 1e6, surface_area_m2=surf)
     ids = a["ids"]
-    pos = [tuple(ids[comp].index(row[comp]) for comp in SOURCE_COMPONENTS) for _, row in df.iterrows()]
-    df = df.copy()
+    pos = tuple(np.fromiter(map({sid: i for i, sid in enumerate(ids[comp])}.__getitem__, df[comp]), dtype=np.intp,
+                            count=len(df)) for comp in SOURCE_COMPONENTS)
+    cols = {}
     for unit, name in (("hm3", "exchange_hm3"), ("m3/s", "exchange_m3s"), ("mm_surface", "exchange_mm_surface")):
         mean, se = summ[unit]
-        df[name] = [float(mean[p]) for p in pos]
-        df[f"{name}_se"] = [float(se[p]) for p in pos]
-    return df
+        cols[name] = mean[pos]
+        cols[f"{name}_se"] = se[pos]
+    return pd.concat([df, pd.DataFrame(cols, index=df.index)], axis=1)  # one block: cheaper than six inserts
 
 
 def best_scores(ds: xr.Dataset, options: ClosureOptions | None = None, *, by: str = "rmse",
