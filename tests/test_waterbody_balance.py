@@ -515,3 +515,9 @@ def test_monthly_levels_give_monthly_mean_storage(tmp_path):
     p = ds["rain_true"].sel(time=MONTHS).values[0]
     w = KERNELS["central"]
     assert out["P"].sel(time=MONTHS[5]).item() == pytest.approx(w[0] * p[4] + w[1] * p[5] + w[2] * p[6], rel=1e-12)
+
+
+def test_a_lag_is_refused_for_a_water_body(study, capsys):
+    """--lag shifts gauged discharge; a water body has none: refused, never silently ignored."""
+    rc, _, err = run_cli(["rank", study, "--basin", "RES1", "--lag", "1"], capsys)
+    assert "does not have" in one_line_error(rc, err)

@@ -142,6 +142,9 @@ def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sour
     if options.area != "outline" and not wb:
         raise InputError(f"area {options.area!r}: only a water body's P and E can fall on another area than its "
                          "outline (these series are basins)")
+    if wb and options.lag:
+        raise InputError(f"lag {options.lag}: the lag shifts gauged outlet discharge, which a water body's balance "
+                         "does not have")
     if wb:  # each water body's storage state sets its own storage difference and flux window
         states = [str(s) for s in ds[STORAGE_STATE].values[b]]
 
