@@ -46,12 +46,33 @@ def synthetic(nb=100, nt=240, seed=0, flows=0):
     return ds
 
 
-def engine_times(ds):
+def waterbodies(ds):
+    """``ds`` (with one TWSA product kept) as water bodies (issue 15): no discharge, the storage as the pseudo-source
+    ``levels``, half of them end-of-month states and half monthly means, the surface area = the outline's."""
+    from wbexplore.series import LEVELS, STORAGE_STATE, SURFACE_AREA
+
+    drop = [v for v in ds.data_vars if str(v).startswith(("TWSA", "valid_fraction_TWSA"))] + ["discharge"]
+    out = ds.drop_vars(drop)
+    out[LEVELS] = ds["TWSA0"].assign_attrs(role="source", component="TWSA", units="mm")
+    nb = ds.sizes["basin"]
+    out.coords[STORAGE_STATE] = ("basin", ["end_of_month" if i % 2 else "monthly_mean" for i in range(nb)])
+    out[SURFACE_AREA] = ds["basin_area_km2"].broadcast_like(ds["P0"]).transpose("basin", "time")
+    out.attrs["unit"] = "waterbody"
+    return out
+
+
+def basins_one_twsa(ds):
+    """``ds`` with TWSA0 only: the same combinations as its water-body form."""
+    return ds.drop_vars([v for v in ds.data_vars if str(v).startswith(("TWSA", "valid_fraction_TWSA"))
+                         and str(v) not in ("TWSA0", "valid_fraction_TWSA0")])
+
+
+def engine_times(ds, twsa="TWSA0"):
     from wbexplore.balance import Selection, compute_selection, rank, rank_all
 
     t1, r = median_time(lambda: rank(ds, "B000"), repeat=21)
     t100, _ = median_time(lambda: rank_all(ds), repeat=5)
-    sel = Selection("B000", "P0", "ET0", "TWSA0")
+    sel = Selection("B000", "P0", "ET0", twsa)
     ts, _ = median_time(lambda: compute_selection(ds, sel), repeat=51)
     return t1, t100, ts, len(r)
 
@@ -133,6 +154,13 @@ def main():
     print(f"ratios to target: {t1 / 0.020:.2f}, {t100 / 1.0:.2f}, {ts / 0.005:.2f}; "
           f"with two flows: {f1 / 0.020:.2f}, {f100 / 1.0:.2f}, {fs / 0.005:.2f}")
     print(f"two flows / none: {f1 / t1:.2f}, {f100 / t100:.2f}, {fs / ts:.2f}")
+    # water bodies (issue 15): the same 5 x 5 x 1 combinations and two flows as basins, side by side
+    two = synthetic(flows=2)
+    b1, b100, bs, _ = engine_times(basins_one_twsa(two))
+    w1, w100, ws, _ = engine_times(waterbodies(two), twsa="levels")
+    print(f"water bodies, 5 x 5 x 1 combinations, two flows: one {w1 * 1e3:.2f} ms (basin {b1 * 1e3:.2f}), 100 "
+          f"{w100 * 1e3:.1f} ms (basins {b100 * 1e3:.1f}), one selection {ws * 1e3:.2f} ms (basin {bs * 1e3:.2f}); "
+          f"water body / basin: {w1 / b1:.2f}, {w100 / b100:.2f}, {ws / bs:.2f}")
     if "--cli" in sys.argv:
         tc, tv, rows = cli_times()
         print(f"wbexplore rank --all, 100 basins, whole process:     {tc:7.2f} s    target <= 2 s  ({rows} rows); "

@@ -85,16 +85,17 @@ def _add_selection_args(p, *, sources: bool, every_basin: bool = False):
     p.add_argument("catalog", help="catalog YAML file")
     if every_basin:
         g = p.add_mutually_exclusive_group(required=True)
-        g.add_argument("--basin", help="basin id")
+        g.add_argument("--basin", help="basin or water-body id")
         g.add_argument("--all", action="store_true", help="every basin: one table, sorted by basin then rank")
     else:
-        p.add_argument("--basin", required=True, help="basin id")
+        p.add_argument("--basin", required=True, help="basin or water-body id")
     p.add_argument("--incremental", action="store_true",
                    help="the basin's incremental unit (its area minus its upstream basins; needs basins: downstream_field)")
     if sources:
         p.add_argument("--P", required=True, metavar="SRC", help="precipitation source id")
         p.add_argument("--ET", required=True, metavar="SRC", help="evapotranspiration source id")
-        p.add_argument("--TWSA", required=True, metavar="SRC", help="storage-anomaly source id")
+        p.add_argument("--TWSA", metavar="SRC", help="storage-anomaly source id (a basin; a water body's storage "
+                                                    "comes from its levels)")
     p.add_argument("--start", metavar="YYYY-MM", help="first month of the period")
     p.add_argument("--end", metavar="YYYY-MM", help="last month of the period")
     p.add_argument("--storage-change", default="central", choices=["central", "backward", "forward"],
@@ -106,6 +107,8 @@ def _add_selection_args(p, *, sources: bool, every_basin: bool = False):
                    help="months where a product covers less of the basin are missing (default 0.5)")
     p.add_argument("--water-year-start", type=_month_number, default=1, metavar="M",
                    help="first month of the water year, for annual metrics (default 1)")
+    p.add_argument("--area", default="outline", choices=["outline", "surface"],
+                   help="water bodies: P and E over the outline (default) or over the surface at the month's level")
     p.add_argument("--cache-dir", metavar="DIR", help="weights and series cache (default ~/.cache/wbexplore)")
 
 
@@ -394,7 +397,46 @@ def _options(args):
         kw["ensemble"] = args.ensemble
     return ClosureOptions(start=args.start, end=args.end, storage_change=args.storage_change,
                           matched=not args.unmatched, lag=args.lag, min_valid_fraction=args.min_valid_fraction,
-                          water_year_start=args.water_year_start, **kw)
+                          water_year_start=args.water_year_start, area=getattr(args, "area", "outline"), **kw)
+
+
+def _unit_kind(args) -> str:
+    """What ``--basin`` names: "basin" or "waterbody" (a lake or reservoir of the catalog's ``waterbodies``).
+
+    An id that is neither, in a catalog with water bodies, is refused listing both kinds; ``--incremental``,
+    ``--area surface`` and ``--TWSA`` are checked against the kind. Without water bodies every id is a basin's
+    (an unknown one is refused where the series are read, as before).
+    """
+    from .io.catalog import open_catalog
+
+    cat = open_catalog(args.catalog)
+    basin = args.basin
+    kind = "basin"
+    if cat.waterbodies is not None:
+        from .cache import load_basins
+        from .io.waterbodies import check_distinct_ids, read_waterbody_outlines
+
+        wbs = [str(w) for w in read_waterbody_outlines(cat.waterbodies).index]
+        basins = [str(b) for b in load_basins(cat).index]
+        check_distinct_ids(wbs, basins, path=cat.waterbodies.path)  # an id naming both would be ambiguous
+        if basin is None:
+            pass
+        elif basin in wbs:
+            kind = "waterbody"
+        elif basin not in basins:
+            raise InputError(f"{cat.path}: --basin {basin!r} is neither a basin (basins: {', '.join(basins)}) nor a "
+                             f"water body (water bodies: {', '.join(wbs)})")
+    if kind == "waterbody":
+        if getattr(args, "incremental", False):
+            raise InputError(f"{cat.path}: --incremental: {basin!r} is a water body, which has no incremental unit")
+        twsa = getattr(args, "TWSA", None)
+        if twsa is not None and twsa != "levels":
+            raise InputError(f"{cat.path}: --TWSA {twsa!r}: water body {basin!r} takes its storage from its levels "
+                             "(leave --TWSA out, or give 'levels')")
+    elif getattr(args, "area", "outline") != "outline":
+        raise InputError(f"--area {args.area}: {basin!r} is a basin; only a water body's P and E can fall on "
+                         "another area than its outline")
+    return kind
 
 
 def _check_incremental(catalog, basin) -> None:
@@ -414,24 +456,33 @@ def _check_incremental(catalog, basin) -> None:
     raise InputError(f"{cat.basins.path}: --incremental: basin {basin!r} not found")
 
 
-def _series(args, *, incremental=None):
+def _series(args, *, incremental=None, waterbodies=False):
     from .pipeline import load_series
 
     kw = {}
-    if getattr(args, "incremental", False) if incremental is None else incremental:
+    if waterbodies:
+        kw["waterbodies"] = True
+    elif getattr(args, "incremental", False) if incremental is None else incremental:
         kw["incremental"] = True
     return load_series(args.catalog, cache_dir=getattr(args, "cache_dir", None), progress=sys.stderr.isatty(), **kw)
 
 
 def _print_rank_table(df, by: str, *, head: str) -> None:
-    from .balance.combos import RANK_TABLE_COLUMNS
+    from .balance.combos import EXCHANGE_COLUMNS, RANK_TABLE_COLUMNS
 
     cols = [c for c in ("basin", "unit") if c in df] + list(RANK_TABLE_COLUMNS)
+    waterbody = EXCHANGE_COLUMNS[0] in df
+    if waterbody:  # a water body: the residual as unmeasured exchange in volume units too
+        cols += list(EXCHANGE_COLUMNS)
     show = df[cols].copy()
     show["rank"] = [str(r) if s else "-" for r, s in zip(df["rank"], df["scored"])]
     print(head)
     print(show.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     print("rmse, bias in mm/month; rel_imbalance in %; '-' = too few valid months to score")
+    if waterbody:
+        print("mm/month over the outline; exchange = -residual, the net unmeasured inflow (negative = loss: "
+              "seepage, abstraction), mean per month in hm3, m3/s and mm over the surface, _se its standard error "
+              "(lag-1 autocorrelation inflated)")
     for why in dict.fromkeys(w for w in df["undefined"] if w):
         print(f"NaN: {why}")
 
@@ -466,17 +517,21 @@ def _cmd_rank(args) -> int:
 
     check_metric(args.by)
     opts = _options(args)  # before the series are loaded: a bad option fails fast
+    if args.incremental and args.all:
+        raise InputError("--incremental goes with --basin ID (--all already lists every incremental unit)")
+    kind = _unit_kind(args)  # --all: basins only (water-body ids are checked against them)
+    if args.all and args.area != "outline":
+        raise InputError("--area goes with --basin RES_ID (a water body)")
     if args.incremental:
-        if args.all:
-            raise InputError("--incremental goes with --basin ID (--all already lists every incremental unit)")
         _check_incremental(args.catalog, args.basin)
-    ds = _series(args)
+    ds = _series(args, waterbodies=kind == "waterbody")
     if args.all:
         df = _rank_every_unit(args, ds, opts)
     else:
         df = rank(ds, args.basin, opts, by=args.by)
     what = ({"basins": sorted(set(df["basin"]))} if args.all
-            else {"basin": args.basin, "unit": "incremental" if args.incremental else "whole"})
+            else {"basin": args.basin, "unit": "waterbody" if kind == "waterbody"
+                  else "incremental" if args.incremental else "whole"})
     if args.format == "csv":
         df.to_csv(sys.stdout, index=False, float_format="%.6g")
     elif args.format == "json":
@@ -486,7 +541,7 @@ def _cmd_rank(args) -> int:
                    "rows": json.loads(df.to_json(orient="records"))}, sys.stdout, indent=1)
         print()
     else:
-        who = (f"{len(what['basins'])} basins" if args.all
+        who = (f"{len(what['basins'])} basins" if args.all else f"water body {args.basin}" if kind == "waterbody"
                else f"basin {args.basin}" + (" (incremental unit)" if args.incremental else ""))
         _print_rank_table(df, args.by, head=(
             f"{who}, {df.attrs['start']}..{df.attrs['end']}, storage change {args.storage_change}"
@@ -494,21 +549,26 @@ def _cmd_rank(args) -> int:
     return 0
 
 
-def _selection_from_args(args, P=None, ET=None, TWSA=None):
+def _selection_from_args(args, P=None, ET=None, TWSA=None, *, kind="basin"):
     from .balance import Selection
 
-    return Selection.from_options(args.basin, _options(args), P=P or args.P, ET=ET or args.ET,
-                                  TWSA=TWSA or args.TWSA)
+    twsa = TWSA or args.TWSA or ("levels" if kind == "waterbody" else None)
+    if twsa is None:
+        raise InputError(f"--TWSA is needed for basin {args.basin!r} (only a water body's storage comes from levels)")
+    return Selection.from_options(args.basin, _options(args), P=P or args.P, ET=ET or args.ET, TWSA=twsa)
 
 
 def _cmd_export(args) -> int:
     from .selection import export_selection
 
-    sel = _selection_from_args(args)
+    _options(args)  # a bad option fails before the catalog is read
+    kind = _unit_kind(args)
+    sel = _selection_from_args(args, kind=kind)
     if args.incremental:
         _check_incremental(args.catalog, args.basin)
     out = export_selection(args.catalog, sel, args.out, overwrite=args.force, series=args.series,
-                           unit_system=args.units, cache_dir=args.cache_dir, incremental=args.incremental)
+                           unit_system=args.units, cache_dir=args.cache_dir, incremental=args.incremental,
+                           waterbody=kind == "waterbody")
     print(f"wrote {out['selection']}" + (f" and {out['series']}" if out.get("series") else ""))
     return 0
 
@@ -544,13 +604,15 @@ def _cmd_report(args) -> int:
     # refused before the series are loaded (write_report checks again just before writing)
     cat = open_catalog(args.catalog)
     check_output(args.out, overwrite=args.force, protect=cat)
+    kind = _unit_kind(args)
     if args.incremental:
         _check_incremental(cat, args.basin)
-    ds = _series(args)
-    if args.P and args.ET and args.TWSA:
-        sel = _selection_from_args(args)
+    ds = _series(args, waterbodies=kind == "waterbody")
+    if args.P and args.ET and (args.TWSA or kind == "waterbody"):
+        sel = _selection_from_args(args, kind=kind)
     elif args.P or args.ET or args.TWSA:
-        raise InputError("give all of --P, --ET and --TWSA, or none (then the best-ranked combination is used)")
+        raise InputError("give all of --P, --ET and --TWSA (a water body: --P and --ET), or none (then the "
+                         "best-ranked combination is used)")
     else:
         sel = best_selection(ds, args.basin, opts, by=args.by)
     out = write_report(args.catalog, ds, sel, args.out, overwrite=args.force, by=args.by)

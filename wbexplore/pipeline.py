@@ -24,7 +24,7 @@ from . import __version__
 from . import cache as _cache
 from .balance.plausibility import ImplausibleValueWarning, screen_implausible
 from .cache import default_cache_dir, load_basins, load_incremental_basins
-from .errors import InputError
+from .errors import InputError, LevelOutsideCurveWarning
 from .io.catalog import Catalog, SourceSpec, open_catalog
 from .io.blocks import release_handles
 from .io.grids import SourceGrid, open_source
@@ -147,8 +147,9 @@ def _client(scheduler: str | None, workers: int | None):
 def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None = None,
             basins: list[str] | None = None, scheduler: str | None = None, workers: int | None = None,
             client=None, progress: bool = False, cache_dir: str | os.PathLike | None = None,
-            use_cache: bool = True, engine: str = "auto", incremental: bool = False) -> xr.Dataset:
-    """Every source of a catalog over every basin, in the canonical form.
+            use_cache: bool = True, engine: str = "auto", incremental: bool = False,
+            waterbodies: bool = False) -> xr.Dataset:
+    """Every source of a catalog over every basin (or every water body), in the canonical form.
 
     Parameters
     ----------
@@ -171,6 +172,20 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
         incremental area, the outlet's discharge and every flow of the basin are depths over it, each
         upstream basin's gauged outflow enters as the inflow ``flow_upstream_<id>``; coordinates
         ``upstream_basins`` and ``whole_area_km2``; ``attrs["unit"] == "incremental"``.
+    waterbodies : bool
+        The catalog's water bodies (lakes, reservoirs) instead of its basins, in the same schema with
+        ``attrs["unit"] == "waterbody"`` (``basins`` then names water-body ids). The ``basin`` dimension holds
+        the water-body ids, ``basin_name`` their names and ``basin_area_km2`` the outline area (geodesic), the
+        *reference area* of every depth. P and ET products are averaged over the outlines exactly as over
+        basins (same weights and streaming path), in mm/month; where ``evaporation_source`` is set it is the
+        only ET source. TWSA products are not used: the storage is the pseudo-source ``levels`` (component
+        TWSA): the volume from the levels and the storage curve as a depth over the reference area
+        (volume / area, mm), with its state per water body in the coordinate ``storage_state``
+        ("end_of_month" from daily levels, "monthly_mean" otherwise; `wbexplore.balance.storage`). Flows whose
+        ``basin`` is a water body are ``flow_<id>`` depths over its reference area. No ``discharge``.
+        ``surface_area_km2`` (basin, time) is the surface area at the month's mean level (storage curve),
+        used by ``ClosureOptions(area="surface")``. A level outside the curve leaves that month's storage
+        (and surface area) empty with a `LevelOutsideCurveWarning`.
 
     Returns
     -------
@@ -181,6 +196,12 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
     if use_cache:
         _cache.check_root_for(cat, _cache.cache_root(cache_dir))
+    if waterbodies:
+        if incremental:
+            raise InputError(f"{cat.path}: a water body has no incremental unit (--incremental is for nested basins)")
+        return _extract_waterbodies(cat, sources=sources, ids=basins, scheduler=scheduler, workers=workers,
+                                    client=client, progress=progress, cache_dir=cache_dir, use_cache=use_cache,
+                                    engine=engine)
     gdf = load_incremental_basins(cat) if incremental else load_basins(cat)
     if incremental and len(gdf) == 0:
         raise InputError(f"{cat.basins.path}: field 'downstream_field': no basin has upstream basins, so there is "
@@ -209,8 +230,43 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
                         use_cache=use_cache, engine=engine, incremental=incremental, flows=flows)
 
 
+def _extract_waterbodies(cat: Catalog, *, sources, ids, scheduler, workers, client, progress, cache_dir, use_cache,
+                         engine) -> xr.Dataset:
+    """`extract(..., waterbodies=True)`: the water bodies' P and ET over their outlines, storage from levels."""
+    from .io.waterbodies import read_waterbodies
+
+    if cat.waterbodies is None:
+        raise InputError(f"{cat.path}: the catalog has no 'waterbodies'")
+    wbs = read_waterbodies(cat, basin_ids=load_basins(cat).index)
+    gdf = wbs.outlines
+    if ids is not None:
+        missing = [w for w in ids if w not in gdf.index]
+        if missing:
+            raise InputError(f"{cat.waterbodies.path}: water body {missing[0]!r} not found")
+        gdf = gdf.loc[list(ids)]
+    evap = wbs.evaporation_source
+    specs = [s for s in cat.sources if s.component == "P"
+             or (s.component == "ET" and (evap is None or s.id == evap))]
+    if sources:
+        specs = [s for s in specs if s.id in set(sources)]
+    for comp in ("P", "ET"):
+        if not any(s.component == comp for s in specs):
+            raise InputError(f"{cat.path}: field 'sources': no {comp} product for the water bodies")
+    wb_flows = split_flows(cat)[1]
+    flows = read_flow_series(wb_flows, wbs.outlines["area_km2"], catalog=cat.path) if wb_flows else None
+    if workers is not None and workers < 1:
+        raise InputError(f"--workers must be at least 1, got {workers}")
+    from contextlib import ExitStack
+
+    with ExitStack() as stack:
+        if client is None and (scheduler is not None or workers is not None):
+            client = stack.enter_context(_client(scheduler, workers))
+        return _extract(cat, gdf, specs, client=client, progress=progress, cache_dir=cache_dir,
+                        use_cache=use_cache, engine=engine, flows=flows, waterbodies=wbs)
+
+
 def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine, incremental=False,
-             flows=None) -> xr.Dataset:
+             flows=None, waterbodies=None) -> xr.Dataset:
     lazy = {}
     meta = {}
     remote = client is not None
@@ -224,10 +280,12 @@ def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine,
         w = weights_for(src, gdf, cache_dir=cache_dir, use_cache=use_cache, engine=engine)
         cover = w.grid_coverage
         outside = np.flatnonzero(cover <= 0)
+        noun = "basin" if waterbodies is None else "water body"
         if outside.size:
-            raise InputError(f"{spec.paths[0]}: source {spec.id!r}: basin {str(w.basin[outside[0]])!r} lies entirely outside the grid")
+            raise InputError(f"{spec.paths[0]}: source {spec.id!r}: {noun} {str(w.basin[outside[0]])!r} lies entirely "
+                             "outside the grid")
         for i in np.flatnonzero(cover < LOW_COVERAGE):
-            warnings.warn(f"source {spec.id!r} covers only {cover[i]:.0%} of basin {str(w.basin[i])!r}",
+            warnings.warn(f"source {spec.id!r} covers only {cover[i]:.0%} of {noun} {str(w.basin[i])!r}",
                           CoverageWarning, stacklevel=2)
         zm = source_means(src, w, keep_open=not remote)
         lazy[spec.id] = zm
@@ -236,6 +294,20 @@ def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine,
         computed = _compute(lazy, client=client, progress=progress)
     finally:
         release_handles()  # leave no product file open (HDF5 would refuse to rewrite it)
+    if waterbodies is not None:
+        ds, _ = screen_implausible(_assemble_waterbodies(cat, gdf, specs, computed, meta, waterbodies, flows))
+        warn_implausible(ds)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", LevelOutsideCurveWarning)
+            ds = _add_level_storage(ds, gdf, waterbodies)  # after the screen: a lake's storage is no anomaly
+        notes = [str(w.message) for w in caught if issubclass(w.category, LevelOutsideCurveWarning)]
+        for w in caught:
+            if not issubclass(w.category, LevelOutsideCurveWarning):
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+        if notes:  # kept in the series: a cached series names them again when loaded (`warn_level_outside`)
+            ds["levels"].attrs["level_outside_curve"] = "\n".join(dict.fromkeys(notes))
+        warn_level_outside(ds)
+        return ds
     ds, _ = screen_implausible(_assemble(cat, gdf, specs, computed, meta, incremental=incremental,
                                                 flows=flows))
     warn_implausible(ds)
@@ -250,6 +322,15 @@ def warn_implausible(ds: xr.Dataset) -> None:
         note = v.attrs.get("implausible_note")
         if note:
             warnings.warn(str(note), ImplausibleValueWarning, stacklevel=3)
+
+
+def warn_level_outside(ds: xr.Dataset) -> None:
+    """One `LevelOutsideCurveWarning` per note the water bodies' series keep (levels outside the storage curve:
+    those months are empty), so that a series loaded from the cache names them again."""
+    if "levels" not in ds.variables:
+        return
+    for note in filter(None, str(ds["levels"].attrs.get("level_outside_curve", "")).split("\n")):
+        warnings.warn(note, LevelOutsideCurveWarning, stacklevel=3)
 
 
 def _compute(lazy: dict, *, client, progress):
@@ -301,28 +382,7 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta, *, incremental: bool = F
     ds["basin"].attrs = {"long_name": "basin identifier", "cf_role": "timeseries_id"}
     ds["basin_area_km2"].attrs = {"units": "km2", "long_name": "basin area (geodesic, WGS84)"}
     ds["time"].attrs = {"long_name": "calendar month (month start)"}
-    for spec in specs:
-        src, w = meta[spec.id]
-        zm = computed[spec.id]
-        mean = zm["mean"] * xr.DataArray(src.factor, dims="time", coords={"time": zm["time"].values})
-        mean = mean.reindex(time=full)
-        vf = zm["valid_fraction"].reindex(time=full, fill_value=0.0)
-        comp = spec.component
-        ds[spec.id] = mean.astype(np.float64)
-        ds[spec.id].attrs = {
-            "role": "source", "component": comp, "units": "mm" if comp == "TWSA" else "mm/month",
-            "long_name": spec.display, "source_id": spec.id, "source_units": src.native_units,
-            "source_step": src.native_step, "incomplete_months": int(src.incomplete_months),
-            "description": spec.description or "",
-            "cell_methods": "area: mean time: mean" if comp == "TWSA" else "area: mean time: sum",
-        }
-        if spec.relative_error is not None:
-            ds[spec.id].attrs["relative_error"] = spec.relative_error
-        if spec.absolute_error_mm is not None:
-            ds[spec.id].attrs["absolute_error_mm"] = spec.absolute_error_mm
-        ds[valid_var(spec.id)] = vf
-        ds[valid_var(spec.id)].attrs = {"role": "valid_fraction", "source_id": spec.id, "units": "1",
-                                        "long_name": f"share of basin area with data in {spec.id}"}
+    _add_sources(ds, specs, computed, meta, full)
     if q is not None:
         ds["discharge"] = q.reindex(time=full)
         ds["discharge"].attrs = dict(q.attrs, role="discharge")
@@ -350,6 +410,117 @@ def _assemble(cat: Catalog, gdf, specs, computed, meta, *, incremental: bool = F
     }
     if incremental:
         ds.attrs["unit"] = "incremental"
+    return ds
+
+
+def _add_sources(ds: xr.Dataset, specs, computed, meta, full) -> None:
+    """Each product's unit means (mm/month; TWSA mm) and valid fractions onto the series' months."""
+    for spec in specs:
+        src, w = meta[spec.id]
+        zm = computed[spec.id]
+        mean = zm["mean"] * xr.DataArray(src.factor, dims="time", coords={"time": zm["time"].values})
+        mean = mean.reindex(time=full)
+        vf = zm["valid_fraction"].reindex(time=full, fill_value=0.0)
+        comp = spec.component
+        ds[spec.id] = mean.astype(np.float64)
+        ds[spec.id].attrs = {
+            "role": "source", "component": comp, "units": "mm" if comp == "TWSA" else "mm/month",
+            "long_name": spec.display, "source_id": spec.id, "source_units": src.native_units,
+            "source_step": src.native_step, "incomplete_months": int(src.incomplete_months),
+            "description": spec.description or "",
+            "cell_methods": "area: mean time: mean" if comp == "TWSA" else "area: mean time: sum",
+        }
+        if spec.relative_error is not None:
+            ds[spec.id].attrs["relative_error"] = spec.relative_error
+        if spec.absolute_error_mm is not None:
+            ds[spec.id].attrs["absolute_error_mm"] = spec.absolute_error_mm
+        ds[valid_var(spec.id)] = vf
+        ds[valid_var(spec.id)].attrs = {"role": "valid_fraction", "source_id": spec.id, "units": "1",
+                                        "long_name": f"share of basin area with data in {spec.id}"}
+
+
+def _assemble_waterbodies(cat: Catalog, gdf, specs, computed, meta, wbs, flows) -> xr.Dataset:
+    """The water bodies' series (see `extract` with ``waterbodies=True``), before the storage from levels."""
+    months = set(pd.DatetimeIndex(wbs.level_mean["time"].values))
+    if wbs.pan is not None:
+        months.update(pd.DatetimeIndex(wbs.pan["time"].values))
+    for zm in computed.values():
+        months.update(pd.DatetimeIndex(zm["time"].values))
+    full = pd.date_range(min(months), max(months), freq="MS")
+    ids = gdf.index.values.astype(str)
+    ds = xr.Dataset(coords={"basin": ("basin", ids), "time": ("time", full)})
+    ds["basin_name"] = ("basin", gdf["name"].values.astype(str))
+    ds["basin_area_km2"] = ("basin", gdf["area_km2"].values)
+    ds = ds.set_coords(["basin_name", "basin_area_km2"])
+    ds["basin"].attrs = {"long_name": "water-body identifier", "cf_role": "timeseries_id"}
+    ds["basin_area_km2"].attrs = {"units": "km2", "long_name": "water-body outline area (geodesic, WGS84): the "
+                                                             "reference area of every depth"}
+    ds["time"].attrs = {"long_name": "calendar month (month start)"}
+    _add_sources(ds, specs, computed, meta, full)
+    if wbs.pan is not None:  # a third way to E: pan readings x coefficient (`balance.waterbody`)
+        from .balance.waterbody import pan_to_lake_evaporation
+
+        lake = pan_to_lake_evaporation(wbs.pan, coefficient=wbs.pan_coefficient)
+        ds["pan"] = (("basin", "time"), lake.reindex(waterbody=list(ids), time=full).values)
+        ds["pan"].attrs = {"role": "source", "component": "ET", "units": "mm/month", "source_id": "pan",
+                           "long_name": f"lake evaporation: pan x {wbs.pan_coefficient:g}",
+                           "pan_coefficient": wbs.pan_coefficient, "source_units": wbs.pan.attrs["source_units"],
+                           "description": "evaporation-pan station series times the pan coefficient "
+                                          "(0.7 by default: common practice)",
+                           "cell_methods": "time: sum"}
+    if flows is not None:
+        _add_flows(ds, flows.reindex(basin=ids), full)
+    ds.attrs = {
+        "Conventions": "CF-1.8",
+        "title": cat.title,
+        "source": f"wbexplore {__version__} extraction of catalog {cat.path.name} (water bodies)",
+        "catalog_sha256": cat.sha256,
+        "wbexplore_version": __version__,
+        "method": ("area-weighted means over the water-body outlines with exact cell coverage fractions "
+                   "(exactextract) times WGS84 ellipsoidal cell areas; storage from levels through the storage "
+                   "curve (monotone cubic), as a depth over the outline area"),
+        "history": f"{pd.Timestamp.now(tz='UTC'):%Y-%m-%dT%H:%M:%SZ} wbexplore extract (water bodies)",
+        "unit": "waterbody",
+    }
+    return ds
+
+
+def _add_level_storage(ds: xr.Dataset, gdf, wbs) -> xr.Dataset:
+    """The storage from levels (pseudo-source ``levels``, mm over the outline area), its state per water body
+    (``storage_state``) and the surface area at each month's mean level (``surface_area_km2``)."""
+    from .balance.storage import level_volumes
+    from .balance.waterbody import surface_area_at_level
+    from .series import LEVELS, STORAGE_STATE, SURFACE_AREA
+
+    ids = [str(i) for i in gdf.index]
+    full = ds["time"].values
+    curves = wbs.curve_callables()
+    depth = np.full((len(ids), full.size), np.nan)
+    state_of = {}
+    for state, levels in wbs.levels_by_state().items():
+        keep = [w for w in levels["waterbody"].values if str(w) in ids]
+        if not keep:
+            continue
+        vol = level_volumes(levels.sel(waterbody=keep), curves).reindex(time=full)
+        for w in keep:
+            i = ids.index(str(w))
+            depth[i] = vol.sel(waterbody=w).values / (float(gdf["area_km2"].iloc[i]) * 1e6) * 1000.0
+            state_of[str(w)] = state
+    ds = ds.copy()
+    ds[LEVELS] = (("basin", "time"), depth)
+    ds[LEVELS].attrs = {"role": "source", "component": "TWSA", "units": "mm", "source_id": LEVELS,
+                        "long_name": "storage from levels (volume / outline area)", "label": "Storage from levels",
+                        "description": "water level through the storage curve (m3), as a depth over the outline",
+                        "cell_methods": "area: mean"}
+    ds.coords[STORAGE_STATE] = ("basin", [state_of[w] for w in ids])
+    ds[STORAGE_STATE].attrs = {"long_name": "state the storage is read at: end_of_month (daily levels) or "
+                                            "monthly_mean (monthly levels)"}
+    mean = wbs.level_mean.sel(waterbody=ids).reindex(time=full)
+    area = surface_area_at_level(mean.assign_attrs(wbs.level_mean.attrs),
+                                 {wb: c.area for wb, c in wbs.curves.items()})
+    ds[SURFACE_AREA] = (("basin", "time"), area.values / 1e6)
+    ds[SURFACE_AREA].attrs = {"role": "surface_area", "units": "km2",
+                              "long_name": "water surface area at the month's mean level (storage curve)"}
     return ds
 
 
@@ -469,12 +640,15 @@ def _station_of(cat: Catalog, basin: str) -> str:
 def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.PathLike | None = None,
                 use_cache: bool = True, progress: bool = False, **kwargs) -> xr.Dataset:
     """`extract` with the result cached on disk, keyed by the catalog text and the content of every
-    input file (`wbexplore.cache`); a damaged cache file is rebuilt with a `CacheRebuiltWarning`."""
+    input file (`wbexplore.cache`); a damaged cache file is rebuilt with a `CacheRebuiltWarning`.
+    ``waterbodies=True`` (the water bodies' series) and ``incremental=True`` are part of the key."""
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
     # options that change the result are part of the key; scheduler, workers, client do not
     options = {"sources": kwargs.get("sources"), "basins": kwargs.get("basins"), "engine": kwargs.get("engine", "auto")}
     if kwargs.get("incremental"):
         options["incremental"] = True  # other polygons, other series (the weights key has the geometries)
+    if kwargs.get("waterbodies"):
+        options["waterbodies"] = True  # the water bodies' series: other polygons, other terms
     built = []
 
     def build():
@@ -484,6 +658,7 @@ def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.Pat
     ds = _cache.cached_series(cat, build, cache_dir=cache_dir, use_cache=use_cache, options=options)
     if not built:
         warn_implausible(ds)  # a cache hit names the masked values again, from their attributes
+        warn_level_outside(ds)
     return ds
 
 

@@ -23,9 +23,11 @@ import yaml
 
 from . import __version__
 from .balance import ClosureOptions, Selection, compute_selection, to_unit_system
-from .balance.closure import MAX_LAG_MONTHS, Q_RELATIVE_ERROR, UNIT_SYSTEMS
+from .balance.closure import MAX_LAG_MONTHS, Q_RELATIVE_ERROR, UNIT_SYSTEMS, flow_terms_of
 from .balance.storage import METHODS
-from .balance.terms import BASE_TERMS, SOURCE_COMPONENTS, balance_text
+from .balance.options import AREAS
+from .balance.terms import BASE_TERMS, DS, DS_LEVELS, SOURCE_COMPONENTS, balance_text
+from .series import LEVELS
 from .errors import InputError, ReplayMismatch, SelectionError
 from .io.catalog import Catalog, file_sha256, open_catalog
 from .io.writers import CAUTION, atomic_path, cf_ready, check_output, same_file, write_netcdf
@@ -72,10 +74,17 @@ def _clean_metrics(metrics: dict) -> dict:
 
 def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit_system: str = "mm",
                        q_relative_error: float = Q_RELATIVE_ERROR, unit: str = "whole") -> dict:
-    """The selection as a plain dict (what `export_selection` writes); ``unit`` is "whole" or
-    "incremental" (the basin minus its upstream basins), written only for an incremental unit."""
+    """The selection as a plain dict (what `export_selection` writes); ``unit`` is "whole",
+    "incremental" (the basin minus its upstream basins) or "waterbody" (a lake or reservoir: its TWSA source
+    is the storage from levels, whose files are the water bodies' outlines, levels and curves), written only
+    when it is not "whole"; ``area`` (where P and E fall) is written for water bodies."""
     sources = {}
     for comp in SOURCE_COMPONENTS:
+        own = _own_paths(cat, getattr(sel, comp)) if unit == "waterbody" else None
+        if own is not None:  # the storage from levels, the pan evaporation: the water bodies' own files
+            sources[comp] = {"id": getattr(sel, comp), "label": _OWN_LABELS[getattr(sel, comp)],
+                             "files": _file_entries(own, cat.path.parent)}
+            continue
         spec = cat.source(getattr(sel, comp))
         sources[comp] = {"id": spec.id, "label": spec.display, "files": _file_entries(spec.paths, cat.path.parent)}
     inputs = {"basins": _file_entries([cat.basins.path], cat.path.parent)[0]}
@@ -114,7 +123,28 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
         doc["flows"] = flows
     if unit != "whole":  # a whole basin's selection file stays as it was
         doc["unit"] = unit
+    if sel.area != "outline" or unit == "waterbody":  # where P and E fall (water bodies)
+        doc["area"] = sel.area
     return doc
+
+
+_OWN_LABELS = {LEVELS: DS_LEVELS.label, "pan": "Lake evaporation from pan"}
+
+
+def _own_paths(cat: Catalog, sid: str) -> tuple | None:
+    """The files of a water body's own series ("levels": outlines, levels, curve; "pan": the pan table), else None."""
+    if sid == LEVELS:
+        return _levels_paths(cat)
+    if sid == "pan" and cat.waterbodies is not None and cat.waterbodies.pan is not None:
+        return (cat.waterbodies.pan.path,)
+    return None
+
+
+def _levels_paths(cat: Catalog) -> tuple:
+    """The files a water body's storage from levels is read from: outlines, level table, storage curve."""
+    if cat.waterbodies is None:
+        raise InputError(f"{cat.path}: the catalog has no 'waterbodies'")
+    return cat.waterbodies.input_paths()
 
 
 def _catalog_flows(cat: Catalog) -> dict:
@@ -126,7 +156,7 @@ def _flow_entries(cat: Catalog, result) -> list[dict]:
     """Each flow of the balance: id, direction, label and the SHA-256 of its station table."""
     spec = _catalog_flows(cat)
     out = []
-    for t in result.terms[len(BASE_TERMS):]:
+    for t in flow_terms_of(result.terms):
         fid = t.variable[len("flow_"):] if t.variable.startswith("flow_") else t.variable
         entry = {"id": fid, "direction": "in" if t.sign > 0 else "out", "label": t.label}
         if fid in spec and getattr(spec[fid], "path", None) is not None:
@@ -136,7 +166,8 @@ def _flow_entries(cat: Catalog, result) -> list[dict]:
 
 
 def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, series: str | None = None,
-                     unit_system: str = "mm", cache_dir=None, ds=None, incremental: bool = False) -> dict:
+                     unit_system: str = "mm", cache_dir=None, ds=None, incremental: bool = False,
+                     waterbody: bool = False) -> dict:
     """Compute ``sel`` from the catalog's files and write the selection file (and optionally the series).
 
     Parameters
@@ -149,6 +180,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     ds : canonical series to use; default: extracted afresh for the three sources
     incremental : the basin's incremental unit (its area minus its upstream basins); recorded as
         ``unit: incremental`` in the file, and replayed over that unit
+    waterbody : ``sel.basin`` is a water body (its TWSA source is "levels"); recorded as ``unit: waterbody``
 
     Returns
     -------
@@ -162,20 +194,27 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
         check_output(series, overwrite=overwrite, protect=cat)
         if same_file(out, series):
             raise InputError(f"{series}: the series file is the selection file {out}; give two different files")
+    unit = "waterbody" if waterbody else "incremental" if incremental else "whole"
     for comp in SOURCE_COMPONENTS:
+        if waterbody and comp == DS.component:
+            if sel.TWSA != LEVELS:
+                raise InputError(f"{cat.path}: water body {sel.basin!r}: its storage comes from levels "
+                                 f"(TWSA source {LEVELS!r}), not {sel.TWSA!r}")
+            continue
+        if waterbody and _own_paths(cat, getattr(sel, comp)) is not None:
+            continue
         spec = cat.source(getattr(sel, comp))
         if spec.component != comp:
             raise InputError(f"{cat.path}: source {spec.id!r} is a {spec.component} product, not {comp}")
     if ds is None:
-        ds = _extract_for(cat, sel, cache_dir, incremental=incremental)
-    elif (ds.attrs.get("unit") == "incremental") != bool(incremental):
+        ds = _extract_for(cat, sel, cache_dir, incremental=incremental, waterbody=waterbody)
+    elif ds.attrs.get("unit", "whole") != unit:
         raise InputError(f"{cat.path}: the series given are {ds.attrs.get('unit', 'whole')} units, "
-                         f"not {'incremental' if incremental else 'whole'} ones")
+                         f"not {unit} ones")
     res = compute_selection(ds, sel)
     if res.n_valid == 0:
         raise InputError(res.messages[0])
-    doc = selection_document(cat, sel, res, base=out.resolve().parent, unit_system=unit_system,
-                             unit="incremental" if incremental else "whole")
+    doc = selection_document(cat, sel, res, base=out.resolve().parent, unit_system=unit_system, unit=unit)
     if incremental:
         doc["basin"]["whole_area_km2"] = float(ds["whole_area_km2"].sel(basin=sel.basin))
     written = {}
@@ -194,7 +233,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     return written
 
 
-def _extract_for(cat: Catalog, sel: Selection, cache_dir, *, incremental: bool = False):
+def _extract_for(cat: Catalog, sel: Selection, cache_dir, *, incremental: bool = False, waterbody: bool = False):
     import warnings
 
     from .pipeline import CoverageWarning, extract
@@ -202,11 +241,13 @@ def _extract_for(cat: Catalog, sel: Selection, cache_dir, *, incremental: bool =
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CoverageWarning)
         # every source: the spread of each component's products is its uncertainty
+        if waterbody:
+            return extract(cat, basins=[sel.basin], cache_dir=cache_dir, waterbodies=True)
         return extract(cat, basins=[sel.basin], cache_dir=cache_dir, incremental=incremental)
 
 
 _UNCERTAINTY_SOURCES = ("stated", "collocation", "spread", "none")  # `balance.uncertainty` methods
-UNITS = ("whole", "incremental")  # the balance units a selection file may name (field ``unit``)
+UNITS = ("whole", "incremental", "waterbody")  # the balance units a selection file may name (field ``unit``)
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")
 _MONTH = re.compile(r"[0-9]{4}-(0[1-9]|1[0-2])\Z")
 
@@ -353,8 +394,13 @@ def _validate(doc: dict, p: Path) -> Selection:
         if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))):
             c.fail(f"metrics.{name}", f"{_show(v)} must be a number or null")
     # the same ClosureOptions the library and the command line use (fields already checked one by one above)
+    area = doc.get("area", "outline")
+    if area not in AREAS:
+        c.fail("area", f"{_show(area)} is not one of {', '.join(AREAS)}")
+    if doc.get("unit", "whole") == "waterbody" and ids[DS.component] != LEVELS:
+        c.fail(f"sources.{DS.component}.id", f"{_show(ids[DS.component])}: a water body's storage is {LEVELS!r}")
     opts = ClosureOptions(start=months["start"], end=months["end"], storage_change=method, matched=matched,
-                          fill_gaps=fill, lag=lag, min_valid_fraction=mvf, water_year_start=wy)
+                          fill_gaps=fill, lag=lag, min_valid_fraction=mvf, water_year_start=wy, area=area)
     return Selection.from_options(basin_id, opts, **ids)
 
 
@@ -413,8 +459,11 @@ def replay(path, *, cache_dir=None) -> dict:
     if cat.sha256 != doc["catalog"]["sha256"]:
         rows.append(("catalog", doc["catalog"]["path"], "sha256 changed"))
     known = {s.id: s for s in cat.sources}
+    waterbody = doc.get("unit", "whole") == "waterbody"
     for comp in SOURCE_COMPONENTS:
         sid = getattr(sel, comp)
+        if waterbody and _own_paths(cat, sid) is not None:
+            continue  # the storage from levels, the pan: checked below against the catalog's water-body files
         if sid not in known:
             raise SelectionError(f"{path}: field 'sources.{comp}.id': source {sid!r} is not in the catalog "
                                  f"{doc['catalog']['path']!r}")
@@ -445,6 +494,10 @@ def replay(path, *, cache_dir=None) -> dict:
         return spec.format == "zarr"
 
     for comp in SOURCE_COMPONENTS:
+        if waterbody and _own_paths(cat, getattr(sel, comp)) is not None:
+            check(doc["sources"][comp].get("files") or [], _own_paths(cat, getattr(sel, comp)),
+                  f"source {getattr(sel, comp)}")
+            continue
         spec = known[getattr(sel, comp)]
         check(doc["sources"][comp].get("files") or [], spec.paths, f"source {spec.id}", store_ok=is_store(spec))
     for sid, files in (doc.get("uncertainty_sources") or {}).items():
@@ -460,7 +513,8 @@ def replay(path, *, cache_dir=None) -> dict:
             rows.append((key, entry["path"], "not an input of the catalog (not opened)"))
             continue
         check([entry], [catalog_inputs[key]], key)
-    ds = _extract_for(cat, sel, cache_dir, incremental=doc.get("unit", "whole") == "incremental")
+    ds = _extract_for(cat, sel, cache_dir, incremental=doc.get("unit", "whole") == "incremental",
+                      waterbody=waterbody)
     # a file written before issue 16 has no uncertainty_source: its n_beyond_2sigma came from the product spread
     res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)),
                             uncertainty="auto" if doc.get("uncertainty_source") is not None else "spread")
@@ -501,7 +555,7 @@ _CSV_COLS = [*(t.name for t in BASE_TERMS), "residual", "TWSA", *(f"sigma_{t.nam
 
 def _flow_cols(result) -> list[str]:
     """Columns of the balance's flows: each flow (window-matched as the residual uses it), its sigma, the net."""
-    names = [t.name for t in result.terms[len(BASE_TERMS):]]
+    names = [t.name for t in flow_terms_of(result.terms)]
     return [c for n in names for c in (n, f"sigma_{n}")] + (["net_flow"] if names else [])
 
 
@@ -565,7 +619,7 @@ def series_dataset(result, *, doc: dict | None = None):
             else "gauge" if comp == "Q" else "propagated from the terms"
         ds[name].attrs = {"long_name": f"standard error of {comp}", "units": "mm", "uncertainty_source": how}
         ds[comp].attrs["ancillary_variables"] = (ds[comp].attrs.get("ancillary_variables", "") + " " + name).strip()
-    for t in result.terms[len(BASE_TERMS):]:
+    for t in flow_terms_of(result.terms):
         ds[t.name] = ("time", f[t.name].to_numpy(dtype=float))
         ds[t.name].attrs = {"long_name": f"{t.label} ({'inflow' if t.sign > 0 else 'outflow'}) as depth over the basin",
                             "units": "mm", "cell_methods": "time: sum area: mean",

@@ -5,6 +5,11 @@ One `xarray.Dataset` with dims ``(basin, time)``, month-start stamps:
 - a variable per gridded product (``role="source"``, ``component`` P | ET | TWSA, P and ET in mm/month,
   TWSA in mm) and its ``valid_fraction_<id>`` (0..1, share of the basin with data);
 - ``discharge`` (``role="discharge"``, mm/month over the basin): gauged outlet discharge, Q;
+- a water body's series (``attrs["unit"] == "waterbody"``, `wbexplore.pipeline.extract` with ``waterbodies=True``):
+  the ``basin`` dimension holds water-body ids, ``basin_area_km2`` the outline area (the reference area of
+  every depth), no ``discharge``; the storage from levels is the one pseudo-source ``levels`` (component TWSA,
+  mm over the reference area: volume / area), its state per unit in the coordinate ``storage_state``
+  ("end_of_month" | "monthly_mean"), and the surface area at each month's level in ``surface_area_km2``;
 - a variable ``flow_<id>`` per further balance flow (``role="flow"``, ``flow_id``, ``direction`` in | out,
   ``label``, ``units="mm/month"``, ``component="flow"``): mm/month over the unit's area, 0.0 for basins the
   flow does not enter, NaN where its gauge is missing; optionally ``valid_fraction_flow_<id>``.
@@ -21,7 +26,8 @@ import xarray as xr
 from .errors import InputError
 
 __all__ = ["ROLE_SOURCE", "ROLE_FLOW", "ROLE_DISCHARGE", "DISCHARGE", "FLOW_PREFIX", "DIRECTIONS",
-           "FLOW_UNITS", "valid_fraction_name", "flow_name", "source_ids", "flow_variables", "validate_series",
+           "FLOW_UNITS", "UNIT_WATERBODY", "LEVELS", "STORAGE_STATE",
+           "SURFACE_AREA", "is_waterbody", "valid_fraction_name", "flow_name", "source_ids", "flow_variables", "validate_series",
            "WbxAccessor"]
 
 ROLE_SOURCE = "source"
@@ -32,6 +38,15 @@ FLOW_PREFIX = "flow_"
 VALID_PREFIX = "valid_fraction_"
 DIRECTIONS = {"in": 1.0, "out": -1.0}
 FLOW_UNITS = "mm/month"
+UNIT_WATERBODY = "waterbody"  # attrs["unit"] of a water body's series
+LEVELS = "levels"  # the pseudo-source (component TWSA) of a water body's storage from levels
+STORAGE_STATE = "storage_state"  # coordinate (basin): "end_of_month" | "monthly_mean"
+SURFACE_AREA = "surface_area_km2"  # variable (basin, time): the surface area at the month's level
+
+
+def is_waterbody(ds: xr.Dataset) -> bool:
+    """Whether ``ds`` holds water-body balances (``attrs["unit"] == "waterbody"``)."""
+    return ds.attrs.get("unit") == UNIT_WATERBODY
 
 
 def valid_fraction_name(variable: str) -> str:

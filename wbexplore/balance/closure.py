@@ -22,7 +22,12 @@ from .engine import (ENSEMBLE_PREFIX, basin_index, check_source, closure_arrays,
 from .options import MAX_LAG_MONTHS, OPTION_NAMES, ClosureOptions, check_lag, period_mask
 from . import uncertainty as unc
 from .storage import match_window_variance, storage_change_variance
-from .terms import BASE_TERMS, SOURCE_COMPONENTS, term_signs
+from .terms import BASE_TERMS, SOURCE_COMPONENTS, Q as Q_TERM, term_signs
+
+
+def flow_terms_of(terms) -> tuple:
+    """The flow rows (component "flow") of a balance's term rows."""
+    return tuple(t for t in terms if t.component == "flow")
 
 __all__ = [
     "Selection", "SelectionResult", "compute_selection", "component_terms", "period_mask",
@@ -48,6 +53,7 @@ class Selection:
     lag : months by which gauged Q is compared later than the basin terms (0 = none)
     min_valid_fraction : months where a source covers less of the basin are treated as missing
     water_year_start : first calendar month of the water year (1 = calendar year)
+    area : water bodies: "outline" (default) or "surface" (the area at the month's level), see `ClosureOptions`
 
     The option fields are those of `ClosureOptions` (``options()`` gives it, ``from_options`` builds a
     selection from one).
@@ -65,6 +71,7 @@ class Selection:
     lag: int = 0
     min_valid_fraction: float = 0.5
     water_year_start: int = 1
+    area: str = "outline"
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -147,7 +154,7 @@ def component_terms(ds: xr.Dataset, sel: Selection) -> dict:
     out = {"P": a["P_raw"][0, 0], "ET": a["ET_raw"][0, 0], "TWSA": a["TWSA_raw"][0, 0], "Q": a["Q_raw"][0],
            "TWSA_used": a["TWSA"][0, 0], "filled": a["filled"][0, 0], "dS": a["dS"][0, 0],
            "P_w": a["P"][0, 0], "ET_w": a["ET"][0, 0], "Q_w": a["Q"][0]}
-    for t in a["terms"][len(BASE_TERMS):]:
+    for t in flow_terms_of(a["terms"]):
         out[t.name] = a[t.name][0]
     return out
 
@@ -185,15 +192,17 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     months = a["months"]
     mask = opts.period(months)
     b = int(a["b"][0])
-    flows = a["terms"][len(BASE_TERMS):]
+    flows = flow_terms_of(a["terms"])
+    no_q = Q_TERM.name not in {t.name for t in a["terms"]}  # a water body: no gauged discharge
     P, ET, Q, dS = a["P"][0, 0], a["ET"][0, 0], a["Q"][0], a["dS"][0, 0]
     P_raw, ET_raw, Q_raw, M_raw, M_used = a["P_raw"][0, 0], a["ET_raw"][0, 0], a["Q_raw"], a["TWSA_raw"][0, 0], a["TWSA"][0, 0]
     Q_raw = Q_raw[0]
     net = None if a["net_flow"] is None else a["net_flow"][0]
     terms_ = a["terms"]
-    res, qhat = combine({t.name: (a[t.name][0, 0] if t.gridded else a[t.name][0]) for t in terms_}, terms_)
-    res_unmatched, _ = combine({t.name: (a[t.name][0, 0] if t.storage else a[f"{t.name}_raw"][0, 0] if t.gridded
-                                         else a[f"{t.name}_raw"][0]) for t in terms_}, terms_)
+    on_sources = {t.name for t in terms_ if t.component in SOURCE_COMPONENTS}  # (basin, source, time) arrays
+    res, qhat = combine({t.name: (a[t.name][0, 0] if t.name in on_sources else a[t.name][0]) for t in terms_}, terms_)
+    res_unmatched, _ = combine({t.name: (a[t.name][0, 0] if t.storage else a[f"{t.name}_raw"][0, 0]
+                                         if t.name in on_sources else a[f"{t.name}_raw"][0]) for t in terms_}, terms_)
     method = unc.DEFAULT_METHOD if uncertainty is None else uncertainty
     kw = {"period": mask, "min_valid_fraction": sel.min_valid_fraction, "method": method}
     errors = {"P": unc.product_error(ds, sel.P, b, values=P_raw, **kw),
@@ -244,7 +253,7 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     # one frame built at once (inserting columns one by one costs more than the balance itself)
     frame = pd.DataFrame({k: v[mask] for k, v in cols.items()}, index=pd.Index(months[mask], name="month"))
     pm = months[mask]
-    metrics = metrics_arrays(res[mask], qhat[mask], Q[mask], P[mask], pm, opts, explain=True)
+    metrics = metrics_arrays(res[mask], qhat[mask], None if no_q else Q[mask], P[mask], pm, opts, explain=True)
     undefined = str(metrics.pop("undefined"))
     metrics = {k: float(v) if np.ndim(v) == 0 else v for k, v in metrics.items()}
     metrics["n_valid"] = int(metrics["n_valid"])
@@ -268,7 +277,9 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
                            area_km2=float(ds["basin_area_km2"].values[b]) if "basin_area_km2" in ds.coords else float("nan"),
                            basin_name=str(ds["basin_name"].values[b]) if "basin_name" in ds.coords else str(sel.basin),
                            messages=msgs + [f"uncertainty: P {errors['P'].method}, ET {errors['ET'].method}, "
-                                            f"TWSA {errors['TWSA'].method}, Q {q_relative_error:.0%} of flow"]
+                                            f"TWSA {errors['TWSA'].method}, "
+                                            + (f"flows {q_relative_error:.0%} of flow" if no_q
+                                               else f"Q {q_relative_error:.0%} of flow")]
                            + [f"uncertainty of {c} ({e.source}): {e.note}" for c, e in errors.items()
                               if "not used" in e.note],
                            terms=a["terms"], uncertainty=errors, q_relative_error=float(q_relative_error))

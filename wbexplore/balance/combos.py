@@ -12,8 +12,9 @@ from .engine import closure_arrays, combination_arrays, metrics_arrays, water_ye
 from .metrics import METRICS, check_metric, sort_key
 from .options import ClosureOptions
 from .terms import SOURCE_COMPONENTS, flow_terms
+from ..series import is_waterbody
 
-__all__ = ["RANK_TABLE_COLUMNS", "rank", "rank_all", "combination_terms", "best_selection", "best_scores", "long_term_all"]
+__all__ = ["RANK_TABLE_COLUMNS", "EXCHANGE_COLUMNS", "rank", "rank_all", "combination_terms", "best_selection", "best_scores", "long_term_all"]
 
 
 # the columns a ranking shows (command line, explorer, report)
@@ -77,6 +78,7 @@ def _metrics(ds, opts, basins=None):
     a = closure_arrays(ds, opts, basins=basins)
     mask = opts.period(a["months"])
     c = combination_arrays(a, mask)
+    a["combination"] = c  # kept for views that need the residuals themselves (a water body's exchange)
     pm = a["months"][mask]
     return a, pm, metrics_arrays(c["residual"], c["Qhat"], c["Q"], c["P"], pm, opts, explain=True)
 
@@ -113,8 +115,39 @@ def rank(ds: xr.Dataset, basin: str, options: ClosureOptions | None = None, *, b
             f"no month in {pm[0]:%Y-%m}..{pm[-1]:%Y-%m} has P, ET, storage change and discharge together for basin "
             f"{basin!r}; data cover: " + ", ".join(spans).replace("discharge ", "discharge covers ", 1))
     df = df.drop(columns="basin")
+    if is_waterbody(a["ds"]):
+        df = _with_exchange(df, a, opts)
     df.attrs = {"basin": basin, **_attrs(opts, pm, by)}
     return df
+
+
+# a water body's ranking also gives its mean residual (unmeasured exchange) in volume units, with standard errors
+EXCHANGE_COLUMNS = ("exchange_hm3", "exchange_hm3_se", "exchange_m3s", "exchange_m3s_se", "exchange_mm_surface",
+                    "exchange_mm_surface_se")
+
+
+def _with_exchange(df: pd.DataFrame, a: dict, opts: ClosureOptions) -> pd.DataFrame:
+    """Rows of one water body's ranking with the mean monthly residual in hm3, m3/s and mm over the surface
+    (and their standard errors: `wbexplore.balance.waterbody.exchange_summary`)."""
+    from ..series import SURFACE_AREA
+    from .waterbody import exchange_summary
+
+    mask = opts.period(a["months"])
+    c = a["combination"]
+    ds, b = a["ds"], int(a["b"][0])
+    surf = ds.variables[SURFACE_AREA].values[b][mask] * 1e6 if SURFACE_AREA in ds.variables else \
+        np.full(int(mask.sum()), float(ds["basin_area_km2"].values[b]) * 1e6)
+    summ = exchange_summary(c["residual"][0], a["months"][mask],
+                            reference_area_m2=float(ds["basin_area_km2"].values[b]) * 1e6, surface_area_m2=surf)
+    ids = a["ids"]
+    pos = tuple(np.fromiter(map({sid: i for i, sid in enumerate(ids[comp])}.__getitem__, df[comp]), dtype=np.intp,
+                            count=len(df)) for comp in SOURCE_COMPONENTS)
+    cols = {}
+    for unit, name in (("hm3", "exchange_hm3"), ("m3/s", "exchange_m3s"), ("mm_surface", "exchange_mm_surface")):
+        mean, se = summ[unit]
+        cols[name] = mean[pos]
+        cols[f"{name}_se"] = se[pos]
+    return pd.concat([df, pd.DataFrame(cols, index=df.index)], axis=1)  # one block: cheaper than six inserts
 
 
 def best_scores(ds: xr.Dataset, options: ClosureOptions | None = None, *, by: str = "rmse",

@@ -19,11 +19,11 @@ import pandas as pd
 import xarray as xr
 
 from ..errors import InputError
-from ..series import DISCHARGE, source_ids, valid_fraction_name
+from ..series import DISCHARGE, STORAGE_STATE, SURFACE_AREA, is_waterbody, source_ids, valid_fraction_name
 from .metrics import METRICS, metrics_from_residual
 from .options import ClosureOptions
-from .storage import fill_gaps, match_window, shift_later, storage_change
-from .terms import BASE_TERMS, DS, P, Q, SOURCE_COMPONENTS, combine, flow_terms
+from .storage import fill_gaps, match_state_window, match_window, shift_later, state_storage_change, storage_change
+from .terms import BASE_TERMS, DS, P, Q, SOURCE_COMPONENTS, WATERBODY_TERMS, combine, flow_terms
 
 __all__ = ["closure_terms", "closure_metrics", "closure_arrays", "combination_arrays", "metrics_arrays", "ENSEMBLE_PREFIX", "with_ensembles", "SOURCE_DIMS"]
 
@@ -75,7 +75,7 @@ def check_source(ds: xr.Dataset, sid: str, component: str) -> None:
 def prepare(ds: xr.Dataset, options: ClosureOptions, sources: dict | None = None):
     """(series, source ids per component) for ``options``: ensembles added when asked (or when a named
     source is one), every named source checked."""
-    if DISCHARGE not in ds:
+    if DISCHARGE not in ds and not is_waterbody(ds):
         raise InputError("the series hold no discharge: add 'discharge' to the catalog")
     if sources is not None:
         wanted = [s for v in sources.values() for s in v]
@@ -138,11 +138,29 @@ def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sour
     mvf = options.min_valid_fraction
     method = options.storage_change
     out = {"ids": ids, "basins": [all_ids[i] for i in b], "b": b, "ds": ds}
+    wb = is_waterbody(ds)
+    if options.area != "outline" and not wb:
+        raise InputError(f"area {options.area!r}: only a water body's P and E can fall on another area than its "
+                         "outline (these series are basins)")
+    if wb and options.lag:
+        raise InputError(f"lag {options.lag}: the lag shifts gauged outlet discharge, which a water body's balance "
+                         "does not have")
+    if wb:  # each water body's storage state sets its own storage difference and flux window
+        states = [str(s) for s in ds[STORAGE_STATE].values[b]]
+
+        def match(raw):
+            return match_state_window(raw, states, method, matched=options.matched)
+    else:
+        def match(raw):
+            return match_window(raw, method) if options.matched else raw
     for t in BASE_TERMS:
         if t.gridded and not t.storage:
             raw = _stack(ds, ids[t.component], mvf, b)
+            if wb and options.area == "surface":  # volume on the surface at the month's level, over the outline
+                ratio = ds.variables[SURFACE_AREA].values[b] / ds["basin_area_km2"].values[b][:, None]
+                raw = raw * ratio[:, None, :]
             out[f"{t.name}_raw"] = raw
-            out[t.name] = match_window(raw, method) if options.matched else raw
+            out[t.name] = match(raw)
     M = _stack(ds, ids[DS.component], mvf, b)
     out["TWSA_raw"] = M
     filled = np.zeros(M.shape, dtype=bool)
@@ -150,24 +168,27 @@ def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sour
         M, filled = fill_gaps(M)
     out["TWSA"] = M
     out["filled"] = filled
-    out["dS"] = storage_change(M, method)
-    q = ds.variables[DISCHARGE].values[b].astype(np.float64)
-    if options.lag:
+    out["dS"] = state_storage_change(M, states, method) if wb else storage_change(M, method)
+    if wb:  # no gauged outlet discharge: the Q term is absent from the balance (zero where a view asks for it)
+        q = np.zeros((b.size, ds.sizes["time"]))
+    else:
+        q = ds.variables[DISCHARGE].values[b].astype(np.float64)
+    if options.lag and not wb:
         q = shift_later(q, options.lag)
     out["Q_raw"] = q
-    out["Q"] = match_window(q, method) if options.matched else q
+    out["Q"] = q if wb else match(q)
     flows = flow_terms(ds)
     net = net_raw = None
     for t in flows:
         raw = _station(ds, t.variable, b, mvf)
-        val = match_window(raw, method) if options.matched else raw
+        val = match(raw)
         out[f"{t.name}_raw"] = raw
         out[t.name] = val
         net = t.sign * val if net is None else net + t.sign * val
         net_raw = t.sign * raw if net_raw is None else net_raw + t.sign * raw
     out["net_flow"] = net
     out["net_flow_raw"] = net_raw
-    out["terms"] = BASE_TERMS + flows
+    out["terms"] = (WATERBODY_TERMS if wb else BASE_TERMS) + flows
     out["months"] = pd.DatetimeIndex(ds["time"].values)
     return out
 
@@ -216,7 +237,7 @@ def combination_arrays(a: dict, mask) -> dict:
     values = {}
     for t in a["terms"]:
         v = a[t.name][..., mask]
-        if t.gridded:  # (basin, source, time) -> its source axis
+        if t.component in axes:  # (basin, source, time) -> its source axis (a water body's levels too)
             shape = [v.shape[0]] + [1] * len(SOURCE_COMPONENTS) + [v.shape[-1]]
             shape[axes[t.component]] = v.shape[1]
             v = v.reshape(shape)
@@ -225,7 +246,8 @@ def combination_arrays(a: dict, mask) -> dict:
         values[t.name] = v
     res, qhat = combine(values, a["terms"])
     net = None if a["net_flow"] is None else a["net_flow"][..., mask]
-    return {"residual": res, "Qhat": qhat, "P": values[P.name], "Q": values[Q.name], "net": net}
+    # a water body's balance has no Q: None (metrics that compare with gauged discharge are then undefined)
+    return {"residual": res, "Qhat": qhat, "P": values[P.name], "Q": values.get(Q.name), "net": net}
 
 
 def _to_dataset(a: dict, opts: ClosureOptions, mask) -> xr.Dataset:
@@ -242,7 +264,7 @@ def _to_dataset(a: dict, opts: ClosureOptions, mask) -> xr.Dataset:
             coords[c] = ("basin", ds[c].values[a["b"]])
     data = {}
     for t in a["terms"]:
-        d = dims[t.component] if t.gridded else ("basin", "time")
+        d = dims[t.component] if t.component in dims else ("basin", "time")
         attrs = {"sign": t.sign, "kind": t.kind, "label": t.label, "units": t.units, "component": t.component}
         data[t.name] = (d, a[t.name][..., mask], attrs)
         if t.storage:
@@ -305,7 +327,7 @@ def closure_metrics(terms: xr.Dataset, *, explain: bool = False) -> xr.Dataset:
     full = terms["residual"].dims
     v = terms.variables
     P = v["P"].values[:, :, None, None]
-    Q = v["Q"].values[:, None, None, None]
+    Q = v["Q"].values[:, None, None, None] if "Q" in v else None  # None: a water body (no gauged discharge)
     m = metrics_arrays(v["residual"].values, v["Qhat"].values, Q, P, months, opts, explain=explain)
     shape = terms["residual"].shape[:-1]
     data = {k: (full[:-1], np.broadcast_to(m[k], shape), {"units": METRICS[k][1], "description": METRICS[k][2]})

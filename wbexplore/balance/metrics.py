@@ -167,8 +167,10 @@ def metrics_from_residual(residual, qhat, Q, P, *, month_of_year=None, water_yea
         sum over the balance terms of sign * term (`wbexplore.balance.terms`), flows included.
     qhat : array-like, mm/month
         residual + Q: the discharge the other terms predict.
-    Q : array-like, mm/month
-        gauged discharge, compared with ``qhat``.
+    Q : array-like or None, mm/month
+        gauged discharge, compared with ``qhat``. None for a water body (its balance has no gauged
+        discharge): the metrics that compare with Q (nse, nse_cyclo, kge, kge_prime, r, pbias) are NaN, and
+        ``undefined`` says why; the residual-based ones (bias, rmse, mae, rel_imbalance, annual) are computed.
     P : array-like, mm/month
         precipitation (denominator of ``rel_imbalance``).
     month_of_year, water_year, min_valid, explain : as `compute_metrics`
@@ -177,12 +179,17 @@ def metrics_from_residual(residual, qhat, Q, P, *, month_of_year=None, water_yea
     terms this gives bitwise what `compute_metrics(P, ET, Q, dS)` gives (the same operations in the same
     order on the same months).
     """
+    if Q is None:  # a water body: no gauged discharge; the residual-based metrics only
+        residual, qhat, P = _mask(residual, qhat, P)
+        Q = np.full(residual.shape, np.nan)
+        return _from_masked(residual, qhat, Q, P, month_of_year=month_of_year, water_year=water_year,
+                            min_valid=min_valid, explain=explain, no_q=True)
     residual, qhat, Q, P = _mask(residual, qhat, Q, P)
     return _from_masked(residual, qhat, Q, P, month_of_year=month_of_year, water_year=water_year,
                         min_valid=min_valid, explain=explain)
 
 
-def _from_masked(res, qhat, Q, P, *, month_of_year, water_year, min_valid, explain):
+def _from_masked(res, qhat, Q, P, *, month_of_year, water_year, min_valid, explain, no_q=False):
     n = np.sum(np.isfinite(res), axis=-1)
     out = {}
     mr = _nanmean(res)
@@ -228,7 +235,13 @@ def _from_masked(res, qhat, Q, P, *, month_of_year, water_year, min_valid, expla
     else:
         out["annual_bias"] = out["annual_rmse"] = np.full(n.shape, np.nan)
     few = n < max(1, min_valid)
-    reasons = _undefined(P, mo, so, ms, ss, out, cyclo=month_of_year is not None)
+    if no_q:
+        reasons = [(_Q_METRICS, (np.ones(np.shape(n), dtype=bool),
+                                 "a water body has no gauged discharge (the residual is the unmeasured exchange)"))]
+        reasons += [(names, why) for names, why in _undefined(P, mo, so, ms, ss, out, cyclo=False)
+                    if names == ("rel_imbalance",)]
+    else:
+        reasons = _undefined(P, mo, so, ms, ss, out, cyclo=month_of_year is not None)
     for names, (m, _) in reasons:
         for k in names:
             out[k] = np.where(m, np.nan, out[k])
@@ -244,6 +257,9 @@ def _from_masked(res, qhat, Q, P, *, month_of_year, water_year, min_valid, expla
                 text[m] = text[m] + np.where(text[m] == "", "", "; ") + f"{', '.join(names)} undefined: {why[1]}"
         out["undefined"] = text
     return out
+
+
+_Q_METRICS = ("nse", "nse_cyclo", "kge", "kge_prime", "r", "pbias")  # the metrics that compare with gauged Q
 
 
 def _undefined(P, mo, so, ms, ss, out, *, cyclo: bool):

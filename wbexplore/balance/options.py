@@ -14,11 +14,14 @@ import pandas as pd
 from ..errors import InputError
 from .storage import METHODS
 
-__all__ = ["ClosureOptions", "MAX_LAG_MONTHS", "check_lag", "parse_month", "period_mask", "OPTION_NAMES"]
+__all__ = ["ClosureOptions", "AREAS", "MAX_LAG_MONTHS", "check_lag", "parse_month", "period_mask", "OPTION_NAMES"]
 
 # Gauged Q is compared at most a year later than the basin terms: a longer routing delay is not a
 # monthly water balance any more, and each month of lag shortens the compared period.
 MAX_LAG_MONTHS = 12
+# The area P and E of a water body fall on: its outline (default), or the surface at the month's level (from the
+# storage curve). Basins have only their outline.
+AREAS = ("outline", "surface")
 
 
 def check_lag(lag) -> int:
@@ -69,6 +72,10 @@ class ClosureOptions:
         First calendar month of the water year (1..12; 1 = calendar year), for annual metrics.
     ensemble : bool
         Add each component's ensemble mean as a source (ranking).
+    area : "outline" | "surface"
+        Water bodies only: P and E (depths from the products, mm/month) fall on the outline's area (default) or
+        on the surface area at the month's level (``surface_area_km2`` of the series); either way the terms are
+        volumes expressed as depths over the reference area (the outline): depth x area / outline area.
     """
 
     start: str | None = None
@@ -81,9 +88,12 @@ class ClosureOptions:
     min_valid: int = 24
     water_year_start: int = 1
     ensemble: bool = False
+    area: str = "outline"
 
     def __post_init__(self):
         check_lag(self.lag)
+        if self.area not in AREAS:
+            raise InputError(f"area {self.area!r} is not one of {', '.join(AREAS)}")
         if self.storage_change not in METHODS:
             raise InputError(f"storage-change method {self.storage_change!r} is not one of {', '.join(METHODS)}")
         for name in ("matched", "fill_gaps", "ensemble"):

@@ -57,7 +57,8 @@ from ..errors import InputError, LevelOutsideCurveWarning
 
 __all__ = ["METHODS", "KERNELS", "storage_change", "match_window", "apply_kernel", "match_window_variance",
            "storage_change_variance", "DS_KERNELS", "kernel", "sum_variance", "shift_later", "fill_gaps", "window_closure",
-           "VOLUME_STATES", "level_volumes", "apply_curves", "volume_storage_change", "volume_kernel", "match_volume_window"]
+           "VOLUME_STATES", "level_volumes", "apply_curves", "volume_storage_change", "volume_kernel", "match_volume_window",
+           "state_storage_change", "match_state_window"]
 
 METHODS = ("central", "backward", "forward")
 # weights on F[i-1], F[i], F[i+1]
@@ -334,3 +335,32 @@ def match_volume_window(flux: xr.DataArray, *, state: str, method: str = "centra
     dims = [d for d in flux.dims if d != "time"] + ["time"]
     f = flux.transpose(*dims)
     return xr.DataArray(apply_kernel(f.values, w), dims=f.dims, coords=f.coords, attrs=dict(flux.attrs))
+
+
+def state_storage_change(storage_mm, states, method: str = "central") -> np.ndarray:
+    """Storage change (per month) of several units whose storage states differ (first axis: unit).
+
+    ``storage_mm`` (unit, ..., time): storage of each unit (a depth or a volume); ``states``: one of
+    `VOLUME_STATES` per unit. End-of-month rows are differenced month by month (``V[m] - V[m-1]``), monthly-mean
+    rows with ``method``, exactly as `volume_storage_change` does for one state.
+    """
+    m = np.asarray(storage_mm, dtype=np.float64)
+    out = np.empty(m.shape)
+    for i, state in enumerate(states):
+        out[i] = storage_change(m[i], "backward" if state == "end_of_month" else method)
+        volume_kernel(state, method)  # refuses an unknown state
+    return out
+
+
+def match_state_window(flux, states, method: str = "central", *, matched: bool = True) -> np.ndarray:
+    """Flux totals (unit, ..., time) filtered per unit with the window matching its storage state.
+
+    End-of-month rows: the month itself (unchanged, whatever ``matched``); monthly-mean rows: the TWSA kernel of
+    ``method`` where ``matched``, else unchanged (`volume_kernel`).
+    """
+    f = np.asarray(flux, dtype=np.float64)
+    out = np.empty(f.shape)
+    for i, state in enumerate(states):
+        w = volume_kernel(state, method)
+        out[i] = apply_kernel(f[i], w) if (matched and state != "end_of_month") else f[i]
+    return out

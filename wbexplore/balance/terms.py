@@ -25,9 +25,10 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
-from ..series import DIRECTIONS, DISCHARGE, FLOW_UNITS, flow_variables
+from ..series import DIRECTIONS, DISCHARGE, FLOW_UNITS, LEVELS, flow_variables, is_waterbody
 
-__all__ = ["Term", "KINDS", "P", "ET", "Q", "DS", "BASE_TERMS", "SOURCE_COMPONENTS", "FLUX_COMPONENTS",
+__all__ = ["Term", "KINDS", "P", "ET", "Q", "DS", "BASE_TERMS", "DS_LEVELS", "WATERBODY_TERMS",
+           "SOURCE_COMPONENTS", "FLUX_COMPONENTS",
            "balance_terms", "flow_terms", "balance_text", "combine", "term_signs", "signs_of", "term"]
 
 KINDS = ("gridded flux", "gridded storage", "station flux", "station storage")
@@ -75,6 +76,13 @@ ET = Term("ET", "ET", -1.0, "gridded flux", "Evapotranspiration")
 Q = Term("Q", "Q", -1.0, "station flux", "Gauged discharge", variable=DISCHARGE)
 DS = Term("dS", "TWSA", -1.0, "gridded storage", "Storage change")
 BASE_TERMS: tuple[Term, ...] = (P, ET, Q, DS)
+# A water body (series with attrs["unit"] == "waterbody"): P and E on the water surface, no gauged outlet
+# discharge, storage change from levels. The storage is the pseudo-source "levels" of the TWSA component (one
+# entry of the TWSA source dimension), so every view of the combinations works unchanged.
+WB_P = Term("P", "P", 1.0, "gridded flux", "Precipitation on the water surface")
+WB_ET = Term("ET", "ET", -1.0, "gridded flux", "Evaporation from the water surface")
+DS_LEVELS = Term("dS", "TWSA", -1.0, "station storage", "Storage change from levels", variable=LEVELS)
+WATERBODY_TERMS: tuple[Term, ...] = (WB_P, WB_ET, DS_LEVELS)
 
 # components that are chosen among gridded products (a source per component), in table order
 SOURCE_COMPONENTS: tuple[str, ...] = tuple(t.component for t in BASE_TERMS if t.gridded)
@@ -98,8 +106,11 @@ def flow_terms(ds: xr.Dataset) -> tuple[Term, ...]:
 
 
 def balance_terms(ds: xr.Dataset | None = None) -> tuple[Term, ...]:
-    """Every term of the balance of ``ds``: P, ET, Q, dS, then its flows (none without ``ds``)."""
-    return BASE_TERMS + (flow_terms(ds) if ds is not None else ())
+    """Every term of the balance of ``ds``: P, ET, Q, dS, then its flows (none without ``ds``); a water
+    body's series: P, ET, dS from levels (`WATERBODY_TERMS`, no Q), then its flows."""
+    if ds is None:
+        return BASE_TERMS
+    return (WATERBODY_TERMS if is_waterbody(ds) else BASE_TERMS) + flow_terms(ds)
 
 
 def balance_text(terms: tuple[Term, ...] = BASE_TERMS) -> str:

@@ -164,6 +164,9 @@ class WaterbodySpec:
 
     ``level.stations`` maps station id -> water-body id (None: station ids are water-body ids).
     ``evaporation_source``: an ET product id (None: the ET products, over the water surface).
+    ``pan``: an evaporation-pan station table (a depth per period; station ids are water-body ids unless
+    ``stations`` maps them), giving the ET source "pan" = pan x ``pan_coefficient`` (catalog field
+    ``coefficient``; 0.7 by default, common practice).
     """
 
     path: Path
@@ -174,6 +177,8 @@ class WaterbodySpec:
     crs: str | None = None
     layer: str | None = None
     evaporation_source: str | None = None
+    pan: StationTableSpec | None = None
+    pan_coefficient: float = 0.7
 
     @property
     def outlines(self) -> BasinSpec:
@@ -183,6 +188,8 @@ class WaterbodySpec:
 
     def input_paths(self) -> tuple[Path, ...]:
         out = [self.path, self.level.path, self.storage_curve.path]
+        if self.pan is not None:
+            out.append(self.pan.path)
         if self.path.suffix.lower() == ".shp":
             out += sorted(q for q in self.path.parent.glob(_glob.escape(self.path.stem) + ".*") if q != self.path)
         return tuple(out)
@@ -689,7 +696,9 @@ def _check_crs(cat: Path, where: str, text: str) -> None:
 
 # ---- waterbodies (issue 15) ------------------------------------------------------------------------
 _WATERBODY_KEYS = {"path": True, "id_field": True, "name_field": False, "crs": False, "layer": False,
-                   "level": True, "storage_curve": True, "evaporation_source": False}
+                   "level": True, "storage_curve": True, "evaporation_source": False, "pan": False}
+# the ids a water body's balance gives its own series (its storage, its pan evaporation): no product may take them
+WATERBODY_SOURCE_IDS = ("levels", "pan")
 _CURVE_KEYS = {"path": True, "id_field": True, "level_field": True, "area_field": True, "volume_field": True,
                "area_units": True, "volume_units": True, "level_units": False}
 
@@ -730,7 +739,27 @@ def _waterbodies(cat: Path, d: Any, sources: list[SourceSpec]) -> WaterbodySpec:
             _fail(cat, where, f"field 'evaporation_source': {evap!r} is not a product id{hint}")
         if comp[evap] != "ET":
             _fail(cat, where, f"field 'evaporation_source': product {evap!r} is {comp[evap]}, not ET")
+    taken = [s.id for s in sources if s.id in WATERBODY_SOURCE_IDS]
+    if taken:
+        _fail(cat, "sources: ", f"product id {taken[0]!r} is the name of a water body's own series "
+                                f"({', '.join(WATERBODY_SOURCE_IDS)}); choose another id")
+    pan, coefficient = None, 0.7
+    if d.get("pan") is not None:
+        pw = where + "pan: "
+        raw = d["pan"]
+        if not isinstance(raw, dict):
+            _fail(cat, pw, f"expected a mapping of station-table fields, got {raw!r}")
+        coefficient = raw.get("coefficient", 0.7)  # lake / pan evaporation: 0.7 is common practice
+        if isinstance(coefficient, bool) or not isinstance(coefficient, (int, float)) or not 0.0 < coefficient <= 1.5:
+            _fail(cat, pw, f"field 'coefficient': {coefficient!r} is not a number in (0, 1.5]")
+        pan = _station_table(cat, pw, {k: v for k, v in raw.items() if k != "coefficient"}, kind="flow")
+        from ..units import parse_discharge_unit
+
+        if parse_discharge_unit(pan.units, where=pw + "units").kind != "depth":
+            _fail(cat, pw, f"field 'units': {pan.units!r} is a flow; pan evaporation is a depth per period "
+                           "(mm/day, mm/month)")
     return WaterbodySpec(path=path, id_field=_str(cat, where, d, "id_field"), level=level, storage_curve=curve,
                          name_field=_str(cat, where, d, "name_field"), crs=crs,
-                         layer=_str(cat, where, d, "layer"), evaporation_source=evap)
+                         layer=_str(cat, where, d, "layer"), evaporation_source=evap, pan=pan,
+                         pan_coefficient=float(coefficient))
 # ---- end waterbodies -------------------------------------------------------------------------------

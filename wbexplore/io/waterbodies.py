@@ -29,7 +29,7 @@ from .basins import read_basins
 from .catalog import Catalog, StorageCurveSpec, WaterbodySpec
 from .stations import _detect_separator, _short, read_station_table
 
-__all__ = ["StorageCurve", "Waterbodies", "read_storage_curves", "read_waterbody_outlines", "read_levels",
+__all__ = ["StorageCurve", "Waterbodies", "read_storage_curves", "read_waterbody_outlines", "read_levels", "read_pan",
            "check_distinct_ids", "read_waterbodies"]
 
 
@@ -202,6 +202,39 @@ def read_levels(spec: WaterbodySpec, waterbody_ids) -> tuple[xr.DataArray, xr.Da
     return mean_da, end_da
 
 
+def read_pan(spec: WaterbodySpec, waterbody_ids) -> xr.DataArray:
+    """Evaporation-pan readings (mm/month) per water body, ``(waterbody, time)``, month-start stamps.
+
+    The table's units are a depth per period (mm/day, mm/month); a daily station's month is the mean of its
+    present days times the days of the month (`read_station_table`). Station ids are water-body ids unless
+    ``pan.stations`` maps them.
+
+    Raises
+    ------
+    InputError
+        A pan station (or a ``stations`` target) that is not a water body of the outline file.
+    """
+    pan = spec.pan
+    known = [str(w) for w in waterbody_ids]
+    mapping = pan.station_map
+    table = read_station_table(pan, kind="flow", use=None if mapping is None else list(mapping))
+    if mapping is None:
+        mapping = {s: s for s in table.stations}
+    for st, wb in mapping.items():
+        if wb not in known:
+            what = f"station {_short(st)} maps to water body {_short(wb)}" if st != wb else f"station {_short(st)}"
+            raise InputError(f"{pan.path}: {what}, which is not a water body of {spec.path.name} "
+                             f"(field {spec.id_field!r})")
+    m = table.monthly
+    months = pd.DatetimeIndex(m.index.get_level_values("month"))
+    full = pd.DatetimeIndex(pd.date_range(months.min(), months.max(), freq="MS"))
+    out = np.full((len(known), full.size), np.nan)
+    for st, wb in mapping.items():
+        out[known.index(wb)] = m.loc[st]["value"].reindex(full).to_numpy(float)
+    return xr.DataArray(out, dims=("waterbody", "time"), coords={"waterbody": known, "time": full}, name="pan",
+                        attrs={"units": "mm/month", "long_name": "evaporation-pan reading", "source_units": pan.units})
+
+
 def split_flows(catalog: Catalog) -> tuple[tuple, tuple]:
     """(basin flows, water-body flows) of the catalog's ``flows``: a flow whose ``basin`` is a water-body id
     enters that water body's balance and no basin series; every other flow is a basin's (the basin reader
@@ -231,6 +264,8 @@ class Waterbodies:
     level_mean: xr.DataArray
     level_end: xr.DataArray | None
     evaporation_source: str | None = None
+    pan: xr.DataArray | None = None  # pan readings (mm/month, `read_pan`); None without a `pan` block
+    pan_coefficient: float = 0.7
 
     def levels_by_state(self) -> dict[str, xr.DataArray]:
         """The levels that give each water body's storage, by volume state.
@@ -310,5 +345,6 @@ def read_waterbodies(catalog: Catalog, *, basin_ids=None) -> Waterbodies:
     if without:
         raise InputError(f"{spec.level.path}: water body {_short(without[0])} of {spec.path.name} has no level "
                          "series (its storage change needs one)")
+    pan = read_pan(spec, ids) if spec.pan is not None else None
     return Waterbodies(outlines=outlines, curves=curves, level_mean=mean, level_end=end,
-                       evaporation_source=spec.evaporation_source)
+                       evaporation_source=spec.evaporation_source, pan=pan, pan_coefficient=spec.pan_coefficient)
