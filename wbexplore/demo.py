@@ -439,10 +439,18 @@ def _reservoir_level(volume_m3, outline_m2: float) -> np.ndarray:
     h = np.full(v.shape, _LEVEL_START_M)
     for _ in range(60):
         a, vv = reservoir_curve(h, outline_m2)
-        h = h - (vv - v) / a
+        step = (vv - v) / a
+        h = h - step
+        if np.abs(step).max() < 1e-11:
+            break
     a, vv = reservoir_curve(h, outline_m2)
     assert np.abs(vv - v).max() <= 1e-6 * np.abs(v).max(), "level inversion did not converge"
     return h
+
+
+def _as_written(x) -> np.ndarray:
+    """Values as a table with three decimals holds them (the truth uses what the gauges' tables say)."""
+    return np.array([float(f"{v:.3f}") for v in np.asarray(x, dtype=float).tolist()])
 
 
 def _reservoir(P, ET, row_area, lat_e, lon_e, months):
@@ -460,6 +468,7 @@ def _reservoir(P, ET, row_area, lat_e, lon_e, months):
     """
     import shapely
     import xarray as xr
+    from scipy.signal import lfilter
 
     w_, s_, e_, n_ = RESERVOIR["bounds"]
     rows = (lat_e[:-1] >= s_ - 1e-9) & (lat_e[1:] <= n_ + 1e-9)
@@ -484,29 +493,30 @@ def _reservoir(P, ET, row_area, lat_e, lon_e, months):
     inflow = {}
     for fid, mean in _STREAMS_M3S.items():
         eps = rrng.standard_normal(nd)
-        z = np.empty(nd)
-        z[0] = eps[0]
-        for i in range(1, nd):  # AR(1) in log space, a week's memory
-            z[i] = 0.86 * z[i - 1] + np.sqrt(1 - 0.86**2) * eps[i]
+        # AR(1) in log space, a week's memory: z[0] = eps[0], z[i] = 0.86 z[i-1] + sqrt(1 - 0.86^2) eps[i]
+        z = np.concatenate([eps[:1], lfilter([np.sqrt(1 - 0.86**2)], [1.0, -0.86], eps[1:], zi=[0.86 * eps[0]])[0]])
         q = mean * season * ann_d * np.exp(0.25 * z - 0.5 * 0.25**2)
-        inflow[fid] = np.round(q, 3)
+        inflow[fid] = _as_written(q)
     qin = sum(inflow.values())
     base = float(qin.mean() + pe.mean() / 86400.0 - SEEPAGE_M3S)
     target_h = 272.5 + 1.5 * np.cos(2 * np.pi * (t - 0.80))  # full in late October, drawn down by July
     target_v = reservoir_curve(target_h, area)[1]
     v_start = float(reservoir_curve(_LEVEL_START_M, area)[1])
-    release = np.empty(nd)
-    vb = np.empty(nd + 1)  # volume at 00:00 of each day (and after the last)
+    # the operating rule, day by day on Python floats (a loop with feedback: the release follows the volume)
+    pe_l, qin_l, tv_l = pe.tolist(), qin.tolist(), target_v.tolist()
+    rel = [0.0] * nd
+    vb = [0.0] * (nd + 1)  # volume at 00:00 of each day (and after the last)
     vb[1] = v_start  # 2001-01-01 00:00
     for i in [*range(1, nd), 0]:  # the day before the period (0) is stepped back from the start volume
-        v_now = vb[1] if i == 0 else vb[i]
-        r = base + (v_now - target_v[i]) / (240 * 86400.0)  # closes the gap to the target in about 8 months
-        release[i] = np.round(min(max(r, 8.0), 600.0), 3)
-        dv = pe[i] + (qin[i] - release[i] - SEEPAGE_M3S) * 86400.0
+        v_now = v_start if i == 0 else vb[i]
+        r = base + (v_now - tv_l[i]) / (240 * 86400.0)  # closes the gap to the target in about 8 months
+        rel[i] = float(f"{min(max(r, 8.0), 600.0):.3f}")  # as written in the table
+        dv = pe_l[i] + (qin_l[i] - rel[i] - SEEPAGE_M3S) * 86400.0
         if i == 0:
-            vb[0] = vb[1] - dv
+            vb[0] = v_start - dv
         else:
             vb[i + 1] = vb[i] + dv
+    release, vb = np.asarray(rel), np.asarray(vb)
     dv_day = np.diff(vb)
     level_noon = np.round(_reservoir_level(vb[:-1] + 0.5 * dv_day, area), 3)  # the gauge reads at noon
 
