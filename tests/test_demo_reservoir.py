@@ -209,10 +209,8 @@ def _block(values, lat, lon, res):
     iy = np.flatnonzero((lat > s) & (lat < n))
     ix = np.flatnonzero((lon > w) & (lon < e))
     assert iy.size == round((n - s) / res) and ix.size == round((e - w) / res)
-    edges = np.concatenate([lat[iy] - res / 2, [lat[iy[-1]] + res / 2]]) if lat[iy[0]] < lat[iy[-1]] else None
-    if edges is None:  # descending latitudes
-        edges = np.concatenate([lat[iy] + res / 2, [lat[iy[-1]] - res / 2]])
-    wr = _geod_row_areas(edges, res)
+    half = np.sign(lat[iy[-1]] - lat[iy[0]]) * res / 2  # negative for descending latitudes
+    wr = _geod_row_areas(np.concatenate([lat[iy] - half, [lat[iy[-1]] + half]]), res)
     sub = values[:, iy][:, :, ix]
     return (sub * wr[None, :, None]).sum(axis=(1, 2)) / (wr.sum() * ix.size)
 
