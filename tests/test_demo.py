@@ -104,9 +104,11 @@ def test_catalog_validates_and_every_source_opens(demo_dir):
 
 def _digest(folder):
     h = {}
-    for p in sorted((folder / "grids").rglob("*")):
+    files = [*(folder / "grids").rglob("*"), *folder.glob("reservoir*"), folder / "truth_waterbody.nc"]
+    for p in sorted(files):
         if p.is_file():
             h[str(p.relative_to(folder))] = hashlib.sha256(p.read_bytes()).hexdigest()
+    assert len([k for k in h if not k.startswith("grids")]) == 5  # the reservoir's four files and its truth
     return h
 
 
@@ -135,6 +137,10 @@ def test_demo_data_record_matches_the_generator():
     assert [(p["id"], p["error"]) for p in rec["products"]] == [(p[0], p[3]) for p in demo.PRODUCTS]
     assert [(f["id"], f["basin"], f["direction"]) for f in rec["flows"]] == [f[:3] for f in demo.FLOWS]
     assert {b["id"]: b["drains_to"] for b in rec["basins"] if "drains_to" in b} == demo.DRAINS_TO
+    r = rec["reservoir"]
+    assert (r["id"], r["name"], tuple(r["bounds"])) == (demo.RESERVOIR["id"], demo.RESERVOIR["name"],
+                                                         demo.RESERVOIR["bounds"])
+    assert [(f["id"], f["basin"], f["direction"], f["station"], f["label"]) for f in r["flows"]] == demo.RESERVOIR_FLOWS
 
 
 # --------------------------------------------------------------------------- flows and nested basins
@@ -170,12 +176,13 @@ def test_truth_closes_window_matched_with_flows(which, demo_truth, demo_truth_in
 
 
 def test_nested_pairs_and_flows_in_the_catalog(demo_dir, demo_truth, demo_truth_incremental):
-    from wbexplore.demo import DRAINS_TO, FLOWS
+    from wbexplore.demo import DRAINS_TO, FLOWS, RESERVOIR_FLOWS
     from wbexplore.io.basins import incremental_basins, read_basins
 
     cat = open_catalog(demo_dir / "catalog.yaml")
     assert cat.raw["catalog_version"] == 2 and cat.basins.downstream_field == "drains_to"
-    assert {(f.id, f.basin, f.direction) for f in cat.flows} == {(f[0], f[1], f[2]) for f in FLOWS}
+    # the basins' flows and the reservoir's (whose `basin` is the water-body id)
+    assert {(f.id, f.basin, f.direction) for f in cat.flows} == {(f[0], f[1], f[2]) for f in FLOWS + RESERVOIR_FLOWS}
     b = read_basins(cat.basins)
     assert {u: d for u, d in b["drains_to"].items() if d is not None} == DRAINS_TO
     assert (b["outside_km2"] == 0).all()  # the upstream basins are unions of their parent's cells

@@ -38,6 +38,10 @@ def _catalog_doc(demo_dir: Path) -> dict:
         s["path"] = str(demo_dir / s["path"])
     for f in doc.get("flows", []):
         f["path"] = str(demo_dir / f["path"])
+    wb = doc.get("waterbodies")
+    if wb is not None:  # the reservoir: outline, levels and storage curve
+        for d in (wb, wb["level"], wb["storage_curve"]):
+            d["path"] = str(demo_dir / d["path"])
     return doc
 
 

@@ -35,6 +35,41 @@ basins and every product are bitwise what they were.
 Products and their errors (also written in the catalog's labels/descriptions)
 -----------------------------------------------------------------------------
 See `PRODUCTS` below; `wbexplore demo` writes the table into the study README.
+
+The reservoir (a water body; catalog block ``waterbodies``)
+-----------------------------------------------------------
+Talvaren reservoir (`RESERVOIR`, id TALV) fills one whole 0.5-degree block, 0.5 to 1.0 E and 12.5 to 13.0 N:
+every cell of the 0.1- and 0.25-degree P and ET products is wholly inside or wholly outside it, so a product's
+outline mean is an exact block mean; it lies north of 12 N, where kestrel is the truth, inside fennel's extent
+and outside the eight basins (whose truth does not change). Two gauged streams flow in and a gauged release
+flows out (`RESERVOIR_FLOWS`: daily, m3/s, ``reservoir_flows.csv``); a constant seepage loss of
+`SEEPAGE_M3S` (6 m3/s, about 5.3 mm/month over the outline) leaves through the dam's foundation and no gauge
+measures it. Its truth (``truth_waterbody.nc``) is built by daily steps with constant rates within each day::
+
+    dV/day = (P - E) / days_in_month / 1000 * A_outline + (in1 + in2 - release - seepage) * 86400   (m3)
+
+P and E are the truth P and ET fields averaged over the outline's truth cells (mm/month; for E the land ET
+field stands for the open-water evaporation: an invented-world choice), A_outline the sum of those cells'
+areas (pyproj.Geod; the engine's default reference area is the outline's geodesic area, the same to 1e-6);
+the flows are used as written (rounded to 0.001 m3/s) and the release follows an operating rule towards a
+seasonal target level, from the volume at the start of each day. Monthly sums of the days give, to round-off,
+``dS = (P - E) * A_outline + in1 + in2 - release - seepage``. The storage curve (`reservoir_curve`) has an
+area quadratic in the level, the volume its exact integral; ``reservoir_curve.csv`` samples it every 0.5 m from
+250 to 282 m (the levels met stay within 271 to 274 m). The level gauge reads at noon: the level of the volume
+half-way through the day, the curve inverted (Newton's method), written in mm (``reservoir_levels.csv``,
+daily, wide). The gauges record from 2000-12-31 to 2021-01-01 so that both end states of every month of the
+period can be read from the levels (on those two extra days P - E runs at the adjacent month's rate).
+``truth_waterbody.nc``: P, E (mm/month over the outline), ``flow_<id>`` and ``seepage`` (m3/s, monthly means),
+``volume`` (m3, end of month), ``dS`` (m3/month), ``level`` (m, end of month), time = month starts; attributes
+``waterbody``, ``outline_area_m2`` and ``volume_start_m3`` (2001-01-01 00:00).
+
+Expected ranking at the reservoir (rmse of P - E + in - out - dS over 2001-2020, mm/month, computed from the
+written files in ``tests/test_demo_reservoir.py``): kestrel with tansy 9.7 (tansy is unbiased with 12%
+monthly noise), heron with tansy 11.4, kestrel with fennel 15.5 (0.85 x truth), kestrel with sedge 27.2
+(damped cycle: the reservoir's E has a strong seasonal cycle); plover (noise sd 0.35) last. The true terms'
+residual is the seepage itself, so a ranking by |bias| rewards products whose errors offset it: rank by rmse.
+The reservoir is drawn from a generator of its own after every earlier draw: the basins, every product,
+``truth.nc`` and ``truth_incremental.nc`` are bitwise what they were before it.
 """
 
 from __future__ import annotations
@@ -49,7 +84,7 @@ import numpy as np
 import pandas as pd
 
 __all__ = ["write_demo", "copy_templates", "MARKER", "PRODUCTS", "BASINS", "DRAINS_TO", "FLOWS", "SEED", "DemoInfo",
-           "REGION"]
+           "REGION", "RESERVOIR", "RESERVOIR_FLOWS", "SEEPAGE_M3S", "reservoir_curve"]
 
 SEED = 20260412
 REGION = dict(lon0=-7.0, lon1=5.0, lat0=6.0, lat1=16.0)
@@ -363,6 +398,217 @@ def _flow_entries() -> list[dict]:
     return out
 
 
+# --------------------------------------------------------------------------- the reservoir (issue 15)
+# Its outline is one whole 0.5-degree block: every cell of the 0.1- and 0.25-degree P and ET products is
+# either wholly inside it or wholly outside, so the products' outline means are exact block means. North of
+# 12 N (where kestrel is exact), west of 3.5 E (inside fennel's extent), away from the eight basins.
+RESERVOIR = {"id": "TALV", "name": "Talvaren reservoir", "bounds": (0.5, 12.5, 1.0, 13.0),  # W, S, E, N (deg)
+             "note": "dammed lake north of the basins; two gauged streams in, a gauged release, ungauged seepage"}
+# the reservoir's gauged flows (id, water body, direction, station, label): reservoir_flows.csv, daily, m3/s
+RESERVOIR_FLOWS = [
+    ("ombrel", "TALV", "in", "OMB-2", "Ombrel stream at the upper gauge"),
+    ("sivette", "TALV", "in", "SIV-5", "Sivette stream at the lake gauge"),
+    ("talv_release", "TALV", "out", "TLV-R", "Talvaren dam release (outlet works and spillway)"),
+]
+SEEPAGE_M3S = 6.0  # the ungauged seepage loss through the dam's foundation (m3/s, constant)
+# the storage curve: area A(h) = A_outline (a0 + a1 x + a2 x^2), x = (h - h0) / (h1 - h0), volume its integral
+# from a dead storage at h0; the table is written every `step` m from h0 to h1
+_CURVE = {"h0": 250.0, "h1": 282.0, "step": 0.5, "a": (0.12, 0.58, 0.30), "dead_m3": 2.0e9}
+_LEVEL_START_M = 272.0  # level at 2001-01-01 00:00
+_STREAMS_M3S = {"ombrel": 45.0, "sivette": 18.0}  # long-term mean inflows
+
+
+def reservoir_curve(level_m, outline_m2: float) -> tuple[np.ndarray, np.ndarray]:
+    """The demo reservoir's true storage curve: (surface area in m2, volume in m3) at ``level_m`` (m).
+
+    The area is a quadratic in the level (a bowl that widens upwards, the outline's area at the top of the
+    curve); the volume is its exact integral above a dead storage. The written table
+    (``reservoir_curve.csv``) samples this curve; the truth is built on the curve itself.
+    """
+    h0, h1 = _CURVE["h0"], _CURVE["h1"]
+    a0, a1, a2 = _CURVE["a"]
+    x = (np.asarray(level_m, dtype=float) - h0) / (h1 - h0)
+    area = outline_m2 * (a0 + a1 * x + a2 * x**2)
+    vol = _CURVE["dead_m3"] + outline_m2 * (h1 - h0) * (a0 * x + a1 * x**2 / 2 + a2 * x**3 / 3)
+    return area, vol
+
+
+def _reservoir_level(volume_m3, outline_m2: float) -> np.ndarray:
+    """Invert `reservoir_curve` (Newton's method; the volume is increasing and convex in the level)."""
+    v = np.asarray(volume_m3, dtype=float)
+    h = np.full(v.shape, _LEVEL_START_M)
+    for _ in range(60):
+        a, vv = reservoir_curve(h, outline_m2)
+        step = (vv - v) / a
+        h = h - step
+        if np.abs(step).max() < 1e-11:
+            break
+    a, vv = reservoir_curve(h, outline_m2)
+    assert np.abs(vv - v).max() <= 1e-6 * np.abs(v).max(), "level inversion did not converge"
+    return h
+
+
+def _as_written(x) -> np.ndarray:
+    """Values as a table with three decimals holds them (the truth uses what the gauges' tables say)."""
+    return np.array([float(f"{v:.3f}") for v in np.asarray(x, dtype=float).tolist()])
+
+
+def _reservoir(P, ET, row_area, lat_e, lon_e, months):
+    """The true daily water balance of the reservoir and its monthly truth.
+
+    Days run from 2000-12-31 to 2021-01-01: the level gauge and the flow gauges record the day before and
+    the day after the study period, so that both end states of every month of the period can be read from
+    noon levels (on those two days P - E runs at the rate of the adjacent month). Each day has constant
+    rates: ``dV = (P - E) / days_in_month * A_outline + (in1 + in2 - release - seepage) * 86400``, with P and
+    E the truth fields averaged over the outline's truth cells (mm/month) and the flows as written (m3/s,
+    rounded to the table's digits before use), so the monthly truth closes to round-off. The release
+    follows an operating rule (towards a seasonal target level), from the volume at the start of the day.
+
+    Returns ``(truth Dataset, daily frame, outline polygon, outline area m2)``.
+    """
+    import shapely
+    import xarray as xr
+    from scipy.signal import lfilter
+
+    w_, s_, e_, n_ = RESERVOIR["bounds"]
+    rows = (lat_e[:-1] >= s_ - 1e-9) & (lat_e[1:] <= n_ + 1e-9)
+    cols = (lon_e[:-1] >= w_ - 1e-9) & (lon_e[1:] <= e_ + 1e-9)
+    cell_area = row_area[rows][:, None] * np.ones(cols.sum())[None, :]
+    area = float(cell_area.sum())
+    p_mm = np.tensordot(P[:, rows][:, :, cols], cell_area, axes=([1, 2], [0, 1])) / area
+    e_mm = np.tensordot(ET[:, rows][:, :, cols], cell_area, axes=([1, 2], [0, 1])) / area
+    outline = shapely.box(w_, s_, e_, n_)
+
+    days = pd.date_range(months[0] - pd.Timedelta(days=1), months[-1] + pd.offsets.MonthBegin(1), freq="D")
+    nd = days.size
+    mi = np.clip((days.year - months[0].year) * 12 + days.month - 1, 0, months.size - 1)  # month of each day
+    pe = (p_mm - e_mm)[mi] / 1000.0 * area / months.days_in_month.values[mi]  # m3/day
+
+    rrng = np.random.default_rng(SEED + 400)  # a generator of its own: every earlier draw stays as it was
+    t = (days.day_of_year.values - 1) / 365.25
+    season = np.exp(1.6 * np.cos(2 * np.pi * (t - 0.70)))  # streams peak in mid-September
+    season /= season.mean()
+    ann = (p_mm.reshape(-1, 12).sum(axis=1) / p_mm.reshape(-1, 12).sum(axis=1).mean()) ** 1.5
+    ann_d = ann[np.clip(days.year.values - months[0].year, 0, ann.size - 1)]
+    inflow = {}
+    for fid, mean in _STREAMS_M3S.items():
+        eps = rrng.standard_normal(nd)
+        # AR(1) in log space, a week's memory: z[0] = eps[0], z[i] = 0.86 z[i-1] + sqrt(1 - 0.86^2) eps[i]
+        z = np.concatenate([eps[:1], lfilter([np.sqrt(1 - 0.86**2)], [1.0, -0.86], eps[1:], zi=[0.86 * eps[0]])[0]])
+        q = mean * season * ann_d * np.exp(0.25 * z - 0.5 * 0.25**2)
+        inflow[fid] = _as_written(q)
+    qin = sum(inflow.values())
+    base = float(qin.mean() + pe.mean() / 86400.0 - SEEPAGE_M3S)
+    target_h = 272.5 + 1.5 * np.cos(2 * np.pi * (t - 0.80))  # full in late October, drawn down by July
+    target_v = reservoir_curve(target_h, area)[1]
+    v_start = float(reservoir_curve(_LEVEL_START_M, area)[1])
+    # the operating rule, day by day on Python floats (a loop with feedback: the release follows the volume)
+    pe_l, qin_l, tv_l = pe.tolist(), qin.tolist(), target_v.tolist()
+    rel = [0.0] * nd
+    vb = [0.0] * (nd + 1)  # volume at 00:00 of each day (and after the last)
+    vb[1] = v_start  # 2001-01-01 00:00
+    for i in [*range(1, nd), 0]:  # the day before the period (0) is stepped back from the start volume
+        v_now = v_start if i == 0 else vb[i]
+        r = base + (v_now - tv_l[i]) / (240 * 86400.0)  # closes the gap to the target in about 8 months
+        rel[i] = float(f"{min(max(r, 8.0), 600.0):.3f}")  # as written in the table
+        dv = pe_l[i] + (qin_l[i] - rel[i] - SEEPAGE_M3S) * 86400.0
+        if i == 0:
+            vb[0] = v_start - dv
+        else:
+            vb[i + 1] = vb[i] + dv
+    release, vb = np.asarray(rel), np.asarray(vb)
+    dv_day = np.diff(vb)
+    level_noon = np.round(_reservoir_level(vb[:-1] + 0.5 * dv_day, area), 3)  # the gauge reads at noon
+
+    # monthly truth over 2001-01 .. 2020-12
+    ends = np.searchsorted(days.values, (months + pd.offsets.MonthBegin(1)).values)  # day index of the 1st of next
+    vol_end = vb[ends]
+    dS = np.diff(np.concatenate([[v_start], vol_end]))
+    in_period = (days >= months[0]) & (days < months[-1] + pd.offsets.MonthBegin(1))
+    gauged = {fid: inflow.get(fid, release) for fid, *_r in RESERVOIR_FLOWS}  # m3/s per day, as written
+    mdf = pd.DataFrame({"m": mi[in_period], **{k: v[in_period] for k, v in gauged.items()}}).groupby("m").mean()
+    wid = RESERVOIR["id"]
+    tv = {"P": (p_mm, "mm/month", "precipitation over the outline (truth field, outline's truth cells)"),
+          "E": (e_mm, "mm/month", "evaporation over the outline (the truth ET field: an invented-world choice)"),
+          "seepage": (np.full(months.size, SEEPAGE_M3S), "m3/s", "ungauged seepage loss (monthly mean)"),
+          "volume": (vol_end, "m3", "volume at the end of the month"),
+          "dS": (dS, "m3/month", "storage change over the month (end minus start volume)"),
+          "level": (_reservoir_level(vol_end, area), "m", "level at the end of the month (curve inverted)")}
+    for fid, _wb, direction, *_r in RESERVOIR_FLOWS:
+        tv[f"flow_{fid}"] = (mdf[fid].to_numpy(), "m3/s", f"gauged flow ({direction}), monthly mean of the days")
+    ds = xr.Dataset({k: ("time", v, {"units": u, "long_name": ln}) for k, (v, u, ln) in tv.items()},
+                    coords={"time": months},
+                    attrs={"title": "Quessary uplands demo: true water balance of the reservoir (invented data)",
+                           "waterbody": wid, "waterbody_name": RESERVOIR["name"], "outline_area_m2": area,
+                           "volume_start_m3": v_start,
+                           "note": "dS = (P - E) / 1000 * outline_area_m2 + (sum of flows in - flows out - seepage)"
+                                   " * seconds of the month, to round-off (daily steps, constant rates within a "
+                                   "day); volume from 2001-01-01 00:00 (volume_start_m3)"})
+    for fid, _wb, direction, station, _label in RESERVOIR_FLOWS:
+        ds[f"flow_{fid}"].attrs.update(direction=direction, station=station, role="flow")
+    daily = pd.DataFrame({"date": days.strftime("%Y-%m-%d"), "level": level_noon,
+                          **{st: gauged[fid] for fid, _wb, _d, st, _l in RESERVOIR_FLOWS}})
+    return ds, daily, outline, area
+
+
+def _write_reservoir(folder: Path, ds, daily, outline) -> None:
+    """Outline (GeoJSON), storage curve table, daily levels (wide, m) and daily flows (wide, m3/s)."""
+    import geopandas as gpd
+
+    wid = RESERVOIR["id"]
+    area = ds.attrs["outline_area_m2"]
+    gpd.GeoDataFrame([{"wb_id": wid, "name": RESERVOIR["name"], "note": RESERVOIR["note"]}], geometry=[outline],
+                     crs="EPSG:4326").to_file(folder / "reservoir.geojson", driver="GeoJSON", COORDINATE_PRECISION=9)
+    h = np.round(np.arange(_CURVE["h0"], _CURVE["h1"] + _CURVE["step"] / 2, _CURVE["step"]), 3)
+    a, v = reservoir_curve(h, area)
+    pd.DataFrame({"wb_id": wid, "level_m": [f"{x:.2f}" for x in h], "area_km2": [f"{x / 1e6:.6f}" for x in a],
+                  "volume_hm3": [f"{x / 1e6:.6f}" for x in v]}).to_csv(folder / "reservoir_curve.csv", index=False)
+    pd.DataFrame({"date": daily["date"], wid: [f"{x:.3f}" for x in daily["level"]]}).to_csv(
+        folder / "reservoir_levels.csv", index=False)
+    cols = {"date": daily["date"]}
+    for _fid, _wb, _d, st, _l in RESERVOIR_FLOWS:
+        cols[st] = [f"{x:.3f}" for x in daily[st]]
+    pd.DataFrame(cols).to_csv(folder / "reservoir_flows.csv", index=False)
+
+
+def _reservoir_readme(t) -> list[str]:
+    """The study README's section on the reservoir (its files, flows, curve, seepage and truth)."""
+    w, so, e, n = RESERVOIR["bounds"]
+    lv = t["level"].values
+    lines = ["", "## Reservoir (water body)", "",
+             "| id | name | outline | outline area (km2) | level range 2001-2020 (m) | curve (m) | seepage (m3/s) |",
+             "|---|---|---|---:|---|---|---:|",
+             (f"| {RESERVOIR['id']} | {RESERVOIR['name']} | {w:g} to {e:g} E, {so:g} to {n:g} N (one 0.5-degree "
+              f"block) | {t.attrs['outline_area_m2'] / 1e6:,.0f} | {lv.min():.2f} to {lv.max():.2f} (month ends) "
+              f"| {_CURVE['h0']:g} to {_CURVE['h1']:g} every {_CURVE['step']:g} | {SEEPAGE_M3S:g} (ungauged) |"), "",
+             "| flow id | direction | station (column of reservoir_flows.csv) | what |", "|---|---|---|---|"]
+    for fid, _wb, direction, st, label in RESERVOIR_FLOWS:
+        lines.append(f"| {fid} | {direction} | {st} | {label} |")
+    lines += ["", ("Files: `reservoir.geojson` (outline), `reservoir_curve.csv` (level m -> area km2, volume hm3), "
+                   "`reservoir_levels.csv` (daily noon levels, m, wide), `reservoir_flows.csv` (daily flows, m3/s, "
+                   "wide; 2000-12-31 to 2021-01-01). The flows are gauged without error; the seepage is in no table."),
+              "", ("`truth_waterbody.nc` holds the reservoir's true monthly balance: P and E over the outline "
+              "(mm/month; E is the truth ET field, an invented-world choice), each flow `flow_<id>` and `seepage` "
+              "(m3/s), `volume` (m3, end of month), `dS` (m3/month) and the end-of-month `level`; "
+              "dS = (P - E) x outline area + inflows - release - seepage to round-off. Expected ranking there "
+              "(by rmse): kestrel for P (exact north of 12 N), tansy for E (unbiased, noisy); "
+              "the residual of the true terms is the seepage (so rank by rmse, not by |bias|).")]
+    return lines
+
+
+def _waterbody_entries() -> tuple[dict, list[dict]]:
+    """The catalog's `waterbodies` block and the reservoir's `flows` entries."""
+    block = {"path": "reservoir.geojson", "id_field": "wb_id", "name_field": "name",
+             "level": {"path": "reservoir_levels.csv", "layout": "wide", "time_field": "date", "units": "m"},
+             "storage_curve": {"path": "reservoir_curve.csv", "id_field": "wb_id", "level_field": "level_m",
+                               "area_field": "area_km2", "volume_field": "volume_hm3", "area_units": "km2",
+                               "volume_units": "hm3"}}
+    flows = [{"id": fid, "basin": wb, "direction": direction, "path": "reservoir_flows.csv", "layout": "wide",
+              "time_field": "date", "station": st, "units": "m3/s", "label": label}
+             for fid, wb, direction, st, label in RESERVOIR_FLOWS]
+    return block, flows
+
+
 # --------------------------------------------------------------------------- writers
 def _nc(ds, path):
     enc = {v: {"zlib": True, "complevel": 4, "shuffle": True} for v in ds.data_vars}
@@ -491,9 +737,11 @@ def write_demo(out: str | Path, *, overwrite: bool = False, progress: bool = Fal
                templates: bool = False) -> DemoInfo:
     """Write the complete demo study folder (deterministic: fixed seed).
 
-    Writes ``catalog.yaml`` (version 2: flows and nesting), ``basins.geojson``, ``discharge.csv``,
+    Writes ``catalog.yaml`` (version 2: flows, nesting and a water body), ``basins.geojson``, ``discharge.csv``,
     ``irrigation.csv`` and ``transfer.csv`` (the gauged flows), ``grids/`` (the eight products),
     ``truth.nc`` (true basin series), ``truth_incremental.nc`` (true series of the incremental units),
+    the reservoir's ``reservoir.geojson``, ``reservoir_curve.csv``, ``reservoir_levels.csv``,
+    ``reservoir_flows.csv`` and ``truth_waterbody.nc`` (its true monthly balance),
     ``README.md`` (the error table),
     the template notebooks if ``templates``, and the marker ``.wbexplore-demo`` listing every
     file with its SHA-256.
@@ -565,12 +813,12 @@ def _write(folder: Path, *, progress: bool):
 
     from .io.writers import CAUTION
 
-    steps = iter(["climate and truth model", "basins", "truth series", "products", "catalog"])
+    steps = iter(["climate and truth model", "basins", "truth series", "products", "reservoir", "catalog"])
     bar = None
     if progress:
         from tqdm.auto import tqdm
 
-        bar = tqdm(total=5, desc="demo", unit="step")
+        bar = tqdm(total=6, desc="demo", unit="step")
 
     def tick():
         if bar is not None:
@@ -748,6 +996,12 @@ def _write(folder: Path, *, progress: bool):
     _write_flow_tables(folder, flows_m3s, months)
     tick()
 
+    # --- the reservoir: after every earlier draw, from a generator of its own
+    res_truth, res_daily, res_outline, _area = _reservoir(P, ET, row_area, lat_e, lon_e, months)
+    _write_reservoir(folder, res_truth, res_daily, res_outline)
+    res_truth.to_netcdf(folder / "truth_waterbody.nc")
+    tick()
+
     # --- catalog
     form = {
         "kestrel": {"path": "grids/kestrel_p_0p1.nc", "variable": "precip"},
@@ -759,6 +1013,7 @@ def _write(folder: Path, *, progress: bool):
         "quarry": {"path": "grids/quarry_twsa_0p5.nc", "variable": "lwe_thickness"},
         "cairn": {"path": "grids/cairn_twsa_1deg.zarr", "variable": "twsa"},
     }
+    wb_block, wb_flows = _waterbody_entries()
     sources = []
     for sid, comp, label, desc, _f in PRODUCTS:
         sources.append({"id": sid, "component": comp, **form[sid], "label": label, "description": desc})
@@ -766,13 +1021,15 @@ def _write(folder: Path, *, progress: bool):
         "catalog_version": 2,
         "title": "Quessary uplands demo study (invented data)",
         "description": "Eight fictional basins (two nested pairs), two gauged flows, three P, three ET and two TWSA "
-                       "products with known errors. " + CAUTION,
+                       "products with known errors; a reservoir with two gauged inflows, a gauged release and an "
+                       "ungauged seepage loss. " + CAUTION,
         "basins": {"path": "basins.geojson", "id_field": "basin_id", "name_field": "name",
                    "downstream_field": "drains_to"},
         "discharge": {"path": "discharge.csv", "time_field": "date", "basin_field": "basin_id",
                       "value_field": "q_m3s", "units": "m3/s"},
         "sources": sources,
-        "flows": _flow_entries(),
+        "flows": _flow_entries() + wb_flows,
+        "waterbodies": wb_block,
     }
     (folder / "catalog.yaml").write_text(
         "# wbexplore catalog, written by `wbexplore demo` (invented scenario; fixed seed %d)\n" % SEED
@@ -794,6 +1051,7 @@ def _write(folder: Path, *, progress: bool):
     lines += ["", "Discharge: m3/s at each outlet, multiplicative gauge error (sd 3%), 5 missing months per gauge.",
               "", "`truth.nc` holds the true basin series (P, ET, Q, dS, TWSA and each flow) for checking; "
               "`truth_incremental.nc` those of the incremental units."]
+    lines += _reservoir_readme(res_truth)
     (folder / "README.md").write_text("\n".join(lines) + "\n")
     (folder / "scenario.json").write_text(json.dumps({"seed": SEED, "region": REGION, "truth_resolution_deg": RES,
                                                       "years": list(YEARS)}, indent=1))
