@@ -297,7 +297,7 @@ class Waterbodies:
             period = f"{t.min():%Y-%m} to {t.max():%Y-%m}" if t.size else "no month"
             c = self.curves[wb]
             lo, hi = c.level_range
-            lines.append(f"{wb} ({row['name']}): outline {row['area_km2']:.3g} km2; levels {period} "
+            lines.append(f"{wb} ({row['name']}): outline {_km2(row['area_km2'])} km2; levels {period} "
                          f"({'daily' if daily else 'monthly'}); curve {lo:g} to {hi:g} m, "
                          f"{c.volume_m3[0] / 1e6:g} to {c.volume_m3[-1] / 1e6:g} hm3")
         return lines
@@ -305,6 +305,11 @@ class Waterbodies:
     def curve_callables(self) -> dict:
         """Water-body id -> volume(level_m) for `wbexplore.balance.storage.level_volumes`."""
         return {wb: c.volume for wb, c in self.curves.items()}
+
+
+def _km2(a: float) -> str:
+    """An area for people: whole km2 with thousands separators from 100 km2 up, three digits below."""
+    return f"{a:,.0f}" if a >= 100 else f"{a:.3g}"
 
 
 def read_waterbodies(catalog: Catalog, *, basin_ids=None) -> Waterbodies:
