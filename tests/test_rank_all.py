@@ -61,7 +61,7 @@ def test_rank_all_is_every_basins_ranking(study, capsys):
     (["--all", "--incremental"], "--incremental goes with --basin"),
     (["--basin", "VEU", "--incremental"], "basin 'VEU' has no upstream basin"),  # the innermost of a pair
     (["--basin", "TIR", "--incremental"], "basin 'TIR' has no upstream basin"),  # not nested at all
-    (["--basin", "NOPE", "--incremental"], "basin 'NOPE' not found"),
+    (["--basin", "NOPE", "--incremental"], "--basin 'NOPE' is neither a basin"),
     (["--basin", "VEL", "--water-year-start", "0"], "--water-year-start"),
     (["--basin", "VEL", "--min-valid-fraction", "1.5"], "--min-valid-fraction"),
 ])
