@@ -388,35 +388,48 @@ def _write_memo(root: Path, memo: dict) -> None:
         pass  # a memo that cannot be written only costs hashing again next time
 
 
-def input_files(cat) -> list[tuple[str, Path]]:
-    """(role, path) of every file a catalog's extraction reads: basins (with shapefile parts),
-    discharge, the station table of each flow, product files (zarr stores as folders)."""
-    out: list[tuple[str, Path]] = []
+def _basin_files(cat) -> list[Path]:
+    """The basin file and, for a shapefile, the parts read with it."""
     b = Path(cat.basins.path)
-    out.append(("basins", b))
+    out = [b]
     if b.suffix.lower() == ".shp":
         for ext in _SHAPEFILE_PARTS[1:]:
             for cand in (b.with_suffix(ext), b.with_suffix(ext.upper())):
                 if cand.is_file():
-                    out.append(("basins", cand))
+                    out.append(cand)
+    return out
+
+
+def input_files(cat) -> list[tuple[str, Path]]:
+    """(role, path) of every file a catalog's extraction reads: basins (with shapefile parts),
+    discharge, the station table of each flow, product files (zarr stores as folders)."""
+    from .io.catalog import GEOTIFF_SIDECARS
+
+    out: list[tuple[str, Path]] = [("basins", b) for b in _basin_files(cat)]
     if cat.discharge is not None:
         out.append(("discharge", Path(cat.discharge.path)))
     for f in getattr(cat, "flows", ()):
         out.append((f"flow {f.id}", Path(f.table.path)))
+    # folder -> names in it: one listing instead of a stat per sidecar (460 GeoTIFFs: 22 ms a call, was 35 ms)
+    listed: dict[str, set[str] | None] = {}
     for s in cat.sources:
         for f in s.paths:
             out.append((f"source {s.id}", Path(f)))
             if Path(f).suffix.lower() in (".tif", ".tiff"):
                 # sidecars GDAL reads with a GeoTIFF (nodata, scale, masks, overviews): one appearing,
                 # changing or going away changes the numbers, so it changes the key
-                from .io.catalog import GEOTIFF_SIDECARS
-
+                folder, name = os.path.split(str(f))
+                if folder not in listed:
+                    try:
+                        listed[folder] = set(os.listdir(folder or "."))
+                    except OSError:
+                        listed[folder] = None
+                names = listed[folder]
                 for ext in GEOTIFF_SIDECARS:
                     side = Path(str(f) + ext)
-                    if side.is_file():
+                    if (names is None or name + ext in names) and side.is_file():
                         out.append((f"source {s.id} sidecar", side))
     return out
-
 
 
 def check_root_for(cat, root: Path) -> None:
@@ -427,8 +440,8 @@ def check_root_for(cat, root: Path) -> None:
     r = Path(os.path.realpath(root))
     chain = [r, *r.parents]
     for role, p in input_files(cat):
-        rp = Path(os.path.realpath(p))
-        if rp.is_dir() and rp in chain:
+        # only folders can hold the cache: files are not resolved (460 GeoTIFFs: 30 ms a call, was 70 ms)
+        if os.path.isdir(p) and Path(os.path.realpath(p)) in chain:
             raise InputError(f"{root}: cache folder lies inside input {p.name!r} ({role}) of catalog "
                              f"{cat.path.name}; choose a folder outside the study's inputs")
     globs = cat.input_globs() if hasattr(cat, "input_globs") else ()
@@ -712,7 +725,7 @@ def load_incremental_basins(catalog):
 
 
 def _load_basin_units(catalog, kind: str, read):
-    files = [p for role, p in input_files(catalog) if role == "basins"]
+    files = _basin_files(catalog)  # not input_files: listing 460 GeoTIFFs and their sidecars took 38 ms a call
 
     def digest():
         return tuple(file_digest(p) for p in files)
