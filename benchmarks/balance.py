@@ -7,6 +7,8 @@ Medians of repeated runs, measured side by side in one run.
 
     python benchmarks/balance.py            # engine only
     python benchmarks/balance.py --cli      # also the whole-process rank --all (writes a small study)
+    python benchmarks/balance.py --cli --against /work/main   # and the same command from another checkout
+    python benchmarks/balance.py --cli-only [--against DIR] [--repeat N]   # the whole-process part alone
 """
 
 from __future__ import annotations
@@ -114,36 +116,56 @@ def write_study(d: Path, nb=100, nt=240, seed=0):
     return d / "c.yaml"
 
 
-def cli_times(repeat=5):
-    """Whole-process `wbexplore rank CATALOG --all` (warm series cache) and, side by side, `wbexplore --version`."""
+def cli_times(repeat=5, against=None):
+    """Whole-process `wbexplore rank CATALOG --all` (warm series cache) and, side by side (interleaved),
+    `wbexplore --version` and, with ``against`` (another checkout, e.g. /work/main), the same command there."""
+    import os
+    import resource
+    import statistics
     import subprocess
     import tempfile
     import time
 
     with tempfile.TemporaryDirectory() as tmp:
         cat = write_study(Path(tmp) / "study")
-        env = {**__import__("os").environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
-        cmd = [sys.executable, "-m", "wbexplore.cli", "rank", str(cat), "--all", "--format", "csv",
-               "--cache-dir", str(Path(tmp) / "cache")]
-        subprocess.run(cmd, check=True, capture_output=True, env=env)  # fills the series cache
+        sides = {"ours": Path(__file__).resolve().parent.parent}
+        if against:
+            sides["against"] = Path(against).resolve()
+        cmds = {}
+        for k, root in sides.items():
+            env = {**os.environ, "PYTHONPATH": str(root)}
+            cmds[k] = ([sys.executable, "-m", "wbexplore.cli", "rank", str(cat), "--all", "--format", "csv",
+                        "--cache-dir", str(Path(tmp) / f"cache-{k}")], env)
+            subprocess.run(cmds[k][0], check=True, capture_output=True, env=env, cwd=tmp)  # fills the series cache
+        cmds["version"] = ([sys.executable, "-m", "wbexplore.cli", "--version"], cmds["ours"][1])
 
-        def run(c):
+        def run(c, env):
+            r0 = resource.getrusage(resource.RUSAGE_CHILDREN)
             t = time.perf_counter()
-            p = subprocess.run(c, check=True, capture_output=True, env=env)
-            return time.perf_counter() - t, p.stdout
+            # cwd: a neutral folder (`python -m` puts the working folder first on the path)
+            p = subprocess.run(c, check=True, capture_output=True, env=env, cwd=tmp)
+            dt = time.perf_counter() - t
+            r1 = resource.getrusage(resource.RUSAGE_CHILDREN)
+            return dt, r1.ru_utime + r1.ru_stime - r0.ru_utime - r0.ru_stime, p.stdout
 
-        ts, tv = [], []
+        times = {k: [] for k in cmds}
+        cpu = {k: [] for k in cmds}
+        outs = {}
         for _ in range(repeat):
-            dt, out = run(cmd)
-            ts.append(dt)
-            tv.append(run([sys.executable, "-m", "wbexplore.cli", "--version"])[0])
-        rows = out.decode().count("\n") - 1
-    import statistics
-
-    return statistics.median(ts), statistics.median(tv), rows
+            for k, (c, env) in cmds.items():
+                dt, dc, outs[k] = run(c, env)
+                times[k].append(dt)
+                cpu[k].append(dc)
+        rows = outs["ours"].decode().count("\n") - 1
+        same = outs.get("against", outs["ours"]) == outs["ours"]
+    return ({k: statistics.median(v) for k, v in times.items()}, {k: statistics.median(v) for k, v in cpu.items()},
+            rows, same)
 
 
 def main():
+    if "--cli-only" in sys.argv:
+        sys.argv.append("--cli")
+        return _cli()
     ds = synthetic()
     t1, t100, ts, n = engine_times(ds)
     f1, f100, fs, _ = engine_times(synthetic(flows=2))
@@ -162,10 +184,22 @@ def main():
           f"{w100 * 1e3:.1f} ms (basins {b100 * 1e3:.1f}), one selection {ws * 1e3:.2f} ms (basin {bs * 1e3:.2f}); "
           f"water body / basin: {w1 / b1:.2f}, {w100 / b100:.2f}, {ws / bs:.2f}")
     if "--cli" in sys.argv:
-        tc, tv, rows = cli_times()
-        print(f"wbexplore rank --all, 100 basins, whole process:     {tc:7.2f} s    target <= 2 s  ({rows} rows); "
-              f"ratio {tc / 2.0:.2f}; bare `wbexplore --version` {tv:.2f} s")
+        _cli()
 
+
+def _cli():
+    against = sys.argv[sys.argv.index("--against") + 1] if "--against" in sys.argv else None
+    repeat = int(sys.argv[sys.argv.index("--repeat") + 1]) if "--repeat" in sys.argv else 5
+    med, cpu, rows, same = cli_times(repeat=repeat, against=against)
+    tc, tv = med["ours"], med["version"]
+    print(f"wbexplore rank --all, 100 basins, whole process:     {tc:7.2f} s    target <= 2 s  ({rows} rows); "
+          f"ratio {tc / 2.0:.2f}; bare `wbexplore --version` {tv:.2f} s")
+    print(f"  CPU time (user + system) of the process: {cpu['ours']:.2f} s; `wbexplore --version` {cpu['version']:.2f} s "
+          "(on a loaded machine CPU time says more than wall time)")
+    if against:
+        print(f"  same command from {against}: {med['against']:.2f} s wall, {cpu['against']:.2f} s CPU; ours / that: "
+              f"wall {tc / med['against']:.2f}, CPU {cpu['ours'] / cpu['against']:.2f}; "
+              f"outputs {'identical' if same else 'DIFFER'}")
 
 if __name__ == "__main__":
     main()

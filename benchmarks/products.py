@@ -8,7 +8,8 @@ ratios of one run are what to read (the machine is small, shared and noisy).
     python benchmarks/products.py --composite    # 8-day GeoTIFFs (one file per composite), same grid
     python benchmarks/products.py --monthly      # 240 x 600 x 600 monthly netCDF (0.33 GiB), 100 basins
     python benchmarks/products.py --memory       # peak allocations of a streamed daily extraction
-    add --quick for 2 years / 60 months (a smoke test); --repeat N (default 5, at least 3)
+    add --quick for 2 years / 60 months (a smoke test); --repeat N (default 5, at least 3);
+    --against DIR: the same extract from another checkout (e.g. /work/main) in the same interleaved runs
 
 The do-it-yourself path of --daily is what a notebook user writes with regionmask and xarray from
 PyPI (``pip install regionmask``; not a dependency of wbexplore): xarray resample to months, then
@@ -37,29 +38,41 @@ ROOT = Path(__file__).resolve().parents[1]
 NY, NX, RES = 240, 300, 0.1  # daily / composite grid: 0 to 24 N, 0 to 30 E
 
 
-def _env():
-    return dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+def _env(root=ROOT):
+    return dict(os.environ, PYTHONPATH=str(root) + os.pathsep + os.environ.get("PYTHONPATH", ""))
 
 
-def _proc(argv, cwd):
+def _proc(argv, cwd, root=ROOT):
     def run():
-        r = subprocess.run(argv, cwd=cwd, env=_env(), capture_output=True, text=True)
+        r = subprocess.run(argv, cwd=cwd, env=_env(root), capture_output=True, text=True)
         if r.returncode != 0:
             raise RuntimeError(f"{argv[:4]} failed: {r.stderr[-800:]}")
         return r
     return run
 
 
+CPU: dict = {}  # side -> median CPU time (user + system) of its processes, filled by _interleaved
+
+
 def _interleaved(runs: dict, repeat: int) -> dict:
-    """Median wall time of each whole process, runs interleaved (one warm-up each: page cache, numba cache)."""
+    """Median wall time of each whole process, runs interleaved (one warm-up each: page cache, numba cache);
+    the median CPU time of each side goes to `CPU` (on a loaded machine it varies far less than wall time)."""
+    import resource
+
     for fn in runs.values():
         fn()
     times = {k: [] for k in runs}
+    cpu = {k: [] for k in runs}
     for _ in range(max(3, repeat)):
         for k, fn in runs.items():
+            r0 = resource.getrusage(resource.RUSAGE_CHILDREN)
             t = time.perf_counter()
             fn()
             times[k].append(time.perf_counter() - t)
+            r1 = resource.getrusage(resource.RUSAGE_CHILDREN)
+            cpu[k].append(r1.ru_utime + r1.ru_stime - r0.ru_utime - r0.ru_stime)
+    CPU.clear()
+    CPU.update({k: statistics.median(v) for k, v in cpu.items()})
     return {k: (statistics.median(v), min(v), max(v)) for k, v in times.items()}
 
 
@@ -91,6 +104,27 @@ def _catalog(d: Path, sources):
 def _ours(d):
     return _proc([sys.executable, "-m", "wbexplore.cli", "extract", "c.yaml", "--out", "out.nc", "--force", "--quiet",
                   "--cache-dir", "cache"], d)
+
+
+AGAINST: Path | None = None  # --against DIR: the same extract from another checkout, interleaved
+
+
+def _with_against(runs: dict, d: Path) -> dict:
+    if AGAINST is not None:
+        runs["against"] = _proc([sys.executable, "-m", "wbexplore.cli", "extract", "c.yaml", "--out", "against.nc",
+                                 "--force", "--quiet", "--cache-dir", "cache-against"], d, root=AGAINST)
+    return runs
+
+
+def _print_against(med, d: Path, var: str) -> None:
+    import xarray as xr
+
+    if AGAINST is None:
+        return
+    with xr.open_dataset(d / "out.nc") as a, xr.open_dataset(d / "against.nc") as b:  # the numbers (layouts may differ)
+        same = all(np.array_equal(a[v].values, b[v].values, equal_nan=True) for v in (var, f"valid_fraction_{var}"))
+    print(f"  against {AGAINST}: median {med['against'][0]:.3f} s; ours / that {med['ours'][0] / med['against'][0]:.2f} "
+          f"(CPU time {CPU['ours'] / CPU['against']:.2f}); numbers {'identical' if same else 'DIFFER'}")
 
 
 def write_daily(d: Path, years: int, rng):
@@ -153,8 +187,9 @@ def daily(a):
         have_rm = subprocess.run([sys.executable, "-c", "import regionmask"], env=_env()).returncode == 0
         if have_rm:
             runs["diy"] = _proc([sys.executable, "diy.py", "daily.nc", "b.geojson", "diy.nc"], d)
-        med = _interleaved(runs, a.repeat)
+        med = _interleaved(_with_against(runs, d), a.repeat)
         _print(med, "ours", "bare", "wbexplore extract / bare read", 1.3)
+        _print_against(med, d, "pd")
         if have_rm:
             _print(med, "ours", "diy", "wbexplore extract / do-it-yourself (regionmask + resample)", 0.3, show=False)
             ours = xr.open_dataset(d / "out.nc")["pd"].load()
@@ -199,8 +234,9 @@ def composite(a):
                 "for p in sorted(glob.glob('et/et8_*.tif')):\n"
                 "    with rasterio.open(p) as s:\n"
                 "        s.read(1)\n")
-        med = _interleaved({"ours": _ours(d), "bare": _proc([sys.executable, "-c", bare], d)}, a.repeat)
+        med = _interleaved(_with_against({"ours": _ours(d), "bare": _proc([sys.executable, "-c", bare], d)}, d), a.repeat)
         _print(med, "ours", "bare", "wbexplore extract / bare rasterio read of every file", 1.3)
+        _print_against(med, d, "e8")
 
 
 EE = r"""
@@ -252,9 +288,10 @@ def monthly(a):
                 "bare": _proc([sys.executable, "-c", "import sys, xarray as xr; "
                                "xr.open_dataset(sys.argv[1], engine='netcdf4')['v'].values", "m.nc"], d),
                 "ee": _proc([sys.executable, "ee.py", "m.nc", "b.geojson", "area.npy", "ee.csv"], d)}
-        med = _interleaved(runs, a.repeat)
+        med = _interleaved(_with_against(runs, d), a.repeat)
         _print(med, "ours", "ee", "wbexplore extract / xarray + exactextract weighted_mean (same areas)", 0.6)
         _print(med, "ours", "bare", "wbexplore extract / bare read", 1.2, show=False)
+        _print_against(med, d, "m")
         ours = xr.open_dataset(d / "out.nc")["m"].values
         ee = pd.read_csv(d / "ee.csv")
         ref = np.stack([ee[f"b{i}_area_weighted_mean"].to_numpy() for i in range(nt)], axis=1)
@@ -304,9 +341,10 @@ def memory(a):
 def _print(med, num, den, what, target, show=True):
     if show:
         for k, (m, lo, hi) in med.items():
-            print(f"  {k:6s} median {m:7.3f} s   (min {lo:.3f}, max {hi:.3f})")
+            print(f"  {k:6s} median {m:7.3f} s   (min {lo:.3f}, max {hi:.3f}; CPU median {CPU.get(k, float('nan')):.2f} s)")
     r = med[num][0] / med[den][0]
-    print(f"  ratio {what}: {r:.2f}   target <= {target}   {'met' if r <= target else 'NOT met'}")
+    print(f"  ratio {what}: {r:.2f}   target <= {target}   {'met' if r <= target else 'NOT met'}"
+          f"   (CPU time: {CPU[num] / CPU[den]:.2f})")
 
 
 def main():
@@ -315,7 +353,10 @@ def main():
         ap.add_argument(f"--{m}", action="store_true")
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--repeat", type=int, default=5)
+    ap.add_argument("--against", type=Path, default=None, help="another checkout (e.g. /work/main), run side by side")
     a = ap.parse_args()
+    global AGAINST
+    AGAINST = a.against
     chosen = [m for m in ("daily", "composite", "monthly", "memory") if getattr(a, m)] or ["daily", "composite"]
     for m in chosen:
         globals()[m](a)

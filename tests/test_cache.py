@@ -399,3 +399,80 @@ def test_cache_folder_inside_an_input_is_refused(tmp_path, capsys):
     err = capsys.readouterr().err.strip()
     assert rc == 2 and len(err.splitlines()) == 1 and "tws.zarr" in err, err
     assert sorted(p.relative_to(tmp_path) for p in (tmp_path / "tws.zarr").rglob("*")) == store_files
+
+
+# ---------------------------------------------------------------- series cache decoded without xarray's probes
+def _xarray_decodes(payload: bytes) -> xr.Dataset:
+    """The reference: xarray's own CF decoding of a series cache payload (what the cache did before)."""
+    import netCDF4
+
+    nc = netCDF4.Dataset("wbexplore-series-cache.nc", mode="r", memory=payload)  # the name the cache gives it
+    try:
+        with xr.open_dataset(xr.backends.NetCDF4DataStore(nc), engine="store") as ds:
+            return ds.load()
+    finally:
+        if nc.isopen():  # closing the dataset closed it
+            nc.close()
+
+
+def _same_encoding(a: dict, b: dict, what) -> None:
+    assert set(a) == set(b), (what, a, b)
+    for k, u in a.items():
+        v = b[k]
+        nan = isinstance(u, float) and np.isnan(u) and np.isnan(v)  # a NaN _FillValue
+        assert type(u) is type(v) and (u is v or nan or u == v), (what, k, u, v)
+
+
+def assert_same_dataset(got: xr.Dataset, ref: xr.Dataset) -> None:
+    """Identical values, names, attributes, dtypes, encodings, order of variables and kind of indexes."""
+    xr.testing.assert_identical(got, ref)
+    assert list(got.variables) == list(ref.variables) and list(got.coords) == list(ref.coords)
+    _same_encoding(got.encoding, ref.encoding, "dataset")
+    for k, v in ref.variables.items():
+        g = got.variables[k]
+        assert g.dtype == v.dtype and type(g) is type(v) and type(g._data) is type(v._data), k
+        _same_encoding(g.encoding, v.encoding, k)
+    for k, ix in ref.xindexes.items():
+        assert type(got.xindexes[k]) is type(ix) and got.xindexes[k].coord_dtype == ix.coord_dtype, k
+        assert got.indexes[k].equals(ix.to_pandas_index()) and got.indexes[k].dtype == ix.to_pandas_index().dtype
+
+
+def _labelled_series() -> xr.Dataset:
+    """Canonical series with text where the cache meets it: ids that look like numbers or are not ASCII,
+    names, an upstream-basins coordinate with attributes, a text data variable."""
+    from utils import canonical_series
+
+    ds, _ = canonical_series(nb=4, nt=30)
+    ids = ["0123", "Ünterå", "B-2", "x"]
+    ds = ds.assign_coords(basin=ids, basin_name=("basin", ["Alpha", "Beta river", "", "Ω"]),
+                          upstream_basins=("basin", ["", "0123", "0123 B-2", ""], {"long_name": "upstream basins"}))
+    ds["basin"].attrs["long_name"] = "basin id"
+    ds["note"] = ("basin", np.array(["a", "bb", "", "dddd"], dtype=object), {"comment": "text"})
+    return ds
+
+
+@pytest.mark.parametrize("case", ["demo", "labelled", "hours since", "float days"])
+def test_series_cache_decoded_as_xarray_decodes_it(case, request, tmp_path):
+    """The cache's own decoding (no dask or pint import) gives exactly what xarray's CF decoding gives
+    (the reference); a payload it does not know (time in hours, or not whole days) goes to xarray."""
+    from wbexplore import cache
+
+    ds = request.getfixturevalue("demo_series") if case == "demo" else _labelled_series()
+    if case == "hours since":
+        ds["time"].encoding.update(units="hours since 2000-01-01 00:00:00")
+    if case == "float days":
+        ds["time"].encoding.update(units="days since 2000-01-01", dtype="float64")
+    payload = cache._series_payload(tmp_path, ds)
+    import netCDF4
+
+    nc = netCDF4.Dataset("probe.nc", mode="r", memory=payload)
+    try:
+        shortcut = cache._decode_without_probes(xr.backends.NetCDF4DataStore(nc), nc)
+    finally:
+        if nc.isopen():  # closing the dataset closed it
+            nc.close()
+    assert (shortcut is not None) is (case in ("demo", "labelled"))  # the shortcut is taken where it applies
+    got = cache._series_from(payload)
+    assert_same_dataset(got, _xarray_decodes(payload))
+    np.testing.assert_array_equal(got["basin"].values, ds["basin"].values.astype(str))
+    np.testing.assert_array_equal(got["time"].values, ds["time"].values)

@@ -251,8 +251,10 @@ def test_series_of_files_decoded_as_rioxarray_decodes_each(tmp_path, dtype, noda
 
 
 def test_series_of_files_out_of_descriptors_is_named_as_such(tmp_path, monkeypatch):
-    """The one-profile opening looks at files 2..n with plain rasterio: running out of descriptors there
-    is named as such (file k of n, ``ulimit -n``), one line, not as a file that cannot be opened."""
+    """The one-profile opening looks at files 2..n (their TIFF tags, or plain rasterio where the tags differ):
+    running out of descriptors there is named as such (file k of n, ``ulimit -n``), one line, not as a file
+    that cannot be opened."""
+    import builtins
     import errno
 
     import rasterio
@@ -263,16 +265,66 @@ def test_series_of_files_out_of_descriptors_is_named_as_such(tmp_path, monkeypat
     (tmp_path / "s").mkdir()
     for s in starts:
         write_tif(tmp_path / "s" / f"x_{s:%Y%j}.tif", np.ones((LAT.size, LON.size)), LON, LAT, units="mm/day")
-    real, calls = rasterio.open, []
+    real_gdal, real_open, seen = rasterio.open, builtins.open, []
 
-    def opener(path, *a, **k):
-        calls.append(path)
-        if len(calls) == 3:
+    def third_file_fails(path):  # the third file of the series, whether GDAL or open() opens it
+        if str(path).endswith(".tif") and str(path) not in seen:
+            seen.append(str(path))
+        if seen[2:3] == [str(path)]:
             raise OSError(errno.EMFILE, "Too many open files")
-        return real(path, *a, **k)
 
-    monkeypatch.setattr(rasterio, "open", opener)
+    def gdal(path, *a, **k):
+        third_file_fails(path)
+        return real_gdal(path, *a, **k)
+
+    def plain(path, *a, **k):  # files 2..n are compared by their TIFF tags, read with plain open()
+        third_file_fails(path)
+        return real_open(path, *a, **k)
+
+    monkeypatch.setattr(rasterio, "open", gdal)
+    monkeypatch.setattr(builtins, "open", plain)
     with pytest.raises(InputError) as ei:
         _source(tmp_path, {"id": "s", "component": "ET", "path": "s/x_*.tif", "date_format": "%Y%j"})
     msg = str(ei.value)
     assert "file descriptors" in msg and f"of {len(starts)}" in msg and "ulimit -n" in msg and "\n" not in msg
+
+
+def _variant(path, *, data=1.0, nodata=-9999.0, scale=1.0, crs="EPSG:4326", dtype="float32", west=-1.0,
+             compress=None):
+    import rasterio
+    from rasterio.transform import from_origin
+
+    arr = np.random.default_rng(int(data * 10)).random((LAT.size, LON.size)) * data
+    extra = {"compress": compress} if compress else {}
+    with rasterio.open(path, "w", driver="GTiff", width=LON.size, height=LAT.size, count=1, dtype=dtype, crs=crs,
+                       transform=from_origin(west, 1, 0.25, 0.25), nodata=nodata, **extra) as dst:
+        dst.write(arr[None].astype(dtype))
+        dst.scales = (scale,)
+    return path
+
+
+@pytest.mark.parametrize("change, same", [
+    ({"data": 2.0}, True), ({"data": 3.0, "compress": "deflate"}, True),  # data (and where it lies) only
+    ({"nodata": -1.0}, False), ({"scale": 0.1}, False), ({"crs": "EPSG:32631"}, False),
+    ({"dtype": "float64"}, False), ({"west": -0.5}, False),
+])
+def test_tiff_tags_tell_gdal_profiles_apart(tmp_path, change, same):
+    """Files 2..n of a GeoTIFF series are compared with the first by their TIFF tags (data locations aside)
+    instead of being opened through GDAL: equal tags must mean an equal profile as rasterio (GDAL) reads it."""
+    import rasterio
+
+    from wbexplore.io.grids import _tiff_tags
+
+    base = {"compress": change.get("compress")}
+    a = _variant(tmp_path / "a.tif", **base)
+    b = _variant(tmp_path / "b.tif", **{**base, **change})
+
+    def profile(p):
+        with rasterio.open(p) as s:
+            return (s.count, s.shape, s.transform, s.dtypes[0], str(s.nodata), s.scales, s.offsets, s.crs)
+
+    assert (profile(a) == profile(b)) is same  # the reference: GDAL's reading of both files
+    assert (_tiff_tags(a) == _tiff_tags(b)) is same
+    assert _tiff_tags(a) is not None and _tiff_tags(tmp_path / "a.tif") == _tiff_tags(a)
+    (tmp_path / "c.tif").write_bytes(b"not a tiff at all, longer than sixteen bytes")
+    assert _tiff_tags(tmp_path / "c.tif") is None  # GDAL opens it (and names what is wrong)

@@ -15,6 +15,7 @@ import dataclasses
 import os
 import warnings
 from contextlib import contextmanager
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
@@ -29,8 +30,12 @@ from .io.catalog import Catalog, SourceSpec, open_catalog
 from .io.blocks import release_handles
 from .io.grids import SourceGrid, open_source
 from .io.stations import read_discharge_series, read_flow_series
-from .spatial.grid import describe_grid
-from .spatial.zonal import Weights, build_weights, zonal_mean, zonal_mean_blocks
+
+if TYPE_CHECKING:
+    from .spatial.zonal import Weights
+
+# spatial/ (scipy.sparse, shapely: 0.25 to 0.65 s of start-up on 2 shared cores) is imported where weights are
+# built or applied: a warm `rank --all` reads the series cache only and never needs it
 
 __all__ = ["extract", "load_series", "check_scheduler", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE",
            "source_vars", "valid_var", "default_cache_dir", "load_basins", "load_incremental_basins", "warn_implausible",
@@ -66,7 +71,8 @@ def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None 
                 use_cache: bool = True, engine: str = "auto") -> Weights:
     """Weights of ``basins`` (GeoDataFrame in EPSG:4326) on the grid of ``src``, cached on disk
     under a key made of the grid, the basin ids, areas and geometries and the engine (`wbexplore.cache`)."""
-    from .spatial.grid import GridError
+    from .spatial.grid import GridError, describe_grid
+    from .spatial.zonal import build_weights
 
     try:
         grid = describe_grid(src.data["x"].values, src.data["y"].values, src.crs)
@@ -88,6 +94,8 @@ def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True) -
     would otherwise hold product files open after the run); locally the handles are kept until
     `wbexplore.io.blocks.release_handles`.
     """
+    from .spatial.zonal import zonal_mean, zonal_mean_blocks
+
     if src.blocks is not None:
         blocks = src.blocks if keep_open else dataclasses.replace(src.blocks, keep_open=False)
         return zonal_mean_blocks(blocks, weights, src.data["time"].values, month_weights=src.step_weights)

@@ -560,8 +560,13 @@ def _uniform_series(spec: SourceSpec, items, open_one):
     ref = profile(paths[0], 0)
     same_nodata = (lambda a, b: a == b or (a is not None and b is not None and np.isnan(a) and np.isnan(b)))
     sidecar_free = only_series_files(paths)
+    # without sidecars, GDAL's profile of a file is a function of its TIFF tags: a file whose tags equal the
+    # first file's (data locations aside) has its profile, and is not opened through GDAL here
+    ref_tags = _tiff_tags(paths[0]) if sidecar_free else None
     with no_sidecars(sidecar_free):
         for k, p in enumerate(paths[1:], start=1):
+            if ref_tags is not None and _tiff_tags(p, index=k, count=len(paths), spec=spec) == ref_tags:
+                continue
             pr = profile(p, k)
             if pr[0] != 1:
                 _fail(spec, f"expected single-band files in a date-named series, found {pr[0]} bands", p)
@@ -586,6 +591,74 @@ def _uniform_series(spec: SourceSpec, items, open_one):
     da.encoding = dict(first.encoding)
     da.rio.write_crs(first.rio.crs, inplace=True)
     return da, blocks, first
+
+
+# TIFF field types -> bytes per value (TIFF 6.0, BigTIFF 8-byte types 16 to 18)
+_TIFF_TYPE_BYTES = {1: 1, 2: 1, 3: 2, 4: 4, 5: 8, 6: 1, 7: 1, 8: 2, 9: 4, 10: 8, 11: 4, 12: 8, 13: 4, 16: 8, 17: 8, 18: 8}
+_TIFF_DATA_TAGS = frozenset((273, 279, 324, 325))  # strip/tile offsets and byte counts: where the data lie
+
+
+def _tiff_tags(path, *, index: int = 0, count: int = 1, spec: SourceSpec | None = None) -> bytes | None:
+    """The first image's TIFF tags (byte order, entries and the values they point to), leaving out where
+    the data lie, as bytes; None where the file is no TIFF this reads (GDAL then opens it).
+
+    Why: the one-profile opening of a glob of GeoTIFFs looked at every file with rasterio (GDAL opens it,
+    about 1 ms of CPU); comparing tags costs 0.03 to 0.07 ms. 460 composites of 240 x 300 (2 cores,
+    process time, medians of 3): 0.43 to 0.45 s -> 0.016 to 0.03 s, the read then opens each file once.
+    Running out of file descriptors is named as the GDAL opening names it (file k of n, ``ulimit -n``).
+    """
+    import struct
+
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(4096)
+
+            def at(off: int, n: int) -> bytes:
+                if off + n <= len(head):
+                    return head[off:off + n]
+                fh.seek(off)
+                b = fh.read(n)
+                if len(b) != n:
+                    raise ValueError("truncated")
+                return b
+
+            e = {b"II": "<", b"MM": ">"}.get(head[:2])
+            if e is None or len(head) < 16:
+                return None
+            version = struct.unpack(e + "H", head[2:4])[0]
+            if version == 42:  # classic TIFF: 2-byte entry count, 12-byte entries, 4 bytes inline
+                first, cfmt, efmt, esize, inline = struct.unpack(e + "I", head[4:8])[0], "H", "HHI", 12, 4
+            elif version == 43:  # BigTIFF: 8-byte count, 20-byte entries, 8 bytes inline
+                first, cfmt, efmt, esize, inline = struct.unpack(e + "Q", head[8:16])[0], "Q", "HHQ", 20, 8
+            else:
+                return None
+            csize = struct.calcsize(cfmt)
+            n = struct.unpack(e + cfmt, at(first, csize))[0]
+            if n > 4096:
+                return None
+            raw = at(first + csize, n * esize)
+            parts = [head[:4]]
+            for i in range(n):
+                entry = raw[i * esize:(i + 1) * esize]
+                tag, typ, cnt = struct.unpack(e + efmt, entry[:esize - inline])
+                if tag in _TIFF_DATA_TAGS:
+                    continue
+                size = _TIFF_TYPE_BYTES[typ] * cnt
+                if size <= inline:
+                    parts.append(entry)
+                elif size > 1 << 20:
+                    return None
+                else:
+                    parts.append(entry[:esize - inline])
+                    parts.append(at(struct.unpack(e + ("I" if inline == 4 else "Q"), entry[esize - inline:])[0], size))
+            return b"".join(parts)
+    except OSError as exc:
+        if spec is not None and _out_of_descriptors(exc):
+            _fail(spec, f"the process ran out of file descriptors while opening file {index + 1} of "
+                        f"{count} (limit {_fd_limit()}; raise it with 'ulimit -n')", path)
+        return None
+    except (ValueError, KeyError, struct.error):
+        return None
 
 
 def _out_of_descriptors(exc: BaseException) -> bool:
