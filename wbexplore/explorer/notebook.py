@@ -60,7 +60,7 @@ def _load_from_jupyter(inline: bool = True, reloading: bool = False, enable_math
                                             f"<style>{css}</style>"})
     publish_display_data({"application/javascript": js, pnb.LOAD_MIME: js})
     bokeh.io.notebook.curstate().output_notebook()
-    comms = "\n".join([pnb.PYVIZ_PROXY, pnb._JupyterCommManager.js_manager, pnb.nb_mime_js])
+    comms = f"{pnb.PYVIZ_PROXY}\n{pnb._JupyterCommManager.js_manager}\n{pnb.nb_mime_js}"
     publish_display_data(data={pnb.LOAD_MIME: comms, "application/javascript": comms})
 
 
