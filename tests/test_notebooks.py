@@ -47,10 +47,15 @@ def test_notebook_loader_asks_only_the_jupyter_server():
 
     from wbexplore.explorer.notebook import loader_js
 
+    import panel as pn
+
+    pn.extension("tabulator")  # the explorer's table: its require.js paths too (classic notebook)
     js = loader_js()
     assert "cdn." not in js and not re.search(r"https?://(?!www\.w3\.org)", js)
-    urls = re.findall(r'__wbx_base \+ "/panel-preview/static/([^"?]+)', js)
+    urls = re.findall(r"""__wbx_base \+ ["']/panel-preview/static/([^"'?]+)""", js)
+    urls = [u if u.endswith((".js", ".css")) else u + ".js" for u in urls]  # require.js paths go without ".js"
     assert any(u.endswith("bokeh.min.js") for u in urls) and any(u.endswith("panel.min.js") for u in urls)
+    assert any(u.endswith("tabulator.min.js") for u in urls)
     for u in urls:
         if u.startswith("extensions/panel/"):
             assert (DIST_DIR / u.removeprefix("extensions/panel/")).is_file(), u

@@ -37,14 +37,32 @@ def loader_js(*, reloading: bool = False) -> str:
         res = pnb.Resources.from_bokeh(BkResources(mode="server", root_url=_ROOT), absolute=True, notebook=True)
         bundle = pnb.bundle_resources(None, res, notebook=True, reloading=reloading, enable_mathjax=False)
         configs, requirements, exports, skip_imports = pnb.require_components()
+        configs = [_bundled_paths(c) for c in configs]
         js = pnb._autoload_js(bundle=bundle, configs=configs, requirements=requirements, exports=exports,
                               skip_imports=skip_imports, ipywidget="ipywidgets_bokeh" in sys.modules,
                               reloading=reloading)
     # every address is a JSON string starting with the placeholder: make it an expression of the page's base
     js = js.replace(json.dumps(_ROOT)[:-1], '__wbx_base + "/panel-preview/')
+    js = js.replace(f"'{_ROOT}", "__wbx_base + '/panel-preview/")  # require.js paths are written with single quotes
     if "__WBX_JUPYTER_BASE__" in js:  # pragma: no cover - a panel release that writes the addresses otherwise
         raise RuntimeError("wbexplore could not place the Jupyter server's address in panel's loader")
     return _BASE_JS + js
+
+
+def _bundled_paths(config: dict) -> dict:
+    """A require.js configuration (used by the classic notebook only) with each CDN path that panel also ships
+    in its dist folder (``bundled/<extension>/<package path>``) pointed at the Jupyter server's copy."""
+    from panel.io.resources import DIST_DIR
+
+    paths = {}
+    for name, url in config.get("paths", {}).items():
+        if isinstance(url, str) and url.startswith("https://cdn.jsdelivr.net/npm/"):
+            rel = url.removeprefix("https://cdn.jsdelivr.net/npm/")
+            local = sorted(DIST_DIR.glob(f"bundled/*/{rel}.js"))
+            if local:
+                url = f"{_ROOT}static/extensions/panel/{local[0].relative_to(DIST_DIR).as_posix()[:-3]}"
+        paths[name] = url
+    return {**config, "paths": paths} if paths else config
 
 
 def _load_from_jupyter(inline: bool = True, reloading: bool = False, enable_mathjax=False,
