@@ -30,7 +30,7 @@ def server_side(state):
         "ET source": [("ET", v) for v in state.param.ET.objects] * 3,
         "P source": [("P", v) for v in state.param.P.objects] * 3,
         "basin": [("basin", v) for v in state.param.basin.objects] * 2,
-        "period": [("period", (i, 239 - i)) for i in range(0, 60, 4)],
+        "period": [("period", (f"{state.months[i]:%Y-%m}", f"{state.months[-1 - i]:%Y-%m}")) for i in range(0, 60, 4)],
         "storage method": [("storage_change", v) for v in ("backward", "forward", "central")] * 3,
     }
     print("server side: change -> all views' data (result, ranking, map scores, all-basin view); target <= 30 ms")

@@ -9,12 +9,14 @@ import sys
 import time
 import urllib.request
 import warnings
+from pathlib import Path
 
 import pytest
 
 from conftest import copy_demo
 
 pytestmark = pytest.mark.browser
+TEMPLATES_DIR = Path(__file__).resolve().parent.parent / "notebooks_templates"
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
         "--disable-component-update", "--disable-sync"]
@@ -269,24 +271,139 @@ def test_bad_catalog_page(browser, tmp_path, _cache_dir, artifacts):
         _stop(proc)
 
 
+def _jupyterlab(root, env, *extra):
+    """A JupyterLab server on `root` (no token, no news, no extension manager); returns (process, url)."""
+    port = _free_port()
+    proc = subprocess.Popen([sys.executable, "-m", "jupyterlab", "--no-browser", f"--port={port}",
+                             "--ServerApp.token=", "--ServerApp.password=", "--allow-root",
+                             "--ServerApp.disable_check_xsrf=True", f"--ServerApp.root_dir={root}",
+                             "--LabApp.news_url=", "--LabServerApp.extension_manager=readonly", *extra],
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, env=env)
+    return proc, f"http://127.0.0.1:{port}/"
+
+
+def _offline(pg) -> list:
+    """Route every request of page `pg` that would leave the machine to a failure; the list of those asked for.
+
+    Outside reference: the URL's host (urllib.parse) against the loopback names; nothing else is allowed."""
+    from urllib.parse import urlparse
+
+    outside = []
+
+    def route(r):
+        if urlparse(r.request.url).hostname in ("127.0.0.1", "localhost"):
+            r.continue_()
+        else:
+            outside.append(r.request.url)
+            r.abort()
+
+    pg.route("**/*", route)
+    return outside
+
+
+_RUN_NB = """
+import sys, nbformat
+from nbclient import NotebookClient
+nb = nbformat.read(sys.argv[1], as_version=4)
+NotebookClient(nb, timeout=300, kernel_name="python3", resources={"metadata": {"path": sys.argv[2]}}).execute()
+nbformat.write(nb, sys.argv[1])
+"""
+
+
+def _run_notebooks(paths, env):
+    """Execute notebooks in place with nbclient (each in a child process with its own kernel, side by side); sign
+    them (a private notary database, see `_notary`) so that JupyterLab runs their saved JavaScript outputs."""
+    import nbformat
+
+    procs = [subprocess.Popen([sys.executable, "-c", _RUN_NB, str(p), str(p.parent)], env=env, text=True,
+                              stdout=subprocess.PIPE, stderr=subprocess.STDOUT) for p in paths]
+    for p, proc in zip(paths, procs):
+        out, _ = proc.communicate(timeout=400)
+        assert proc.returncode == 0, (p.name, out[-3000:])
+    books = []
+    for p in paths:
+        nb = nbformat.read(p, as_version=4)
+        _notary(p.parent).sign(nb)
+        nbformat.write(nb, p)
+        books.append(nb)
+    return books
+
+
+def _notary(folder):
+    from nbformat.sign import NotebookNotary
+
+    return NotebookNotary(db_file=str(folder / ".nbsignatures.db"), secret=b"wbexplore-test")
+
+
+def test_templates_render_offline_in_jupyterlab(browser, study, tmp_path, _cache_dir, artifacts):
+    """Item 1 of issue 17: every template, executed, renders its plots in JupyterLab with no request leaving the
+    machine, shows no warning box (stderr output) and stays under 2 MB."""
+    from wbexplore.demo import copy_templates
+
+    folder = tmp_path / "lab"
+    shutil.copytree(study, folder)
+    copy_templates(folder)
+    _series(folder)  # the series cache, filled once before three kernels ask for it
+    names = sorted(p.name for p in (TEMPLATES_DIR).glob("*.ipynb"))
+    assert len(names) == 3
+    env = dict(os.environ, WBEXPLORE_CACHE=str(_cache_dir), PYTHONWARNINGS="ignore")
+    books = _run_notebooks([folder / n for n in names], env)
+    for name, nb in zip(names, books):
+        size = (folder / name).stat().st_size
+        assert size < 2_000_000, (name, size)
+        stderr = [o.get("text", "")[:200] for c in nb.cells for o in c.get("outputs", []) if o.get("name") == "stderr"]
+        assert stderr == [], (name, stderr)
+    proc, url = _jupyterlab(folder, env, f"--NotebookNotary.db_file={folder / '.nbsignatures.db'}",
+                            "--NotebookNotary.secret=wbexplore-test")
+    try:
+        _wait_http(url + "api", proc)
+        for name in names:
+            pg = browser.new_page(viewport={"width": 1500, "height": 1200})
+            errors = []
+            pg.on("pageerror", lambda e, errors=errors: errors.append(str(e)))
+            outside = _offline(pg)
+            pg.goto(f"{url}lab/tree/{name}?reset")
+            pg.locator(".jp-Notebook").first.wait_for(timeout=60_000)
+            try:
+                pg.locator(".jp-OutputArea-output canvas").first.wait_for(state="attached", timeout=30_000)
+            finally:
+                n = pg.locator(".jp-OutputArea-output canvas").count()
+                plot = pg.locator(".jp-OutputArea-output:has(canvas)").last
+                if n:
+                    plot.scroll_into_view_if_needed()
+                    pg.wait_for_timeout(800)
+                pg.screenshot(path=str(artifacts / f"jupyterlab_offline_{name[:-6]}.png"))
+            assert n > 0, name  # bokeh drew its plots: its code came from the Jupyter server
+            assert outside == [], (name, outside)
+            assert errors == [], (name, errors)
+            assert pg.locator('[data-mime-type="application/vnd.jupyter.stderr"]').count() == 0, name
+            if name == "explore_basin.ipynb":  # item 7: the next cell printed the selection the page shows
+                printed = " ".join(pg.locator(".jp-OutputArea-output").all_inner_texts())
+                m = re.search(r"Selection\(basin='([^']+)', P='([^']+)', ET='([^']+)', TWSA='([^']+)'", printed)
+                assert m, printed[:2000]
+                shown = [o.inner_text() for o in pg.locator(".jp-OutputArea-output select option:checked").all()[:4]]
+                assert shown[0].startswith(m.group(1) + " - ") and all(
+                    f"[{v}]" in t for v, t in zip(m.groups()[1:], shown[1:])), (m.groups(), shown)
+            pg.close()
+    finally:
+        _stop(proc)
+
+
 @pytest.mark.slow
 def test_template_notebook_in_jupyterlab(browser, study, _cache_dir, artifacts):
     from wbexplore.cli import _copy_templates
 
     nb = _copy_templates(study)
-    port = _free_port()
     env = dict(os.environ, WBEXPLORE_CACHE=str(_cache_dir), PYTHONWARNINGS="ignore")
-    proc = subprocess.Popen([sys.executable, "-m", "jupyterlab", "--no-browser", f"--port={port}",
-                             "--ServerApp.token=", "--ServerApp.password=", "--allow-root",
-                             "--ServerApp.disable_check_xsrf=True", f"--ServerApp.root_dir={study}",
-                             "--LabApp.news_url=", "--LabServerApp.extension_manager=readonly"],
-                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, env=env)
+    proc, url = _jupyterlab(study, env)
+    port = url.rstrip("/").rsplit(":", 1)[1]
     try:
         _wait_http(f"http://127.0.0.1:{port}/api", proc)
         pg = browser.new_page(viewport={"width": 1500, "height": 1200})
         errors, failed = [], []
         pg.on("pageerror", lambda e: errors.append(str(e)))
         pg.on("requestfailed", lambda r: failed.append(r.url))
+        outside = _offline(pg)
         pg.goto(f"http://127.0.0.1:{port}/lab/tree/{nb.name}?reset")
         pg.locator(".jp-Notebook").first.wait_for(timeout=90_000)
         pg.wait_for_timeout(3000)
@@ -299,10 +416,126 @@ def test_template_notebook_in_jupyterlab(browser, study, _cache_dir, artifacts):
         pg.wait_for_timeout(4000)
         pg.screenshot(path=str(artifacts / "jupyterlab_template.png"), full_page=False)
         assert errors == [], errors  # no uncaught JavaScript error
-        # panel asks its CDN for optional stylesheets in a notebook; this machine has no network, and the
-        # app renders without them. Nothing else may fail to load.
-        assert [u for u in failed if not u.startswith("https://cdn.holoviz.org/")] == [], failed
+        assert outside == [], outside  # the page's code and stylesheets come from the Jupyter server
+        assert failed == [], failed
         assert pg.locator(".wbx-ranking .tabulator-row").count() >= 10
+        pg.close()
+    finally:
+        _stop(proc)
+
+
+# --------------------------------------------------------------------------- issue 17, item 4 and 7
+_COLORBAR_TITLES = ("() => { const out = []; for (const d of Bokeh.documents) { for (const m of d._all_models.values())"
+                    " { if (m.constructor.__name__ === 'ColorBar') out.push(m.title); } } return out; }")
+
+
+_RANK_BY_HELP = ("() => { for (const d of Bokeh.documents) { for (const m of d._all_models.values()) {"
+                 " if (m.title === 'Rank by' && m.description) { const t = m.description, c = t.content ?? t;"
+                 " const div = document.createElement('div'); div.innerHTML = typeof c === 'string' ? c :"
+                 " [].concat(c.html).join(''); return div.textContent.trim(); } } } return null; }")
+
+
+def _metric_select(page):
+    return next(s for s in _selects(page).all() if "Residual RMSE (mm/month)" in s.locator("option").all_inner_texts())
+
+
+def _wait(cond, page, timeout=20):
+    t0 = time.time()
+    while time.time() - t0 < timeout and not cond():
+        page.wait_for_timeout(200)
+    return cond()
+
+
+def test_rank_by_shows_plain_names_and_the_legend_and_header_follow(page, artifacts):
+    from wbexplore.names import METRIC_NAMES, metric_label
+
+    sel = _metric_select(page)
+    labels = sel.locator("option").all_inner_texts()
+    assert all("_" not in t for t in labels) and "Relative imbalance (%)" in labels
+    assert page.evaluate(_COLORBAR_TITLES) == ["best Residual RMSE (mm/month)"]
+    sel.select_option(label=metric_label("pbias"))
+    heads = lambda: page.locator(".wbx-ranking .tabulator-col-title").all_inner_texts()
+    assert _wait(lambda: "Percent bias (%)" in heads(), page), heads()
+    assert "Residual RMSE (mm/month)" in heads() and "rmse" not in heads()
+    assert _wait(lambda: page.evaluate(_COLORBAR_TITLES) == ["best Percent bias (%)"], page)
+    page.wait_for_timeout(800)
+    page.screenshot(path=str(artifacts / "explorer_rank_by_pbias.png"), full_page=True)
+    assert page.evaluate(_RANK_BY_HELP) == METRIC_NAMES["pbias"].help  # the control's help (its tooltip's text)
+    sel.select_option(label=metric_label("rmse"))  # the next tests read the rmse ranking
+    assert _wait(lambda: "Percent bias (%)" not in heads(), page)
+    assert page.errors == []
+
+
+def test_period_arrow_key_steps_one_month(page, study):
+    from wbexplore.balance import rank
+
+    def label():
+        m = re.search(r"(\d{4}-\d{2})\s*\.\.\.?\s*(\d{4}-\d{2})", page.locator(".bk-slider-title").first.inner_text())
+        return m.groups()
+
+    start, end = label()
+    page.locator(".noUi-handle-lower").first.focus()
+    page.keyboard.press("ArrowRight")
+    y, m = map(int, start.split("-"))
+    want = f"{y + (m == 12):04d}-{m % 12 + 1:02d}"  # the next calendar month
+    assert _wait(lambda: label() == (want, end), page), label()
+    basin = _selects(page).nth(0).locator("option:checked").inner_text().split(" - ")[0]
+    ref = rank(_series(study), basin, start=want, end=end)
+    close = lambda: float(_row(page, 0)["rmse"]) == pytest.approx(ref.iloc[0]["rmse"], abs=1.5e-3)
+    assert _wait(close, page), (_row(page, 0), ref.iloc[0]["rmse"])
+
+
+def test_ranking_highlights_the_combination_on_screen(page, artifacts):
+    def marked():
+        out = []
+        for i, row in enumerate(page.locator(".wbx-ranking .tabulator-row").all()):
+            style = row.locator('.tabulator-cell[tabulator-field="P"]').get_attribute("style") or ""
+            if "font-weight: bold" in style:
+                out.append(i)
+        return out
+
+    sources = lambda: [re.search(r"\[([^\]]+)\]", s.locator("option:checked").inner_text()).group(1)
+                       for s in _selects(page).all()[1:4]]
+    assert _wait(lambda: len(marked()) == 1, page), marked()
+    cells = _row(page, marked()[0])
+    assert [cells[c] for c in ("P", "ET", "TWSA")] == sources()
+    target = 2 if marked()[0] != 2 else 3
+    page.locator(".wbx-ranking .tabulator-row").nth(target).locator('.tabulator-cell[tabulator-field="ET"]').click()
+    assert _wait(lambda: marked() == [target], page), marked()
+    cells = _row(page, target)
+    assert [cells[c] for c in ("P", "ET", "TWSA")] == sources()
+    page.locator(".wbx-ranking").first.screenshot(path=str(artifacts / "explorer_ranking_highlight.png"))
+
+
+def test_injected_basin_name_is_shown_as_text(browser, study, tmp_path, _cache_dir, artifacts):
+    import json
+
+    evil = "<b>x</b><script>window.__wbx_pwned = 1</script><img src=x onerror='window.__wbx_pwned = 2'>"
+    folder = tmp_path / "evil"
+    shutil.copytree(study, folder, ignore=shutil.ignore_patterns("exports"))
+    gj = json.loads((folder / "basins.geojson").read_text())
+    gj["features"][0]["properties"]["name"] = evil
+    (folder / "basins.geojson").write_text(json.dumps(gj))
+    port = _free_port()
+    env = dict(os.environ, WBEXPLORE_CACHE=str(_cache_dir), PYTHONWARNINGS="ignore")
+    proc = subprocess.Popen([sys.executable, "-m", "wbexplore.cli", "serve", str(folder / "catalog.yaml"), "--port",
+                             str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, env=env)
+    try:
+        _wait_http(f"http://127.0.0.1:{port}/", proc)
+        pg = browser.new_page(viewport={"width": 1500, "height": 1400})
+        pg.goto(f"http://127.0.0.1:{port}/")
+        pg.wait_for_selector(".wbx-summary", timeout=90_000)
+        pg.wait_for_timeout(1500)
+        bid = gj["features"][0]["properties"]["basin_id"]
+        option = next(t for t in _selects(pg).nth(0).locator("option").all_inner_texts() if t.startswith(bid))
+        assert evil in option  # the option reads the name literally
+        _selects(pg).nth(0).select_option(label=option)
+        assert _wait(lambda: evil in pg.locator(".wbx-summary h4").first.inner_text(), pg)
+        pg.wait_for_timeout(1000)
+        pg.screenshot(path=str(artifacts / "explorer_injected_name.png"))
+        assert pg.evaluate("window.__wbx_pwned === undefined")
+        assert pg.locator(".wbx-summary b", has_text="x").count() == 0 or \
+            all(t != "x" for t in pg.locator(".wbx-summary b").all_inner_texts())
         pg.close()
     finally:
         _stop(proc)

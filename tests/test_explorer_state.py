@@ -25,7 +25,7 @@ def test_initial_selection_is_the_best_combination(state, demo_series):
 
 def test_state_changes_drive_views_data(state, demo_series):
     state.param.update(basin="ZEF", P="plover", ET="sedge", TWSA="cairn", storage_change="backward")
-    state.period = (24, 200)
+    state.period = ("2003-01", "2017-09")  # months 24 and 200 of the demo
     d = state.view_data()
     sel = Selection("ZEF", "plover", "sedge", "cairn", start="2003-01", end="2017-09", storage_change="backward")
     ref = compute_selection(demo_series, sel)
@@ -65,7 +65,7 @@ def test_nested_basin_is_clickable(state, demo_dir):
 def test_no_valid_months_explained(state):
     state.param.update(TWSA="cairn")
     i0 = list(state.months).index(pd.Timestamp("2012-07-01"))
-    state.period = (i0, i0 + 6)  # inside the cairn gap
+    state.period = (f"{state.months[i0]:%Y-%m}", f"{state.months[i0 + 6]:%Y-%m}")  # inside the cairn gap
     res = state.result()
     assert res.n_valid == 0 and "no month" in res.messages[0]
     from wbexplore.explorer import views
@@ -199,3 +199,28 @@ def test_map_shows_the_nesting(nested_state):
     assert dash["VEU"] == "dashed" and dash["VEL"] == "solid"
     tips = dict(m.fig.select_one({"type": __import__("bokeh.models", fromlist=["HoverTool"]).HoverTool}).tooltips)
     assert tips["drains to"] == "@drains_to"
+
+
+# --------------------------------------------------------------------------- the notebook's handle (issue 17, item 7)
+def test_explore_returns_a_handle_a_next_cell_can_read(demo_dir):
+    """`explore()` gives the notebook what is on screen; checked against the plain-script path (`balance/`
+    called directly on the same series: common practice, there is no outside reference for a handle)."""
+    from wbexplore.explorer.app import Explorer, explore
+    from wbexplore.pipeline import load_series
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        app = explore(demo_dir / "catalog.yaml")
+        series = load_series(demo_dir / "catalog.yaml")
+    assert isinstance(app, Explorer)
+    app.state.param.update(basin="ZEF", P="plover", ET="sedge", TWSA="cairn", storage_change="backward")
+    app.w_metric.value = "kge"  # a widget of the page, as a click would
+    sel = app.selection
+    assert (sel.basin, sel.P, sel.ET, sel.TWSA, sel.storage_change) == ("ZEF", "plover", "sedge", "cairn", "backward")
+    ref = compute_selection(series, sel)
+    pd.testing.assert_frame_equal(app.result, ref.frame)
+    want = rank(series, "ZEF", sel.options(), by="kge")
+    pd.testing.assert_frame_equal(app.ranking.reset_index(drop=True), want.reset_index(drop=True))
+    mine = app.result
+    mine["P"] = -1.0  # a copy: the next cell cannot change what the page shows
+    assert (app.result["P"] != -1.0).all()

@@ -314,6 +314,13 @@ def basin_outlines(basins) -> Outlines:
     return Outlines(tuple(xs), tuple(ys), tuple(ids), tuple(names), tuple(areas), tuple(down))
 
 
+def _best_title(metric: str) -> str:
+    """The map legend's title: the plain name of the ranking metric with its units (`wbexplore.names`)."""
+    from .names import metric_label
+
+    return f"best {metric_label(metric)}"
+
+
 class MapPlot(_Plot):
     """Basin outlines on lon/lat axes (no tiles) coloured by their best closure score; the selected one outlined.
 
@@ -350,13 +357,19 @@ class MapPlot(_Plot):
                           line_color="black", line_width={"field": "lw"}, line_dash={"field": "dash"},
                           fill_alpha=0.85)
         _add(fig, outline, self.src).nonselection_glyph = outline  # a tapped basin does not fade the others
-        self.colorbar = ColorBar(color_mapper=self.mapper, title="best rmse")
+        self.colorbar = ColorBar(color_mapper=self.mapper, title=_best_title("rmse"))
         fig.add_layout(self.colorbar, "right")
-        fig.add_tools(HoverTool(tooltips=[("basin", "@basin"), ("name", "@name"), ("score", "@score{0.000}"),
-                                          ("area (km2)", "@area_km2{0,0}"), ("drains to", "@drains_to")]),
-                      TapTool())
+        self.hover = HoverTool(tooltips=self._tooltips("rmse"))
+        fig.add_tools(self.hover, TapTool())
         fig.xaxis.axis_label = "longitude (deg E)"
         fig.yaxis.axis_label = "latitude (deg N)"
+
+    @staticmethod
+    def _tooltips(metric: str) -> list:
+        from .names import metric_label
+
+        return [("basin", "@basin"), ("name", "@name"), (f"best {metric_label(metric)}", "@score{0.000}"),
+                ("area (km2)", "@area_km2{0,0}"), ("drains to", "@drains_to")]
 
     def update(self, scores: pd.Series, selected: str | None = None, metric: str = "rmse") -> None:
         from bokeh.palettes import Viridis256
@@ -368,7 +381,8 @@ class MapPlot(_Plot):
         lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
         self.mapper.update(low=lo, high=hi if hi > lo else lo + 1.0,
                            palette=Viridis256[::-1] if metric in ERROR_METRICS else Viridis256)
-        self.colorbar.title = f"best {metric}"
+        self.colorbar.title = _best_title(metric)
+        self.hover.tooltips = self._tooltips(metric)
 
 
 class MultiBasinPlot(_Plot):

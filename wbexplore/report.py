@@ -18,6 +18,7 @@ from .balance.terms import balance_text
 from .escape import html_text
 from .io.catalog import Catalog, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output
+from .names import METRIC_NAMES, metric_label
 
 __all__ = ["write_report", "report_html"]
 
@@ -72,8 +73,11 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
             plots.component_bars(res, width=950), plots.residual_series(res, width=950),
             plots.balance_scatter(res, width=950)]
     m = res.metrics
-    mrows = "".join(f"<tr><td>{html_text(k)}</td><td style='text-align:right'>{html_text(_fmt(v, '.4g'))}</td></tr>" for k, v in m.items())
+    mrows = "".join(f"<tr title='{html_text(METRIC_NAMES[k].help) if k in METRIC_NAMES else ''}'>"
+                    f"<td>{html_text(metric_label(k))}</td><td style='text-align:right'>{html_text(_fmt(v, '.4g'))}</td></tr>"
+                    for k, v in m.items())
     cols = list(RANK_TABLE_COLUMNS)
+    heads = ["Rank" if c == "rank" else metric_label(c) if c in METRIC_NAMES else c for c in cols]
     trows = "".join("<tr>" + "".join(f"<td>{html_text(_fmt(r[c], '.3f') if isinstance(r[c], float) else str(r[c]))}</td>"
                                      for c in cols) + "</tr>" for _, r in ranking.iterrows())
     incremental = ds.attrs.get("unit") == "incremental"
@@ -96,8 +100,8 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
                                 if sel.matched else "fluxes are compared as monthly totals (not window-matched).")
     tail = (f"<h2>Selection metrics</h2><table class='metrics'>{mrows}</table>"
             f"<h2>Warnings</h2><ul>{warn or '<li>none</li>'}</ul>"
-            f"<h2>Every combination (ranked by {html_text(by)})</h2><table class='ranking' border='1' "
-            f"style='border-collapse:collapse'><tr>{''.join(f'<th>{c}</th>' for c in cols)}</tr>{trows}</table>"
+            f"<h2>Every combination (ranked by {html_text(metric_label(by))})</h2><table class='ranking' border='1' "
+            f"style='border-collapse:collapse'><tr>{''.join(f'<th>{html_text(h)}</th>' for h in heads)}</tr>{trows}</table>"
             f"<h2>Method notes</h2>{notes}")
     layout = column(Div(text=head, width=950), *figs, Div(text=tail, width=950))
     out = file_html(layout, resources=INLINE, title=f"wbexplore report {sel.basin}{' (incremental)' if incremental else ''}")

@@ -17,10 +17,10 @@ import os
 import warnings
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 from .. import plots
+from ..names import METRIC_NAMES, OPTIONS, column_label, metric_label
 from ..balance.combos import RANK_TABLE_COLUMNS
 from ..balance.terms import SOURCE_COMPONENTS
 from ..errors import InputError
@@ -68,6 +68,7 @@ class Explorer:
         import panel as pn
 
         self.state = state
+        self._layout = None
         self.outlines = plots.basin_outlines(state.basins) if outlines is None else outlines
         s = state
         self.study_dir = Path(s.catalog_path).resolve().parent if s.catalog_path else None
@@ -83,28 +84,41 @@ class Explorer:
             opts = {f"{s.labels.get(i, i)} [{i}]": i for i in getattr(s.param, comp).objects}
             self.w_src[comp] = pn.widgets.Select(name=getattr(s.param, comp).label, options=opts,
                                                  value=getattr(s, comp), width=260)
-        m = s.months
-        self.w_period = pn.widgets.DateRangeSlider(name="Period", start=m[0].to_pydatetime(), end=m[-1].to_pydatetime(),
-                                                   value=(m[s.period[0]].to_pydatetime(), m[s.period[1]].to_pydatetime()),
-                                                   step=1, format="%Y-%m", width=260)
-        self.w_method = pn.widgets.RadioButtonGroup(name="Storage change", options=list(s.param.storage_change.objects),
-                                                    value=s.storage_change, width=260)
-        self.w_matched = pn.widgets.Checkbox(name="window-matched fluxes", value=s.matched)
-        self.w_units = pn.widgets.RadioButtonGroup(name="Units", options={"mm/month": "mm", "m3": "m3", "m3/s": "m3/s"},
-                                                   value=s.unit_system, width=260)
-        self.w_metric = pn.widgets.Select(name="Rank by", options=list(s.param.metric.objects), value=s.metric, width=260)
+        # the period in whole months: the slider counts months (year * 12 + month - 1), one step per arrow key
+        from bokeh.models import CustomJSTickFormatter
+
+        self.w_period = pn.widgets.IntRangeSlider(
+            name="Period", start=_month_number(s.months[0]), end=_month_number(s.months[-1]), step=1,
+            value=tuple(_month_number(v) for v in s.period), width=260, css_classes=["wbx-period"],
+            format=CustomJSTickFormatter(code="const y = Math.floor(tick / 12), m = tick - 12 * y + 1;"
+                                              " return y + '-' + (m < 10 ? '0' : '') + m;"))
+        methods = s.param.storage_change.objects
+        self.w_method = pn.widgets.RadioButtonGroup(
+            name="Storage change", options={OPTIONS[k].name: k for k in methods}, value=s.storage_change, width=260,
+            description="; ".join(f"{OPTIONS[k].name}: {OPTIONS[k].help}" for k in methods))
+        self.w_matched = pn.widgets.Checkbox(name=OPTIONS["matched"].name, value=s.matched, width=220)
+        self.matched_help = pn.widgets.TooltipIcon(value=OPTIONS["matched"].help, width=20)
+        self.w_units = pn.widgets.RadioButtonGroup(
+            name="Units", options={OPTIONS[k].name: k for k in s.param.unit_system.objects}, value=s.unit_system,
+            width=260, description="; ".join(f"{OPTIONS[k].name}: {OPTIONS[k].help}" for k in s.param.unit_system.objects))
+        self.w_metric = pn.widgets.Select(name="Rank by", options={metric_label(k): k for k in s.param.metric.objects},
+                                          value=s.metric, width=260, description=METRIC_NAMES[s.metric].help)
         self.w_best = pn.widgets.Button(name="Best combination", button_type="primary", width=260)
         # whole basin or its incremental unit (minus its upstream basins): enabled only where there is one
-        self.w_unit = pn.widgets.RadioButtonGroup(name="Balance unit", options=list(s.param.unit.objects),
+        self.w_unit = pn.widgets.RadioButtonGroup(name="Balance unit", options={OPTIONS[k].name: k for k in s.param.unit.objects},
                                                   value=s.unit, disabled=not s.has_incremental, width=260,
-                                                  css_classes=["wbx-unit"])
+                                                  css_classes=["wbx-unit"],
+                                                  description="; ".join(f"{OPTIONS[k].name}: {OPTIONS[k].help}"
+                                                                        for k in s.param.unit.objects))
         self._wire()
         view = self._rank_view()
         # "plaintext" escapes the cell value (ids come from the catalog): no cell renders HTML
         self.table = pn.widgets.Tabulator(view, disabled=True, show_index=False, height=330,
                                           sizing_mode="stretch_width", selectable=False,
                                           formatters={c: {"type": "plaintext"} for c in view.columns},
+                                          titles=self._titles(view), header_tooltips=self._tooltips(view),
                                           css_classes=["wbx-ranking"])
+        self.table.style.apply(self._highlight, axis=1)
         self.table.on_click(self._on_row)
         self.export_where = pn.pane.Markdown(f"Files go to *{md_text(self._shown(self.export_dir))}*",
                                              css_classes=["wbx-export-dir"], width=260)
@@ -134,16 +148,16 @@ class Explorer:
             s.param.watch(lambda e, w=w: setattr(w, "value", e.new), comp)
 
         def on_period(e):
-            lo, hi = (pd.Timestamp(v).to_period("M").to_timestamp() for v in e.new)
-            i0 = int(np.clip(s.months.searchsorted(lo), 0, len(s.months) - 1))
-            i1 = int(np.clip(s.months.searchsorted(hi), 0, len(s.months) - 1))
-            s.period = (min(i0, i1), max(i0, i1))
+            lo, hi = sorted(e.new)
+            s.period = (_month_text(lo), _month_text(hi))
 
         self.w_period.param.watch(on_period, "value_throttled")
+        s.param.watch(lambda e: setattr(self.w_period, "value", tuple(_month_number(v) for v in e.new)), "period")
         self.w_method.param.watch(lambda e: setattr(s, "storage_change", e.new), "value")
         self.w_matched.param.watch(lambda e: setattr(s, "matched", e.new), "value")
         self.w_units.param.watch(lambda e: setattr(s, "unit_system", e.new), "value")
         self.w_metric.param.watch(lambda e: setattr(s, "metric", e.new), "value")
+        s.param.watch(lambda e: self.w_metric.param.update(value=e.new, description=METRIC_NAMES[e.new].help), "metric")
         self.w_best.on_click(lambda e: s.select_best())
         self.w_unit.param.watch(lambda e: setattr(s, "unit", e.new), "value")
 
@@ -168,9 +182,28 @@ class Explorer:
                 out[c] = out[c].astype(float).round(3)
         return out
 
+    @staticmethod
+    def _titles(view) -> dict:
+        """Plain column headers with units (`wbexplore.names`); the source columns hold product ids."""
+        return {c: ("Rank" if c == "rank" else column_label(c).rsplit(" (", 1)[0] if c in ("P", "ET", "TWSA")
+                    else column_label(c)) for c in view.columns}
+
+    @staticmethod
+    def _tooltips(view) -> dict:
+        return {c: METRIC_NAMES[c].help for c in view.columns if c in METRIC_NAMES}
+
+    def _highlight(self, row):
+        """The combination on screen stands out in the ranking (bold on a light orange)."""
+        s = self.state
+        on = all(str(row.get(c)) == str(getattr(s, c)) for c in SOURCE_COMPONENTS)
+        return [_ON_SCREEN if on else "" for _ in row]
+
     def _refresh_table(self, *events):
         if any(e.name in ("basin", "unit", "period", "storage_change", "matched", "metric") for e in events):
-            self.table.value = self._rank_view()
+            view = self._rank_view()
+            self.table.param.update(value=view, titles=self._titles(view), header_tooltips=self._tooltips(view))
+        elif any(e.name in SOURCE_COMPONENTS for e in events):
+            self.table.param.trigger("value")  # the same rows, another one on screen: restyle
 
     def _on_row(self, event):
         row = self.table.value.iloc[event.row]
@@ -188,6 +221,7 @@ class Explorer:
         from ..selection import _series_frame
 
         f = _series_frame(self.state.result(), self.state.unit_system)
+        f = f.rename(columns=lambda c: column_label(str(c), self.state.unit_system))  # plain names with units
         buf = io.StringIO()
         buf.write(f"# {CAUTION}\n")
         f.to_csv(buf, float_format="%.17g")
@@ -255,7 +289,12 @@ class Explorer:
         return self._view(m, lambda p: p.update(s.basin_scores(), s.basin, s.metric), _MAP_DEPS, "wbx-map")
 
     def panel(self):
-        """The page layout (a panel object)."""
+        """The page layout (a panel object; built once per explorer)."""
+        if self._layout is None:
+            self._layout = self._build_layout()
+        return self._layout
+
+    def _build_layout(self):
         import panel as pn
 
         s = self.state
@@ -274,7 +313,8 @@ class Explorer:
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search,
             pn.pane.Markdown("Balance unit (incremental: minus the upstream basins)"), self.w_unit, self.w_src["P"], self.w_src["ET"],
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
-            self.w_matched, pn.pane.Markdown("Units"), self.w_units, self.w_metric, self.w_best,
+            pn.Row(self.w_matched, self.matched_help), pn.pane.Markdown("Units"), self.w_units, self.w_metric,
+            self.w_best,
             pn.pane.Markdown("### Summary"), summary, warn,
             pn.pane.Markdown("### Export"), self.export_where, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
@@ -295,6 +335,44 @@ class Explorer:
 
     def __panel__(self):
         return self.panel()
+
+    def _repr_mimebundle_(self, include=None, exclude=None):
+        """A notebook cell shows the page (one layout per explorer, built on first display)."""
+        return self.panel()._repr_mimebundle_(include, exclude)
+
+    # ----------------------------------------------------------------- the notebook's handle on the page
+    @property
+    def selection(self):
+        """The `Selection` on screen (basin, sources, period, storage-change method, window matching)."""
+        return self.state.selection()
+
+    @property
+    def result(self) -> pd.DataFrame:
+        """The current combination's balance terms, one row per month of the period (a copy).
+
+        Columns as `compute_selection` gives them: every term, the residual, their sigmas and valid fractions,
+        in mm per month (TWSA in mm) whatever the page's unit switch shows; ``valid`` marks the months scored.
+        """
+        return self.state.result().frame.copy()
+
+    @property
+    def ranking(self) -> pd.DataFrame:
+        """Every combination for the basin and period on screen, best first by the page's "Rank by" (a copy)."""
+        return self.state.ranking().copy()
+
+
+_ON_SCREEN = "background-color: #fde3c4; font-weight: bold"
+
+
+def _month_number(month) -> int:
+    """A month ('YYYY-MM' or a timestamp) as a count of months: year * 12 + month - 1 (the period slider's value)."""
+    p = pd.Period(str(month)[:7], freq="M")
+    return p.year * 12 + p.month - 1
+
+
+def _month_text(number: int) -> str:
+    y, m = divmod(int(number), 12)
+    return f"{y:04d}-{m + 1:02d}"
 
 
 def default_export_dir(catalog_path, export_dir=None) -> Path:
@@ -317,21 +395,29 @@ def _error_page(message: str, study_dir=None):
 
 
 def explore(catalog_or_path, *, cache_dir=None, export_dir=None):
-    """The explorer app for a JupyterLab cell (also works in a script with ``.servable()``).
+    """The explorer for a JupyterLab cell: an `Explorer`, shown as the page when it ends a cell.
+
+    A next cell reads what is on screen: ``app.selection`` (a `Selection`), ``app.result`` (the current
+    combination's monthly terms, mm/month), ``app.ranking`` (every combination, best first). A catalog that
+    cannot be opened gives the page with its message instead (a panel layout).
 
     Parameters
     ----------
     catalog_or_path : catalog path, `Catalog`, or canonical series (xarray.Dataset)
-    """
-    import panel as pn
 
-    if "tabulator" not in pn.extension._loaded_extensions if hasattr(pn.extension, "_loaded_extensions") else True:
-        pn.extension("tabulator", inline=True)  # inline resources: the notebook page needs no network
+    Examples
+    --------
+    >>> app = explore("catalog.yaml")  # doctest: +SKIP
+    >>> app.ranking.head(3)             # doctest: +SKIP
+    """
+    from . import notebook
+
+    notebook.extension("tabulator")  # the page's code from the Jupyter server: no network, small notebook files
     try:
         state = load_state(catalog_or_path, cache_dir=cache_dir)
     except InputError as exc:
         return _error_page(str(exc), _study_dir(catalog_or_path))
-    return Explorer(state, export_dir=export_dir).panel()
+    return Explorer(state, export_dir=export_dir)
 
 
 def _study_dir(catalog) -> Path | None:

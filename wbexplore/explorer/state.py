@@ -38,7 +38,7 @@ class ClosureState(param.Parameterized):
     P = param.Selector(objects=[], label="Precipitation (P)")
     ET = param.Selector(objects=[], label="Evapotranspiration (ET)")
     TWSA = param.Selector(objects=[], label="Storage anomaly (TWSA)")
-    period = param.Range(default=(0, 1), bounds=(0, 1), doc="first and last month index (inclusive)")
+    period = param.Tuple(default=("", ""), length=2, doc="first and last month, 'YYYY-MM' (inclusive)")
     storage_change = param.Selector(objects=list(METHODS), default="central", label="Storage change")
     matched = param.Boolean(default=True, label="Window-matched fluxes")
     unit_system = param.Selector(objects=list(UNIT_SYSTEMS), default="mm", label="Units")
@@ -63,15 +63,16 @@ class ClosureState(param.Parameterized):
         self.labels = labels
         n = series.sizes["time"]
         self.months = pd.DatetimeIndex(series["time"].values)
-        self.param.period.bounds = (0, n - 1)
         with param.parameterized.discard_events(self):
-            self.period = params.get("period", (0, n - 1))
+            self.period = params.get("period", (f"{self.months[0]:%Y-%m}", f"{self.months[n - 1]:%Y-%m}"))
             self.basin = params.get("basin", ids[0])
             for comp in SOURCE_COMPONENTS:
                 if comp not in params:
                     setattr(self, comp, getattr(self.param, comp).objects[0])
         if params.get("unit") == "incremental" and not self.has_incremental:
             raise InputError(f"basin {self.basin!r} has no upstream basin, so it has no incremental unit")
+        self._check_period(self.period)
+        self._last_period = self.period
         self.param.watch(self._unit_follows_basin, ["basin"])
         if "P" not in params:
             self.select_best()
@@ -108,14 +109,36 @@ class ClosureState(param.Parameterized):
             return []
         return [u for u in str(inc["upstream_basins"].sel(basin=b).values).split(",") if u]
 
+    # ----------------------------------------------------------------- period (months, not indices)
+    def _check_period(self, period) -> None:
+        first, last = f"{self.months[0]:%Y-%m}", f"{self.months[-1]:%Y-%m}"
+        try:
+            a, b = (pd.Period(str(v), freq="M") for v in period)
+        except (TypeError, ValueError):
+            raise InputError(f"explorer: period {period!r} is not two months 'YYYY-MM'") from None
+        if not (f"{a}" == str(period[0]) and f"{b}" == str(period[1])):
+            raise InputError(f"explorer: period {period!r} is not two months 'YYYY-MM'")
+        if a > b or str(a) < first or str(b) > last:
+            raise InputError(f"explorer: period {period[0]}..{period[1]} is not inside the series' {first}..{last}")
+
+    @param.depends("period", watch=True)
+    def _period_inside(self) -> None:
+        try:
+            self._check_period(self.period)
+        except InputError:
+            with param.parameterized.discard_events(self):
+                self.period = self._last_period
+            raise
+        self._last_period = self.period
+
     # ----------------------------------------------------------------- derived selection
     @property
     def start(self) -> str:
-        return f"{self.months[int(self.period[0])]:%Y-%m}"
+        return str(self.period[0])
 
     @property
     def end(self) -> str:
-        return f"{self.months[int(self.period[1])]:%Y-%m}"
+        return str(self.period[1])
 
     def options(self) -> ClosureOptions:
         """The closure options the widgets set (one `ClosureOptions`, as the library and the CLI use)."""

@@ -13,6 +13,7 @@ import numpy as np
 from .. import plots
 from ..balance.terms import SOURCE_COMPONENTS
 from ..escape import html_text, md_text
+from ..names import METRIC_NAMES, metric_name, option_label
 from ..plots import COLORS, SEASON_COLORS, UNIT_LABEL
 
 __all__ = ["COLORS", "SEASON_COLORS", "UNIT_LABEL", "balance_scatter", "basin_map", "component_bars",
@@ -80,14 +81,16 @@ def summary_html(result, *, metric: str = "rmse") -> str:
     def fmt(v, spec):
         return "n/a" if v is None or not np.isfinite(v) else format(v, spec)
 
-    rows = [("relative imbalance", f"{fmt(m['rel_imbalance'], '.1f')} %"),
-            ("mean residual", f"{fmt(m['bias'], '.2f')} mm/month"),
-            ("RMSE", f"{fmt(m['rmse'], '.2f')} mm/month"),
-            ("KGE", fmt(m["kge"], ".3f")), ("NSE", fmt(m["nse"], ".3f")),
-            ("valid months", str(m["n_valid"])), ("basin area", f"{result.area_km2:,.0f} km2")]
-    cells = "".join(f"<tr><td>{k}</td><td style='text-align:right'><b class='wbx-{k.replace(' ', '-')}'>{v}</b></td></tr>"
-                    for k, v in rows)
+    # (metric key, css name kept for scripts and tests, number format); names and units from `wbexplore.names`
+    shown = (("rel_imbalance", "relative-imbalance", ".1f"), ("bias", "mean-residual", ".2f"), ("rmse", "RMSE", ".2f"),
+             ("kge", "KGE", ".3f"), ("nse", "NSE", ".3f"), ("pbias", "PBIAS", ".1f"))
+    rows = [(metric_name(k), css, f"{fmt(m[k], spec)} {METRIC_NAMES[k].units}".strip(), METRIC_NAMES[k].help)
+            for k, css, spec in shown]
+    rows += [("Valid months", "valid-months", str(m["n_valid"]), METRIC_NAMES["n_valid"].help),
+             ("Basin area", "basin-area", f"{result.area_km2:,.0f} km2", "area of the balance unit (ellipsoidal)")]
+    cells = "".join(f"<tr title='{html_text(h)}'><td>{html_text(k)}</td><td style='text-align:right'>"
+                    f"<b class='wbx-{c}'>{html_text(v)}</b></td></tr>" for k, c, v, h in rows)
     e = html_text  # names and ids come from input files: never markup
     return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{e(result.basin_name)} ({e(sel.basin)})</h4>"
-            f"<div>{e(sel.P)} / {e(sel.ET)} / {e(sel.TWSA)}, {e(sel.storage_change)} difference"
+            f"<div>{e(sel.P)} / {e(sel.ET)} / {e(sel.TWSA)}, {e(option_label(sel.storage_change).lower())} difference"
             f"{', window-matched' if sel.matched else ''}</div><table>{cells}</table></div>")
