@@ -375,7 +375,11 @@ def test_cli_merge_writes_the_merged_series(study, tmp_path, capsys, method):
     rc, text, err = run_cli(["merge", study / "good.yaml", "--all", "--method", method, "--out", out], capsys)
     assert rc == 0, err
     assert "largest residual after closure" in text
-    with xr.open_dataset(out) as m:
+    from wbexplore.io.writers import read_netcdf
+
+    with xr.open_dataset(out) as f:  # CF on file: the basin labels are the timeseries_id variable basin_id
+        assert list(f["basin_id"].values) == ["B1", "B2"] and f["basin_id"].attrs["cf_role"] == "timeseries_id"
+    with read_netcdf(out) as m:
         assert list(m.basin.values) == ["B1", "B2"]
         assert m.attrs["merge_method"] == method and "Screening-level" in m.attrs["caution"]
         for c in ("P", "ET", "TWSA"):
