@@ -27,7 +27,7 @@ Two steps, per basin (pure computation: series in, series out):
                     exactly ``term_k - sign_k * residual * |term_k| / sum |term_j|``). Error variances are
                     carried through that linear map.
    ``ckf``          the constrained Kalman filter (Pan and Wood 2006): weights are the error variances of
-                    step 1 and of gauged Q (`Q_RELATIVE_ERROR`); posterior ``C - C G' (G C G')^-1 G C``.
+                    step 1 and of gauged Q (`uncertainty.gauge_error`); posterior ``C - C G' (G C G')^-1 G C``.
    ``collocation``  multiple collocation for every component (no stated errors), then the filter.
 
 The merged series become sources: ``merged_P``, ``merged_ET``, ``merged_TWSA`` (``role="source"``) with
@@ -46,7 +46,6 @@ import xarray as xr
 
 from ..errors import InputError
 from . import uncertainty as unc
-from .closure import Q_RELATIVE_ERROR
 from .correction import constrained_projection
 from .engine import MERGED_PREFIX, basin_ids, masked_values
 from .options import ClosureOptions
@@ -283,7 +282,7 @@ def force_closure(values: dict, variances: dict, terms, options: ClosureOptions,
 
 
 def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: ClosureOptions | None = None,
-                   q_relative_error: float = Q_RELATIVE_ERROR, variances: dict | None = None) -> xr.Dataset:
+                   q_relative_error: float = unc.Q_RELATIVE_ERROR, variances: dict | None = None) -> xr.Dataset:
     """Merged best estimates of P, ET and TWSA for each basin, with the budget forced to close.
 
     Parameters
@@ -360,7 +359,7 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
                         err_var[bi, products.index(s)] = errs.variance[i, 0]
             else:
                 q = station_values[t.name][bi]
-                vals[t.name], vars_[t.name] = q, (q_relative_error * q) ** 2
+                vals[t.name], vars_[t.name] = q, unc.gauge_error(q, q_relative_error) ** 2
         adj, post, res, _ = force_closure(vals, vars_, terms, opts, method=method)
         after = _residual(adj, terms, opts)
         res_before[bi], res_after[bi] = res, after

@@ -44,7 +44,11 @@ from .engine import DERIVED_PREFIXES, masked_values
 __all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "MIN_COLLOCATION_MONTHS",
            "DEFAULT_METHOD", "product_error", "product_errors", "all_product_errors", "product_disagreement", "stated_variance",
            "collocation_variances", "method_label", "uncertainty_text", "legend_text", "check_method",
-           "component_products"]
+           "component_products", "Q_RELATIVE_ERROR", "gauge_error"]
+
+# Relative error of gauged monthly discharge: a few percent for a rated station (common practice;
+# the 5% used here is from memory of typical stage-discharge uncertainty, not from a standard).
+Q_RELATIVE_ERROR = 0.05
 
 STATED, COLLOCATION, SPREAD, NONE = "stated", "collocation", "spread", "none"
 METHODS = ("auto", STATED, COLLOCATION, SPREAD)
@@ -128,6 +132,13 @@ def stated_variance(attrs: dict, values, *, source: str) -> np.ndarray | None:
             raise InputError(f"source {source!r}: field {field!r}: {v!r} must be a positive finite number")
     x = np.asarray(values, dtype=np.float64)
     return (float(rel or 0.0) * x) ** 2 + float(ab or 0.0) ** 2
+
+
+def gauge_error(values, relative_error: float = Q_RELATIVE_ERROR) -> np.ndarray:
+    """Standard error of a gauged term (outlet Q, a gauged flow) per month: ``relative_error * |value|``, in the
+    units of ``values`` (mm/month); the one place for the error of gauged terms (selection band, estimates by
+    difference, merge)."""
+    return relative_error * np.abs(np.asarray(values, dtype=np.float64))
 
 
 def collocation_variances(stack, names, *, component: str = "", min_months: int = MIN_COLLOCATION_MONTHS) -> dict:

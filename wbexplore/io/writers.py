@@ -410,7 +410,7 @@ def read_netcdf(path: str | os.PathLike, *, instance: str = "basin"):
     path : path-like
         A netCDF file.
     instance : str, keyword-only
-        As for `cf_ready`.
+        As for `cf_ready` (kept for symmetry: every dimension written with ``<dim>_id`` labels is restored).
 
     Returns
     -------
