@@ -341,3 +341,69 @@ def test_incremental_series_export_passes_and_its_position_is_in_the_unit(study,
     unit = shapely.box(*boxes["A"]).difference(shapely.box(*boxes["B"]))
     assert not unit.contains(unit.centroid)  # the case where a centroid would be wrong
     assert unit.contains(shapely.Point(float(back["lon"]), float(back["lat"])))
+
+
+# --------------------------------------------------------------------------- merge and estimate outputs
+@pytest.fixture
+def stated_study(study):
+    """The study with a stated error for each product (one product per component: the merge weighs by them)."""
+    doc = yaml.safe_load(study.read_text())
+    for s, err in zip(doc["sources"], (5.0, 4.0, 8.0)):
+        s["absolute_error_mm"] = err
+    study.write_text(yaml.safe_dump(doc, sort_keys=False))
+    return study
+
+
+def _clean(path):
+    bad = cf_failures(path)
+    assert bad["errors"] == bad["warnings"] == bad["exceptions"] == [], bad
+
+
+def test_merge_output_passes_the_cf_checker_and_reads_back(stated_study, tmp_path, capsys, offline):
+    """`wbexplore merge` writes through `write_netcdf`: no error, warning or exception of the cf:1.8 checks (the
+    text labels of the product dimension become an auxiliary ``product_id``: a string coordinate variable made
+    the checker raise), the caution text in the global attributes, a position per basin, and the numbers of
+    `merge_products` bitwise after `read_netcdf`."""
+    from wbexplore.balance.merge import merge_products
+    from wbexplore.io.writers import CAUTION, read_netcdf
+
+    out = tmp_path / "merged.nc"
+    rc, _o, err = run_cli(["merge", stated_study, "--all", "--method", "ckf", "--out", out], capsys)
+    assert rc == 0, err
+    _clean(out)
+    back = read_netcdf(out)
+    ref = merge_products(_series(stated_study), method="ckf")
+    assert back.attrs["caution"] == CAUTION and back.attrs["merge_method"] == "ckf"
+    assert list(back["basin"].values) == ["A", "B"] and list(back["product"].values) == ["rain", "evap", "tws"]
+    assert np.isfinite(back["lat"].values).all() and np.isfinite(back["lon"].values).all()
+    assert set(ref.data_vars) == set(back.data_vars) - {"time_bnds"}
+    for n in ref.data_vars:
+        np.testing.assert_array_equal(back[n].values, ref[n].values)
+        assert back[n].attrs["merge_method"] == "ckf"
+    assert back["merged_P"].attrs["ancillary_variables"] == "merged_P_standard_error"
+
+
+def test_estimate_output_passes_the_cf_checker_and_reads_back(stated_study, tmp_path, capsys, offline):
+    """`wbexplore estimate ... --out FILE.nc` writes through `write_netcdf`: no error, warning or exception of the
+    cf:1.8 checks with a whole water year in the file, the basin's position and identifier, the caution text
+    in the global attributes, and the numbers of `estimate_dataset` bitwise after `read_netcdf`."""
+    from wbexplore.balance import ClosureOptions, Selection
+    from wbexplore.balance.estimate import estimate_by_difference
+    from wbexplore.io.estimates import estimate_dataset
+    from wbexplore.io.writers import CAUTION, read_netcdf
+
+    out = tmp_path / "et.nc"
+    rc, _o, err = run_cli(["estimate", stated_study, "--basin", "A", "--term", "ET", "--P", "rain", "--TWSA", "tws",
+                           "--water-year-start", "2", "--out", out], capsys)
+    assert rc == 0, err
+    _clean(out)
+    back = read_netcdf(out)
+    sel = Selection.from_options("A", ClosureOptions(water_year_start=2), P="rain", ET=None, TWSA="tws")
+    ref = estimate_dataset(estimate_by_difference(_series(stated_study), sel, "ET", strict=True))
+    assert back.sizes["water_year"] == 1 and CAUTION in back.attrs["comment"]
+    assert str(back["basin_id"].values) == "A" and np.isfinite(float(back["lat"])) and np.isfinite(float(back["lon"]))
+    assert set(ref.data_vars) == set(back.data_vars)
+    for n in ref.data_vars:
+        np.testing.assert_array_equal(back[n].values, ref[n].values)
+    assert np.isfinite(back["ET"].values).sum() >= 12
+    assert back["ET"].attrs["ancillary_variables"] == "ET_standard_error"

@@ -15,12 +15,19 @@ import xarray as xr
 
 from utils import box_basins, canonical_series, lonlat_grid, monthly, one_line_error, run_cli, write_catalog, write_nc
 from wbexplore.balance import ClosureOptions, closure_terms, constrained_correction, rank, triple_collocation
-from wbexplore.balance.merge import (MERGE_METHODS, collocation_error_variances, force_closure, inverse_variance_merge,
-                                     merge_products, proportional_redistribution, with_merged)
+from wbexplore.balance.merge import (MERGE_METHODS, force_closure, inverse_variance_merge, merge_products,
+                                     proportional_redistribution, with_merged)
+from wbexplore.balance.uncertainty import collocation_variances
 from wbexplore.balance.terms import BASE_TERMS, term_signs
 from wbexplore.errors import InputError
 
 UNMATCHED_BACKWARD = ClosureOptions(storage_change="backward", matched=False)
+
+
+def collocation_error_variances(stack, names):
+    """The collocation error variances the merge weighs with (`uncertainty.collocation_variances`), as an array."""
+    tc = collocation_variances(stack, names)
+    return np.array([tc[n]["error_variance"] for n in names])
 
 
 def _one_month():
@@ -209,6 +216,48 @@ def test_unknown_method_and_basin():
         merge_products(_stated(ds), method="ckf", basins=["NOPE"])
 
 
+def _three_p(nt, *, seed=4):
+    """canonical_series with a third P product (the truth plus independent noise of sd 7 mm/month)."""
+    ds, _ = canonical_series(nb=1, nt=nt)
+    noise = np.random.default_rng(seed).normal(0, 7.0, ds["P0"].shape)
+    ds["P2"] = (("basin", "time"), ds["P0"].values + noise, dict(ds["P0"].attrs))
+    ds["valid_fraction_P2"] = ds["valid_fraction_P0"].copy()
+    return ds
+
+
+def test_each_product_gets_its_error_in_the_one_order_of_the_band():
+    """Stated first, then collocation, product by product (the order of `wbexplore.balance.uncertainty`): one
+    P product with a catalog error and two without are weighed by that error and by collocation over all three,
+    the same numbers `uncertainty.product_error` gives the band of a selection."""
+    from wbexplore.balance import uncertainty as unc
+    from wbexplore.balance.merge import product_error_variances
+
+    ds = _stated(_three_p(60))
+    ds["P1"].attrs = {k: v for k, v in ds["P1"].attrs.items() if k != "absolute_error_mm"}
+    _, errs = product_error_variances(ds, "P", "B0")
+    assert errs.products == ("P0", "P1", "P2") and errs.methods == ("stated", "collocation", "collocation")
+    for i, s in enumerate(errs.products):
+        band = unc.product_error(ds, s, 0)
+        assert band.method == errs.methods[i]
+        np.testing.assert_allclose(errs.variance[i], band.variance, rtol=1e-12)
+    np.testing.assert_allclose(errs.variance[0], 4.0**2)  # absolute_error_mm 4 (arithmetic)
+    m = merge_products(ds, method="ckf")
+    assert m["merged_P"].attrs["error_variance_source"] == "collocation / stated"
+    assert np.isnan(m["error_variance"].sel(product="P0")) and m["error_variance"].sel(product="P2") > 0
+
+
+def test_one_minimum_of_common_months_for_the_band_and_the_merge():
+    """Collocation needs `uncertainty.MIN_COLLOCATION_MONTHS` (24) common months in both: with 20 the band
+    falls back to the spread and the merge refuses, both naming the minimum."""
+    from wbexplore.balance import uncertainty as unc
+
+    ds = _three_p(20)
+    assert unc.MIN_COLLOCATION_MONTHS == 24
+    assert unc.product_error(ds, "P1", 0).method == unc.SPREAD
+    with pytest.raises(InputError, match=r"basin 'B0': P: period too short .* 20 months .* at least 24 needed"):
+        merge_products(ds, method="collocation")
+
+
 # --------------------------------------------------------------------------- collocation
 def test_collocation_of_three_is_triple_collocation_and_more_recover_known_errors():
     rng = np.random.default_rng(11)
@@ -233,7 +282,7 @@ def test_collocation_of_three_is_triple_collocation_and_more_recover_known_error
             per[i].append(tc[str(i)]["error_variance"])
     np.testing.assert_allclose(collocation_error_variances(X, list("abcd")), [np.mean(per[i]) for i in range(4)],
                                rtol=1e-9)
-    # a gap in one product: each triplet on its own common months, still the known variances
+    # a gap in one product: the months where all four are valid, still the known variances
     X[3, :500] = np.nan
     np.testing.assert_allclose(collocation_error_variances(X, list("abcd")), sd**2, rtol=0.05)
 
@@ -326,7 +375,11 @@ def test_cli_merge_writes_the_merged_series(study, tmp_path, capsys, method):
     rc, text, err = run_cli(["merge", study / "good.yaml", "--all", "--method", method, "--out", out], capsys)
     assert rc == 0, err
     assert "largest residual after closure" in text
-    with xr.open_dataset(out) as m:
+    from wbexplore.io.writers import read_netcdf
+
+    with xr.open_dataset(out) as f:  # CF on file: the basin labels are the timeseries_id variable basin_id
+        assert list(f["basin_id"].values) == ["B1", "B2"] and f["basin_id"].attrs["cf_role"] == "timeseries_id"
+    with read_netcdf(out) as m:
         assert list(m.basin.values) == ["B1", "B2"]
         assert m.attrs["merge_method"] == method and "Screening-level" in m.attrs["caution"]
         for c in ("P", "ET", "TWSA"):

@@ -293,3 +293,18 @@ def test_non_positive_collocation_falls_back_or_is_refused_when_asked():
     with pytest.raises(InputError, match="collocation error variance of 'p0' is -.*not positive"):
         unc.product_error(ds, "p0", 0, method="collocation")
     assert unc.product_error(ds, "p0", 0, strict=True).method == unc.SPREAD  # strict is about short periods only
+
+
+def test_merged_sources_are_not_collocated_with_their_products():
+    """A merged series is made from the component's products, so its error is not independent of theirs:
+    collocation assumes independent errors (Stoffelen 1998) and must not count it as a third product
+    (found here: two P products plus ``merged_P`` were collocated as three)."""
+    from utils import canonical_series
+    from wbexplore.balance.merge import merge_products, with_merged
+
+    ds, _ = canonical_series(nb=1, nt=60)
+    given = {s: 4.0 for s in ("P0", "P1", "ET0", "ET1", "TWSA0", "TWSA1")}
+    both = with_merged(ds, merge_products(ds, method="ckf", variances=given))
+    assert unc.component_products(both, "P") == ["P0", "P1"]
+    e = unc.product_error(both, "P1", 0)
+    assert e.method == unc.SPREAD and "merged_P" not in e.note, e.note

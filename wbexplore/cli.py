@@ -623,8 +623,10 @@ def _cmd_report(args) -> int:
 def _cmd_merge(args) -> int:
     from .balance import ClosureOptions
     from .balance.merge import merge_products
+    from .cache import load_basins
+    from .io.basins import representative_points
     from .io.catalog import open_catalog
-    from .io.writers import atomic_path, check_output
+    from .io.writers import check_output, write_netcdf
 
     opts = ClosureOptions(storage_change=args.storage_change, matched=not args.unmatched,
                           min_valid_fraction=args.min_valid_fraction)
@@ -632,11 +634,12 @@ def _cmd_merge(args) -> int:
     check_output(args.out, overwrite=args.force, protect=cat)  # before the series are loaded
     ds = _series(args)
     merged = merge_products(ds, method=args.method, basins=None if args.all else [args.basin], options=opts)
-    merged.attrs.update({"Conventions": "CF-1.8", "title": f"{cat.title}: merged best estimates ({args.method})",
+    merged.attrs.update({"title": f"{cat.title}: merged best estimates ({args.method})",
                          "source": f"wbexplore {__version__} merge of catalog {Path(args.catalog).name}",
                          "wbexplore_version": __version__, "caution": _caution()})
-    with atomic_path(args.out, overwrite=args.force, protect=cat) as tmp, _no_distributed_probe():
-        merged.to_netcdf(tmp, format="NETCDF4", engine="netcdf4")
+    with _no_distributed_probe():
+        write_netcdf(merged, args.out, overwrite=args.force, protect=cat, time_step="month",
+                     positions=representative_points(load_basins(cat)))
     worst = float(abs(merged["residual_after"]).max(skipna=True)) if merged["residual_after"].notnull().any() \
         else float("nan")
     print(f"wrote {args.out}: {merged.sizes['basin']} basin(s) x {merged.sizes['time']} months, method "
@@ -680,7 +683,13 @@ def _cmd_estimate(args) -> int:
         best = best_selection(ds, args.basin, opts, by=args.by)
         sel = best.replace(**{own: given[own]}) if own else best
     est = estimate_by_difference(ds, sel, args.term, uncertainty=args.uncertainty, strict=True)
-    write_estimate(est, args.out, overwrite=args.force, protect=cat)
+    positions = None
+    if args.out.lower().endswith(".nc"):
+        from .selection import series_positions
+
+        positions = series_positions(cat, sel.basin, incremental=args.incremental)
+    with _no_distributed_probe():
+        write_estimate(est, args.out, overwrite=args.force, protect=cat, positions=positions)
     lt = est.long_term
     print(f"wrote {args.out}: {est.formula}, basin {sel.basin}, {len(est.monthly)} months, "
           f"{lt['water_years']} whole water years; long-term {args.term} {lt['estimate']:.1f} +- "

@@ -34,7 +34,7 @@ from .io.writers import CAUTION, atomic_path, cf_ready, check_output, same_file,
 from .io.yamlsafe import load_yaml
 
 __all__ = ["SELECTION_VERSION", "export_selection", "selection_document", "load_selection", "replay",
-           "write_series_csv", "write_series_netcdf", "series_dataset"]
+           "write_series_csv", "write_series_netcdf", "series_dataset", "series_positions"]
 
 SELECTION_VERSION = 1
 _REQUIRED = ("wbexplore_selection", "catalog", "basin", "period", "sources", "storage_change", "metrics")
@@ -223,7 +223,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
             write_series_csv(res, series, unit_system=unit_system, overwrite=overwrite, protect=cat)
         else:
             write_series_netcdf(res, series, doc=doc, overwrite=overwrite, protect=cat,
-                                positions=_positions(cat, sel.basin, incremental=incremental))
+                                positions=series_positions(cat, sel.basin, incremental=incremental))
         written["series"] = str(series)
     with atomic_path(out, overwrite=overwrite, protect=cat) as tmp:
         tmp.write_text("# wbexplore selection file: replay with `wbexplore replay " + out.name + "`\n"
@@ -658,9 +658,11 @@ def series_dataset(result, *, doc: dict | None = None):
     return cf_ready(ds, time_step=None)  # the bounds are the month's, built above
 
 
-def _positions(cat, basin: str, *, incremental: bool = False):
-    """A point inside ``basin`` (or its incremental unit): the position of its series in CF files; None for a
-    unit that is not among the catalog's basin outlines (a water body: its file is written without one)."""
+def series_positions(cat, basin: str, *, incremental: bool = False):
+    """A point inside ``basin`` (or its incremental unit): the position of its series in CF files (lat, lon
+    in degrees, by basin id; `wbexplore.io.basins.representative_points`); None for a unit that is not among
+    the catalog's basin outlines (a water body: its file is written without one). Used by every one-basin
+    netCDF output (the series export, the estimate by difference)."""
     from .cache import load_basins, load_incremental_basins
     from .io.basins import representative_points
 

@@ -37,9 +37,7 @@ __all__ = [
 
 UNIT_SYSTEMS = ("mm", "m3", "m3/s")
 
-# Relative error of gauged monthly discharge: a few percent for a rated station (common practice;
-# the 5% used here is from memory of typical stage-discharge uncertainty, not from a standard).
-Q_RELATIVE_ERROR = 0.05
+Q_RELATIVE_ERROR = unc.Q_RELATIVE_ERROR  # re-exported: the value lives with the other errors (uncertainty.py)
 
 
 @dataclass(frozen=True)
@@ -208,7 +206,7 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     errors = {"P": unc.product_error(ds, sel.P, b, values=P_raw, **kw),
               "ET": unc.product_error(ds, sel.ET, b, values=ET_raw, **kw),
               "TWSA": unc.product_error(ds, sel.TWSA, b, values=M_used, **kw)}
-    sQ = q_relative_error * np.abs(Q_raw)
+    sQ = unc.gauge_error(Q_raw, q_relative_error)
 
     def flux_var(v):
         return match_window_variance(v, sel.storage_change) if sel.matched else v
@@ -226,7 +224,7 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
         vr = np.einsum("i,it,ij,jt,j->t", g, sig, C, sig, g)
     sig_flows = {}
     for t in flows:
-        sig_flows[t.name] = np.sqrt(flux_var((q_relative_error * np.abs(a[f"{t.name}_raw"][0])) ** 2))
+        sig_flows[t.name] = np.sqrt(flux_var(unc.gauge_error(a[f"{t.name}_raw"][0], q_relative_error) ** 2))
         vr = vr + sig_flows[t.name] ** 2
     sr = np.sqrt(vr)
     valid = np.isfinite(res)

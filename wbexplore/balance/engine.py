@@ -25,9 +25,12 @@ from .options import ClosureOptions
 from .storage import fill_gaps, match_state_window, match_window, shift_later, state_storage_change, storage_change
 from .terms import BASE_TERMS, DS, P, Q, SOURCE_COMPONENTS, WATERBODY_TERMS, combine, flow_terms
 
-__all__ = ["closure_terms", "closure_metrics", "closure_arrays", "combination_arrays", "metrics_arrays", "ENSEMBLE_PREFIX", "with_ensembles", "SOURCE_DIMS"]
+__all__ = ["closure_terms", "closure_metrics", "closure_arrays", "combination_arrays", "metrics_arrays", "ENSEMBLE_PREFIX", "MERGED_PREFIX", "DERIVED_PREFIXES", "with_ensembles", "SOURCE_DIMS", "masked_values"]
 
 ENSEMBLE_PREFIX = "ensemble_"
+MERGED_PREFIX = "merged_"  # `wbexplore.balance.merge`: merged best estimates
+# Sources computed from a component's products (not independent of them: never collocated with them)
+DERIVED_PREFIXES = (ENSEMBLE_PREFIX, MERGED_PREFIX)
 SOURCE_DIMS = {c: f"{c}_source" for c in SOURCE_COMPONENTS}
 
 
@@ -98,21 +101,16 @@ def prepare(ds: xr.Dataset, options: ClosureOptions, sources: dict | None = None
 
 def _stack(ds, ids, min_vf, b):
     """(n_basins, n_sources, T) float64, months below the valid fraction masked (b: index array)."""
-    out = []
-    for s in ids:
-        v = ds.variables[s].values[b].astype(np.float64)
-        name = valid_fraction_name(s)
-        if name in ds.variables:
-            v = np.where(ds.variables[name].values[b] >= min_vf, v, np.nan)
-        out.append(v)
-    return np.stack(out, axis=1)
+    return np.stack([masked_values(ds, s, b, min_vf) for s in ids], axis=1)
 
 
-def _station(ds, name, b, min_vf):
+def masked_values(ds: xr.Dataset, name: str, b, min_valid_fraction: float) -> np.ndarray:
+    """float64 values of variable ``name`` at basin index ``b`` (an int: (T,); an index array: (basins, T)),
+    months where its ``valid_fraction_<name>`` is below ``min_valid_fraction`` (0..1) missing (NaN)."""
     v = ds.variables[name].values[b].astype(np.float64)
     vf = valid_fraction_name(name)
     if vf in ds.variables:
-        v = np.where(ds.variables[vf].values[b] >= min_vf, v, np.nan)
+        v = np.where(ds.variables[vf].values[b] >= min_valid_fraction, v, np.nan)
     return v
 
 
@@ -180,7 +178,7 @@ def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sour
     flows = flow_terms(ds)
     net = net_raw = None
     for t in flows:
-        raw = _station(ds, t.variable, b, mvf)
+        raw = masked_values(ds, t.variable, b, mvf)
         val = match(raw)
         out[f"{t.name}_raw"] = raw
         out[t.name] = val

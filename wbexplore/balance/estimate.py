@@ -37,7 +37,7 @@ import xarray as xr
 from ..errors import InputError
 from ..series import DISCHARGE, ROLE_DISCHARGE, ROLE_SOURCE
 from . import uncertainty as unc
-from .closure import Q_RELATIVE_ERROR, Selection
+from .closure import Selection
 from .engine import closure_arrays, water_year
 from .storage import apply_kernel, kernel, sum_variance
 from .terms import BASE_TERMS, SOURCE_COMPONENTS, balance_text
@@ -124,7 +124,7 @@ def _with_placeholders(ds: xr.Dataset, sel: Selection, term: str) -> tuple[xr.Da
 
 
 def estimate_by_difference(ds: xr.Dataset, sel: Selection, term: str = "ET", *,
-                           q_relative_error: float = Q_RELATIVE_ERROR, uncertainty: str | None = None,
+                           q_relative_error: float = unc.Q_RELATIVE_ERROR, uncertainty: str | None = None,
                            strict: bool = False) -> DifferenceEstimate:
     """Estimate ``term`` from the other terms of ``sel`` (monthly, per water year and long-term).
 
@@ -177,7 +177,7 @@ def estimate_by_difference(ds: xr.Dataset, sel: Selection, term: str = "ET", *,
         if t.gridded:
             var = errors[t.component].variance
         else:
-            var = (q_relative_error * np.abs(pick(f"{t.name}_raw"))) ** 2
+            var = unc.gauge_error(pick(f"{t.name}_raw"), q_relative_error) ** 2
         known.append((t, var, kernel(t.name, sm, matched=opts.matched)))
     sign = {t.name: t.sign for t in terms}
     acc = None

@@ -4,15 +4,16 @@ Two steps, per basin (pure computation: series in, series out):
 
 1. **Merging.** The products of each component are combined month by month with inverse-error-variance
    weights, ``x = sum(x_k / v_k) / sum(1 / v_k)``, ``var(x) = 1 / sum(1 / v_k)`` (independent errors; a month
-   uses the products that have it). The error variances ``v_k`` (mm2) are, in order: the errors the catalog
-   states for every product of the component (``relative_error``, ``absolute_error_mm``: what the analyst
-   knows wins, as for the uncertainty of one selection); else collocation where the component has at least
-   three products (triple collocation, Stoffelen 1998; with more, each product's estimate is the mean of its
-   triple-collocation estimates over every triplet that holds it: a multiple-collocation estimate); else the
-   merge is refused with the number of products. Method ``collocation`` takes collocation errors only (three
-   products or more for every component). Collocation estimates errors *after* a linear rescaling of each
-   product: a product that is a scaled copy of the truth (a multiplicative bias, a damped seasonal cycle) has
-   a collocation error near zero, and a sampling estimate at or below zero is refused, never floored.
+   uses the products that have it). The error variance ``v_k`` (mm2) of each product follows the one order of
+   `wbexplore.balance.uncertainty` (the same as for the uncertainty of one selection): the error the catalog
+   states for it (``relative_error``, ``absolute_error_mm``: what the analyst knows wins); else collocation
+   over the component's products (at least three, at least `uncertainty.MIN_COLLOCATION_MONTHS` months where
+   all are valid; triple collocation, Stoffelen 1998; with more, multiple collocation); else the merge is
+   refused with the number of products (the product spread, which a band may fall back to, is not an error of
+   a product and gives no weights). Method ``collocation`` takes collocation errors only (three products or
+   more for every component). Collocation estimates errors *after* a linear rescaling of each product: a
+   product that is a scaled copy of the truth (a multiplicative bias, a damped seasonal cycle) has a
+   collocation error near zero, and a sampling estimate at or below zero is refused, never floored.
 2. **Forced closure.** The merged P, ET, TWSA monthly means, the gauged Q and every gauged flow are moved,
    as little as their weights allow, until the balance closes in the engine's own form
    (`wbexplore.balance.engine`: window-matched fluxes against the storage difference, or raw fluxes when
@@ -26,7 +27,7 @@ Two steps, per basin (pure computation: series in, series out):
                     exactly ``term_k - sign_k * residual * |term_k| / sum |term_j|``). Error variances are
                     carried through that linear map.
    ``ckf``          the constrained Kalman filter (Pan and Wood 2006): weights are the error variances of
-                    step 1 and of gauged Q (`Q_RELATIVE_ERROR`); posterior ``C - C G' (G C G')^-1 G C``.
+                    step 1 and of gauged Q (`uncertainty.gauge_error`); posterior ``C - C G' (G C G')^-1 G C``.
    ``collocation``  multiple collocation for every component (no stated errors), then the filter.
 
 The merged series become sources: ``merged_P``, ``merged_ET``, ``merged_TWSA`` (``role="source"``) with
@@ -39,34 +40,27 @@ so that `rank`, export and the explorer treat them like any product.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from itertools import combinations
 
 import numpy as np
 import xarray as xr
 
 from ..errors import InputError
-from ..series import source_ids, valid_fraction_name
-from .closure import Q_RELATIVE_ERROR
-from .collocation import collocation_from_covariance, triple_collocation
+from . import uncertainty as unc
 from .correction import constrained_projection
-from .engine import ENSEMBLE_PREFIX, basin_ids
+from .engine import MERGED_PREFIX, basin_ids, masked_values
 from .options import ClosureOptions
 from .storage import match_window, storage_change
 from .terms import SOURCE_COMPONENTS, balance_terms
 
-__all__ = ["MERGE_METHODS", "MERGED_PREFIX", "MIN_COLLOCATION_MONTHS", "ComponentErrors", "merge_products",
-           "product_error_variances", "collocation_error_variances", "inverse_variance_merge", "force_closure",
-           "proportional_redistribution", "with_merged", "merged_name"]
+__all__ = ["MERGE_METHODS", "MERGED_PREFIX", "ComponentErrors", "merge_products", "product_error_variances",
+           "inverse_variance_merge", "force_closure", "proportional_redistribution", "with_merged", "merged_name"]
 
 MERGE_METHODS = {
     "pr": "proportional redistribution of the residual",
     "ckf": "constrained Kalman filter (Pan and Wood 2006)",
     "collocation": "multiple collocation, then the constrained Kalman filter",
 }
-MERGED_PREFIX = "merged_"
-# Fewer common months than this and collocation error variances are refused: with n samples the sampling
-# error of a variance is about sqrt(2 / n) of it (70% at 4 months, 29% at 24), common practice asks for years.
-MIN_COLLOCATION_MONTHS = 24
+GIVEN = "given"  # error variances passed to `merge_products` (``variances``): they override the order
 
 
 def merged_name(term_or_component: str) -> str:
@@ -80,14 +74,20 @@ class ComponentErrors:
 
     component : "P" | "ET" | "TWSA"
     products : product ids, in series order
-    source : "collocation" | "stated"
+    methods : how each product's error was obtained: `uncertainty.STATED`, `uncertainty.COLLOCATION` or
+        ``"given"`` (one per product)
     variance : (products, time) error variances, mm2 (mm/month squared for fluxes)
     """
 
     component: str
     products: tuple
-    source: str
+    methods: tuple
     variance: np.ndarray
+
+    @property
+    def source(self) -> str:
+        """The methods used, sorted and joined ("collocation / stated" where products differ)."""
+        return " / ".join(sorted(set(self.methods)))
 
 
 def _check_method(method: str) -> None:
@@ -95,57 +95,10 @@ def _check_method(method: str) -> None:
         raise InputError(f"merge method {method!r} is not one of {', '.join(MERGE_METHODS)}")
 
 
-def _products(ds: xr.Dataset, component: str) -> list[str]:
-    return [s for s in source_ids(ds, component) if not s.startswith((ENSEMBLE_PREFIX, MERGED_PREFIX))]
-
-
 def _stack(ds, ids, b, min_vf) -> np.ndarray:
     """(products, time) values of basin index ``b`` ((products, basins, time) for an index array), months below
     the valid fraction missing."""
-    out = []
-    for s in ids:
-        v = ds.variables[s].values[b].astype(np.float64)
-        vf = valid_fraction_name(s)
-        if vf in ds.variables:
-            v = np.where(ds.variables[vf].values[b] >= min_vf, v, np.nan)
-        out.append(v)
-    return np.stack(out)
-
-
-def collocation_error_variances(stack, names, *, min_samples: int = MIN_COLLOCATION_MONTHS) -> np.ndarray:
-    """Error variance (units of the data, squared) of each of three or more products by collocation.
-
-    Three products: triple collocation (`wbexplore.balance.collocation.triple_collocation`). More: the
-    mean, for each product, of its triple-collocation estimates over every triplet that holds it (a
-    multiple-collocation estimate; each triplet uses its own common valid months).
-    """
-    stack = np.asarray(stack, dtype=np.float64)
-    k = stack.shape[0]
-    if k < 3:
-        raise InputError(f"collocation needs at least 3 products, got {k}")
-    finite = np.isfinite(stack)
-    common = np.all(finite, axis=0)
-    if k == 3 or not np.all(finite == finite[0]):
-        sums = np.zeros(k)
-        counts = np.zeros(k)
-        for trio in combinations(range(k), 3):  # each triplet on its own common valid months
-            tc = triple_collocation(*stack[list(trio)], names=[str(i) for i in trio], min_samples=min_samples)
-            for i in trio:
-                sums[i] += tc[str(i)]["error_variance"]
-                counts[i] += 1
-        return sums / counts
-    n = int(common.sum())  # every triplet has the same months: one covariance serves them all
-    if n < min_samples:
-        raise InputError(f"triple collocation needs at least {min_samples} common valid samples, got {n}")
-    return collocation_from_covariance(np.cov(stack[:, common]))
-
-
-def _stated(a: dict, values) -> np.ndarray | None:
-    if a.get("relative_error") is None and a.get("absolute_error_mm") is None:
-        return None
-    rel = float(a.get("relative_error") or 0.0)
-    ab = float(a.get("absolute_error_mm") or 0.0)
-    return (rel * np.abs(values)) ** 2 + ab**2
+    return np.stack([masked_values(ds, s, b, min_vf) for s in ids])
 
 
 def product_error_variances(ds: xr.Dataset, component: str, basin: str, *, method: str = "ckf",
@@ -159,49 +112,52 @@ def product_error_variances(ds: xr.Dataset, component: str, basin: str, *, metho
     the product has a value (naming the basin, product, month and value).
     """
     _check_method(method)
-    ids = _products(ds, component)
+    ids = unc.component_products(ds, component)
     b = basin_ids(ds).index(str(basin))
-    X = _stack(ds, ids, b, min_valid_fraction)
+    X = _stack(ds, ids, b, min_valid_fraction) if ids else np.zeros((0, ds.sizes["time"]))
     attrs = [ds.variables[s].attrs for s in ids]
     return X, _component_errors(X, ids, attrs, component=component, basin=basin, method=method,
                                 variances=variances, months=ds["time"].values)
 
 
 def _component_errors(X, ids, attrs, *, component, basin, method, variances, months) -> ComponentErrors:
-    """`ComponentErrors` of the (products, time) values ``X`` (the core of `product_error_variances`)."""
+    """`ComponentErrors` of the (products, time) values ``X`` (the core of `product_error_variances`): each
+    product's error by the order of `wbexplore.balance.uncertainty`, the product spread excepted (refused)."""
     where = f"basin {basin!r}: {component}"
-    stated = [_stated(a, X[i]) for i, a in enumerate(attrs)]
-    missing = [s for s, v in zip(ids, stated) if v is None]
+    T = X.shape[1]
     if variances is not None and ids and all(s in variances for s in ids):
-        V = np.stack([np.full(X.shape[1], float(variances[s])) for s in ids])
-        src = "given"
-    elif method != "collocation" and ids and not missing:
-        V = np.stack(stated)
-        src = "stated"
-    elif len(ids) >= 3:
-        try:
-            ev = collocation_error_variances(X, ids)
-        except InputError as exc:
-            raise InputError(f"{where}: {exc}") from None
-        V = np.repeat(ev[:, None], X.shape[1], axis=1)
-        src = "collocation"
-    elif method == "collocation":
-        raise InputError(f"{where} has {len(ids)} product(s) ({', '.join(ids) or 'none'}); method 'collocation' "
-                         f"needs at least 3 products of every component")
+        V = [np.full(T, float(variances[s])) for s in ids]
+        how = [GIVEN] * len(ids)
     else:
-        raise InputError(f"{where} has {len(ids)} product(s) ({', '.join(ids) or 'none'}): collocation needs "
-                         f"at least 3, and {', '.join(missing) or 'none'} state no error (relative_error or "
-                         f"absolute_error_mm in the catalog)")
+        V = [None if method == "collocation" else unc.stated_variance(a, X[i], source=s)
+             for i, (s, a) in enumerate(zip(ids, attrs))]
+        missing = [s for s, v in zip(ids, V) if v is None]
+        how = [unc.STATED if v is not None else unc.COLLOCATION for v in V]
+        if missing and len(ids) < 3:
+            if method == "collocation":
+                raise InputError(f"{where} has {len(ids)} product(s) ({', '.join(ids) or 'none'}); method "
+                                 f"'collocation' needs at least 3 products of every component")
+            raise InputError(f"{where} has {len(ids)} product(s) ({', '.join(ids) or 'none'}): collocation needs "
+                             f"at least 3, and {', '.join(missing)} state no error (relative_error or "
+                             f"absolute_error_mm in the catalog)")
+        if missing:
+            try:
+                tc = unc.collocation_variances(X, ids, component=component)
+            except InputError as exc:
+                raise InputError(f"{where}: {exc}") from None
+            V = [np.full(T, tc[s]["error_variance"]) if v is None else v for s, v in zip(ids, V)]
+    V = np.stack(V) if V else np.zeros((0, T))
     bad = np.isfinite(X) & ~(np.isfinite(V) & (V > 0))
     if bad.any():
         i, t = np.argwhere(bad)[0]
-        month = "" if src in ("collocation", "given") else f" in {str(months[t])[:7]}"
+        src = how[i]
+        month = "" if src in (unc.COLLOCATION, GIVEN) else f" in {str(months[t])[:7]}"
         hint = (" (collocation sees no error in a scaled copy of the truth, and errors shared between products "
                 "or a short period push its estimate below zero; state errors in the catalog instead)"
-                if src == "collocation" else "")
+                if src == unc.COLLOCATION else "")
         raise InputError(f"{where}: {src} error variance of product {ids[i]!r}{month} is {float(V[i, t]):.6g} "
                          f"mm2, not positive and finite{hint}")
-    return ComponentErrors(component, tuple(ids), src, V)
+    return ComponentErrors(component, tuple(ids), tuple(how), V)
 
 
 def inverse_variance_merge(values, variances) -> tuple:
@@ -326,7 +282,7 @@ def force_closure(values: dict, variances: dict, terms, options: ClosureOptions,
 
 
 def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: ClosureOptions | None = None,
-                   q_relative_error: float = Q_RELATIVE_ERROR, variances: dict | None = None) -> xr.Dataset:
+                   q_relative_error: float = unc.Q_RELATIVE_ERROR, variances: dict | None = None) -> xr.Dataset:
     """Merged best estimates of P, ET and TWSA for each basin, with the budget forced to close.
 
     Parameters
@@ -368,7 +324,7 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
     terms = balance_terms(ds)
     station = [t for t in terms if not t.gridded]
     T = ds.sizes["time"]
-    products = [s for c in SOURCE_COMPONENTS for s in _products(ds, c)]
+    products = [s for c in SOURCE_COMPONENTS for s in unc.component_products(ds, c)]
     out = {n: np.full((len(wanted), T), np.nan) for n in
            [merged_name(t.component if t.gridded else t.name) for t in terms]}
     se = {n: np.full((len(wanted), T), np.nan) for n in out}
@@ -381,16 +337,10 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
     b_all = np.array([all_ids.index(x) for x in wanted], dtype=np.intp)
     stacks = {}
     for c in SOURCE_COMPONENTS:  # (products, basins, time), read once
-        ids = _products(ds, c)
+        ids = unc.component_products(ds, c)
         stacks[c] = (ids, [ds.variables[s].attrs for s in ids],
                      _stack(ds, ids, b_all, opts.min_valid_fraction) if ids else np.zeros((0, len(wanted), T)))
-    station_values = {}
-    for t in station:
-        q = ds.variables[t.variable].values[b_all].astype(np.float64)
-        vf = valid_fraction_name(t.variable)
-        if vf in ds.variables:
-            q = np.where(ds.variables[vf].values[b_all] >= opts.min_valid_fraction, q, np.nan)
-        station_values[t.name] = q
+    station_values = {t.name: masked_values(ds, t.variable, b_all, opts.min_valid_fraction) for t in station}
     months = ds["time"].values
     for bi, basin in enumerate(wanted):
         vals, vars_ = {}, {}
@@ -403,13 +353,13 @@ def merge_products(ds: xr.Dataset, *, method: str, basins=None, options: Closure
                 m, mv, n = inverse_variance_merge(X, errs.variance)
                 vals[t.name], vars_[t.name] = m, mv
                 counts[t.component][bi] = n
-                err_src.setdefault(t.component, set()).add(errs.source)
-                if errs.source != "stated":
-                    for i, s in enumerate(errs.products):
+                err_src.setdefault(t.component, set()).update(errs.methods)
+                for i, s in enumerate(errs.products):
+                    if errs.methods[i] != unc.STATED:  # one number for every month
                         err_var[bi, products.index(s)] = errs.variance[i, 0]
             else:
                 q = station_values[t.name][bi]
-                vals[t.name], vars_[t.name] = q, (q_relative_error * q) ** 2
+                vals[t.name], vars_[t.name] = q, unc.gauge_error(q, q_relative_error) ** 2
         adj, post, res, _ = force_closure(vals, vars_, terms, opts, method=method)
         after = _residual(adj, terms, opts)
         res_before[bi], res_after[bi] = res, after
@@ -448,7 +398,7 @@ def _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, produc
         name = merged_name(t.component if t.gridded else t.name)
         units = "mm" if t.storage else "mm/month"
         if t.gridded:
-            ids = _products(ds, t.component)
+            ids = unc.component_products(ds, t.component)
             src = " / ".join(sorted(err_src.get(t.component, ())))
             attrs = {"role": "source", "component": t.component, "units": units, "source_id": name,
                      "long_name": f"merged {t.component} ({', '.join(ids)}; inverse error variance, errors: "

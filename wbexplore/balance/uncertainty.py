@@ -1,16 +1,22 @@
 """The error of the chosen product, not of the crowd: per-month error variances of a source.
 
-In order (``method="auto"``), the error variance of a gridded source for each month is
+This module is the one place that knows which error a product gets. The order, for each product on its
+own (used by the uncertainty of a selection, `product_error`, and by the merge, `wbexplore.balance.merge`):
 
 1. ``stated``: the catalog states it (``relative_error``, ``absolute_error_mm``: standard errors, as
-   ``sqrt((relative_error * value)^2 + absolute_error_mm^2)``);
-2. ``collocation``: the component has at least three products with at least `MIN_COLLOCATION_MONTHS`
-   common valid months in the period: the collocation error variance of the product (triple
-   collocation, Stoffelen 1998; covariance form of McColl et al. 2014, GRL 41:6229; with more than three
-   products the multiple-collocation mean over triplets, `collocation.multiple_collocation`), the same
-   for every month;
-3. ``spread``: the standard deviation of the component's products in each month, which measures their
-   disagreement, not the error of the chosen one (labelled so wherever it is shown).
+   ``sqrt((relative_error * value)^2 + absolute_error_mm^2)``; `stated_variance`);
+2. ``collocation``: the component has at least three independent products (`component_products`: ensemble
+   means and merged series left out) with at least `MIN_COLLOCATION_MONTHS` months where every one of them is
+   valid in the period: the collocation error variance of the product (triple collocation, Stoffelen 1998;
+   covariance form of McColl et al. 2014, GRL 41:6229; with more than three products the multiple-collocation
+   mean over triplets, `collocation.multiple_collocation`; `collocation_variances`), the same for every month;
+3. otherwise: for a band (`product_error`, ``method="auto"``), ``spread``: the standard deviation of the
+   component's products in each month, which measures their disagreement, not the error of the chosen one
+   (labelled so wherever it is shown); for a merge, a refusal (`InputError`, one line): weights need an
+   error of each product, and the spread is not one.
+
+A collocation estimate at or below zero is never floored: the band falls back to the spread and says why,
+the merge (and ``method="collocation"``) refuses, naming the product.
 
 What was used is recorded (`ProductError.method`, `method_label`) and travels with every output that
 carries an uncertainty. The product spread stays available on its own as `product_disagreement`.
@@ -18,8 +24,7 @@ carries an uncertainty. The product spread stays available on its own as `produc
 What collocation measures: the *random* error of a product around a linear calibration of the truth
 (``x = a + b t + e``, errors independent of the truth and of each other). A multiplicative bias or a
 damped seasonal cycle is part of ``a + b t`` and is not in the error variance: collocation is blind to
-systematic errors. A collocation estimate at or below zero (a product whose random error is small
-against the sampling error) is not used: ``auto`` falls back to the spread and says why.
+systematic errors.
 
 Pure computation: no files, no prints.
 """
@@ -32,13 +37,18 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError
-from ..series import source_ids, valid_fraction_name
+from ..series import source_ids
 from .collocation import multiple_collocation
+from .engine import DERIVED_PREFIXES, masked_values
 
 __all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "MIN_COLLOCATION_MONTHS",
            "DEFAULT_METHOD", "product_error", "product_errors", "all_product_errors", "product_disagreement", "stated_variance",
            "collocation_variances", "method_label", "uncertainty_text", "legend_text", "check_method",
-           "component_products"]
+           "component_products", "Q_RELATIVE_ERROR", "gauge_error"]
+
+# Relative error of gauged monthly discharge: a few percent for a rated station (common practice;
+# the 5% used here is from memory of typical stage-discharge uncertainty, not from a standard).
+Q_RELATIVE_ERROR = 0.05
 
 STATED, COLLOCATION, SPREAD, NONE = "stated", "collocation", "spread", "none"
 METHODS = ("auto", STATED, COLLOCATION, SPREAD)
@@ -97,18 +107,10 @@ class ProductError:
 
 
 def component_products(ds: xr.Dataset, component: str) -> list[str]:
-    """The products of ``component`` (ensemble means left out: they are not independent of their members)."""
-    from .engine import ENSEMBLE_PREFIX
+    """The independent products of ``component``: ensemble means and merged series are left out (they are
+    computed from the products, so their errors are not independent of the products' errors)."""
+    return [s for s in source_ids(ds, component) if not s.startswith(DERIVED_PREFIXES)]
 
-    return [s for s in source_ids(ds, component) if not s.startswith(ENSEMBLE_PREFIX)]
-
-
-def _masked(ds, sid, b, min_vf):
-    v = ds.variables[sid].values[b].astype(np.float64)
-    name = valid_fraction_name(sid)
-    if name in ds.variables:
-        return np.where(ds.variables[name].values[b] >= min_vf, v, np.nan)
-    return v
 
 
 def stated_variance(attrs: dict, values, *, source: str) -> np.ndarray | None:
@@ -130,6 +132,13 @@ def stated_variance(attrs: dict, values, *, source: str) -> np.ndarray | None:
             raise InputError(f"source {source!r}: field {field!r}: {v!r} must be a positive finite number")
     x = np.asarray(values, dtype=np.float64)
     return (float(rel or 0.0) * x) ** 2 + float(ab or 0.0) ** 2
+
+
+def gauge_error(values, relative_error: float = Q_RELATIVE_ERROR) -> np.ndarray:
+    """Standard error of a gauged term (outlet Q, a gauged flow) per month: ``relative_error * |value|``, in the
+    units of ``values`` (mm/month); the one place for the error of gauged terms (selection band, estimates by
+    difference, merge)."""
+    return relative_error * np.abs(np.asarray(values, dtype=np.float64))
 
 
 def collocation_variances(stack, names, *, component: str = "", min_months: int = MIN_COLLOCATION_MONTHS) -> dict:
@@ -165,7 +174,7 @@ def product_disagreement(ds: xr.Dataset, component: str, basin_index: int, *, mi
     ids = component_products(ds, component)
     if len(ids) < 2:
         return np.full(ds.sizes["time"], np.nan)
-    return _spread(np.stack([_masked(ds, s, basin_index, min_valid_fraction) for s in ids]))
+    return _spread(np.stack([masked_values(ds, s, basin_index, min_valid_fraction) for s in ids]))
 
 
 def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None, period=None,
@@ -201,7 +210,7 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
     check_method(method)
     attrs = ds.variables[source].attrs
     comp = attrs.get("component")
-    own = _masked(ds, source, basin_index, min_valid_fraction)
+    own = masked_values(ds, source, basin_index, min_valid_fraction)
     x = own if values is None else np.asarray(values, dtype=np.float64)
     if method in ("auto", STATED):
         v = stated_variance(attrs, x, source=source)
@@ -219,7 +228,7 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         if cache is not None and comp in cache:
             tc, failure = cache[comp]
         else:
-            stack = np.stack([own if s == source else _masked(ds, s, basin_index, min_valid_fraction) for s in ids])
+            stack = np.stack([own if s == source else masked_values(ds, s, basin_index, min_valid_fraction) for s in ids])
             if period is not None:
                 stack = np.where(np.asarray(period, dtype=bool), stack, np.nan)
             tc = failure = None
@@ -245,7 +254,7 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
             note = f"{kind} collocation with {', '.join(s for s in ids if s != source)} over {tc[source]['n']} months"
             return ProductError(source, comp, COLLOCATION, np.where(np.isfinite(x), ev, np.nan), note)
     if len(ids) >= 2:
-        sd = _spread(np.stack([_masked(ds, s, basin_index, min_valid_fraction) for s in ids]))
+        sd = _spread(np.stack([masked_values(ds, s, basin_index, min_valid_fraction) for s in ids]))
         return ProductError(source, comp, SPREAD, sd**2, f"spread of {', '.join(ids)}{why}")
     return ProductError(source, comp, NONE, np.full(x.shape, np.nan), f"one {comp} product only{why}")
 

@@ -1,7 +1,8 @@
 """Files of an estimate by difference (`wbexplore.balance.estimate.DifferenceEstimate`): CSV and netCDF.
 
-Both go through `io.writers.atomic_path` (nothing is left behind on failure) and carry the formula, the
-uncertainty source of every term, the note on what the standard errors leave out, and the caution text.
+Both go through `io.writers.atomic_path` (nothing is left behind on failure), the netCDF file through the one
+CF-1.8 writer `io.writers.write_netcdf` (with the basin's position), and carry the formula, the uncertainty source
+of every term, the note on what the standard errors leave out, and the caution text (global attributes).
 """
 
 from __future__ import annotations
@@ -15,7 +16,7 @@ import pandas as pd
 
 from .. import __version__
 from ..errors import InputError
-from .writers import CAUTION, atomic_path
+from .writers import CAUTION, atomic_path, write_netcdf
 
 __all__ = ["FORMATS", "estimate_table", "estimate_dataset", "write_estimate", "uncertainty_line"]
 
@@ -140,13 +141,15 @@ def estimate_dataset(est):
         "uncertainty_notes": uncertainty_line(est),
         "comment": f"{_note()} {CAUTION}",
     }
+    ds = ds.assign_coords(basin=((), str(sel.basin), {"long_name": "basin identifier"}))
     for v in ds.variables:
         ds[v].encoding = {}
     return ds
 
 
-def write_estimate(est, path, *, overwrite: bool = False, protect=None) -> Path:
-    """Write ``est`` as CSV (header lines start with '#') or netCDF-4, by the suffix of ``path``."""
+def write_estimate(est, path, *, overwrite: bool = False, protect=None, positions=None) -> Path:
+    """Write ``est`` as CSV (header lines start with '#') or CF-1.8 netCDF-4 (`wbexplore.io.writers.write_netcdf`,
+    ``positions`` as for `wbexplore.io.writers.cf_ready`: a point inside the basin), by the suffix of ``path``."""
     suffix = check_format(path)
     if suffix == ".csv":
         table = estimate_table(est)
@@ -155,11 +158,4 @@ def write_estimate(est, path, *, overwrite: bool = False, protect=None) -> Path:
                 fh.write("".join(f"# {line}\n" for line in _head(est)))
                 table.to_csv(fh, index=False, float_format="%.10g")
         return Path(path)
-    ds = estimate_dataset(est)
-    # coordinates and bounds carry no _FillValue (CF)
-    enc = {"time": {"units": "days since 1970-01-01", "dtype": "float64", "_FillValue": None},
-           "time_bnds": {"units": "days since 1970-01-01", "dtype": "float64", "_FillValue": None},
-           "water_year": {"_FillValue": None}}
-    with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
-        ds.to_netcdf(tmp, format="NETCDF4", encoding=enc)
-    return Path(path)
+    return write_netcdf(estimate_dataset(est), path, overwrite=overwrite, protect=protect, positions=positions)

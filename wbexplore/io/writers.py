@@ -237,9 +237,10 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None, posit
       `wbexplore.temporal.STEPS` name, e.g. ``"month"``) and no bounds yet, ``time_bnds`` (period start, exclusive
       end) are added [7.1];
     - no ``_FillValue`` on coordinates or bounds [2.5.1, 7.1];
-    - the time-series instance dimension ``instance`` (the basins): its string labels are written as the
-      variable ``<instance>_id`` (``cf_role = "timeseries_id"``), since a coordinate variable must be numeric and
-      monotonic; a scalar ``<instance>`` coordinate (one selected basin) is renamed the same way; then
+    - a dimension labelled by text (the basins; the products of a merge) has its labels written as the
+      auxiliary coordinate ``<dim>_id``, since a coordinate variable must be numeric and monotonic [2.4, 5];
+      for the time-series instance dimension ``instance`` (the basins) that variable has ``cf_role =
+      "timeseries_id"``; a scalar ``<instance>`` coordinate (one selected basin) is renamed the same way; then
       ``featureType = "timeSeries"`` [9, appendix H.2]; with ``positions``, each series' ``lat`` and ``lon``
       (a point inside the basin: CF asks a time series for a position [9.5]);
     - a ``long_name`` on every variable that has neither ``long_name`` nor ``standard_name`` (its ``label``, or its
@@ -284,12 +285,13 @@ def cf_ready(ds, *, instance: str = "basin", time_step: str | None = None, posit
         v.encoding = dict(v.encoding)
     out.attrs = dict(ds.attrs)
     vid = _INSTANCE_ID.format(instance)
-    if instance in out.dims and instance in out.indexes and out[instance].dtype.kind in "OUS":
-        keep = {k: v for k, v in out[instance].attrs.items() if k not in ("cf_role",)}
-        labels = np.asarray(out[instance].values).astype(str).astype(object)
-        out = out.drop_vars(instance)
-        out = out.assign_coords({vid: (instance, labels, keep)})
-    elif instance in out.coords and out[instance].ndim == 0 and vid not in out.variables:
+    for dim in [d for d in out.dims if d in out.indexes and out[d].dtype.kind in "OUS"]:
+        keep = {k: v for k, v in out[dim].attrs.items() if k not in ("cf_role",)}
+        keep.setdefault("long_name", f"{dim} identifier")
+        labels = np.asarray(out[dim].values).astype(str).astype(object)
+        out = out.drop_vars(dim)
+        out = out.assign_coords({_INSTANCE_ID.format(dim): (dim, labels, keep)})
+    if instance in out.coords and out[instance].ndim == 0 and vid not in out.variables:
         out = out.rename_vars({instance: vid})
     if vid in out.variables and positions is not None and "lat" not in out.variables:
         labels = np.atleast_1d(np.asarray(out[vid].values).astype(str))
@@ -399,15 +401,16 @@ def write_netcdf(ds, path: str | os.PathLike, *, overwrite: bool = False, protec
 def read_netcdf(path: str | os.PathLike, *, instance: str = "basin"):
     """Read a file written by `write_netcdf` back into memory, the instance labels as the ``instance`` index.
 
-    The inverse of `cf_ready` for the values: ``<instance>_id`` along the ``instance`` dimension becomes the
-    ``instance`` index coordinate again (a scalar ``<instance>_id`` stays as it is); times decode to datetime64.
+    The inverse of `cf_ready` for the values: ``<dim>_id`` along a dimension ``<dim>`` that has no coordinate
+    variable (the ``instance`` dimension; the products of a merge) becomes the ``<dim>`` index coordinate again
+    (a scalar ``<instance>_id`` stays as it is); times decode to datetime64.
 
     Parameters
     ----------
     path : path-like
         A netCDF file.
     instance : str, keyword-only
-        As for `cf_ready`.
+        As for `cf_ready` (kept for symmetry: every dimension written with ``<dim>_id`` labels is restored).
 
     Returns
     -------
@@ -418,9 +421,10 @@ def read_netcdf(path: str | os.PathLike, *, instance: str = "basin"):
 
     with xr.open_dataset(path, engine="netcdf4") as f:
         ds = f.load()
-    vid = _INSTANCE_ID.format(instance)
-    if vid in ds.variables and ds[vid].dims == (instance,) and instance not in ds.variables:
-        attrs = {k: v for k, v in ds[vid].attrs.items() if k != "cf_role"}
-        labels = ds[vid].values.astype(str)
-        ds = ds.drop_vars(vid).assign_coords({instance: (instance, labels, attrs)})
+    for dim in [d for d in ds.dims if d not in ds.variables]:
+        vid = _INSTANCE_ID.format(dim)
+        if vid in ds.variables and ds[vid].dims == (dim,):
+            attrs = {k: v for k, v in ds[vid].attrs.items() if k != "cf_role"}
+            labels = ds[vid].values.astype(str)
+            ds = ds.drop_vars(vid).assign_coords({dim: (dim, labels, attrs)})
     return ds
