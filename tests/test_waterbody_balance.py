@@ -520,3 +520,35 @@ def test_a_lag_is_refused_for_a_water_body(study, capsys):
     """--lag shifts gauged discharge; a water body has none: refused, never silently ignored."""
     rc, _, err = run_cli(["rank", study, "--basin", "RES1", "--lag", "1"], capsys)
     assert "does not have" in one_line_error(rc, err)
+
+
+@pytest.mark.parametrize("which", ["levels.csv", "curves.csv", "lakes.geojson"])
+def test_cached_series_follow_the_water_body_files(tmp_path, which):
+    # Found in review: the series cache key left out the outline, level and curve files, so after a corrected
+    # curve `rank --basin RES` kept printing the old numbers. The key must hold every file the series read.
+    from wbexplore.pipeline import load_series
+
+    (tmp_path / "study").mkdir()
+    cat = write_study(tmp_path / "study")
+    cache = tmp_path / "cache"
+    before = load_series(cat, waterbodies=True, cache_dir=cache)
+    f = tmp_path / "study" / which
+    if which == "curves.csv":
+        c = pd.read_csv(f)
+        c["volume"] = c["volume"] * 1.2  # a corrected curve: 20% more volume at every level
+        c.to_csv(f, index=False)
+    elif which == "levels.csv":
+        lv = pd.read_csv(f)
+        lv["RES1"] = lv["RES1"] + 0.5  # a corrected gauge datum
+        lv.to_csv(f, index=False)
+    else:
+        import geopandas as gpd
+
+        g = gpd.read_file(f)
+        g["geometry"] = g.geometry.scale(0.5, 0.5)  # a redrawn, smaller outline
+        g.to_file(f, driver="GeoJSON")
+    after = load_series(cat, waterbodies=True, cache_dir=cache)
+    fresh = _series(cat)
+    assert not after["levels"].equals(before["levels"]) or not after["basin_area_km2"].equals(before["basin_area_km2"])
+    xr.testing.assert_identical(after["levels"], fresh["levels"])
+    assert float(after["basin_area_km2"][0]) == float(fresh["basin_area_km2"][0])

@@ -402,7 +402,8 @@ def _basin_files(cat) -> list[Path]:
 
 def input_files(cat) -> list[tuple[str, Path]]:
     """(role, path) of every file a catalog's extraction reads: basins (with shapefile parts),
-    discharge, the station table of each flow, product files (zarr stores as folders)."""
+    discharge, the station table of each flow, the water bodies' outlines, levels, curves and pan table,
+    product files (zarr stores as folders)."""
     from .io.catalog import GEOTIFF_SIDECARS
 
     out: list[tuple[str, Path]] = [("basins", b) for b in _basin_files(cat)]
@@ -410,6 +411,9 @@ def input_files(cat) -> list[tuple[str, Path]]:
         out.append(("discharge", Path(cat.discharge.path)))
     for f in getattr(cat, "flows", ()):
         out.append((f"flow {f.id}", Path(f.table.path)))
+    wb = getattr(cat, "waterbodies", None)
+    if wb is not None:  # outlines (with a shapefile's parts), levels, storage curve, pan table
+        out += [("waterbodies", Path(p)) for p in wb.input_paths()]
     # folder -> names in it: one listing instead of a stat per sidecar (460 GeoTIFFs: 22 ms a call, was 35 ms)
     listed: dict[str, set[str] | None] = {}
     for s in cat.sources:
