@@ -177,10 +177,14 @@ def test_ids_with_leading_zero_stay_distinct(study, tmp_path, capsys):
     out = tmp_path / "x.nc"
     rc, _, err = _run(["extract", cats["long"], "--out", out, "--quiet", "--cache-dir", tmp_path / "cache"], capsys)
     assert rc == 0, err
-    with xr.open_dataset(out) as x:
-        assert [str(b) for b in x["basin"].values] == IDS
-        assert "coverage_0123" in x and "coverage_123" in x
-        np.testing.assert_allclose(x["discharge"].sel(basin="0123").values, ds["discharge"].sel(basin="0123").values)
+    with xr.open_dataset(out) as x:  # as any netCDF reader sees it: the ids as text in the CF instance variable
+        assert [str(b) for b in x["basin_id"].values] == IDS and x["basin_id"].attrs["cf_role"] == "timeseries_id"
+    from wbexplore.io.writers import read_netcdf
+
+    x = read_netcdf(out)  # the ids back as the basin index
+    assert [str(b) for b in x["basin"].values] == IDS
+    assert "coverage_0123" in x and "coverage_123" in x
+    np.testing.assert_allclose(x["discharge"].sel(basin="0123").values, ds["discharge"].sel(basin="0123").values)
     rc, text, err = _run(["check", cats["long"]], capsys)
     assert rc == 0, err
     assert "station '0123' -> basin '0123'" in text and "station '123' -> basin '123'" in text
