@@ -552,3 +552,19 @@ def test_cached_series_follow_the_water_body_files(tmp_path, which):
     assert not after["levels"].equals(before["levels"]) or not after["basin_area_km2"].equals(before["basin_area_km2"])
     xr.testing.assert_identical(after["levels"], fresh["levels"])
     assert float(after["basin_area_km2"][0]) == float(fresh["basin_area_km2"][0])
+
+
+@pytest.mark.parametrize("argv, words", [
+    (["estimate", "--basin", "RES1", "--term", "ET", "--out", "e.csv"], ["'RES1' is a water body", "unmeasured exchange"]),
+    (["merge", "--basin", "RES1", "--method", "ckf", "--out", "m.nc"], ["'RES1' is a water body", "rank or export"]),
+    (["merge", "--basin", "B0", "--method", "ckf", "--out", "m.csv"], ["--out", "m.csv", "*.nc"]),
+])
+def test_estimate_and_merge_refuse_what_they_cannot_do(study, capsys, tmp_path, argv, words):
+    # Found in review: estimate and merge took a water-body id to the basin series ("not in the series", listing
+    # basins only), and merge wrote netCDF into a file named .csv. Exit 2, one line, nothing written.
+    cmd, *rest = argv
+    out = tmp_path / rest[-1]
+    rc, _, err = run_cli([cmd, study, *rest[:-1], out], capsys)
+    msg = one_line_error(rc, err)
+    assert all(w in msg for w in words), msg
+    assert not out.exists()

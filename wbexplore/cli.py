@@ -631,6 +631,11 @@ def _cmd_merge(args) -> int:
     opts = ClosureOptions(storage_change=args.storage_change, matched=not args.unmatched,
                           min_valid_fraction=args.min_valid_fraction)
     cat = open_catalog(args.catalog)
+    if Path(args.out).suffix.lower() != ".nc":
+        raise InputError(f"--out {args.out}: a merge is written as netCDF; name the file *.nc")
+    if args.basin is not None and _unit_kind(args) == "waterbody":
+        raise InputError(f"{cat.path}: --basin {args.basin!r} is a water body: merging combines the P, ET and TWSA "
+                         "products of a basin; for a water body use rank or export")
     check_output(args.out, overwrite=args.force, protect=cat)  # before the series are loaded
     ds = _series(args)
     merged = merge_products(ds, method=args.method, basins=None if args.all else [args.basin], options=opts)
@@ -664,6 +669,9 @@ def _cmd_estimate(args) -> int:
     check_format(args.out)
     opts = _options(args)
     cat = open_catalog(args.catalog)
+    if _unit_kind(args) == "waterbody":
+        raise InputError(f"{cat.path}: --basin {args.basin!r} is a water body: its residual is the unmeasured exchange "
+                         f"(wbexplore rank {args.catalog} --basin {args.basin}); estimate takes a basin")
     check_output(args.out, overwrite=args.force, protect=cat)
     if args.incremental:
         _check_incremental(cat, args.basin)
