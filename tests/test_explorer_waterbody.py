@@ -139,6 +139,9 @@ def test_ranking_table_of_the_water_body(explorer):
     s, ex = explorer.state, explorer
     s.basin = WID
     view = ex._rank_view()
+    # the table follows with its columns, each escaped as plain text (tests/test_served.py)
+    assert list(ex.table.value.columns) == list(view.columns)
+    assert {c: f.get("type") for c, f in ex.table.formatters.items()} == {c: "plaintext" for c in view.columns}
     assert "TWSA" not in view and "kge" not in view and "exchange_m3s" in view
     ref = rank(s.waterbody_series, WID, s.options(), by=s.metric)
     assert list(view["P"]) == list(ref["P"]) and list(view["ET"]) == list(ref["ET"])

@@ -118,8 +118,7 @@ class Explorer:
         # "plaintext" escapes the cell value (ids come from the catalog): no cell renders HTML
         self.table = pn.widgets.Tabulator(view, disabled=True, show_index=False, height=330,
                                           sizing_mode="stretch_width", selectable=False,
-                                          formatters={c: {"type": "plaintext"} for c in
-                                                      dict.fromkeys([*view.columns, *WATERBODY_TABLE_COLUMNS])},
+                                          formatters={c: {"type": "plaintext"} for c in view.columns},
                                           css_classes=["wbx-ranking"])
         self.table.on_click(self._on_row)
         self.export_where = pn.pane.Markdown(f"Files go to *{md_text(self._shown(self.export_dir))}*",
@@ -167,13 +166,6 @@ class Explorer:
 
         s.param.watch(on_kind, "basin")
 
-    def _follow_source(self, w, comp: str, value, *, refresh: bool = False) -> None:
-        """Source picker ``w`` shows the state's ``value`` of ``comp``; its options are the state's (refreshed
-        first where they changed: a page's Select would otherwise reset a value it does not offer)."""
-        s = self.state
-        if refresh or value not in w.options.values():
-            w.options = {f"{s.labels.get(i, i)} [{i}]": i for i in getattr(s.param, comp).objects}
-        w.value = value
         self.w_metric.param.watch(lambda e: setattr(s, "metric", e.new), "value")
         self.w_best.on_click(lambda e: s.select_best())
         self.w_unit.param.watch(lambda e: setattr(s, "unit", e.new), "value")
@@ -183,6 +175,14 @@ class Explorer:
             self.w_unit.value = s.unit
 
         s.param.watch(on_unit, ["unit", "basin"])
+
+    def _follow_source(self, w, comp: str, value, *, refresh: bool = False) -> None:
+        """Source picker ``w`` shows the state's ``value`` of ``comp``; its options are the state's (refreshed
+        first where they changed: a page's Select would otherwise reset a value it does not offer)."""
+        s = self.state
+        if refresh or value not in w.options.values():
+            w.options = {f"{s.labels.get(i, i)} [{i}]": i for i in getattr(s.param, comp).objects}
+        w.value = value
 
     def _rank_view(self) -> pd.DataFrame:
         r = self.state.ranking()
@@ -203,7 +203,10 @@ class Explorer:
 
     def _refresh_table(self, *events):
         if any(e.name in ("basin", "unit", "period", "storage_change", "matched", "metric") for e in events):
-            self.table.value = self._rank_view()
+            view = self._rank_view()
+            if list(view.columns) != list(self.table.value.columns):  # basin <-> water body: other columns
+                self.table.formatters = {c: {"type": "plaintext"} for c in view.columns}
+            self.table.value = view
 
     def _on_row(self, event):
         row = self.table.value.iloc[event.row]
