@@ -100,9 +100,10 @@ OPTIONS: dict[str, Name] = {n.key: n for n in (
     Name("mm", "mm/month", "", "depth over the basin per month (TWSA in mm)"),
     Name("m3", "m3/month", "", "volume per month (TWSA in m3)"),
     Name("m3/s", "m3/s", "", "mean flow over the month (TWSA in m3)"),
+    Name("hm3", "hm3/month", "", "cubic hectometres (10^6 m3) per month; a water body's default (storage in hm3)"),
 )}
 
-_SYSTEM_UNITS = {"mm": ("mm/month", "mm"), "m3": ("m3/month", "m3"), "m3/s": ("m3/s", "m3")}
+_SYSTEM_UNITS = {"mm": ("mm/month", "mm"), "m3": ("m3/month", "m3"), "m3/s": ("m3/s", "m3"), "hm3": ("hm3/month", "hm3")}
 
 
 def metric_name(key: str) -> str:

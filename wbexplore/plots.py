@@ -30,9 +30,13 @@ if TYPE_CHECKING:  # pragma: no cover
 
 __all__ = [
     "COLORS",
+    "EXCHANGE_LABEL",
     "SEASON_COLORS",
     "UNIT_LABEL",
+    "WATERBODY_COLOR",
     "BarsPlot",
+    "ExchangePlot",
+    "LevelVolumePlot",
     "MapPlot",
     "MultiBasinPlot",
     "Outlines",
@@ -42,15 +46,27 @@ __all__ = [
     "basin_map",
     "basin_outlines",
     "component_bars",
+    "exchange_series",
+    "level_volume",
     "multi_basin",
     "residual_series",
+    "waterbody_messages",
 ]
 
 COLORS = {"P": "#0072B2", "ET": "#009E73", "Q": "#56B4E9", "dS": "#CC79A7", "residual": "#D55E00",
           "band": "#E69F00", "gap": "#BBBBBB", "flow": "#999933"}
 SEASON_COLORS = {"DJF": "#0072B2", "MAM": "#009E73", "JJA": "#E69F00", "SON": "#CC79A7"}
-UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s"}
+UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s", "hm3": "hm3/month"}
+WATERBODY_COLOR = "#56B4E9"  # lakes and reservoirs on the map (Okabe-Ito sky blue), whatever the scores
+# a water body's residual r is shown as the unmeasured exchange X = -r (`balance.waterbody.Exchange`)
+EXCHANGE_LABEL = "unmeasured exchange (net unmeasured inflow = -residual; negative = unmeasured loss)"
 ERROR_METRICS = ("rmse", "mae", "annual_rmse")  # smaller is better: the map's colours are reversed for them
+
+
+def waterbody_messages(result) -> list[str]:
+    """A water body's messages for a reader, without those about metrics against a gauged outlet (a water body has
+    none: its views leave those metrics out) and the uncertainty line (shown on its own)."""
+    return [m for m in result.messages if not m.startswith("uncertainty") and " undefined: " not in m]
 
 
 def _terms(result):
@@ -326,11 +342,16 @@ class MapPlot(_Plot):
 
     Nesting: a basin that drains into another is outlined dashed, and its hover names the basin it drains to.
 
+    Water bodies (``waterbodies``, their `Outlines`) are drawn on top in one fixed colour (they are not
+    scored against basins), outlined; the selected one (a water-body id as ``selected``) thick.
+
     `on_tap(lon, lat)` (explorer) is called with the clicked point in degrees.
     """
 
-    def __init__(self, outlines: Outlines, *, width: int | None = None, css: str | None = None):
+    def __init__(self, outlines: Outlines, *, width: int | None = None, css: str | None = None,
+                 waterbodies: Outlines | None = None):
         self.outlines = outlines
+        self.waterbodies = waterbodies if waterbodies is not None and len(waterbodies.basin) else None
         super().__init__(width=width, css=css)
 
     def _build(self, width):
@@ -363,6 +384,25 @@ class MapPlot(_Plot):
         fig.add_tools(self.hover, TapTool())
         fig.xaxis.axis_label = "longitude (deg E)"
         fig.yaxis.axis_label = "latitude (deg N)"
+        self.wb_src = None
+        if self.waterbodies is not None:
+            self._build_waterbodies(fig)
+
+    def _build_waterbodies(self, fig) -> None:
+        from bokeh.models import ColumnDataSource, HoverTool, Patches
+
+        w = self.waterbodies
+        self.wb_src = ColumnDataSource({"xs": list(w.xs), "ys": list(w.ys), "waterbody": list(w.basin),
+                                        "name": list(w.name), "area_km2": list(w.area_km2),
+                                        "lw": [1.5] * len(w.basin)})
+        lake = Patches(xs="xs", ys="ys", fill_color=WATERBODY_COLOR, fill_alpha=0.9, line_color="black",
+                       line_width={"field": "lw"})
+        r = _add(fig, lake, self.wb_src, legend="water body")
+        r.nonselection_glyph = lake
+        fig.add_tools(HoverTool(renderers=[r], tooltips=[("water body", "@waterbody"), ("name", "@name"),
+                                                         ("outline area (km2)", "@area_km2{0,0}")]))
+        fig.legend.location = "top_left"
+        fig.title.text = "Basins and water bodies (click to select)"
 
     @staticmethod
     def _tooltips(metric: str) -> list:
@@ -377,6 +417,9 @@ class MapPlot(_Plot):
         score = np.array([float(scores.get(b, np.nan)) for b in self.outlines.basin])
         self.src.data = dict(self.src.data, score=score,
                              lw=[3.0 if b == selected else 0.8 for b in self.outlines.basin])
+        if self.wb_src is not None:
+            self.wb_src.data = dict(self.wb_src.data,
+                                    lw=[4.0 if w == selected else 1.5 for w in self.waterbodies.basin])
         finite = score[np.isfinite(score)]
         lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
         self.mapper.update(low=lo, high=hi if hi > lo else lo + 1.0,
@@ -417,6 +460,106 @@ class MultiBasinPlot(_Plot):
                                else "No basin has complete years for this combination")
 
 
+class ExchangePlot(ResidualPlot):
+    """A water body's residual as unmeasured exchange X = -residual per month (volume units), +/- 2 sigma band.
+
+    The monthly values come from `wbexplore.balance.waterbody.unmeasured_exchange` (its ``monthly`` table);
+    the band is the residual's sigma in the same units. Negative = an unmeasured loss (seepage, abstraction).
+    """
+
+    def update(self, result, exchange=None, unit_system: str = "hm3") -> None:
+        """Draw ``exchange`` (`unmeasured_exchange` of ``result``; computed here when not given) in
+        ``unit_system`` (every unit system is also a column of `Exchange.monthly`)."""
+        if exchange is None:
+            from .balance.waterbody import unmeasured_exchange
+
+            exchange = unmeasured_exchange(result)
+        f = to_unit_system(result.frame, result.area_km2, unit_system)
+        t = pd.DatetimeIndex(f.index).values
+        x = exchange.monthly[unit_system].reindex(f.index).to_numpy(float)
+        s = f["sigma_residual"].values
+        self.src.data = {"month": t, "residual": x, "lo": x - 2 * s, "hi": x + 2 * s}
+        flag = result.frame["beyond_2sigma"].values.astype(bool)
+        self.flag.data = {"month": t[flag], "residual": x[flag]}
+        half = np.timedelta64(15, "D")
+        runs = _runs(~result.frame["valid"].values)
+        self.gaps.data = {"x0": np.array([t[a] - half for a, _ in runs], dtype="datetime64[ns]"),
+                          "x1": np.array([t[b] + half for _, b in runs], dtype="datetime64[ns]")}
+        from bokeh.core.properties import value
+
+        for item in self.fig.legend[0].items:
+            if getattr(item.label, "value", item.label) == "residual":
+                item.label = value("unmeasured exchange")  # a bare string would name a data column
+        unit = UNIT_LABEL[unit_system]
+        self.fig.yaxis.axis_label = f"unmeasured exchange ({unit})"  # the sign convention: in the title
+        m, se = exchange.mean, exchange.standard_error
+        self.fig.title.text = _nodata(result) or (
+            f"Unmeasured exchange (-residual; negative = unmeasured loss): mean {m['m3/s']:.2f} +/- {se['m3/s']:.2f} "
+            f"m3/s = {m['hm3']:.2f} +/- {se['hm3']:.2f} hm3/month (+/- 1 standard error)"
+            + ("" if np.isfinite(s).any() else "; no 2-sigma band: a term's error is unknown"))
+
+
+class LevelVolumePlot(_Plot):
+    """A water body's level (m, left axis) and the volume its storage curve gives (hm3, right axis) per month;
+    months outside the selected period shaded."""
+
+    def _build(self, width):
+        from bokeh.models import (
+            ColumnDataSource,
+            DataRange1d,
+            GlyphRenderer,
+            HoverTool,
+            LegendItem,
+            Line,
+            LinearAxis,
+            Range1d,
+            VStrip,
+        )
+
+        empty_t = np.array([], dtype="datetime64[ns]")
+        self.src = ColumnDataSource({"month": empty_t, "level": [], "volume": []})
+        self.out = ColumnDataSource({"x0": empty_t, "x1": empty_t})
+        self.fig = fig = _figure(width=width, height=280, x_axis_type="datetime")
+        self.fig.extra_y_ranges = {"volume": Range1d(0.0, 1.0)}
+        _add(fig, VStrip(x0="x0", x1="x1", fill_color=COLORS["gap"], fill_alpha=0.3, line_width=0), self.out)
+        lvl = _add(fig, Line(x="month", y="level", line_color=COLORS["P"], line_width=2), self.src,
+                   legend="level (m)")
+        fig.y_range = DataRange1d(renderers=[lvl])  # the left axis spans the levels only (volumes: right axis)
+        vol = GlyphRenderer(glyph=Line(x="month", y="volume", line_color=COLORS["dS"], line_width=2,
+                                       line_dash="dashed"), data_source=self.src, y_range_name="volume")
+        fig.renderers.append(vol)
+        fig.legend[0].items.append(LegendItem(label="volume (hm3)", renderers=[vol]))
+        fig.add_layout(LinearAxis(y_range_name="volume", axis_label="volume (hm3)"), "right")
+        fig.add_tools(HoverTool(renderers=[lvl], tooltips=[("month", "@month{%Y-%m}"), ("level (m)", "@level{0.00}"),
+                                                          ("volume (hm3)", "@volume{0,0.0}")],
+                                formatters={"@month": "datetime"}))
+        fig.yaxis[0].axis_label = "level (m)"
+        fig.xaxis.axis_label = "month"
+        fig.legend.location = "top_left"
+
+    def update(self, levels, *, start=None, end=None, name: str = "") -> None:
+        """``levels``: one water body of `wbexplore.pipeline.waterbody_series` (``level`` in m, ``volume`` in m3,
+        over ``time``); ``start``, ``end``: the selected period ("YYYY-MM"), shaded outside."""
+        t = pd.DatetimeIndex(levels["time"].values)
+        level = np.asarray(levels["level"].values, dtype=float)
+        vol_hm3 = np.asarray(levels["volume"].values, dtype=float) / 1e6  # m3 -> hm3 (1 hm3 = 1e6 m3)
+        self.src.data = {"month": t.values, "level": level, "volume": vol_hm3}
+        ok = np.isfinite(vol_hm3)
+        lo, hi = (float(vol_hm3[ok].min()), float(vol_hm3[ok].max())) if ok.any() else (0.0, 1.0)
+        pad = 0.05 * (hi - lo) if hi > lo else 1.0
+        self.fig.extra_y_ranges["volume"].update(start=lo - pad, end=hi + pad)
+        x0, x1 = [], []
+        if start and t.size and pd.Timestamp(start) > t[0]:
+            x0.append(t[0].to_datetime64())
+            x1.append(pd.Timestamp(start).to_datetime64())
+        if end and t.size and pd.Timestamp(end) < t[-1]:
+            x0.append((pd.Timestamp(end) + pd.offsets.MonthBegin(1)).to_datetime64())
+            x1.append(t[-1].to_datetime64())
+        self.out.data = {"x0": np.array(x0, dtype="datetime64[ns]"), "x1": np.array(x1, dtype="datetime64[ns]")}
+        what = f"{name}: " if name else ""
+        self.fig.title.text = f"{what}level and volume (grey: outside the period)"
+
+
 # One-shot figures (the report, notebooks, tests): build, fill once, return the bokeh figure.
 def component_bars(result, unit_system: str = "mm", *, width: int | None = None) -> figure:
     """`BarsPlot` of one selection."""
@@ -453,4 +596,18 @@ def multi_basin(table: pd.DataFrame, unit: str = "mm/year", *, width: int | None
     """`MultiBasinPlot` of a `long_term_all` table."""
     p = MultiBasinPlot(width=width)
     p.update(table, unit)
+    return p.fig
+
+
+def exchange_series(result, exchange=None, unit_system: str = "hm3", *, width: int | None = None) -> figure:
+    """`ExchangePlot` of one water body's selection."""
+    p = ExchangePlot(width=width)
+    p.update(result, exchange, unit_system)
+    return p.fig
+
+
+def level_volume(levels, *, start=None, end=None, name: str = "", width: int | None = None) -> figure:
+    """`LevelVolumePlot` of one water body (a `wbexplore.pipeline.waterbody_series` selection)."""
+    p = LevelVolumePlot(width=width)
+    p.update(levels, start=start, end=end, name=name)
     return p.fig

@@ -176,7 +176,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     sel : Selection
     out : path of the YAML file to write (refused if it exists unless ``overwrite``)
     series : optional path of a series file (``.csv`` or ``.nc``) written alongside
-    unit_system : "mm", "m3" or "m3/s" (CSV series)
+    unit_system : "mm", "m3", "m3/s" or "hm3" (CSV series)
     ds : canonical series to use; default: extracted afresh for the three sources
     incremental : the basin's incremental unit (its area minus its upstream basins); recorded as
         ``unit: incremental`` in the file, and replayed over that unit
@@ -568,12 +568,14 @@ def _series_frame(result, unit_system):
 def write_series_csv(result, path, *, unit_system: str = "mm", overwrite: bool = False, protect=None) -> Path:
     """One row per month: P, ET, Q, dS, residual (+ TWSA), their uncertainties and valid fractions.
 
-    Units: "mm" (mm/month; TWSA mm), "m3" (m3 per month), "m3/s" (mean flow over the month), named in
+    Units: "mm" (mm/month; TWSA mm), "m3" (m3 per month), "m3/s" (mean flow over the month), "hm3" (hm3 per
+    month), named in
     the header comment lines. Read back with ``pandas.read_csv(path, comment="#", index_col="month")``.
     ``protect``: the catalog (or list of paths) whose inputs must never be replaced (`io.writers.check_output`).
     """
     f = _series_frame(result, unit_system)
-    unit = {"mm": "mm/month (TWSA: mm)", "m3": "m3 per month (TWSA: m3)", "m3/s": "m3/s mean over the month (TWSA: m3)"}
+    unit = {"mm": "mm/month (TWSA: mm)", "m3": "m3 per month (TWSA: m3)", "m3/s": "m3/s mean over the month (TWSA: m3)",
+            "hm3": "hm3 per month (TWSA: hm3)"}
     sel = result.selection
     head = (f"# wbexplore series: basin {sel.basin}, P={sel.P} ET={sel.ET} TWSA={sel.TWSA}, "
             f"storage change {sel.storage_change}{' window-matched' if sel.matched else ''}\n"

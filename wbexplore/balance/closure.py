@@ -35,7 +35,7 @@ __all__ = [
     "water_year", "month_labels", "MAX_LAG_MONTHS", "check_lag", "ClosureOptions", "ENSEMBLE_PREFIX",
 ]
 
-UNIT_SYSTEMS = ("mm", "m3", "m3/s")
+UNIT_SYSTEMS = ("mm", "m3", "m3/s", "hm3")
 
 Q_RELATIVE_ERROR = unc.Q_RELATIVE_ERROR  # re-exported: the value lives with the other errors (uncertainty.py)
 
@@ -307,9 +307,10 @@ _FLOW_COL = re.compile(r"(sigma_)?flow_.*")
 
 
 def to_unit_system(frame: pd.DataFrame, area_km2: float, system: str) -> pd.DataFrame:
-    """Flux columns of a selection frame in mm/month ("mm"), m3 per month ("m3") or mean m3/s ("m3/s").
+    """Flux columns of a selection frame in mm/month ("mm"), m3 per month ("m3"), mean m3/s ("m3/s") or
+    hm3 per month ("hm3", 1 hm3 = 1e6 m3: the scale of a reservoir's terms).
 
-    TWSA stays in mm (a storage, not a flux) for "mm"; it becomes m3 for both volume systems.
+    TWSA stays in mm (a storage, not a flux) for "mm"; it becomes m3 for "m3" and "m3/s", hm3 for "hm3".
     """
     if system not in UNIT_SYSTEMS:
         raise InputError(f"unit system {system!r} is not one of {', '.join(UNIT_SYSTEMS)}")
@@ -320,8 +321,8 @@ def to_unit_system(frame: pd.DataFrame, area_km2: float, system: str) -> pd.Data
     months = pd.DatetimeIndex(frame.index)
     for c in [c for c in out if c in _FLUX_COLS or _FLOW_COL.fullmatch(str(c))]:
         if c in out:
-            out[c] = mm_to_m3(out[c].values, area_m2) if system == "m3" else \
-                mm_per_month_to_flow_m3s(out[c].values, months, area_m2)
+            out[c] = mm_per_month_to_flow_m3s(out[c].values, months, area_m2) if system == "m3/s" else \
+                mm_to_m3(out[c].values, area_m2) / (1e6 if system == "hm3" else 1.0)
     if "TWSA" in out:
-        out["TWSA"] = mm_to_m3(out["TWSA"].values, area_m2)
+        out["TWSA"] = mm_to_m3(out["TWSA"].values, area_m2) / (1e6 if system == "hm3" else 1.0)
     return out

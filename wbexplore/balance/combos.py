@@ -14,7 +14,7 @@ from .options import ClosureOptions
 from .terms import SOURCE_COMPONENTS, flow_terms
 from ..series import is_waterbody
 
-__all__ = ["RANK_TABLE_COLUMNS", "EXCHANGE_COLUMNS", "rank", "rank_all", "combination_terms", "best_selection", "best_scores", "long_term_all"]
+__all__ = ["RANK_TABLE_COLUMNS", "EXCHANGE_COLUMNS", "WATERBODY_TABLE_COLUMNS", "rank", "rank_all", "combination_terms", "best_selection", "best_scores", "long_term_all"]
 
 
 # the columns a ranking shows (command line, explorer, report)
@@ -124,6 +124,10 @@ def rank(ds: xr.Dataset, basin: str, options: ClosureOptions | None = None, *, b
 # a water body's ranking also gives its mean residual (unmeasured exchange) in volume units, with standard errors
 EXCHANGE_COLUMNS = ("exchange_hm3", "exchange_hm3_se", "exchange_m3s", "exchange_m3s_se", "exchange_mm_surface",
                     "exchange_mm_surface_se")
+# a water body's ranking as shown (report, explorer): no metric against a gauged outlet (it has none; its storage is
+# always the levels), the exchange per month in volume units with its standard error
+WATERBODY_TABLE_COLUMNS = ("rank", "P", "ET", "rmse", "bias", "n_valid", "exchange_hm3", "exchange_hm3_se",
+                           "exchange_m3s", "exchange_m3s_se")
 
 
 def _with_exchange(df: pd.DataFrame, a: dict, opts: ClosureOptions) -> pd.DataFrame:

@@ -21,7 +21,7 @@ import pandas as pd
 
 from .. import plots
 from ..names import METRIC_NAMES, OPTIONS, column_label, metric_label
-from ..balance.combos import RANK_TABLE_COLUMNS
+from ..balance.combos import RANK_TABLE_COLUMNS, WATERBODY_TABLE_COLUMNS
 from ..balance.terms import SOURCE_COMPONENTS
 from ..errors import InputError
 from ..escape import md_text, public_message, safe_filename, study_relative
@@ -52,7 +52,21 @@ def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureSta
         if cat.basins.downstream_field and len(load_incremental_basins(cat)):  # nested basins: their units too
             inc = load_series(cat, cache_dir=cache_dir, progress=progress, incremental=True)
     return ClosureState(ds, basins=load_basins(cat), incremental_series=inc, catalog_path=str(cat.path),
-                        title=str(cat.title or ""))
+                        title=str(cat.title or ""), **_waterbody_state(cat, cache_dir=cache_dir, progress=progress))
+
+
+def _waterbody_state(cat, *, cache_dir=None, progress: bool = False) -> dict:
+    """The water bodies' part of a `ClosureState` (series, levels and volumes, outlines); empty without any."""
+    if cat.waterbodies is None:
+        return {}
+    from ..io.waterbodies import read_waterbody_outlines
+    from ..pipeline import CoverageWarning, load_series, waterbody_series
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", CoverageWarning)
+        wbs = load_series(cat, cache_dir=cache_dir, progress=progress, waterbodies=True)
+    return {"waterbody_series": wbs, "waterbody_levels": waterbody_series(cat),
+            "waterbodies": read_waterbody_outlines(cat.waterbodies)}
 
 
 class Explorer:
@@ -73,8 +87,8 @@ class Explorer:
         s = state
         self.study_dir = Path(s.catalog_path).resolve().parent if s.catalog_path else None
         self.export_dir = default_export_dir(s.catalog_path, export_dir)
-        names = s.series["basin_name"].values if "basin_name" in s.series.coords else s.param.basin.objects
-        self._basin_opts = {f"{b} - {n}": b for b, n in zip(s.param.basin.objects, names)}
+        self.wb_outlines = plots.basin_outlines(state.waterbodies) if state.waterbodies is not None else None
+        self._basin_opts = {f"{b} - {n}": b for b, n in state.names().items()}  # basins, then water bodies
         self.w_basin = pn.widgets.Select(name="Basin", options=self._basin_opts, value=s.basin, width=260)
         self.w_search = pn.widgets.AutocompleteInput(name="Find basin", options=list(self._basin_opts),
                                                      case_sensitive=False, search_strategy="includes",
@@ -145,7 +159,7 @@ class Explorer:
         self.w_search.param.watch(on_search, "value")
         for comp, w in self.w_src.items():
             w.param.watch(lambda e, c=comp: setattr(s, c, e.new), "value")
-            s.param.watch(lambda e, w=w: setattr(w, "value", e.new), comp)
+            s.param.watch(lambda e, w=w, c=comp: self._follow_source(w, c, e.new), comp)
 
         def on_period(e):
             lo, hi = sorted(e.new)
@@ -156,6 +170,14 @@ class Explorer:
         self.w_method.param.watch(lambda e: setattr(s, "storage_change", e.new), "value")
         self.w_matched.param.watch(lambda e: setattr(s, "matched", e.new), "value")
         self.w_units.param.watch(lambda e: setattr(s, "unit_system", e.new), "value")
+        s.param.watch(lambda e: setattr(self.w_units, "value", e.new), "unit_system")  # hm3 for a water body
+
+        def on_kind(e):  # a water body has its own sources (storage from levels): the pickers follow
+            for comp, w in self.w_src.items():
+                self._follow_source(w, comp, getattr(s, comp), refresh=True)
+
+        s.param.watch(on_kind, "basin")
+
         self.w_metric.param.watch(lambda e: setattr(s, "metric", e.new), "value")
         s.param.watch(lambda e: self.w_metric.param.update(value=e.new, description=METRIC_NAMES[e.new].help), "metric")
         self.w_best.on_click(lambda e: s.select_best())
@@ -167,17 +189,27 @@ class Explorer:
 
         s.param.watch(on_unit, ["unit", "basin"])
 
+    def _follow_source(self, w, comp: str, value, *, refresh: bool = False) -> None:
+        """Source picker ``w`` shows the state's ``value`` of ``comp``; its options are the state's (refreshed
+        first where they changed: a page's Select would otherwise reset a value it does not offer)."""
+        s = self.state
+        if refresh or value not in w.options.values():
+            w.options = {f"{s.labels.get(i, i)} [{i}]": i for i in getattr(s.param, comp).objects}
+        w.value = value
+
     def _rank_view(self) -> pd.DataFrame:
         r = self.state.ranking()
-        cols = list(RANK_TABLE_COLUMNS)
+        wb = self.state.is_waterbody  # its storage is always the levels; no metric against a gauged outlet
+        cols = list(WATERBODY_TABLE_COLUMNS if wb else RANK_TABLE_COLUMNS)
+        first = 3 if wb else 4  # the first numeric column
         metric = self.state.metric
         if metric not in cols:
-            cols.insert(4, metric)
+            cols.insert(first, metric)
         if not len(r):
             return pd.DataFrame(columns=cols)
         out = r[cols].copy()
         out["rank"] = [str(v) if sc else "not scored" for v, sc in zip(r["rank"], r["scored"])]
-        for c in cols[4:]:
+        for c in cols[first:]:
             if c != "n_valid":
                 out[c] = out[c].astype(float).round(3)
         return out
@@ -201,13 +233,15 @@ class Explorer:
     def _refresh_table(self, *events):
         if any(e.name in ("basin", "unit", "period", "storage_change", "matched", "metric") for e in events):
             view = self._rank_view()
+            if list(view.columns) != list(self.table.value.columns):  # basin <-> water body: other columns
+                self.table.formatters = {c: {"type": "plaintext"} for c in view.columns}
             self.table.param.update(value=view, titles=self._titles(view), header_tooltips=self._tooltips(view))
         elif any(e.name in SOURCE_COMPONENTS for e in events):
             self.table.param.trigger("value")  # the same rows, another one on screen: restyle
 
     def _on_row(self, event):
         row = self.table.value.iloc[event.row]
-        self.state.param.update(P=row["P"], ET=row["ET"], TWSA=row["TWSA"])
+        self.state.param.update(**{c: row[c] for c in SOURCE_COMPONENTS if c in row})  # a water body: P and ET
 
     def _shown(self, path) -> str:
         """A path as a visitor may see it: relative to the study folder."""
@@ -284,9 +318,46 @@ class Explorer:
         from bokeh.events import Tap
 
         s = self.state
-        m = plots.MapPlot(self.outlines)
+        m = plots.MapPlot(self.outlines, waterbodies=self.wb_outlines)
         m.fig.on_event(Tap, lambda ev: s.pick_basin_at(ev.x, ev.y))
         return self._view(m, lambda p: p.update(s.basin_scores(), s.basin, s.metric), _MAP_DEPS, "wbx-map")
+
+    def _waterbody_views(self, summary, warn, resid, scatter):
+        """The water body's views (unmeasured exchange, level and volume) and which views show for which kind:
+        a water body has no gauged outlet (no Q scatter) and its residual is the unmeasured exchange."""
+        import panel as pn
+
+        s = self.state
+
+        def draw_exchange(p):
+            if s.is_waterbody:
+                p.update(s.result(), s.exchange(), s.unit_system)
+
+        def draw_levels(p):
+            lv = s.levels()
+            if lv is not None:
+                p.update(lv, start=s.start, end=s.end, name=s.names().get(s.basin, s.basin))
+
+        exchange = self._view(plots.ExchangePlot(), draw_exchange, _SEL_DEPS, "wbx-exchange")
+        levels = self._view(plots.LevelVolumePlot(), draw_levels, ("basin", "period"), "wbx-levels")
+        wb_summary = pn.pane.HTML(
+            self._bound(lambda: views.waterbody_summary_html(s.result(), s.exchange()) if s.is_waterbody else "",
+                        _SEL_DEPS), css_classes=["wbx-summary-pane", "wbx-waterbody-summary"], width=260)
+        wb_warn = pn.pane.Markdown(
+            self._bound(lambda: views.waterbody_warnings_markdown(s.result()) if s.is_waterbody else "", _SEL_DEPS),
+            css_classes=["wbx-warnings"], width=260)
+        self._wb_panes = (wb_summary, wb_warn)
+
+        def show(*events):
+            wb = s.is_waterbody
+            for pane in (exchange, levels, wb_summary, wb_warn):
+                pane.visible = wb
+            for pane in (resid, scatter, summary, warn):
+                pane.visible = not wb
+
+        show()
+        s.param.watch(show, "basin")
+        return exchange, levels
 
     def panel(self):
         """The page layout (a panel object; built once per explorer)."""
@@ -309,20 +380,21 @@ class Explorer:
         warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.unit_series()), _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
         multi = self._view(plots.MultiBasinPlot(), lambda p: p.update(s.multi_basin()), _MULTI_DEPS, "wbx-multi")
+        exchange, levels = self._waterbody_views(summary, warn, resid, scatter)
         controls = pn.Column(
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search,
             pn.pane.Markdown("Balance unit (incremental: minus the upstream basins)"), self.w_unit, self.w_src["P"], self.w_src["ET"],
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
             pn.Row(self.w_matched, self.matched_help), pn.pane.Markdown("Units"), self.w_units, self.w_metric,
             self.w_best,
-            pn.pane.Markdown("### Summary"), summary, warn,
+            pn.pane.Markdown("### Summary"), summary, warn, *self._wb_panes,
             pn.pane.Markdown("### Export"), self.export_where, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
         views_col = pn.Column(
             pn.Row(self._map(), bars,
                    sizing_mode="stretch_width"),
-            resid,
-            pn.Row(scatter, multi, sizing_mode="stretch_width"),
+            resid, exchange,
+            pn.Row(scatter, levels, multi, sizing_mode="stretch_width"),
             pn.pane.Markdown("### Every combination for this basin and period (click a row to select it)"),
             self.table,
             sizing_mode="stretch_width")
@@ -459,6 +531,8 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
         # each session has its own selection, but the series, the outlines and the memo of
         # computed results are the server's (read-only data, one thread serves all sessions)
         st = ClosureState(base.series, basins=base.basins, incremental_series=base.incremental_series,
+                          waterbody_series=base.waterbody_series, waterbody_levels=base.waterbody_levels,
+                          waterbodies=base.waterbodies,
                           catalog_path=base.catalog_path, title=base.title, memo=base._memo)
         return Explorer(st, export_dir=out_dir, outlines=outlines).panel()
 

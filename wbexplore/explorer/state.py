@@ -28,6 +28,12 @@ class ClosureState(param.Parameterized):
                                          doc="canonical series of the incremental units (``extract(..., "
                                              "incremental=True)``), or None where the catalog nests no basin")
     basins = param.Parameter(precedence=-1, doc="basin outlines (GeoDataFrame, EPSG:4326)")
+    waterbody_series = param.Parameter(default=None, precedence=-1,
+                                       doc="canonical series of the water bodies (``load_series(..., waterbodies=True)``)"
+                                           ", or None where the catalog has none")
+    waterbody_levels = param.Parameter(default=None, precedence=-1,
+                                       doc="level (m) and volume (m3) per water body (`pipeline.waterbody_series`)")
+    waterbodies = param.Parameter(default=None, precedence=-1, doc="water-body outlines (GeoDataFrame, EPSG:4326)")
     catalog_path = param.String(default="", precedence=-1)
     title = param.String(default="", precedence=-1, doc="catalog title (text from the catalog file)")
 
@@ -52,6 +58,10 @@ class ClosureState(param.Parameterized):
         super().__init__(series=series, basins=basins, **params)
         self._memo: dict = {} if memo is None else memo
         ids = [str(b) for b in series["basin"].values]
+        self._basin_ids = list(ids)
+        wbs = self.waterbody_series
+        self._waterbody_ids = [str(w) for w in wbs["basin"].values] if wbs is not None else []
+        ids = ids + self._waterbody_ids  # ids are unique across both (the catalog reader refuses a shared one)
         self.param.basin.objects = ids
         labels = {}
         for comp in SOURCE_COMPONENTS:
@@ -74,6 +84,14 @@ class ClosureState(param.Parameterized):
         self._check_period(self.period)
         self._last_period = self.period
         self.param.watch(self._unit_follows_basin, ["basin"])
+        # the basins' source choices while a water body is shown (restored when a basin is chosen again)
+        self._basin_choice = {c: getattr(self, c) for c in (*SOURCE_COMPONENTS, "unit_system")}
+        self._sources_of = {"basin": {c: source_ids(series, c) for c in SOURCE_COMPONENTS},
+                            "waterbody": {c: source_ids(wbs, c) for c in SOURCE_COMPONENTS} if wbs is not None else {}}
+        self._shown_kind = "basin"
+        if self.is_waterbody:
+            self._switch_kind()
+        self.param.watch(self._kind_follows_basin, ["basin"])
         if "P" not in params:
             self.select_best()
 
@@ -98,7 +116,9 @@ class ClosureState(param.Parameterized):
                              "(the unit stays 'whole')")
 
     def unit_series(self):
-        """The canonical series of the chosen balance unit (whole basins or incremental units)."""
+        """The canonical series of the chosen balance unit (whole basins, incremental units or water bodies)."""
+        if self.is_waterbody:
+            return self.waterbody_series
         return self.incremental_series if self.unit == "incremental" and self.has_incremental else self.series
 
     def upstream_of(self, basin: str | None = None) -> list[str]:
@@ -131,6 +151,81 @@ class ClosureState(param.Parameterized):
             raise
         self._last_period = self.period
 
+    # ----------------------------------------------------------------- water bodies
+    @property
+    def is_waterbody(self) -> bool:
+        """Whether the chosen id is a lake or reservoir of the catalog's ``waterbodies`` (not a basin)."""
+        return self.basin in self._waterbody_ids
+
+    def names(self) -> dict:
+        """Id -> name of every basin, then every water body (for pickers)."""
+        out = {}
+        for ds in (self.series, self.waterbody_series):
+            if ds is not None:
+                names = ds["basin_name"].values if "basin_name" in ds.coords else ds["basin"].values
+                out.update({str(b): str(n) for b, n in zip(ds["basin"].values, names)})
+        return out
+
+    def _kind_follows_basin(self, event) -> None:
+        if self._kind != self._shown_kind:
+            self._switch_kind()
+
+    def _switch_kind(self) -> None:
+        """Between a basin and a water body: the source choices of the other series (a water body's storage is
+        its ``levels``), volume units (hm3/month) by default for a water body; a basin gets its choices back."""
+        to_wb = self.is_waterbody
+        if to_wb:
+            self._basin_choice = {c: getattr(self, c) for c in (*SOURCE_COMPONENTS, "unit_system")}
+        new = {}
+        for comp in SOURCE_COMPONENTS:
+            new[comp] = self._source(comp)
+            # a copy: a Selector without check_on_set appends a value set outside its objects to this list
+            getattr(self.param, comp).objects = list(self._sources_of[self._kind][comp])
+        if to_wb and self.unit_system == "mm":
+            new["unit_system"] = "hm3"
+        elif not to_wb and self.unit_system == "hm3":
+            new["unit_system"] = self._basin_choice.get("unit_system", "mm")
+        self._shown_kind = "waterbody" if to_wb else "basin"
+        self.param.update(**new)
+
+    @property
+    def _kind(self) -> str:
+        return "waterbody" if self.is_waterbody else "basin"
+
+    def _source(self, comp: str) -> str:
+        """The chosen source of ``comp`` where the chosen unit's series has it; else (the moment between choosing
+        a water body and its sources following) the one the switch gives: a basin's earlier choice, or the first
+        of the water body's sources (its storage: ``levels``). Every view sees the same selection."""
+        v = getattr(self, comp)
+        opts = self._sources_of[self._kind][comp]
+        if v in opts:
+            return v
+        back = self._basin_choice.get(comp)
+        return back if self._kind == "basin" and back in opts else opts[0]
+
+    def exchange(self):
+        """A water body's residual as unmeasured exchange (`balance.waterbody.unmeasured_exchange`), or None."""
+        if not self.is_waterbody:
+            return None
+        from ..balance.waterbody import unmeasured_exchange
+        from ..series import SURFACE_AREA
+
+        sel = self.selection()
+        ds = self.waterbody_series
+
+        def run():
+            surf = ds[SURFACE_AREA].sel(basin=self.basin) if SURFACE_AREA in ds else None
+            return unmeasured_exchange(self.result(), surface_area_km2=surf)
+
+        return self._cached(("exchange", sel, self.min_valid), run)
+
+    def levels(self):
+        """Level (m) and volume (m3) of the chosen water body over time (`pipeline.waterbody_series`), or None."""
+        lv = self.waterbody_levels
+        if not self.is_waterbody or lv is None or self.basin not in set(map(str, lv["waterbody"].values)):
+            return None
+        return lv.sel(waterbody=self.basin)
+
     # ----------------------------------------------------------------- derived selection
     @property
     def start(self) -> str:
@@ -146,7 +241,7 @@ class ClosureState(param.Parameterized):
                               matched=self.matched, min_valid=self.min_valid)
 
     def selection(self) -> Selection:
-        return Selection.from_options(self.basin, self.options(), **{c: getattr(self, c) for c in SOURCE_COMPONENTS})
+        return Selection.from_options(self.basin, self.options(), **{c: self._source(c) for c in SOURCE_COMPONENTS})
 
     def _cached(self, key, fn):
         if key not in self._memo:
@@ -196,7 +291,10 @@ class ClosureState(param.Parameterized):
         return self._cached(key, run)
 
     def multi_basin(self) -> pd.DataFrame:
+        """Long-term P - ET against Q of every basin (with a water body chosen: the basins' last sources)."""
         sel = self.selection()
+        if self.is_waterbody:
+            sel = sel.replace(**{c: self._basin_choice[c] for c in SOURCE_COMPONENTS})
         return self._cached(("multi", sel.replace(basin="")), lambda: long_term_all(self.series, sel))
 
     def select_best(self) -> None:
@@ -206,13 +304,14 @@ class ClosureState(param.Parameterized):
             self.param.update(P=r.iloc[0]["P"], ET=r.iloc[0]["ET"], TWSA=r.iloc[0]["TWSA"])
 
     def pick_basin_at(self, lon: float, lat: float) -> str | None:
-        """The smallest basin containing a point (so nested basins stay clickable)."""
-        if self.basins is None:
+        """The smallest basin or water body containing a point (so nested basins and lakes stay clickable)."""
+        if self.basins is None and self.waterbodies is None:
             return None
         import shapely
 
         pt = shapely.Point(lon, lat)
-        hits = [(row["area_km2"], bid) for bid, row in self.basins.iterrows() if row.geometry.covers(pt)]
+        hits = [(row["area_km2"], bid) for gdf in (self.basins, self.waterbodies) if gdf is not None
+                for bid, row in gdf.iterrows() if row.geometry.covers(pt)]
         if not hits:
             return None
         bid = str(min(hits)[1])
@@ -223,4 +322,4 @@ class ClosureState(param.Parameterized):
     def view_data(self) -> dict:
         """Everything the views draw, computed from `balance/` (used by tests and benchmarks)."""
         return {"result": self.result(), "ranking": self.ranking(), "scores": self.basin_scores(),
-                "multi": self.multi_basin()}
+                "multi": self.multi_basin(), "exchange": self.exchange(), "levels": self.levels()}

@@ -17,7 +17,8 @@ from ..names import METRIC_NAMES, metric_name, option_label
 from ..plots import COLORS, SEASON_COLORS, UNIT_LABEL
 
 __all__ = ["COLORS", "SEASON_COLORS", "UNIT_LABEL", "balance_scatter", "basin_map", "component_bars",
-           "multi_basin", "residual_series", "summary_html", "warnings_for", "warnings_markdown"]
+           "multi_basin", "residual_series", "summary_html", "warnings_for", "warnings_markdown",
+           "waterbody_summary_html", "waterbody_warnings_markdown"]
 
 GRAVIMETRY_MIN_KM2 = 200_000  # rule of thumb for satellite-gravimetry storage (e.g. Longuevergne et al. 2010, WRR)
 
@@ -94,3 +95,28 @@ def summary_html(result, *, metric: str = "rmse") -> str:
     return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{e(result.basin_name)} ({e(sel.basin)})</h4>"
             f"<div>{e(sel.P)} / {e(sel.ET)} / {e(sel.TWSA)}, {e(option_label(sel.storage_change).lower())} difference"
             f"{', window-matched' if sel.matched else ''}</div><table>{cells}</table></div>")
+
+
+def waterbody_warnings_markdown(result) -> str:
+    """A water body's warnings (`plots.waterbody_messages`) as a Markdown list, each escaped to literal text."""
+    return "\n".join(f"- {md_text(w)}" for w in plots.waterbody_messages(result)) or "No warnings for this selection."
+
+
+def waterbody_summary_html(result, exchange) -> str:
+    """A water body's selection: the unmeasured exchange (mean and standard error, m3/s and hm3/month; negative =
+    unmeasured loss) and the closure's spread, as a small HTML table (every text from a file escaped)."""
+    m, se, sel = exchange.mean, exchange.standard_error, result.selection
+
+    def fmt(v, spec):
+        return "n/a" if v is None or not np.isfinite(v) else format(v, spec)
+
+    rows = [("unmeasured exchange", f"{fmt(m['m3/s'], '.2f')} ± {fmt(se['m3/s'], '.2f')} m3/s"),
+            ("per month", f"{fmt(m['hm3'], '.2f')} ± {fmt(se['hm3'], '.2f')} hm3"),
+            ("RMSE", f"{fmt(result.metrics['rmse'], '.2f')} mm/month"),
+            ("valid months", str(result.metrics["n_valid"])), ("outline area", f"{result.area_km2:,.0f} km2")]
+    cells = "".join(f"<tr><td>{k}</td><td style='text-align:right'><b class='wbx-{k.replace(' ', '-')}'>{v}</b></td></tr>"
+                    for k, v in rows)
+    e = html_text
+    return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{e(result.basin_name)} ({e(sel.basin)}), water body</h4>"
+            f"<div>P {e(sel.P)} / E {e(sel.ET)} / storage from levels</div><table>{cells}</table>"
+            f"<div><i>{e(plots.EXCHANGE_LABEL)}; ± 1 standard error</i></div></div>")
