@@ -520,3 +520,44 @@ def test_a_lag_is_refused_for_a_water_body(study, capsys):
     """--lag shifts gauged discharge; a water body has none: refused, never silently ignored."""
     rc, _, err = run_cli(["rank", study, "--basin", "RES1", "--lag", "1"], capsys)
     assert "does not have" in one_line_error(rc, err)
+
+
+def _synthetic_waterbody(state, *, nt=36, seed=5):
+    """One water body L1 (storage state ``state``), a P and an ET product and one gauged inflow."""
+    t = pd.date_range("2001-01-01", periods=nt, freq="MS")
+    rng = np.random.default_rng(seed)
+    p, e, m = rng.uniform(10, 90, nt), rng.uniform(5, 60, nt), np.cumsum(rng.normal(0, 20, nt))
+    q = rng.uniform(20, 200, nt)
+    ds = xr.Dataset({"pa": (("basin", "time"), p[None]), "ea": (("basin", "time"), e[None]),
+                     "levels": (("basin", "time"), m[None]), "flow_inlet": (("basin", "time"), q[None])},
+                    coords={"basin": ["L1"], "time": t, "storage_state": ("basin", [state]),
+                            "basin_area_km2": ("basin", [5.0])}, attrs={"unit": "waterbody"})
+    for v, c in (("pa", "P"), ("ea", "ET"), ("levels", "TWSA")):
+        ds[v].attrs = {"role": "source", "component": c}
+    ds["flow_inlet"].attrs = {"role": "flow", "direction": "in", "units": "mm/month"}
+    return ds
+
+
+@pytest.mark.parametrize("method", ["central", "forward", "backward"])
+def test_end_of_month_uncertainty_uses_the_month_itself(method):
+    """End-of-month states: fluxes are not window-matched, so a gauged flow's sigma is 5% of the month's own flow
+    (common practice for gauged flows; `uncertainty.gauge_error`), not the central-window variance, whatever
+    ``method``; the uncertainty text says that levels carry no stated error."""
+    ds = _synthetic_waterbody("end_of_month")
+    res = compute_selection(ds, Selection("L1", "pa", "ea", "levels", storage_change=method))
+    f = res.frame.iloc[1:-1]
+    np.testing.assert_allclose(f["sigma_flow_inlet"].values, 0.05 * np.abs(f["flow_inlet_raw"].values), rtol=1e-14)
+    assert any("no error stated for levels" in m for m in res.messages)
+
+
+def test_monthly_mean_water_body_keeps_the_window_variance():
+    """Monthly-mean states: fluxes are window-matched, so their variance follows the squared kernel weights
+    (independent monthly errors: var(sum w_k x_k) = sum w_k^2 var(x_k), arithmetic)."""
+    from wbexplore.balance.storage import KERNELS
+
+    ds = _synthetic_waterbody("monthly_mean")
+    res = compute_selection(ds, Selection("L1", "pa", "ea", "levels", storage_change="central"))
+    q = res.frame["flow_inlet_raw"].values
+    w = KERNELS["central"]
+    want = np.sqrt(sum(wk**2 * (0.05 * q[5 + k - 1]) ** 2 for k, wk in enumerate(w)))
+    assert res.frame["sigma_flow_inlet"].values[5] == pytest.approx(want, rel=1e-12)
