@@ -180,7 +180,7 @@ def test_basin_series_leave_the_waterbody_out(study):
 # ---- the balance: residual = unmeasured exchange ------------------------------------------------
 
 def test_residual_recovers_the_seepage(study):
-    """P, E, two inflows, a release and a seepage written by hand: the residual is -seepage (m3/s) to round-off
+    """P, E, two inflows, a release and a seepage written by hand: the residual is +seepage (m3/s) to round-off
     with the exact products; in hm3 and mm over the surface as pint converts them."""
     from wbexplore.balance.waterbody import unmeasured_exchange
 
@@ -191,16 +191,16 @@ def test_residual_recovers_the_seepage(study):
     ex = unmeasured_exchange(res, surface_area_km2=ds["surface_area_km2"].sel(basin="RES1"))
     ok = np.isfinite(res.frame["residual"].values)
     assert ok.sum() == MONTHS.size
-    # an unmeasured loss leaves a positive residual; the exchange (net unmeasured inflow) is its negative
-    np.testing.assert_allclose(ex.monthly["m3/s"].values[ok], -SEEPAGE_M3S, rtol=1e-9)
-    np.testing.assert_allclose(ex.monthly["residual_mm"].values, -ex.monthly["mm"].values)
+    # DESIGN.md: P + inflows - E - outflows - dS = residual = unmeasured exchange; a loss leaves it positive
+    np.testing.assert_allclose(ex.monthly["m3/s"].values[ok], SEEPAGE_M3S, rtol=1e-9)
+    np.testing.assert_array_equal(ex.monthly["residual_mm"].values, ex.monthly["mm"].values)
     for m, vol in ex.monthly["m3"][ok].items():
-        want = (-SEEPAGE_M3S * UREG.m**3 / UREG.s * _days(m) * UREG.day).to(UREG.m**3).magnitude
+        want = (SEEPAGE_M3S * UREG.m**3 / UREG.s * _days(m) * UREG.day).to(UREG.m**3).magnitude
         assert vol == pytest.approx(want, rel=1e-9)
         assert ex.monthly.loc[m, "hm3"] == pytest.approx((want * UREG.m**3).to(UREG.hm**3).magnitude, rel=1e-12)
         want_mm = (want * UREG.m**3 / (CURVE_AREA_KM2 * UREG.km**2)).to(UREG.mm).magnitude
         assert ex.monthly.loc[m, "mm_surface"] == pytest.approx(want_mm, rel=1e-9)
-    assert ex.mean["m3/s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+    assert ex.mean["m3/s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
     # a constant seepage: no spread, so the standard error is zero to round-off
     assert abs(ex.standard_error["m3/s"]) < 1e-9
     # Q-based metrics are undefined, with the reason; residual-based ones are there
@@ -247,7 +247,7 @@ def test_the_true_products_rank_first(study):
     assert len(df) == 4 and df["scored"].all()
     assert df["nse"].isna().all() and "no gauged discharge" in df.iloc[0]["undefined"]
     # the best row's mean residual in m3/s is the seepage (volume columns of a water body's ranking)
-    assert df.iloc[0]["exchange_m3s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+    assert df.iloc[0]["exchange_m3s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
 
 
 def test_surface_area_option(study):
@@ -313,14 +313,14 @@ def test_cli_rank_a_water_body_prints_the_exchange_in_volume_units(study, capsys
     head = lines[1].split()
     first = dict(zip(head, lines[2].split()))
     assert (first["P"], first["ET"], first["TWSA"]) == ("rain_true", "evap_true", "levels")
-    assert float(first["exchange_m3s"]) == pytest.approx(-SEEPAGE_M3S, abs=5e-4)  # printed to 3 decimals
+    assert float(first["exchange_m3s"]) == pytest.approx(SEEPAGE_M3S, abs=5e-4)  # printed to 3 decimals
     assert "exchange_hm3" in head and "exchange_mm_surface" in head
     assert "no gauged discharge" in out
     rc, out, err = run_cli(["rank", study, "--basin", "RES1", "--format", "json", "--cache-dir", tmp_path / "cache"],
                            capsys)
     doc = __import__("json").loads(out)
     assert rc == 0 and doc["unit"] == "waterbody" and doc["options"]["area"] == "outline"
-    assert doc["rows"][0]["exchange_m3s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+    assert doc["rows"][0]["exchange_m3s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
 
 
 def test_cli_export_replay_report_a_water_body(study, capsys, tmp_path):
@@ -447,7 +447,7 @@ def test_pan_evaporation_is_an_et_source(study):
     df = rank(ds, "RES1", ClosureOptions())
     assert len(df) == 2 * 3
     best = df[(df["P"] == "rain_true") & (df["ET"] == "pan")].iloc[0]
-    assert best["exchange_m3s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+    assert best["exchange_m3s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
 
 
 def test_pan_coefficient_and_units_are_checked(study, capsys, tmp_path):

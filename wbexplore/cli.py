@@ -480,8 +480,8 @@ def _print_rank_table(df, by: str, *, head: str) -> None:
     print(show.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     print("rmse, bias in mm/month; rel_imbalance in %; '-' = too few valid months to score")
     if waterbody:
-        print("mm/month over the outline; exchange = -residual, the net unmeasured inflow (negative = loss: "
-              "seepage, abstraction), mean per month in hm3, m3/s and mm over the surface, _se its standard error "
+        print("mm/month over the outline; exchange = residual, the net unmeasured outflow (positive = loss: "
+              "seepage, leakage, abstraction; negative = ungauged gain), mean per month in hm3, m3/s and mm over the surface, _se its standard error "
               "(lag-1 autocorrelation inflated)")
     for why in dict.fromkeys(w for w in df["undefined"] if w):
         print(f"NaN: {why}")
