@@ -561,3 +561,34 @@ def test_monthly_mean_water_body_keeps_the_window_variance():
     w = KERNELS["central"]
     want = np.sqrt(sum(wk**2 * (0.05 * q[5 + k - 1]) ** 2 for k, wk in enumerate(w)))
     assert res.frame["sigma_flow_inlet"].values[5] == pytest.approx(want, rel=1e-12)
+
+
+END_OF_MONTH_TEXT = "storage from end-of-month volumes, month-by-month differences (storage-change options do not apply)"
+
+
+def test_options_that_do_not_apply_are_not_claimed(study, capsys, tmp_path):
+    """Daily levels (end-of-month states): --storage-change and --unmatched change nothing (common practice: a
+    header states only what was done), so the rank header, its JSON, the selection file and the series CSV say
+    how the storage was taken instead; the selection still replays exactly."""
+    cache = ["--cache-dir", tmp_path / "cache"]
+    rc, out, err = run_cli(["rank", study, "--basin", "RES1", "--storage-change", "forward", "--unmatched", *cache],
+                           capsys)
+    assert rc == 0, err
+    head = out.splitlines()[0]
+    assert END_OF_MONTH_TEXT in head and "forward" not in head and "unmatched" not in head, head
+    rc, out, err = run_cli(["rank", study, "--basin", "RES1", "--storage-change", "forward", "--unmatched",
+                            "--format", "json", *cache], capsys)
+    doc = __import__("json").loads(out)
+    assert rc == 0 and doc["storage"] == END_OF_MONTH_TEXT
+    assert doc["storage_change"] is None and doc["matched"] is None
+    sel = tmp_path / "sel.yaml"
+    rc, out, err = run_cli(["export", study, "--basin", "RES1", "--P", "rain_true", "--ET", "evap_true",
+                            "--storage-change", "forward", "--series", tmp_path / "sel.csv", "--out", sel, *cache],
+                           capsys)
+    assert rc == 0, err
+    doc = yaml.safe_load(sel.read_text())
+    assert doc["storage_change"]["note"] == END_OF_MONTH_TEXT
+    csv_head = [ln for ln in sel.with_suffix(".csv").read_text().splitlines() if ln.startswith("#")]
+    assert any(END_OF_MONTH_TEXT in ln for ln in csv_head) and not any("forward" in ln for ln in csv_head)
+    rc, out, err = run_cli(["replay", sel, *cache], capsys)
+    assert rc == 0 and "replay ok" in out, err

@@ -532,11 +532,18 @@ def _cmd_rank(args) -> int:
     what = ({"basins": sorted(set(df["basin"]))} if args.all
             else {"basin": args.basin, "unit": "waterbody" if kind == "waterbody"
                   else "incremental" if args.incremental else "whole"})
+    note = None
+    if kind == "waterbody":  # end-of-month storage: the storage-change options change nothing, never claim them
+        from .balance.storage import storage_note
+        from .series import STORAGE_STATE
+
+        note = storage_note(str(ds[STORAGE_STATE].sel(basin=args.basin).item()))
     if args.format == "csv":
         df.to_csv(sys.stdout, index=False, float_format="%.6g")
     elif args.format == "json":
         json.dump({**what, "by": args.by, "period": [df.attrs["start"], df.attrs["end"]],
-                   "storage_change": args.storage_change, "matched": not args.unmatched,
+                   "storage_change": None if note else args.storage_change,
+                   "matched": None if note else not args.unmatched, **({"storage": note} if note else {}),
                    "options": json.loads(opts.to_json()), "caution": _caution(),
                    "rows": json.loads(df.to_json(orient="records"))}, sys.stdout, indent=1)
         print()
@@ -544,8 +551,9 @@ def _cmd_rank(args) -> int:
         who = (f"{len(what['basins'])} basins" if args.all else f"water body {args.basin}" if kind == "waterbody"
                else f"basin {args.basin}" + (" (incremental unit)" if args.incremental else ""))
         _print_rank_table(df, args.by, head=(
-            f"{who}, {df.attrs['start']}..{df.attrs['end']}, storage change {args.storage_change}"
-            f"{' (unmatched)' if args.unmatched else ' (window-matched)'}, ranked by {args.by}"))
+            f"{who}, {df.attrs['start']}..{df.attrs['end']}, "
+            + (note if note else f"storage change {args.storage_change}"
+               f"{' (unmatched)' if args.unmatched else ' (window-matched)'}") + f", ranked by {args.by}"))
     return 0
 
 

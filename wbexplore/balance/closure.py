@@ -21,7 +21,7 @@ from .engine import (ENSEMBLE_PREFIX, basin_index, check_source, closure_arrays,
                      water_year, with_ensembles)
 from .options import MAX_LAG_MONTHS, OPTION_NAMES, ClosureOptions, check_lag, period_mask
 from . import uncertainty as unc
-from .storage import apply_kernel, variance_kernels
+from .storage import apply_kernel, storage_note, variance_kernels
 from .terms import BASE_TERMS, SOURCE_COMPONENTS, Q as Q_TERM, term_signs
 
 
@@ -106,6 +106,12 @@ class SelectionResult:
     # component -> `uncertainty.ProductError`: where each sigma_<component> came from
     uncertainty: dict = field(default_factory=dict)
     q_relative_error: float = Q_RELATIVE_ERROR  # of gauged Q and of every flow
+    storage_state: str | None = None  # a water body's (`series.STORAGE_STATE`); None for a basin
+
+    @property
+    def storage_note(self) -> str | None:
+        """What outputs say instead of the storage-change options where these do not apply (`storage.storage_note`)."""
+        return storage_note(self.storage_state)
 
     @property
     def uncertainty_line(self) -> str:
@@ -286,7 +292,8 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
                                                else f"Q {q_relative_error:.0%} of flow")]
                            + [f"uncertainty of {c} ({e.source}): {e.note}" for c, e in errors.items()
                               if "not used" in e.note],
-                           terms=a["terms"], uncertainty=errors, q_relative_error=float(q_relative_error))
+                           terms=a["terms"], uncertainty=errors, q_relative_error=float(q_relative_error),
+                           storage_state=state)
 
 
 def _span(months, ok):

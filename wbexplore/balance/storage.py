@@ -58,7 +58,8 @@ from ..errors import InputError, LevelOutsideCurveWarning
 __all__ = ["METHODS", "KERNELS", "storage_change", "match_window", "apply_kernel", "match_window_variance",
            "storage_change_variance", "DS_KERNELS", "kernel", "sum_variance", "shift_later", "fill_gaps", "window_closure",
            "VOLUME_STATES", "level_volumes", "apply_curves", "volume_storage_change", "volume_kernel", "match_volume_window",
-           "state_storage_change", "match_state_window", "variance_kernels"]
+           "state_storage_change", "match_state_window", "variance_kernels",
+           "END_OF_MONTH_NOTE", "storage_note"]
 
 METHODS = ("central", "backward", "forward")
 # weights on F[i-1], F[i], F[i+1]
@@ -388,3 +389,18 @@ def variance_kernels(state: str | None, method: str = "central", *,
         return (0.0, 1.0, 0.0), _DS_VARIANCE_KERNELS["backward"]
     flux = tuple(w * w for w in KERNELS[method]) if matched else (0.0, 1.0, 0.0)
     return flux, _DS_VARIANCE_KERNELS[method]
+
+
+# what outputs say instead of the storage-change options where those options change nothing
+END_OF_MONTH_NOTE = ("storage from end-of-month volumes, month-by-month differences "
+                     "(storage-change options do not apply)")
+
+
+def storage_note(state: str | None) -> str | None:
+    """How the storage change of a unit in ``state`` is taken, where the storage-change options (method, window
+    matching) do not apply to it: `END_OF_MONTH_NOTE` for end-of-month states, None where they apply (a basin:
+    ``state`` None, or a monthly-mean water body)."""
+    if state is None or state == "monthly_mean":
+        return None
+    volume_kernel(state)  # refuses an unknown state
+    return END_OF_MONTH_NOTE
