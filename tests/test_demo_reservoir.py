@@ -362,3 +362,17 @@ def test_engine_recovers_the_seepage_and_ranks_the_true_products_first(demo_dir,
     assert 0 < se < 0.25 * demo.SEEPAGE_M3S  # informative: the loss stands out of its uncertainty
     assert abs(x - demo.SEEPAGE_M3S) < 2 * se, (x, se, demo.SEEPAGE_M3S)
     assert table["rmse"].is_monotonic_increasing  # best first, by the metric named in the header
+
+
+def test_rank_all_says_it_leaves_water_bodies_out(demo_dir, capsys):
+    """`rank --all` ranks basins: with a water body in the catalog it says, in one line, that it is left out and
+    how to rank it (not an error: exit 0, every row a basin's)."""
+    import io
+
+    from utils import run_cli
+
+    rc, out, err = run_cli(["rank", demo_dir / "catalog.yaml", "--all", "--format", "csv"], capsys)
+    assert rc == 0, err
+    notes = [ln for ln in err.splitlines() if "water bod" in ln]
+    assert len(notes) == 1 and WID in notes[0] and "--basin" in notes[0], err
+    assert WID not in set(pd.read_csv(io.StringIO(out), dtype={"basin": str})["basin"])

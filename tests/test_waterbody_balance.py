@@ -592,3 +592,20 @@ def test_options_that_do_not_apply_are_not_claimed(study, capsys, tmp_path):
     assert any(END_OF_MONTH_TEXT in ln for ln in csv_head) and not any("forward" in ln for ln in csv_head)
     rc, out, err = run_cli(["replay", sel, *cache], capsys)
     assert rc == 0 and "replay ok" in out, err
+
+
+@pytest.mark.parametrize("metric", ["kge", "nse", "r", "pbias", "kge_prime", "nse_cyclo"])
+def test_rank_a_water_body_by_a_discharge_metric_is_refused(study, capsys, tmp_path, metric):
+    """A metric that compares with gauged discharge is NaN for every water-body combination (no gauged outlet:
+    DESIGN.md's water-body balance has no Q): ranking by it would order NaNs, so it is refused (exit 2, one line
+    naming the metric and why); a residual metric still ranks."""
+    line = _refused(["rank", study, "--basin", "RES1", "--by", metric, "--cache-dir", tmp_path / "c"], capsys,
+                    tmp_path)
+    assert f"--by {metric}" in line and "RES1" in line and "no gauged discharge" in line, line
+    rc, out, err = run_cli(["rank", study, "--basin", "RES1", "--by", "bias", "--cache-dir", tmp_path / "c"], capsys)
+    assert rc == 0, err
+    out_html = tmp_path / "r.html"
+    rc, _, err = run_cli(["report", study, "--basin", "RES1", "--by", metric, "--out", out_html,
+                          "--cache-dir", tmp_path / "c"], capsys)
+    assert f"--by {metric}" in one_line_error(rc, err) and not out_html.exists()
+

@@ -511,6 +511,21 @@ def _rank_every_unit(args, ds, opts):
     return df
 
 
+def _note_waterbodies_left_out(catalog) -> None:
+    """``rank --all`` ranks basins: say in one line (stderr, not an error) which water bodies it leaves out."""
+    from .io.catalog import open_catalog
+
+    cat = open_catalog(catalog)
+    if cat.waterbodies is None:
+        return
+    from .io.waterbodies import read_waterbody_outlines
+
+    wbs = [str(w) for w in read_waterbody_outlines(cat.waterbodies).index]
+    if wbs:
+        print(f"note: --all ranks basins only; water bodies left out: {', '.join(wbs)} (rank each with --basin ID)",
+              file=sys.stderr)
+
+
 def _cmd_rank(args) -> int:
     from .balance import rank
     from .balance.metrics import check_metric
@@ -522,11 +537,16 @@ def _cmd_rank(args) -> int:
     kind = _unit_kind(args)  # --all: basins only (water-body ids are checked against them)
     if args.all and args.area != "outline":
         raise InputError("--area goes with --basin RES_ID (a water body)")
+    if kind == "waterbody":
+        from .balance.metrics import check_waterbody_metric
+
+        check_waterbody_metric(args.by, args.basin)
     if args.incremental:
         _check_incremental(args.catalog, args.basin)
     ds = _series(args, waterbodies=kind == "waterbody")
     if args.all:
         df = _rank_every_unit(args, ds, opts)
+        _note_waterbodies_left_out(args.catalog)
     else:
         df = rank(ds, args.basin, opts, by=args.by)
     what = ({"basins": sorted(set(df["basin"]))} if args.all
@@ -613,6 +633,10 @@ def _cmd_report(args) -> int:
     cat = open_catalog(args.catalog)
     check_output(args.out, overwrite=args.force, protect=cat)
     kind = _unit_kind(args)
+    if kind == "waterbody" and not (args.P or args.ET or args.TWSA):  # the best combination by --by
+        from .balance.metrics import check_waterbody_metric
+
+        check_waterbody_metric(args.by, args.basin)
     if args.incremental:
         _check_incremental(cat, args.basin)
     ds = _series(args, waterbodies=kind == "waterbody")
