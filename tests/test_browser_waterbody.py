@@ -53,7 +53,7 @@ def test_choosing_the_reservoir_shows_exchange_levels_and_volumes(page, study, a
     assert shown == f"{ex.mean['m3/s']:.2f} ± {ex.standard_error['m3/s']:.2f} m3/s"
     assert page.locator(".wbx-levels").first.is_visible() and page.locator(".wbx-exchange").first.is_visible()
     assert not page.locator(".wbx-scatter").first.is_visible()
-    assert "negative = unmeasured loss" in _deep_text(page, ".wbx-waterbody-summary")
+    assert "positive = unmeasured loss" in _deep_text(page, ".wbx-waterbody-summary")
 
 
 def test_reservoir_report_opens_offline(browser, study, tmp_path, artifacts):  # noqa: F811

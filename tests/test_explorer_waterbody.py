@@ -87,7 +87,7 @@ def test_water_body_views_volume_exchange_and_levels(explorer):
     s.basin = WID
     ex = s.exchange()
     res = s.result()
-    # unmeasured exchange = -residual; m3/s from hm3 per month with the calendar's days (stdlib)
+    # unmeasured exchange = residual (DESIGN.md); m3/s from hm3 per month with the calendar's days (stdlib)
     months = ex.monthly.index
     days = np.array([calendar.monthrange(m.year, m.month)[1] for m in months])
     per_hm3 = pint.UnitRegistry()("1 hm**3").to("m**3").magnitude
@@ -98,7 +98,7 @@ def test_water_body_views_volume_exchange_and_levels(explorer):
     p = plots.ExchangePlot()
     p.update(res, ex, s.unit_system)
     np.testing.assert_array_equal(p.src.data["residual"], ex.monthly["hm3"].values)
-    assert "negative = unmeasured loss" in p.fig.title.text and "hm3/month" in p.fig.yaxis.axis_label
+    assert "positive = unmeasured loss" in p.fig.title.text and "hm3/month" in p.fig.yaxis.axis_label
     bars = plots.BarsPlot()
     bars.update(res, s.unit_system)
     assert bars.fig.yaxis.axis_label == "mean over valid months (hm3/month)" and "Q" not in bars.src.data["term"]

@@ -42,14 +42,14 @@ def test_waterbody_report_speaks_of_exchange_not_discharge(report_text):
     # no word of a gauged outlet: a water body has none
     for word in ("discharge", "gauged Q", "Qhat", "Q from the balance", "KGE", "PBIAS", "Basin area"):
         assert word not in text, word
-    assert "Unmeasured exchange</b> (net unmeasured inflow = -residual; negative = unmeasured loss)" in text
+    assert "Unmeasured exchange</b> (= residual, the net unmeasured outflow; positive = unmeasured loss)" in text
     assert "storage from water levels" in text and "Outline area" in text
     assert "<title>wbexplore report TALV (water body)</title>" in raw
     # the bars in volume units by default, the level-and-volume plot
     assert '"axis_label":"mean over valid months (hm3/month)"' in raw
     assert '"axis_label":"level (m)"' in raw and '"axis_label":"volume (hm3)"' in raw
     assert '"axis_label":"unmeasured exchange (hm3/month)"' in raw
-    assert "Unmeasured exchange (-residual; negative = unmeasured loss): mean" in raw  # the exchange plot's title
+    assert "Unmeasured exchange (= residual; positive = unmeasured loss): mean" in raw  # the exchange plot's title
 
 
 def test_waterbody_report_exchange_matches_the_known_seepage(report_text, wb_series):
@@ -61,9 +61,9 @@ def test_waterbody_report_exchange_matches_the_known_seepage(report_text, wb_ser
     m = re.search(r"mean (-?[\d.]+) ± ([\d.]+) m3/s = (-?[\d.]+) ± ([\d.]+) hm3/month", text)
     assert m, "exchange line missing"
     mean_m3s, se_m3s, mean_hm3, se_hm3 = map(float, m.groups())
-    # the demo's seepage is a loss: negative exchange, within two standard errors of the truth
-    assert mean_m3s < 0 and "an unmeasured loss" in text
-    assert abs(mean_m3s + demo.SEEPAGE_M3S) <= 2 * se_m3s
+    # the demo's seepage is a loss: positive exchange (= residual, DESIGN.md), within two standard errors of the truth
+    assert mean_m3s > 0 and "an unmeasured loss" in text
+    assert abs(mean_m3s - demo.SEEPAGE_M3S) <= 2 * se_m3s
     # the same numbers as balance.waterbody gives for the report's selection (best-ranked combination)
     sel = best_selection(wb_series, WID, ClosureOptions(), by="rmse")
     res = compute_selection(wb_series, sel)

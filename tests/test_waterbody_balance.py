@@ -180,7 +180,7 @@ def test_basin_series_leave_the_waterbody_out(study):
 # ---- the balance: residual = unmeasured exchange ------------------------------------------------
 
 def test_residual_recovers_the_seepage(study):
-    """P, E, two inflows, a release and a seepage written by hand: the residual is -seepage (m3/s) to round-off
+    """P, E, two inflows, a release and a seepage written by hand: the residual is +seepage (m3/s) to round-off
     with the exact products; in hm3 and mm over the surface as pint converts them."""
     from wbexplore.balance.waterbody import unmeasured_exchange
 
@@ -191,16 +191,16 @@ def test_residual_recovers_the_seepage(study):
     ex = unmeasured_exchange(res, surface_area_km2=ds["surface_area_km2"].sel(basin="RES1"))
     ok = np.isfinite(res.frame["residual"].values)
     assert ok.sum() == MONTHS.size
-    # an unmeasured loss leaves a positive residual; the exchange (net unmeasured inflow) is its negative
-    np.testing.assert_allclose(ex.monthly["m3/s"].values[ok], -SEEPAGE_M3S, rtol=1e-9)
-    np.testing.assert_allclose(ex.monthly["residual_mm"].values, -ex.monthly["mm"].values)
+    # DESIGN.md: P + inflows - E - outflows - dS = residual = unmeasured exchange; a loss leaves it positive
+    np.testing.assert_allclose(ex.monthly["m3/s"].values[ok], SEEPAGE_M3S, rtol=1e-9)
+    np.testing.assert_array_equal(ex.monthly["residual_mm"].values, ex.monthly["mm"].values)
     for m, vol in ex.monthly["m3"][ok].items():
-        want = (-SEEPAGE_M3S * UREG.m**3 / UREG.s * _days(m) * UREG.day).to(UREG.m**3).magnitude
+        want = (SEEPAGE_M3S * UREG.m**3 / UREG.s * _days(m) * UREG.day).to(UREG.m**3).magnitude
         assert vol == pytest.approx(want, rel=1e-9)
         assert ex.monthly.loc[m, "hm3"] == pytest.approx((want * UREG.m**3).to(UREG.hm**3).magnitude, rel=1e-12)
         want_mm = (want * UREG.m**3 / (CURVE_AREA_KM2 * UREG.km**2)).to(UREG.mm).magnitude
         assert ex.monthly.loc[m, "mm_surface"] == pytest.approx(want_mm, rel=1e-9)
-    assert ex.mean["m3/s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+    assert ex.mean["m3/s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
     # a constant seepage: no spread, so the standard error is zero to round-off
     assert abs(ex.standard_error["m3/s"]) < 1e-9
     # Q-based metrics are undefined, with the reason; residual-based ones are there
@@ -247,7 +247,7 @@ def test_the_true_products_rank_first(study):
     assert len(df) == 4 and df["scored"].all()
     assert df["nse"].isna().all() and "no gauged discharge" in df.iloc[0]["undefined"]
     # the best row's mean residual in m3/s is the seepage (volume columns of a water body's ranking)
-    assert df.iloc[0]["exchange_m3s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+    assert df.iloc[0]["exchange_m3s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
 
 
 def test_surface_area_option(study):
@@ -313,14 +313,14 @@ def test_cli_rank_a_water_body_prints_the_exchange_in_volume_units(study, capsys
     head = lines[1].split()
     first = dict(zip(head, lines[2].split()))
     assert (first["P"], first["ET"], first["TWSA"]) == ("rain_true", "evap_true", "levels")
-    assert float(first["exchange_m3s"]) == pytest.approx(-SEEPAGE_M3S, abs=5e-4)  # printed to 3 decimals
+    assert float(first["exchange_m3s"]) == pytest.approx(SEEPAGE_M3S, abs=5e-4)  # printed to 3 decimals
     assert "exchange_hm3" in head and "exchange_mm_surface" in head
     assert "no gauged discharge" in out
     rc, out, err = run_cli(["rank", study, "--basin", "RES1", "--format", "json", "--cache-dir", tmp_path / "cache"],
                            capsys)
     doc = __import__("json").loads(out)
     assert rc == 0 and doc["unit"] == "waterbody" and doc["options"]["area"] == "outline"
-    assert doc["rows"][0]["exchange_m3s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+    assert doc["rows"][0]["exchange_m3s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
 
 
 def test_cli_export_replay_report_a_water_body(study, capsys, tmp_path):
@@ -447,7 +447,7 @@ def test_pan_evaporation_is_an_et_source(study):
     df = rank(ds, "RES1", ClosureOptions())
     assert len(df) == 2 * 3
     best = df[(df["P"] == "rain_true") & (df["ET"] == "pan")].iloc[0]
-    assert best["exchange_m3s"] == pytest.approx(-SEEPAGE_M3S, rel=1e-9)
+    assert best["exchange_m3s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
 
 
 def test_pan_coefficient_and_units_are_checked(study, capsys, tmp_path):
@@ -568,3 +568,92 @@ def test_estimate_and_merge_refuse_what_they_cannot_do(study, capsys, tmp_path, 
     msg = one_line_error(rc, err)
     assert all(w in msg for w in words), msg
     assert not out.exists()
+
+
+def _synthetic_waterbody(state, *, nt=36, seed=5):
+    """One water body L1 (storage state ``state``), a P and an ET product and one gauged inflow."""
+    t = pd.date_range("2001-01-01", periods=nt, freq="MS")
+    rng = np.random.default_rng(seed)
+    p, e, m = rng.uniform(10, 90, nt), rng.uniform(5, 60, nt), np.cumsum(rng.normal(0, 20, nt))
+    q = rng.uniform(20, 200, nt)
+    ds = xr.Dataset({"pa": (("basin", "time"), p[None]), "ea": (("basin", "time"), e[None]),
+                     "levels": (("basin", "time"), m[None]), "flow_inlet": (("basin", "time"), q[None])},
+                    coords={"basin": ["L1"], "time": t, "storage_state": ("basin", [state]),
+                            "basin_area_km2": ("basin", [5.0])}, attrs={"unit": "waterbody"})
+    for v, c in (("pa", "P"), ("ea", "ET"), ("levels", "TWSA")):
+        ds[v].attrs = {"role": "source", "component": c}
+    ds["flow_inlet"].attrs = {"role": "flow", "direction": "in", "units": "mm/month"}
+    return ds
+
+
+@pytest.mark.parametrize("method", ["central", "forward", "backward"])
+def test_end_of_month_uncertainty_uses_the_month_itself(method):
+    """End-of-month states: fluxes are not window-matched, so a gauged flow's sigma is 5% of the month's own flow
+    (common practice for gauged flows; `uncertainty.gauge_error`), not the central-window variance, whatever
+    ``method``; the uncertainty text says that levels carry no stated error."""
+    ds = _synthetic_waterbody("end_of_month")
+    res = compute_selection(ds, Selection("L1", "pa", "ea", "levels", storage_change=method))
+    f = res.frame.iloc[1:-1]
+    np.testing.assert_allclose(f["sigma_flow_inlet"].values, 0.05 * np.abs(f["flow_inlet_raw"].values), rtol=1e-14)
+    assert any("no error stated for levels" in m for m in res.messages)
+
+
+def test_monthly_mean_water_body_keeps_the_window_variance():
+    """Monthly-mean states: fluxes are window-matched, so their variance follows the squared kernel weights
+    (independent monthly errors: var(sum w_k x_k) = sum w_k^2 var(x_k), arithmetic)."""
+    from wbexplore.balance.storage import KERNELS
+
+    ds = _synthetic_waterbody("monthly_mean")
+    res = compute_selection(ds, Selection("L1", "pa", "ea", "levels", storage_change="central"))
+    q = res.frame["flow_inlet_raw"].values
+    w = KERNELS["central"]
+    want = np.sqrt(sum(wk**2 * (0.05 * q[5 + k - 1]) ** 2 for k, wk in enumerate(w)))
+    assert res.frame["sigma_flow_inlet"].values[5] == pytest.approx(want, rel=1e-12)
+
+
+END_OF_MONTH_TEXT = "storage from end-of-month volumes, month-by-month differences (storage-change options do not apply)"
+
+
+def test_options_that_do_not_apply_are_not_claimed(study, capsys, tmp_path):
+    """Daily levels (end-of-month states): --storage-change and --unmatched change nothing (common practice: a
+    header states only what was done), so the rank header, its JSON, the selection file and the series CSV say
+    how the storage was taken instead; the selection still replays exactly."""
+    cache = ["--cache-dir", tmp_path / "cache"]
+    rc, out, err = run_cli(["rank", study, "--basin", "RES1", "--storage-change", "forward", "--unmatched", *cache],
+                           capsys)
+    assert rc == 0, err
+    head = out.splitlines()[0]
+    assert END_OF_MONTH_TEXT in head and "forward" not in head and "unmatched" not in head, head
+    rc, out, err = run_cli(["rank", study, "--basin", "RES1", "--storage-change", "forward", "--unmatched",
+                            "--format", "json", *cache], capsys)
+    doc = __import__("json").loads(out)
+    assert rc == 0 and doc["storage"] == END_OF_MONTH_TEXT
+    assert doc["storage_change"] is None and doc["matched"] is None
+    sel = tmp_path / "sel.yaml"
+    rc, out, err = run_cli(["export", study, "--basin", "RES1", "--P", "rain_true", "--ET", "evap_true",
+                            "--storage-change", "forward", "--series", tmp_path / "sel.csv", "--out", sel, *cache],
+                           capsys)
+    assert rc == 0, err
+    doc = yaml.safe_load(sel.read_text())
+    assert doc["storage_change"]["note"] == END_OF_MONTH_TEXT
+    csv_head = [ln for ln in sel.with_suffix(".csv").read_text().splitlines() if ln.startswith("#")]
+    assert any(END_OF_MONTH_TEXT in ln for ln in csv_head) and not any("forward" in ln for ln in csv_head)
+    rc, out, err = run_cli(["replay", sel, *cache], capsys)
+    assert rc == 0 and "replay ok" in out, err
+
+
+@pytest.mark.parametrize("metric", ["kge", "nse", "r", "pbias", "kge_prime", "nse_cyclo"])
+def test_rank_a_water_body_by_a_discharge_metric_is_refused(study, capsys, tmp_path, metric):
+    """A metric that compares with gauged discharge is NaN for every water-body combination (no gauged outlet:
+    DESIGN.md's water-body balance has no Q): ranking by it would order NaNs, so it is refused (exit 2, one line
+    naming the metric and why); a residual metric still ranks."""
+    line = _refused(["rank", study, "--basin", "RES1", "--by", metric, "--cache-dir", tmp_path / "c"], capsys,
+                    tmp_path)
+    assert f"--by {metric}" in line and "RES1" in line and "no gauged discharge" in line, line
+    rc, out, err = run_cli(["rank", study, "--basin", "RES1", "--by", "bias", "--cache-dir", tmp_path / "c"], capsys)
+    assert rc == 0, err
+    out_html = tmp_path / "r.html"
+    rc, _, err = run_cli(["report", study, "--basin", "RES1", "--by", metric, "--out", out_html,
+                          "--cache-dir", tmp_path / "c"], capsys)
+    assert f"--by {metric}" in one_line_error(rc, err) and not out_html.exists()
+

@@ -480,8 +480,8 @@ def _print_rank_table(df, by: str, *, head: str) -> None:
     print(show.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     print("rmse, bias in mm/month; rel_imbalance in %; '-' = too few valid months to score")
     if waterbody:
-        print("mm/month over the outline; exchange = -residual, the net unmeasured inflow (negative = loss: "
-              "seepage, abstraction), mean per month in hm3, m3/s and mm over the surface, _se its standard error "
+        print("mm/month over the outline; exchange = residual, the net unmeasured outflow (positive = loss: "
+              "seepage, leakage, abstraction; negative = ungauged gain), mean per month in hm3, m3/s and mm over the surface, _se its standard error "
               "(lag-1 autocorrelation inflated)")
     for why in dict.fromkeys(w for w in df["undefined"] if w):
         print(f"NaN: {why}")
@@ -511,6 +511,21 @@ def _rank_every_unit(args, ds, opts):
     return df
 
 
+def _note_waterbodies_left_out(catalog) -> None:
+    """``rank --all`` ranks basins: say in one line (stderr, not an error) which water bodies it leaves out."""
+    from .io.catalog import open_catalog
+
+    cat = open_catalog(catalog)
+    if cat.waterbodies is None:
+        return
+    from .io.waterbodies import read_waterbody_outlines
+
+    wbs = [str(w) for w in read_waterbody_outlines(cat.waterbodies).index]
+    if wbs:
+        print(f"note: --all ranks basins only; water bodies left out: {', '.join(wbs)} (rank each with --basin ID)",
+              file=sys.stderr)
+
+
 def _cmd_rank(args) -> int:
     from .balance import rank
     from .balance.metrics import check_metric
@@ -522,21 +537,33 @@ def _cmd_rank(args) -> int:
     kind = _unit_kind(args)  # --all: basins only (water-body ids are checked against them)
     if args.all and args.area != "outline":
         raise InputError("--area goes with --basin RES_ID (a water body)")
+    if kind == "waterbody":
+        from .balance.metrics import check_waterbody_metric
+
+        check_waterbody_metric(args.by, args.basin)
     if args.incremental:
         _check_incremental(args.catalog, args.basin)
     ds = _series(args, waterbodies=kind == "waterbody")
     if args.all:
         df = _rank_every_unit(args, ds, opts)
+        _note_waterbodies_left_out(args.catalog)
     else:
         df = rank(ds, args.basin, opts, by=args.by)
     what = ({"basins": sorted(set(df["basin"]))} if args.all
             else {"basin": args.basin, "unit": "waterbody" if kind == "waterbody"
                   else "incremental" if args.incremental else "whole"})
+    note = None
+    if kind == "waterbody":  # end-of-month storage: the storage-change options change nothing, never claim them
+        from .balance.storage import storage_note
+        from .series import STORAGE_STATE
+
+        note = storage_note(str(ds[STORAGE_STATE].sel(basin=args.basin).item()))
     if args.format == "csv":
         df.to_csv(sys.stdout, index=False, float_format="%.6g")
     elif args.format == "json":
         json.dump({**what, "by": args.by, "period": [df.attrs["start"], df.attrs["end"]],
-                   "storage_change": args.storage_change, "matched": not args.unmatched,
+                   "storage_change": None if note else args.storage_change,
+                   "matched": None if note else not args.unmatched, **({"storage": note} if note else {}),
                    "options": json.loads(opts.to_json()), "caution": _caution(),
                    "rows": json.loads(df.to_json(orient="records"))}, sys.stdout, indent=1)
         print()
@@ -544,8 +571,9 @@ def _cmd_rank(args) -> int:
         who = (f"{len(what['basins'])} basins" if args.all else f"water body {args.basin}" if kind == "waterbody"
                else f"basin {args.basin}" + (" (incremental unit)" if args.incremental else ""))
         _print_rank_table(df, args.by, head=(
-            f"{who}, {df.attrs['start']}..{df.attrs['end']}, storage change {args.storage_change}"
-            f"{' (unmatched)' if args.unmatched else ' (window-matched)'}, ranked by {args.by}"))
+            f"{who}, {df.attrs['start']}..{df.attrs['end']}, "
+            + (note if note else f"storage change {args.storage_change}"
+               f"{' (unmatched)' if args.unmatched else ' (window-matched)'}") + f", ranked by {args.by}"))
     return 0
 
 
@@ -605,6 +633,10 @@ def _cmd_report(args) -> int:
     cat = open_catalog(args.catalog)
     check_output(args.out, overwrite=args.force, protect=cat)
     kind = _unit_kind(args)
+    if kind == "waterbody" and not (args.P or args.ET or args.TWSA):  # the best combination by --by
+        from .balance.metrics import check_waterbody_metric
+
+        check_waterbody_metric(args.by, args.basin)
     if args.incremental:
         _check_incremental(cat, args.basin)
     ds = _series(args, waterbodies=kind == "waterbody")

@@ -59,7 +59,7 @@ SEASON_COLORS = {"DJF": "#0072B2", "MAM": "#009E73", "JJA": "#E69F00", "SON": "#
 UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s", "hm3": "hm3/month"}
 WATERBODY_COLOR = "#56B4E9"  # lakes and reservoirs on the map (Okabe-Ito sky blue), whatever the scores
 # a water body's residual r is shown as the unmeasured exchange X = -r (`balance.waterbody.Exchange`)
-EXCHANGE_LABEL = "unmeasured exchange (net unmeasured inflow = -residual; negative = unmeasured loss)"
+EXCHANGE_LABEL = "unmeasured exchange (= residual, net unmeasured outflow; positive = unmeasured loss)"
 ERROR_METRICS = ("rmse", "mae", "annual_rmse")  # smaller is better: the map's colours are reversed for them
 
 
@@ -461,10 +461,10 @@ class MultiBasinPlot(_Plot):
 
 
 class ExchangePlot(ResidualPlot):
-    """A water body's residual as unmeasured exchange X = -residual per month (volume units), +/- 2 sigma band.
+    """A water body's residual as unmeasured exchange X = residual per month (volume units), +/- 2 sigma band.
 
     The monthly values come from `wbexplore.balance.waterbody.unmeasured_exchange` (its ``monthly`` table);
-    the band is the residual's sigma in the same units. Negative = an unmeasured loss (seepage, abstraction).
+    the band is the residual's sigma in the same units. Positive = an unmeasured loss (seepage, abstraction).
     """
 
     def update(self, result, exchange=None, unit_system: str = "hm3") -> None:
@@ -494,7 +494,7 @@ class ExchangePlot(ResidualPlot):
         self.fig.yaxis.axis_label = f"unmeasured exchange ({unit})"  # the sign convention: in the title
         m, se = exchange.mean, exchange.standard_error
         self.fig.title.text = _nodata(result) or (
-            f"Unmeasured exchange (-residual; negative = unmeasured loss): mean {m['m3/s']:.2f} +/- {se['m3/s']:.2f} "
+            f"Unmeasured exchange (= residual; positive = unmeasured loss): mean {m['m3/s']:.2f} +/- {se['m3/s']:.2f} "
             f"m3/s = {m['hm3']:.2f} +/- {se['hm3']:.2f} hm3/month (+/- 1 standard error)"
             + ("" if np.isfinite(s).any() else "; no 2-sigma band: a term's error is unknown"))
 

@@ -51,8 +51,8 @@ station series over the same area.</li>
 <li>Storage comes from water levels through the storage curve (level to volume, monotone cubic interpolation;
 levels outside the curve leave their month empty). Daily levels give end-of-month volumes, differenced month by
 month; monthly-mean levels are differenced with the {method} kernel{matched}</li>
-<li>Residual r = {balance}. The unmeasured exchange is X = -r, the net unmeasured inflow that closes the balance:
-positive = ungauged inflow, negative = unmeasured loss (seepage, leakage through the dam, abstraction).
+<li>Residual r = {balance}. The unmeasured exchange is X = r, the net unmeasured outflow that closes the balance:
+positive = unmeasured loss (seepage, leakage through the dam, abstraction), negative = ungauged inflow.
 Its mean is given with its standard error, inflated for lag-1 autocorrelation (effective sample size
 n' = n (1 - r1) / (1 + r1), Wilks, Statistical Methods in the Atmospheric Sciences); here r1 = {r1}, n' = {n_eff}.
 Volumes: 1 hm3 = 1e6 m3; m3/s is the mean flow over the calendar month (its real number of days).</li>
@@ -171,8 +171,8 @@ def _waterbody_parts(cat: Catalog, ds, sel, res, ranking, *, by: str):
                     f"<td style='text-align:right'>{_fmt(se[u], '.3g')}</td></tr>"
                     for k, u in (("m3/s (mean over the month)", "m3/s"), ("hm3/month", "hm3"), ("m3/month", "m3"),
                                  ("mm/month over the water surface", "mm_surface")))
-    sign = "an unmeasured loss (seepage, abstraction)" if m["hm3"] < 0 else "an unmeasured gain (ungauged inflow)"
-    lead = (f"<p class='exchange'><b>Unmeasured exchange</b> (net unmeasured inflow = -residual; negative = "
+    sign = "an unmeasured loss (seepage, abstraction)" if m["hm3"] > 0 else "an unmeasured gain (ungauged inflow)"
+    lead = (f"<p class='exchange'><b>Unmeasured exchange</b> (= residual, the net unmeasured outflow; positive = "
             f"unmeasured loss): mean {_fmt(m['m3/s'], '.2f')} &plusmn; {_fmt(se['m3/s'], '.2f')} m3/s = "
             f"{_fmt(m['hm3'], '.2f')} &plusmn; {_fmt(se['hm3'], '.2f')} hm3/month (&plusmn; 1 standard error), "
             f"i.e. {sign} on average over {res.n_valid} valid months.</p>")

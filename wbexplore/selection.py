@@ -106,8 +106,10 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
         "sources": sources,
         "inputs": inputs,
         "uncertainty_sources": spread,
+        # options as given (replayed as they are); where they do not apply, the note says how storage was taken
         "storage_change": {"method": sel.storage_change, "window_matched": bool(sel.matched),
-                           "fill_gaps": bool(sel.fill_gaps)},
+                           "fill_gaps": bool(sel.fill_gaps),
+                           **({"note": result.storage_note} if result.storage_note else {})},
         "discharge_lag_months": int(sel.lag),
         "min_valid_fraction": float(sel.min_valid_fraction),
         "water_year_start_month": int(sel.water_year_start),
@@ -578,7 +580,8 @@ def write_series_csv(result, path, *, unit_system: str = "mm", overwrite: bool =
             "hm3": "hm3 per month (TWSA: hm3)"}
     sel = result.selection
     head = (f"# wbexplore series: basin {sel.basin}, P={sel.P} ET={sel.ET} TWSA={sel.TWSA}, "
-            f"storage change {sel.storage_change}{' window-matched' if sel.matched else ''}\n"
+            + (result.storage_note or f"storage change {sel.storage_change}{' window-matched' if sel.matched else ''}")
+            + "\n"
             f"# uncertainty_source: {result.uncertainty_line}\n"
             f"# units: {unit[unit_system]}; valid fractions 0..1\n# {CAUTION}\n")
     with atomic_path(path, overwrite=overwrite, protect=protect) as tmp:
@@ -644,8 +647,9 @@ def series_dataset(result, *, doc: dict | None = None):
     ds.attrs = {
         "Conventions": "CF-1.8",
         "title": f"wbexplore water-balance series, basin {sel.basin} ({result.basin_name})",
-        "source": f"P={sel.P}, ET={sel.ET}, TWSA={sel.TWSA}; storage change {sel.storage_change}"
-                  f"{' (window-matched)' if sel.matched else ''}",
+        "source": f"P={sel.P}, ET={sel.ET}, TWSA={sel.TWSA}; "
+                  + (result.storage_note or f"storage change {sel.storage_change}"
+                     f"{' (window-matched)' if sel.matched else ''}"),
         "history": f"{_dt.datetime.now(_dt.timezone.utc):%Y-%m-%dT%H:%M:%SZ} wbexplore {__version__}",
         "basin_id": str(sel.basin), "basin_area_km2": float(result.area_km2),
         "uncertainty_source": json.dumps({**result.uncertainty_source, "Q": "gauge"}, sort_keys=True),

@@ -15,13 +15,13 @@ import pandas as pd
 import xarray as xr
 
 from ..errors import InputError
-from ..series import source_ids, valid_fraction_name
+from ..series import STORAGE_STATE, is_waterbody, source_ids, valid_fraction_name
 from ..units import mm_per_month_to_flow_m3s, mm_to_m3
 from .engine import (ENSEMBLE_PREFIX, basin_index, check_source, closure_arrays, combine, metrics_arrays,
                      water_year, with_ensembles)
 from .options import MAX_LAG_MONTHS, OPTION_NAMES, ClosureOptions, check_lag, period_mask
 from . import uncertainty as unc
-from .storage import match_window_variance, storage_change_variance
+from .storage import apply_kernel, storage_note, variance_kernels
 from .terms import BASE_TERMS, SOURCE_COMPONENTS, Q as Q_TERM, term_signs
 
 
@@ -106,6 +106,12 @@ class SelectionResult:
     # component -> `uncertainty.ProductError`: where each sigma_<component> came from
     uncertainty: dict = field(default_factory=dict)
     q_relative_error: float = Q_RELATIVE_ERROR  # of gauged Q and of every flow
+    storage_state: str | None = None  # a water body's (`series.STORAGE_STATE`); None for a basin
+
+    @property
+    def storage_note(self) -> str | None:
+        """What outputs say instead of the storage-change options where these do not apply (`storage.storage_note`)."""
+        return storage_note(self.storage_state)
 
     @property
     def uncertainty_line(self) -> str:
@@ -208,11 +214,15 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
               "TWSA": unc.product_error(ds, sel.TWSA, b, values=M_used, **kw)}
     sQ = unc.gauge_error(Q_raw, q_relative_error)
 
+    # the unit's own kernels (an end-of-month water body: the month itself, storage differenced month by month)
+    state = str(ds[STORAGE_STATE].values[b]) if is_waterbody(ds) else None
+    flux_w, ds_w = variance_kernels(state, sel.storage_change, matched=sel.matched)
+
     def flux_var(v):
-        return match_window_variance(v, sel.storage_change) if sel.matched else v
+        return apply_kernel(v, flux_w)
 
     vP, vE, vQ = flux_var(errors["P"].variance), flux_var(errors["ET"].variance), flux_var(sQ**2)
-    vS = storage_change_variance(errors["TWSA"].variance, sel.storage_change)
+    vS = apply_kernel(errors["TWSA"].variance, ds_w)
     sig = np.sqrt(np.stack([vP, vE, vQ, vS]))
     g = term_signs(BASE_TERMS)
     if covariance is None:
@@ -275,12 +285,15 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
                            area_km2=float(ds["basin_area_km2"].values[b]) if "basin_area_km2" in ds.coords else float("nan"),
                            basin_name=str(ds["basin_name"].values[b]) if "basin_name" in ds.coords else str(sel.basin),
                            messages=msgs + [f"uncertainty: P {errors['P'].method}, ET {errors['ET'].method}, "
-                                            f"TWSA {errors['TWSA'].method}, "
+                                            + (f"TWSA {errors['TWSA'].method}, " if state is None else
+                                               "storage: no error stated for levels (sigma_dS and sigma_residual "
+                                               "left empty), ")
                                             + (f"flows {q_relative_error:.0%} of flow" if no_q
                                                else f"Q {q_relative_error:.0%} of flow")]
                            + [f"uncertainty of {c} ({e.source}): {e.note}" for c, e in errors.items()
                               if "not used" in e.note],
-                           terms=a["terms"], uncertainty=errors, q_relative_error=float(q_relative_error))
+                           terms=a["terms"], uncertainty=errors, q_relative_error=float(q_relative_error),
+                           storage_state=state)
 
 
 def _span(months, ok):

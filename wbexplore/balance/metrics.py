@@ -62,6 +62,17 @@ def check_metric(name: str) -> str:
     return name
 
 
+def check_waterbody_metric(name: str, unit: str) -> str:
+    """Refuse ranking water body ``unit`` by a metric that compares with gauged discharge (NaN for every one of
+    its combinations: a water body's balance has no gauged outlet Q); `InputError` naming the metric and why."""
+    check_metric(name)
+    if name in _Q_METRICS:
+        ok = [m for m in METRICS if m not in _Q_METRICS and m != "n_valid"]
+        raise InputError(f"--by {name}: undefined for water body {unit!r}, which has no gauged discharge to compare "
+                         f"with; rank it by {', '.join(ok)}")
+    return name
+
+
 def sort_key(name: str, values) -> np.ndarray:
     """Values mapped so that smaller is better (NaN sorts last)."""
     check_metric(name)

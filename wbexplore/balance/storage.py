@@ -58,7 +58,8 @@ from ..errors import InputError, LevelOutsideCurveWarning
 __all__ = ["METHODS", "KERNELS", "storage_change", "match_window", "apply_kernel", "match_window_variance",
            "storage_change_variance", "DS_KERNELS", "kernel", "sum_variance", "shift_later", "fill_gaps", "window_closure",
            "VOLUME_STATES", "level_volumes", "apply_curves", "volume_storage_change", "volume_kernel", "match_volume_window",
-           "state_storage_change", "match_state_window"]
+           "state_storage_change", "match_state_window", "variance_kernels",
+           "END_OF_MONTH_NOTE", "storage_note"]
 
 METHODS = ("central", "backward", "forward")
 # weights on F[i-1], F[i], F[i+1]
@@ -364,3 +365,42 @@ def match_state_window(flux, states, method: str = "central", *, matched: bool =
         w = volume_kernel(state, method)
         out[i] = apply_kernel(f[i], w) if (matched and state != "end_of_month") else f[i]
     return out
+
+
+def variance_kernels(state: str | None, method: str = "central", *,
+                     matched: bool = True) -> tuple[tuple[float, float, float], tuple[float, float, float]]:
+    """Weights on the error variances (mm2, or any squared unit) of months i-1, i, i+1 that give the variance of a
+    balance term at month i, for errors independent between months.
+
+    Parameters
+    ----------
+    state : None for a basin (TWSA monthly means), else a water body's storage state (`VOLUME_STATES`)
+    method : storage-change method (central | backward | forward); an end-of-month state does not use it
+    matched : fluxes window-matched (a basin or a monthly-mean water body only)
+
+    Returns
+    -------
+    (flux, storage): squared flux weights (`match_window_variance` where matched, else (0, 1, 0)), and the
+    weights of the storage difference (`storage_change_variance`; end-of-month: ``V[m] - V[m-1]``, (1, 1, 0)).
+    """
+    _check(method)
+    if state is not None and state != "monthly_mean":
+        volume_kernel(state, method)  # refuses an unknown state
+        return (0.0, 1.0, 0.0), _DS_VARIANCE_KERNELS["backward"]
+    flux = tuple(w * w for w in KERNELS[method]) if matched else (0.0, 1.0, 0.0)
+    return flux, _DS_VARIANCE_KERNELS[method]
+
+
+# what outputs say instead of the storage-change options where those options change nothing
+END_OF_MONTH_NOTE = ("storage from end-of-month volumes, month-by-month differences "
+                     "(storage-change options do not apply)")
+
+
+def storage_note(state: str | None) -> str | None:
+    """How the storage change of a unit in ``state`` is taken, where the storage-change options (method, window
+    matching) do not apply to it: `END_OF_MONTH_NOTE` for end-of-month states, None where they apply (a basin:
+    ``state`` None, or a monthly-mean water body)."""
+    if state is None or state == "monthly_mean":
+        return None
+    volume_kernel(state)  # refuses an unknown state
+    return END_OF_MONTH_NOTE

@@ -139,10 +139,9 @@ def express_volume(volume: xr.DataArray, units: str, *, area_m2: xr.DataArray | 
 
 
 # ---- the residual of a water body: unmeasured exchange ------------------------------------------------
-# Sign: the residual r = P + inflows - E - outflows - dS (the term table's sum) is what the measured terms leave
-# unexplained; an unmeasured *loss* (seepage through the dam, abstraction) leaves water missing from the store,
-# so it shows as a positive residual. The unmeasured exchange is reported as the net unmeasured *inflow*,
-# X = -r: the missing term that closes P + inflows + X - E - outflows = dS (negative = loss, e.g. seepage).
+# Sign (DESIGN.md): P + inflows - E - outflows - dS(level) = residual = unmeasured exchange X. X is what the
+# measured terms leave unexplained, reported with the residual's own sign in every unit: positive = water that
+# left by unmeasured paths (seepage through the dam, leakage, abstraction), negative = an ungauged gain.
 # units the residual is reported in: a volume per month (m3, hm3), a mean flow over the calendar month (m3/s)
 # and a depth over the water surface at the month's level (mm)
 EXCHANGE_UNITS = ("m3", "hm3", "m3/s", "mm_surface")
@@ -156,7 +155,7 @@ def exchange_units(depth_mm, months, *, reference_area_m2, surface_area_m2) -> d
     Parameters
     ----------
     depth_mm : array, time on the last axis
-        A depth per month over the reference area (mm/month), e.g. the unmeasured exchange ``-residual``.
+        A depth per month over the reference area (mm/month), e.g. the unmeasured exchange (= the residual).
     months : pandas.DatetimeIndex
         Month-start stamps of the last axis (the real number of days of each month for m3/s).
     reference_area_m2 : float or array
@@ -209,14 +208,14 @@ def mean_standard_error(x) -> tuple:
 
 
 def exchange_summary(residual_mm, months, *, reference_area_m2, surface_area_m2) -> dict:
-    """Mean monthly unmeasured exchange (``-residual``, net unmeasured inflow) and its standard error in every
+    """Mean monthly unmeasured exchange (= the residual; positive = unmeasured loss) and its standard error in every
     `EXCHANGE_UNITS` unit.
 
     Vectorised over leading axes (e.g. every P x ET combination); months where the residual is NaN are left
     out. Returns ``{unit: (mean, standard error)}`` (`mean_standard_error`).
     """
     out = {}
-    for unit, v in exchange_units(-np.asarray(residual_mm, dtype=float), months, reference_area_m2=reference_area_m2,
+    for unit, v in exchange_units(np.asarray(residual_mm, dtype=float), months, reference_area_m2=reference_area_m2,
                                   surface_area_m2=surface_area_m2).items():
         v = np.where(np.isfinite(residual_mm), v, np.nan)
         with warnings.catch_warnings():
@@ -228,13 +227,13 @@ def exchange_summary(residual_mm, months, *, reference_area_m2, surface_area_m2)
 
 @dataclass(frozen=True)
 class Exchange:
-    """A water body's residual as unmeasured exchange X = -residual: the net unmeasured inflow (ungauged inflow
-    positive; seepage, leakage through the dam, abstraction negative).
+    """A water body's residual as unmeasured exchange X = residual: the net unmeasured outflow (seepage, leakage
+    through the dam, abstraction positive; an ungauged inflow negative).
 
     monthly : pandas.DataFrame
         One row per month of the period, columns `EXCHANGE_UNITS` (m3, hm3 per month; m3/s mean over the month;
         mm over the surface at the month's level), ``mm`` (over the reference area) and ``residual_mm`` (the
-        balance's residual, = -mm).
+        balance's residual, = mm).
     mean, standard_error : dict
         Unit -> mean monthly value and its standard error (`mean_standard_error`).
     r1, n_eff : float
@@ -262,7 +261,7 @@ def unmeasured_exchange(result, *, surface_area_km2: xr.DataArray | None = None)
     else:
         surf = surface_area_km2.reindex(time=months).values * 1e6
     r = frame["residual"].to_numpy(float)
-    x = -r
+    x = r
     units = exchange_units(x, months, reference_area_m2=area_m2, surface_area_m2=surf)
     monthly = pd.DataFrame({"mm": x, **units, "residual_mm": r}, index=frame.index)
     ok = np.isfinite(r)

@@ -103,7 +103,7 @@ def waterbody_warnings_markdown(result) -> str:
 
 
 def waterbody_summary_html(result, exchange) -> str:
-    """A water body's selection: the unmeasured exchange (mean and standard error, m3/s and hm3/month; negative =
+    """A water body's selection: the unmeasured exchange (mean and standard error, m3/s and hm3/month; positive =
     unmeasured loss) and the closure's spread, as a small HTML table (every text from a file escaped)."""
     m, se, sel = exchange.mean, exchange.standard_error, result.selection
 
