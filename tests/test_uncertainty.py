@@ -372,9 +372,9 @@ def test_tiny_positive_collocation_error_is_not_used():
     assert np.var(ds["p0"].values[0] - t) > 100 * tc["p0"]["error_variance"]
     e = unc.product_error(ds, "p0", 0)
     assert e.method == unc.SPREAD, e.note
-    assert ("collocation cannot separate 'p0''s error from zero: it sees no random error" in e.note
+    assert ("collocation cannot separate p0's error from zero: it sees no random error" in e.note
             and "systematic errors are invisible to collocation; the product spread is used" in e.note), e.note
-    with pytest.raises(InputError, match="collocation cannot separate 'p0''s error from zero"):
+    with pytest.raises(InputError, match="collocation cannot separate p0's error from zero"):
         unc.product_error(ds, "p0", 0, method="collocation")
     # the products with random errors keep their collocation errors, within the factor of the demo check
     for s, sd in (("p1", 5.0), ("p2", 8.0)):
@@ -386,7 +386,7 @@ def test_merge_refuses_a_collocation_error_indistinguishable_from_zero():
     from wbexplore.balance.merge import product_error_variances
 
     ds, _ = _damped_copy_series()
-    with pytest.raises(InputError, match="basin 'B': P: collocation cannot separate 'p0''s error from zero"):
+    with pytest.raises(InputError, match="basin 'B': P: collocation cannot separate p0's error from zero"):
         product_error_variances(ds, "P", "B")
     # stated errors take its place: the merge goes on
     ds["p0"].attrs["absolute_error_mm"] = 20.0
@@ -409,7 +409,7 @@ def test_demo_damped_product_falls_back_to_the_spread(demo_series):
     quarry. sedge's collocation error variance is sampling noise: the band uses the spread and says why."""
     r = compute_selection(demo_series, Selection("VEL", "heron", "sedge", "quarry"))
     assert r.uncertainty_source["ET"] == "spread"
-    assert "collocation cannot separate 'sedge''s error from zero" in r.uncertainty_line
+    assert "collocation cannot separate sedge's error from zero" in r.uncertainty_line
     # tansy (random error) keeps collocation, and its text says what collocation cannot see
     t = compute_selection(demo_series, Selection("VEL", "heron", "tansy", "quarry"))
     assert t.uncertainty_source["ET"] == "collocation" and "random error only" in t.uncertainty_line

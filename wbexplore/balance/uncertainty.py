@@ -165,7 +165,7 @@ def collocation_doubt(source: str, estimate: dict) -> str | None:
     else:
         what = (f"collocation error variance of {source!r} is {ev:.3g} mm2, within {SIGNIFICANCE_Z} sampling "
                 f"standard errors ({se:.3g} mm2) of zero")
-    return (f"collocation cannot separate {source!r}'s error from zero: it sees no random error ({what} over "
+    return (f"collocation cannot separate {source}'s error from zero: it sees no random error ({what} over "
             f"{n} months); systematic errors are invisible to collocation")
 
 
