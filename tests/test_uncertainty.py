@@ -328,7 +328,7 @@ def test_collocation_standard_error_matches_monte_carlo(scale, error_var):
     `collocation.collocation_standard_errors`) against the spread of the estimates of 4,000 synthetic series of
     120 months, drawn from the model collocation assumes. The expansion is first order: 10% (the Monte Carlo's
     own error on a standard deviation from 4,000 draws is 1/sqrt(8000), about 1%)."""
-    from wbexplore.balance.collocation import collocation_from_covariance, collocation_standard_errors
+    from wbexplore.balance import collocation as col
 
     rng = np.random.default_rng(7)
     n, draws, signal_var = 120, 4000, 900.0
@@ -337,9 +337,9 @@ def test_collocation_standard_error_matches_monte_carlo(scale, error_var):
     for d in range(draws):
         t = rng.normal(0.0, np.sqrt(signal_var), n)
         x = np.outer(scale, t) + rng.standard_normal((k, n)) * np.sqrt(np.asarray(error_var))[:, None]
-        est[d] = collocation_from_covariance(np.cov(x))
+        est[d] = col.collocation_from_covariance(np.cov(x))
     Q = _population_cov(scale, signal_var, error_var)
-    predicted = collocation_standard_errors(Q, np.asarray(error_var, dtype=np.float64), n)
+    predicted = col.collocation_standard_errors(Q, np.asarray(error_var, dtype=np.float64), n)
     np.testing.assert_allclose(est.std(axis=0, ddof=1), predicted, rtol=0.10)
     # the ratio estimator's bias is second order (of order v / n): small against the sampling error
     assert np.all(np.abs(est.mean(axis=0) - error_var) < 0.25 * predicted), (est.mean(axis=0), predicted)
