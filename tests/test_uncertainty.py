@@ -253,6 +253,7 @@ def test_export_and_replay_name_the_uncertainty_source(demo_dir, tmp_path, capsy
         assert doc["uncertainty_notes"].startswith("P collocation (triple collocation with kestrel, heron")
         head = [line for line in csv.read_text().splitlines() if line.startswith("#")]
         assert any(line.startswith("# uncertainty_source: P collocation") for line in head)
+        assert any("random error only" in line for line in head) and "random error only" in doc["uncertainty_notes"]
         assert main(["replay", str(out)]) == 0
         # a selection file written before issue 16 (product spread, no uncertainty_source) still replays
         monkeypatch.setattr(unc, "DEFAULT_METHOD", unc.SPREAD)
