@@ -411,6 +411,7 @@ def test_demo_damped_product_falls_back_to_the_spread(demo_series):
     r = compute_selection(demo_series, Selection("VEL", "heron", "sedge", "quarry"))
     assert r.uncertainty_source["ET"] == "spread"
     assert "collocation cannot separate sedge's error from zero" in r.uncertainty_line
+    assert any(m.startswith("uncertainty of ET (sedge)") and "cannot separate" in m for m in r.messages), r.messages
     # the band is the spread now, not sedge's 0.024 mm/month of sampling noise (the median before the review)
     ok = r.frame["valid"]
     assert r.frame.loc[ok, "sigma_ET"].median() > 1.0
