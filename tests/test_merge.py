@@ -243,6 +243,9 @@ def test_each_product_gets_its_error_in_the_one_order_of_the_band():
     np.testing.assert_allclose(errs.variance[0], 4.0**2)  # absolute_error_mm 4 (arithmetic)
     m = merge_products(ds, method="ckf")
     assert m["merged_P"].attrs["error_variance_source"] == "collocation / stated"
+    # collocation sees random error only: every output that uses it says so (review of issue 16)
+    assert "random error only" in m["merged_P"].attrs["long_name"]
+    assert m["merged_P"].attrs["error_variance_caveat"] == unc.COLLOCATION_CAVEAT
     assert np.isnan(m["error_variance"].sel(product="P0")) and m["error_variance"].sel(product="P2") > 0
 
 

@@ -176,7 +176,11 @@ def test_report_cli_writes_self_contained_html(study, tmp_path, capsys):
     assert rc == 0
     text = out.read_text()
     assert "Screening-level" in text and "Every combination" in text and "Method notes" in text
-    assert "Used here: P collocation (triple collocation with" in text  # issue 16: the source is named
+    # issue 16: the source is named. In Zefron heron's collocation error variance (3.5 mm2) is within 1.645 of
+    # its sampling standard errors (7.0 mm2) of zero: P falls back to the spread and says why (review of issue
+    # 16; it was used before); ET keeps collocation, and the text says it sees random error only
+    assert "Used here: P spread (spread of kestrel, plover, heron (collocation cannot separate heron" in text
+    assert "ET collocation (triple collocation with" in text and "random error only" in text
     assert not re.search(r'<script[^>]+src="(?!data:)', text)  # no external or relative scripts
     assert not re.search(r'<link[^>]+href="http', text)
 

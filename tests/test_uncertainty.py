@@ -220,11 +220,12 @@ def test_closure_terms_record_the_uncertainty_source(demo_series):
 
     t = closure_terms(demo_series, basins=["VEL", "TIR"])
     src = json.loads(t.attrs["uncertainty_source"])
-    # two TWSA products: the spread; the products with random errors: collocation; kestrel and fennel,
-    # whose errors are pure scalings over Velumbe, come out at or below zero (sampling noise around
-    # zero: collocation cannot see a scaling) and fall back to the spread
+    # two TWSA products: the spread; the products with random errors: collocation; kestrel, fennel and
+    # sedge, whose errors are pure scalings (sedge: its departures halved) over Velumbe, come out as sampling
+    # noise around zero (collocation cannot see a scaling) and fall back to the spread (sedge's tiny positive
+    # estimate was used before the review of issue 16)
     assert src["VEL"] == {"kestrel": "spread", "plover": "collocation", "heron": "collocation",
-                          "sedge": "collocation", "fennel": "spread", "tansy": "collocation",
+                          "sedge": "spread", "fennel": "spread", "tansy": "collocation",
                           "quarry": "spread", "cairn": "spread"}
     assert src["TIR"]["quarry"] == "spread" and src["TIR"]["plover"] == "collocation"
     # a short period: collocation cannot be estimated, the spread is used (and recorded)
@@ -252,6 +253,7 @@ def test_export_and_replay_name_the_uncertainty_source(demo_dir, tmp_path, capsy
         assert doc["uncertainty_notes"].startswith("P collocation (triple collocation with kestrel, heron")
         head = [line for line in csv.read_text().splitlines() if line.startswith("#")]
         assert any(line.startswith("# uncertainty_source: P collocation") for line in head)
+        assert any("random error only" in line for line in head) and "random error only" in doc["uncertainty_notes"]
         assert main(["replay", str(out)]) == 0
         # a selection file written before issue 16 (product spread, no uncertainty_source) still replays
         monkeypatch.setattr(unc, "DEFAULT_METHOD", unc.SPREAD)
@@ -273,7 +275,7 @@ def test_export_and_replay_name_the_uncertainty_source(demo_dir, tmp_path, capsy
 def test_legend_names_the_source():
     ds = _series(3)
     errs = {"P": unc.product_error(ds, "p1", 0)}
-    assert unc.legend_text(errs) == "± 2 sigma (P collocation)"
+    assert unc.legend_text(errs) == "± 2 sigma (P collocation); collocation: random error only"
     errs = {"P": unc.product_error(_series(2), "p1", 0)}
     assert unc.legend_text(errs) == "± 2 sigma (P product spread)"
 
@@ -308,3 +310,111 @@ def test_merged_sources_are_not_collocated_with_their_products():
     assert unc.component_products(both, "P") == ["P0", "P1"]
     e = unc.product_error(both, "P1", 0)
     assert e.method == unc.SPREAD and "merged_P" not in e.note, e.note
+
+
+# --------------------------------------------------------------------------- is a collocation estimate distinguishable from zero?
+def _population_cov(scale, signal_var, error_var):
+    """Covariance of products x_i = scale_i t + e_i (t of variance ``signal_var``, independent errors)."""
+    s = np.asarray(scale, dtype=np.float64)
+    return signal_var * np.outer(s, s) + np.diag(error_var)
+
+
+@pytest.mark.parametrize("scale, error_var", [
+    ([0.5, 1.0, 1.2], [0.0, 25.0, 64.0]),           # a damped copy of the truth: no random error at all
+    ([1.0, 0.9, 1.1], [9.0, 25.0, 64.0]),           # a small random error
+    ([1.0, 1.0, 0.8, 1.3], [16.0, 25.0, 36.0, 9.0]),  # four products: multiple collocation
+], ids=["damped-copy", "small-error", "four-products"])
+def test_collocation_standard_error_matches_monte_carlo(scale, error_var):
+    """The sampling standard error of a collocation error variance (first-order expansion, normal errors: see
+    `collocation.collocation_standard_errors`) against the spread of the estimates of 4,000 synthetic series of
+    120 months, drawn from the model collocation assumes. The expansion is first order: 10% (the Monte Carlo's
+    own error on a standard deviation from 4,000 draws is 1/sqrt(8000), about 1%)."""
+    from wbexplore.balance import collocation as col
+
+    rng = np.random.default_rng(7)
+    n, draws, signal_var = 120, 4000, 900.0
+    k = len(scale)
+    est = np.empty((draws, k))
+    for d in range(draws):
+        t = rng.normal(0.0, np.sqrt(signal_var), n)
+        x = np.outer(scale, t) + rng.standard_normal((k, n)) * np.sqrt(np.asarray(error_var))[:, None]
+        est[d] = col.collocation_from_covariance(np.cov(x))
+    Q = _population_cov(scale, signal_var, error_var)
+    predicted = col.collocation_standard_errors(Q, np.asarray(error_var, dtype=np.float64), n)
+    np.testing.assert_allclose(est.std(axis=0, ddof=1), predicted, rtol=0.10)
+    # the ratio estimator's bias is second order (of order v / n): small against the sampling error
+    assert np.all(np.abs(est.mean(axis=0) - error_var) < 0.25 * predicted), (est.mean(axis=0), predicted)
+
+
+def _damped_copy_series(months=240):
+    """p0 = the truth with its departures from the mean halved, plus a trace of noise (sd 0.02 mm/month):
+    a systematic error that a linear calibration absorbs; p1, p2 with random errors of sd 5 and 8."""
+    rng = np.random.default_rng(10)  # a draw where the estimate comes out (tiny and) positive: the finding
+    t = rng.gamma(3.0, 30.0, months)
+    time = xr.date_range("2001-01-01", periods=months, freq="MS", use_cftime=False)
+    ds = xr.Dataset(coords={"basin": ["B"], "time": time})
+    vals = {"p0": t.mean() + 0.5 * (t - t.mean()) + rng.normal(0, 0.02, months),
+            "p1": t + rng.normal(0, 5.0, months), "p2": t + rng.normal(0, 8.0, months)}
+    for k, v in vals.items():
+        ds[k] = (("basin", "time"), v[None], {"role": "source", "component": "P", "units": "mm/month"})
+    return ds, t
+
+
+def test_tiny_positive_collocation_error_is_not_used():
+    """The review finding (issue 16): a damped copy of the truth gets a tiny positive collocation error
+    variance, and that was used as its error (a band of a few hundredths of a mm/month around a product
+    whose error against the truth is tens of mm/month). An estimate below its sampling error is no
+    estimate: the band falls back to the spread and says why; asked for collocation, it is refused."""
+    ds, t = _damped_copy_series()
+    tc = unc.collocation_variances(np.stack([ds[s].values[0] for s in ("p0", "p1", "p2")]), ["p0", "p1", "p2"])
+    assert tc["p0"]["error_variance"] > 0  # the trap: positive, yet only sampling noise
+    assert tc["p0"]["error_variance"] < 1.645 * tc["p0"]["standard_error"]
+    # the true error against the truth (arithmetic of the construction): far beyond the collocation estimate
+    assert np.var(ds["p0"].values[0] - t) > 100 * tc["p0"]["error_variance"]
+    e = unc.product_error(ds, "p0", 0)
+    assert e.method == unc.SPREAD, e.note
+    assert ("collocation cannot separate p0's error from zero: it sees no random error" in e.note
+            and "systematic errors are invisible to collocation; the product spread is used" in e.note), e.note
+    with pytest.raises(InputError, match="collocation cannot separate p0's error from zero"):
+        unc.product_error(ds, "p0", 0, method="collocation")
+    # the products with random errors keep their collocation errors, within the factor of the demo check
+    for s, sd in (("p1", 5.0), ("p2", 8.0)):
+        got = unc.product_error(ds, s, 0)
+        assert got.method == unc.COLLOCATION and 1 / 1.5 < got.variance[0] / sd**2 < 1.5, (s, got.note)
+
+
+def test_merge_refuses_a_collocation_error_indistinguishable_from_zero():
+    from wbexplore.balance.merge import product_error_variances
+
+    ds, _ = _damped_copy_series()
+    with pytest.raises(InputError, match="basin 'B': P: collocation cannot separate p0's error from zero"):
+        product_error_variances(ds, "P", "B")
+    # stated errors take its place: the merge goes on
+    ds["p0"].attrs["absolute_error_mm"] = 20.0
+    _, errs = product_error_variances(ds, "P", "B")
+    assert errs.methods == ("stated", "collocation", "collocation")
+
+
+def test_collocation_texts_say_random_error_only():
+    ds = _series(3)
+    errs = {"P": unc.product_error(ds, "p1", 0)}
+    assert "random error only" in unc.method_label(unc.COLLOCATION)
+    assert "random error only" in unc.uncertainty_text(errs)
+    assert "random error only" in unc.legend_text(errs)
+    spread = {"P": unc.product_error(_series(2), "p1", 0)}
+    assert "random error only" not in unc.uncertainty_text(spread)
+
+
+def test_demo_damped_product_falls_back_to_the_spread(demo_series):
+    """The finding on the demo: Velumbe with heron, sedge (seasonal departures halved by construction) and
+    quarry. sedge's collocation error variance is sampling noise: the band uses the spread and says why."""
+    r = compute_selection(demo_series, Selection("VEL", "heron", "sedge", "quarry"))
+    assert r.uncertainty_source["ET"] == "spread"
+    assert "collocation cannot separate sedge's error from zero" in r.uncertainty_line
+    assert any(m.startswith("uncertainty of ET (sedge)") and "cannot separate" in m for m in r.messages), r.messages
+    # the band is the spread now, not sedge's 0.024 mm/month of sampling noise (the median before the review)
+    ok = r.frame["valid"]
+    assert r.frame.loc[ok, "sigma_ET"].median() > 1.0
+    # tansy (random error) keeps collocation, and its text says what collocation cannot see
+    t = compute_selection(demo_series, Selection("VEL", "heron", "tansy", "quarry"))
+    assert t.uncertainty_source["ET"] == "collocation" and "random error only" in t.uncertainty_line

@@ -291,7 +291,7 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
                                             + (f"flows {q_relative_error:.0%} of flow" if no_q
                                                else f"Q {q_relative_error:.0%} of flow")]
                            + [f"uncertainty of {c} ({e.source}): {e.note}" for c, e in errors.items()
-                              if "not used" in e.note],
+                              if "not used" in e.note or "cannot separate" in e.note],
                            terms=a["terms"], uncertainty=errors, q_relative_error=float(q_relative_error),
                            storage_state=state)
 

@@ -13,7 +13,9 @@ Two steps, per basin (pure computation: series in, series out):
    a product and gives no weights). Method ``collocation`` takes collocation errors only (three products or
    more for every component). Collocation estimates errors *after* a linear rescaling of each product: a
    product that is a scaled copy of the truth (a multiplicative bias, a damped seasonal cycle) has a
-   collocation error near zero, and a sampling estimate at or below zero is refused, never floored.
+   collocation error near zero, and an estimate not distinguishable from zero given its sampling error
+   (`uncertainty.collocation_doubt`: at or below zero, or a tiny positive one) is refused, naming the product,
+   never floored: collocation sees random error only (`uncertainty.COLLOCATION_CAVEAT`, in the outputs).
 2. **Forced closure.** The merged P, ET, TWSA monthly means, the gauged Q and every gauged flow are moved,
    as little as their weights allow, until the balance closes in the engine's own form
    (`wbexplore.balance.engine`: window-matched fluxes against the storage difference, or raw fluxes when
@@ -145,6 +147,11 @@ def _component_errors(X, ids, attrs, *, component, basin, method, variances, mon
                 tc = unc.collocation_variances(X, ids, component=component)
             except InputError as exc:
                 raise InputError(f"{where}: {exc}") from None
+            for s in missing:
+                doubt = unc.collocation_doubt(s, tc[s])
+                if doubt is not None:
+                    raise InputError(f"{where}: {doubt}; its weight would be unbounded (state errors in the "
+                                     "catalog instead: relative_error, absolute_error_mm)")
             V = [np.full(T, tc[s]["error_variance"]) if v is None else v for s, v in zip(ids, V)]
     V = np.stack(V) if V else np.zeros((0, T))
     bad = np.isfinite(X) & ~(np.isfinite(V) & (V > 0))
@@ -400,11 +407,14 @@ def _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, produc
         if t.gridded:
             ids = unc.component_products(ds, t.component)
             src = " / ".join(sorted(err_src.get(t.component, ())))
+            caveat = "; collocation: random error only" if unc.COLLOCATION in src else ""
             attrs = {"role": "source", "component": t.component, "units": units, "source_id": name,
                      "long_name": f"merged {t.component} ({', '.join(ids)}; inverse error variance, errors: "
-                                  f"{src}), budget closed by {what} [{method}]",
+                                  f"{src}{caveat}), budget closed by {what} [{method}]",
                      "label": f"Merged {t.component} ({method})", "products": ", ".join(ids),
                      "error_variance_source": src}
+            if caveat:
+                attrs["error_variance_caveat"] = unc.COLLOCATION_CAVEAT
         else:
             attrs = {"role": "merged_station", "component": t.component, "units": units,
                      "long_name": f"{t.label} adjusted by {what} [{method}] (gauged {t.variable}, "
@@ -423,8 +433,9 @@ def _dataset(ds, wanted, out, se, counts, res_before, res_after, err_var, produc
     data["residual_after"] = (("basin", "time"), res_after, {
         "units": "mm/month", "long_name": f"residual after {what} [{method}] ({form})", "merge_method": method})
     data["error_variance"] = (("basin", "product"), err_var, {
-        "units": "mm2", "long_name": "error variance of each product used for its weight (collocation or given; "
-                                     "NaN: stated errors, which vary by month)", "merge_method": method})
+        "units": "mm2", "long_name": "error variance of each product used for its weight (collocation, random "
+                                     "error only, or given; NaN: stated errors, which vary by month)",
+        "merge_method": method})
     coords["product"] = ("product", np.array(products, dtype=object))
     res = xr.Dataset(data, coords=coords)
     res.attrs = {"merge_method": method, "merge_method_description": what,

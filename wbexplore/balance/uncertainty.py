@@ -15,8 +15,11 @@ own (used by the uncertainty of a selection, `product_error`, and by the merge, 
    (labelled so wherever it is shown); for a merge, a refusal (`InputError`, one line): weights need an
    error of each product, and the spread is not one.
 
-A collocation estimate at or below zero is never floored: the band falls back to the spread and says why,
-the merge (and ``method="collocation"``) refuses, naming the product.
+A collocation estimate is used only where it is distinguishable from zero: above `SIGNIFICANCE_Z` times its
+sampling standard error (`collocation.collocation_standard_errors`). One at or below zero is never floored,
+and a tiny positive one is not used either (a damped or scaled copy of the truth comes out as sampling noise
+around zero, and would get a band of hundredths of a mm/month): the band falls back to the spread and says why
+(`collocation_doubt`), the merge (and ``method="collocation"``) refuses, naming the product.
 
 What was used is recorded (`ProductError.method`, `method_label`) and travels with every output that
 carries an uncertainty. The product spread stays available on its own as `product_disagreement`.
@@ -24,7 +27,7 @@ carries an uncertainty. The product spread stays available on its own as `produc
 What collocation measures: the *random* error of a product around a linear calibration of the truth
 (``x = a + b t + e``, errors independent of the truth and of each other). A multiplicative bias or a
 damped seasonal cycle is part of ``a + b t`` and is not in the error variance: collocation is blind to
-systematic errors.
+systematic errors. Every text that reports a collocation error says so ("random error only", `COLLOCATION_CAVEAT`).
 
 Pure computation: no files, no prints.
 """
@@ -44,7 +47,8 @@ from .engine import DERIVED_PREFIXES, masked_values
 __all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "MIN_COLLOCATION_MONTHS",
            "DEFAULT_METHOD", "product_error", "product_errors", "all_product_errors", "product_disagreement", "stated_variance",
            "collocation_variances", "method_label", "uncertainty_text", "legend_text", "check_method",
-           "component_products", "Q_RELATIVE_ERROR", "gauge_error"]
+           "component_products", "Q_RELATIVE_ERROR", "gauge_error", "SIGNIFICANCE_Z", "COLLOCATION_CAVEAT",
+           "collocation_doubt"]
 
 # Relative error of gauged monthly discharge: a few percent for a rated station (common practice;
 # the 5% used here is from memory of typical stage-discharge uncertainty, not from a standard).
@@ -56,10 +60,15 @@ METHODS = ("auto", STATED, COLLOCATION, SPREAD)
 # of it (normal errors), 29% at n = 24; fewer months and the estimate is mostly noise (common practice).
 MIN_COLLOCATION_MONTHS = 24
 DEFAULT_METHOD = "auto"
+# A collocation error variance is used when it exceeds this many of its sampling standard errors: the
+# one-sided 5% point of the normal distribution (we ask only whether the error variance is above zero).
+SIGNIFICANCE_Z = 1.645
+COLLOCATION_CAVEAT = ("random error only: collocation is blind to scaling and damping errors (a linear "
+                      "calibration absorbs them)")
 
 _LABELS = {
     STATED: "stated product error (catalog)",
-    COLLOCATION: "collocation error variance of the product",
+    COLLOCATION: "collocation error variance of the product (random error only: blind to scaling and damping errors)",
     SPREAD: "product spread (disagreement between products, not the chosen product's error)",
     NONE: "no error estimate",
 }
@@ -141,6 +150,25 @@ def gauge_error(values, relative_error: float = Q_RELATIVE_ERROR) -> np.ndarray:
     return relative_error * np.abs(np.asarray(values, dtype=np.float64))
 
 
+def collocation_doubt(source: str, estimate: dict) -> str | None:
+    """Why ``source``'s collocation error variance cannot be used, or None when it can.
+
+    ``estimate`` is ``source``'s entry of `collocation_variances` (``error_variance``, ``standard_error``, ``n``).
+    It is usable when it exceeds `SIGNIFICANCE_Z` times its sampling standard error; otherwise collocation saw
+    no random error in the product, which says nothing about its systematic error.
+    """
+    ev, se, n = float(estimate["error_variance"]), float(estimate["standard_error"]), int(estimate["n"])
+    if ev > 0 and np.isfinite(se) and ev > SIGNIFICANCE_Z * se:
+        return None
+    if not ev > 0:
+        what = f"collocation error variance of {source!r} is {ev:.3g} mm2, not positive"
+    else:
+        what = (f"collocation error variance of {source!r} is {ev:.3g} mm2, within {SIGNIFICANCE_Z} sampling "
+                f"standard errors ({se:.3g} mm2) of zero")
+    return (f"collocation cannot separate {source}'s error from zero: it sees no random error ({what} over "
+            f"{n} months); systematic errors are invisible to collocation")
+
+
 def collocation_variances(stack, names, *, component: str = "", min_months: int = MIN_COLLOCATION_MONTHS) -> dict:
     """Collocation error variance (mm2) of each of N >= 3 products (rows of ``stack``, time last).
 
@@ -198,7 +226,8 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
     strict : bool
         With "auto", refuse (`InputError`) instead of falling back to the spread when the component has
         three products or more but the period is too short to estimate collocation error variances. (An
-        estimate at or below zero falls back to the spread, saying why, unless collocation was asked for.)
+        estimate not distinguishable from zero, `collocation_doubt`, falls back to the spread, saying why,
+        unless collocation was asked for.)
     cache : dict, optional
         Shared between calls for one basin, period and valid fraction (`all_product_errors`): each
         component's products are stacked and collocated once.
@@ -242,14 +271,13 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
             if method == COLLOCATION or strict:
                 raise InputError(str(failure))
             why = f" (collocation not used: {failure})"
-        ev = float("nan") if tc is None else tc[source]["error_variance"]
-        if tc is not None and not ev > 0:
-            msg = (f"collocation error variance of {source!r} is {ev:.3g} mm2, not positive: its random error is "
-                   f"below the sampling error of {tc[source]['n']} months (a systematic error is invisible to it)")
+        doubt = None if tc is None else collocation_doubt(source, tc[source])
+        if doubt is not None:
             if method == COLLOCATION:
-                raise InputError(msg)
-            why = f" (collocation not used: {msg})"
-        if tc is not None and ev > 0:
+                raise InputError(doubt)
+            why = f" ({doubt}; the product spread is used)"
+        if tc is not None and doubt is None:
+            ev = tc[source]["error_variance"]
             kind = "triple" if len(ids) == 3 else f"multiple ({len(ids)} products)"
             note = f"{kind} collocation with {', '.join(s for s in ids if s != source)} over {tc[source]['n']} months"
             return ProductError(source, comp, COLLOCATION, np.where(np.isfinite(x), ev, np.nan), note)
@@ -276,10 +304,13 @@ def product_errors(ds: xr.Dataset, sources: dict, basin_index: int, **kw) -> dic
 
 
 def uncertainty_text(errors: dict, *, q_relative_error: float | None = None) -> str:
-    """One line naming the source of each component's uncertainty ("P collocation (...); ET ...")."""
+    """One line naming the source of each component's uncertainty ("P collocation (...); ET ..."), ending
+    with `COLLOCATION_CAVEAT` where a collocation error is used."""
     parts = [f"{c} {e.method} ({e.note})" for c, e in errors.items()]
     if q_relative_error is not None:
         parts.append(f"Q {q_relative_error:.0%} of flow (gauge error)")
+    if any(e.method == COLLOCATION for e in errors.values()):
+        parts.append(f"collocation: {COLLOCATION_CAVEAT}")
     return "; ".join(parts)
 
 
@@ -287,5 +318,9 @@ _SHORT = {STATED: "stated", COLLOCATION: "collocation", SPREAD: "product spread"
 
 
 def legend_text(errors: dict) -> str:
-    """Short text for a band's legend: "± 2 sigma (P collocation, ET stated, TWSA product spread)"."""
-    return "± 2 sigma (" + ", ".join(f"{c} {_SHORT[e.method]}" for c, e in errors.items()) + ")"
+    """Short text for a band's legend: "± 2 sigma (P collocation, ET stated, TWSA product spread); collocation:
+    random error only"."""
+    text = "± 2 sigma (" + ", ".join(f"{c} {_SHORT[e.method]}" for c, e in errors.items()) + ")"
+    if any(e.method == COLLOCATION for e in errors.values()):
+        text += "; collocation: random error only"
+    return text
