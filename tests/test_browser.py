@@ -439,7 +439,7 @@ def _metric_select(page):
     return next(s for s in _selects(page).all() if "Residual RMSE (mm/month)" in s.locator("option").all_inner_texts())
 
 
-def _wait(cond, page, timeout=20):
+def _wait(cond, page, timeout=60):  # generous: after the JupyterLab tests the machine is busy for a while
     t0 = time.time()
     while time.time() - t0 < timeout and not cond():
         page.wait_for_timeout(200)
