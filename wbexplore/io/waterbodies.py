@@ -155,6 +155,24 @@ def read_waterbody_outlines(spec: WaterbodySpec) -> gpd.GeoDataFrame:
     return gdf
 
 
+def _station_months(spec: WaterbodySpec, table_spec, waterbody_ids, *, kind: str):
+    """(station table, station -> water body, every month from the first to the last) of a water-body station
+    table (levels, pan): station ids are water-body ids unless the table's ``stations`` maps them; a station or
+    target that is not a water body of the outline file is refused naming it."""
+    known = [str(w) for w in waterbody_ids]
+    mapping = table_spec.station_map
+    table = read_station_table(table_spec, kind=kind, use=None if mapping is None else list(mapping))
+    if mapping is None:
+        mapping = {s: s for s in table.stations}
+    for st, wb in mapping.items():
+        if wb not in known:
+            what = f"station {_short(st)} maps to water body {_short(wb)}" if st != wb else f"station {_short(st)}"
+            raise InputError(f"{table_spec.path}: {what}, which is not a water body of {spec.path.name} "
+                             f"(field {spec.id_field!r})")
+    months = pd.DatetimeIndex(table.monthly.index.get_level_values("month"))
+    return table, mapping, pd.DatetimeIndex(pd.date_range(months.min(), months.max(), freq="MS"))
+
+
 def read_levels(spec: WaterbodySpec, waterbody_ids) -> tuple[xr.DataArray, xr.DataArray | None]:
     """Water levels (m) per water body: (monthly means, end-of-month levels or None).
 
@@ -168,19 +186,8 @@ def read_levels(spec: WaterbodySpec, waterbody_ids) -> tuple[xr.DataArray, xr.Da
         A level station (or a ``stations`` target) that is not a water body of the outline file.
     """
     lvl = spec.level
-    known = [str(w) for w in waterbody_ids]
-    mapping = lvl.station_map
-    table = read_station_table(lvl, kind="level", use=None if mapping is None else list(mapping))
-    if mapping is None:
-        mapping = {s: s for s in table.stations}
-    for st, wb in mapping.items():
-        if wb not in known:
-            what = f"station {_short(st)} maps to water body {_short(wb)}" if st != wb else f"station {_short(st)}"
-            raise InputError(f"{lvl.path}: {what}, which is not a water body of {spec.path.name} "
-                             f"(field {spec.id_field!r})")
+    table, mapping, full = _station_months(spec, lvl, waterbody_ids, kind="level")
     m = table.monthly
-    months = pd.DatetimeIndex(m.index.get_level_values("month"))
-    full = pd.DatetimeIndex(pd.date_range(months.min(), months.max(), freq="MS"))
     wbs = sorted(set(mapping.values()))
     mean = np.full((len(wbs), full.size), np.nan)
     end = np.full((len(wbs), full.size), np.nan)
@@ -216,18 +223,8 @@ def read_pan(spec: WaterbodySpec, waterbody_ids) -> xr.DataArray:
     """
     pan = spec.pan
     known = [str(w) for w in waterbody_ids]
-    mapping = pan.station_map
-    table = read_station_table(pan, kind="flow", use=None if mapping is None else list(mapping))
-    if mapping is None:
-        mapping = {s: s for s in table.stations}
-    for st, wb in mapping.items():
-        if wb not in known:
-            what = f"station {_short(st)} maps to water body {_short(wb)}" if st != wb else f"station {_short(st)}"
-            raise InputError(f"{pan.path}: {what}, which is not a water body of {spec.path.name} "
-                             f"(field {spec.id_field!r})")
+    table, mapping, full = _station_months(spec, pan, known, kind="flow")
     m = table.monthly
-    months = pd.DatetimeIndex(m.index.get_level_values("month"))
-    full = pd.DatetimeIndex(pd.date_range(months.min(), months.max(), freq="MS"))
     out = np.full((len(known), full.size), np.nan)
     for st, wb in mapping.items():
         out[known.index(wb)] = m.loc[st]["value"].reindex(full).to_numpy(float)
