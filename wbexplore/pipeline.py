@@ -226,6 +226,12 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
     # flows are read before any product: a flow naming an unknown basin or station fails at once
     basin_flows = split_flows(cat)[0]
     flows = read_flow_series(basin_flows, load_basins(cat)["area_km2"], catalog=cat.path) if basin_flows else None
+    return _extract_on(cat, gdf, specs, scheduler=scheduler, workers=workers, client=client, progress=progress,
+                       cache_dir=cache_dir, use_cache=use_cache, engine=engine, incremental=incremental, flows=flows)
+
+
+def _extract_on(cat, gdf, specs, *, scheduler, workers, client, **kwargs) -> xr.Dataset:
+    """`_extract` on the given client, or on a cluster started (or a scheduler connected) for it."""
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be at least 1, got {workers}")
     from contextlib import ExitStack
@@ -234,8 +240,7 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
         if client is None and (scheduler is not None or workers is not None):
             # connect (or start the cluster) first: a scheduler that does not answer fails fast
             client = stack.enter_context(_client(scheduler, workers))
-        return _extract(cat, gdf, specs, client=client, progress=progress, cache_dir=cache_dir,
-                        use_cache=use_cache, engine=engine, incremental=incremental, flows=flows)
+        return _extract(cat, gdf, specs, client=client, **kwargs)
 
 
 def _extract_waterbodies(cat: Catalog, *, sources, ids, scheduler, workers, client, progress, cache_dir, use_cache,
@@ -262,15 +267,8 @@ def _extract_waterbodies(cat: Catalog, *, sources, ids, scheduler, workers, clie
             raise InputError(f"{cat.path}: field 'sources': no {comp} product for the water bodies")
     wb_flows = split_flows(cat)[1]
     flows = read_flow_series(wb_flows, wbs.outlines["area_km2"], catalog=cat.path) if wb_flows else None
-    if workers is not None and workers < 1:
-        raise InputError(f"--workers must be at least 1, got {workers}")
-    from contextlib import ExitStack
-
-    with ExitStack() as stack:
-        if client is None and (scheduler is not None or workers is not None):
-            client = stack.enter_context(_client(scheduler, workers))
-        return _extract(cat, gdf, specs, client=client, progress=progress, cache_dir=cache_dir,
-                        use_cache=use_cache, engine=engine, flows=flows, waterbodies=wbs)
+    return _extract_on(cat, gdf, specs, scheduler=scheduler, workers=workers, client=client, progress=progress,
+                       cache_dir=cache_dir, use_cache=use_cache, engine=engine, flows=flows, waterbodies=wbs)
 
 
 def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine, incremental=False,
