@@ -226,18 +226,22 @@ class ResidualPlot(_Plot):
         fig.xaxis.axis_label = "month"
         fig.legend.location = "top_left"
 
-    def update(self, result, unit_system: str = "mm") -> None:
-        f = to_unit_system(result.frame, result.area_km2, unit_system)
+    def _fill(self, result, f, values) -> None:
+        """Refill the sources: ``values`` per month of ``f`` (the frame in the unit system) with its +/- 2 sigma band,
+        the months beyond 2 sigma flagged, and the invalid months shaded."""
         t = pd.DatetimeIndex(f.index).values
-        r = f["residual"].values
         s = f["sigma_residual"].values
-        self.src.data = {"month": t, "residual": r, "lo": r - 2 * s, "hi": r + 2 * s}
+        self.src.data = {"month": t, "residual": values, "lo": values - 2 * s, "hi": values + 2 * s}
         flag = result.frame["beyond_2sigma"].values.astype(bool)
-        self.flag.data = {"month": t[flag], "residual": r[flag]}
+        self.flag.data = {"month": t[flag], "residual": values[flag]}
         half = np.timedelta64(15, "D")
         runs = _runs(~result.frame["valid"].values)
         self.gaps.data = {"x0": np.array([t[a] - half for a, _ in runs], dtype="datetime64[ns]"),
                           "x1": np.array([t[b] + half for _, b in runs], dtype="datetime64[ns]")}
+
+    def update(self, result, unit_system: str = "mm") -> None:
+        f = to_unit_system(result.frame, result.area_km2, unit_system)
+        self._fill(result, f, f["residual"].values)
         sel = result.selection
         self.fig.yaxis.axis_label = f"{_balance_label(result)} ({UNIT_LABEL[unit_system]})"
         self.fig.title.text = _nodata(result) or f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)"
@@ -475,16 +479,8 @@ class ExchangePlot(ResidualPlot):
 
             exchange = unmeasured_exchange(result)
         f = to_unit_system(result.frame, result.area_km2, unit_system)
-        t = pd.DatetimeIndex(f.index).values
-        x = exchange.monthly[unit_system].reindex(f.index).to_numpy(float)
+        self._fill(result, f, exchange.monthly[unit_system].reindex(f.index).to_numpy(float))
         s = f["sigma_residual"].values
-        self.src.data = {"month": t, "residual": x, "lo": x - 2 * s, "hi": x + 2 * s}
-        flag = result.frame["beyond_2sigma"].values.astype(bool)
-        self.flag.data = {"month": t[flag], "residual": x[flag]}
-        half = np.timedelta64(15, "D")
-        runs = _runs(~result.frame["valid"].values)
-        self.gaps.data = {"x0": np.array([t[a] - half for a, _ in runs], dtype="datetime64[ns]"),
-                          "x1": np.array([t[b] + half for _, b in runs], dtype="datetime64[ns]")}
         from bokeh.core.properties import value
 
         for item in self.fig.legend[0].items:
