@@ -84,15 +84,21 @@ def browser():
         b.close()
 
 
-@pytest.fixture(scope="module")
-def page(browser, server):
-    pg = browser.new_page(viewport={"width": 1500, "height": 1700})
+def open_page(browser, url, *, height=1700):
+    """A page on the served explorer, rendered (summary shown), collecting page and console errors in ``.errors``."""
+    pg = browser.new_page(viewport={"width": 1500, "height": height})
     pg.errors = []
     pg.on("pageerror", lambda e: pg.errors.append(str(e)))
     pg.on("console", lambda m: pg.errors.append(m.text) if m.type == "error" else None)
-    pg.goto(server)
+    pg.goto(url)
     pg.wait_for_selector(".wbx-summary", timeout=90_000)
     pg.wait_for_timeout(1500)
+    return pg
+
+
+@pytest.fixture(scope="module")
+def page(browser, server):
+    pg = open_page(browser, server)
     yield pg
     pg.close()
 

@@ -10,7 +10,7 @@ import re
 import warnings
 
 import pytest
-from test_browser import _deep_text, browser, server, study  # noqa: F401 - the fixtures of the served page
+from test_browser import _deep_text, browser, open_page, server, study  # noqa: F401 - the fixtures of the served page
 
 pytestmark = pytest.mark.browser
 WID = "TALV"
@@ -18,13 +18,7 @@ WID = "TALV"
 
 @pytest.fixture(scope="module")
 def page(browser, server):  # noqa: F811
-    pg = browser.new_page(viewport={"width": 1500, "height": 1900})
-    pg.errors = []
-    pg.on("pageerror", lambda e: pg.errors.append(str(e)))
-    pg.on("console", lambda m: pg.errors.append(m.text) if m.type == "error" else None)
-    pg.goto(server)
-    pg.wait_for_selector(".wbx-summary", timeout=90_000)
-    pg.wait_for_timeout(1500)
+    pg = open_page(browser, server, height=1900)
     yield pg
     pg.close()
 
