@@ -7,7 +7,7 @@ Medians of repeated runs, measured side by side in one run.
 
     python benchmarks/balance.py            # engine only
     python benchmarks/balance.py --cli      # also the whole-process rank --all (writes a small study)
-    python benchmarks/balance.py --cli --against /work/main   # and the same command from another checkout
+    python benchmarks/balance.py --cli --against ../other-checkout   # and the same command from another checkout
     python benchmarks/balance.py --cli-only [--against DIR] [--repeat N]   # the whole-process part alone
 """
 
@@ -118,7 +118,7 @@ def write_study(d: Path, nb=100, nt=240, seed=0):
 
 def cli_times(repeat=5, against=None):
     """Whole-process `wbexplore rank CATALOG --all` (warm series cache) and, side by side (interleaved),
-    `wbexplore --version` and, with ``against`` (another checkout, e.g. /work/main), the same command there."""
+    `wbexplore --version` and, with ``against`` (another checkout, e.g. ../other-checkout), the same command there."""
     import os
     import resource
     import statistics

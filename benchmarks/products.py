@@ -9,7 +9,7 @@ ratios of one run are what to read (the machine is small, shared and noisy).
     python benchmarks/products.py --monthly      # 240 x 600 x 600 monthly netCDF (0.33 GiB), 100 basins
     python benchmarks/products.py --memory       # peak allocations of a streamed daily extraction
     add --quick for 2 years / 60 months (a smoke test); --repeat N (default 5, at least 3);
-    --against DIR: the same extract from another checkout (e.g. /work/main) in the same interleaved runs
+    --against DIR: the same extract from another checkout (e.g. ../other-checkout) in the same interleaved runs
 
 The do-it-yourself path of --daily is what a notebook user writes with regionmask and xarray from
 PyPI (``pip install regionmask``; not a dependency of wbexplore): xarray resample to months, then
@@ -353,7 +353,7 @@ def main():
         ap.add_argument(f"--{m}", action="store_true")
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--repeat", type=int, default=5)
-    ap.add_argument("--against", type=Path, default=None, help="another checkout (e.g. /work/main), run side by side")
+    ap.add_argument("--against", type=Path, default=None, help="another checkout (e.g. ../other-checkout), run side by side")
     a = ap.parse_args()
     global AGAINST
     AGAINST = a.against
