@@ -1,6 +1,8 @@
 """Selection export and exact replay, series export (CSV, CF netCDF), HTML report, atomic writes."""
 
+import hashlib
 import re
+import shutil
 import subprocess
 import sys
 import warnings
@@ -10,6 +12,7 @@ import pandas as pd
 import pytest
 import xarray as xr
 import yaml
+from pathlib import Path
 
 from conftest import copy_demo
 from wbexplore.balance import Selection, compute_selection
@@ -41,7 +44,7 @@ def test_round_trip_exact(study, tmp_path, capsys):
     assert _export(study, out) == 0
     doc = yaml.safe_load(out.read_text())
     assert doc["wbexplore_selection"] == 1
-    assert doc["sources"]["P"]["id"] == "heron" and len(doc["sources"]["P"]["files"][0]["sha256"]) == 64
+    assert doc["sources"]["P"]["id"] == "heron" and len(doc["provenance"]["sources"]["heron"]["sha256"]) == 64
     assert doc["period"] == {"start": "2003-01", "end": "2018-12"}
     assert "Screening-level" in doc["caution"] and doc["versions"]["wbexplore"]
     rc, cap = _replay(out, capsys)
@@ -126,6 +129,105 @@ def test_failure_leaves_no_partial_file(study, tmp_path, capsys):
                    "--TWSA", "quarry", "--start", "2030-01", "--out", str(out), "--series", str(tmp_path / "s.csv")])
     assert rc == 2
     assert list(tmp_path.iterdir()) == [study]
+
+
+# --------------------------------------------------------------------------- compact selection files (issue 17, item 8)
+# the choice and its options first, then what it gave, then provenance (a file of the demo's whole basin with flows)
+WHOLE_BASIN_KEYS = ["wbexplore_selection", "basin", "sources", "period", "storage_change", "discharge_lag_months",
+                    "min_valid_fraction", "water_year_start_month", "q_relative_error", "unit_system", "flows",
+                    "metrics", "uncertainty_source", "uncertainty_notes", "caution", "catalog", "provenance",
+                    "created", "versions"]
+OLD_FIXTURE = Path(__file__).parent / "fixtures" / "selection_v1_before_compact.yaml"
+
+
+def _manifest_sha256(folder, relpaths):
+    """hashlib: SHA-256 of the lines GNU `sha256sum` prints (`<hex>  <path>`), files sorted by path."""
+    lines = "".join(f"{hashlib.sha256((folder / r).read_bytes()).hexdigest()}  {r}\n" for r in sorted(relpaths))
+    return hashlib.sha256(lines.encode()).hexdigest()
+
+
+def _scale_netcdf(path, variable, factor=1.01):
+    ds = xr.open_dataset(path).load()
+    ds[variable] = ds[variable] * factor
+    path.unlink()
+    ds.to_netcdf(path)
+
+
+def test_file_reads_as_configuration(study, tmp_path):
+    from wbexplore.io.yamlsafe import load_yaml
+    from wbexplore.selection import KEY_ORDER
+
+    out = tmp_path / "sel.yaml"
+    assert _export(study, out) == 0
+    text = out.read_text()
+    doc = load_yaml(text, source=out)  # the project's strict loader reads it
+    assert list(doc) == WHOLE_BASIN_KEYS and [k for k in KEY_ORDER if k in doc] == WHOLE_BASIN_KEYS
+    # was 33 057 bytes (one line per file, every product of the catalog): under 4 KB now
+    assert len(out.read_bytes()) < 4096
+    assert "Screening-level" in doc["caution"] and "licensed professional practice" in doc["caution"]
+    prov = doc["provenance"]
+    assert set(prov["sources"]) == {"heron", "tansy", "quarry"}
+    # every component's uncertainty here is collocation or the spread: all the other products are needed
+    assert set(doc["uncertainty_source"].values()) <= {"collocation", "spread", "gauge"}
+    assert set(prov["uncertainty_sources"]) == {"kestrel", "plover", "sedge", "fennel", "cairn"}
+    # digests checked with hashlib (stdlib) over the files on disk
+    assert prov["sources"]["heron"] == {"files": 1, "sha256": _manifest_sha256(study, ["grids/heron_p_0p25.nc"])}
+    plover = [p.relative_to(study).as_posix() for p in (study / "grids" / "plover").glob("plover_rain_*.tif")]
+    assert len(plover) == 240
+    assert prov["uncertainty_sources"]["plover"] == {"files": 240, "sha256": _manifest_sha256(study, plover)}
+    assert prov["inputs"]["discharge"]["sha256"] == _manifest_sha256(study, ["discharge.csv"])
+    assert doc["catalog"]["sha256"] == hashlib.sha256((study / "catalog.yaml").read_bytes()).hexdigest()
+    if shutil.which("sha256sum"):  # GNU coreutils gives the same digest (same lines, same order)
+        listing = subprocess.run(["sha256sum", *sorted(plover)], cwd=study, capture_output=True, check=True).stdout
+        assert hashlib.sha256(listing).hexdigest() == prov["uncertainty_sources"]["plover"]["sha256"]
+
+
+def test_changed_unused_product_is_no_difference(study, tmp_path, capsys):
+    # a stated P error (catalog field absolute_error_mm): P's uncertainty needs no other P product
+    doc = yaml.safe_load((study / "catalog.yaml").read_text())
+    next(s for s in doc["sources"] if s["id"] == "heron")["absolute_error_mm"] = 4.0
+    (study / "stated.yaml").write_text(yaml.safe_dump(doc, sort_keys=False))
+    out = tmp_path / "sel.yaml"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["export", str(study / "stated.yaml"), "--basin", "VEL", "--P", "heron", "--ET", "tansy",
+                     "--TWSA", "quarry", "--start", "2003-01", "--end", "2018-12", "--out", str(out)]) == 0
+    sel = yaml.safe_load(out.read_text())
+    assert sel["uncertainty_source"]["P"] == "stated"
+    assert set(sel["provenance"]["uncertainty_sources"]) == {"sedge", "fennel", "cairn"}
+    # kestrel and plover are used by nothing: changing one is no difference
+    _scale_netcdf(study / "grids" / "kestrel_p_0p1.nc", "precip")
+    rc, cap = _replay(out, capsys)
+    assert rc == 0 and "reproduced" in cap.out, cap.out + cap.err
+    # a product the ET collocation uses, and a flow's station table (never hashed before: a bug), are
+    _scale_netcdf(study / "grids" / "sedge_et_0p25.nc", "evap")
+    irr = pd.read_csv(study / "irrigation.csv")
+    irr.loc[50, "IRR-K4"] = irr.loc[50, "IRR-K4"] * 2 + 1
+    irr.to_csv(study / "irrigation.csv", index=False)
+    rc, cap = _replay(out, capsys)
+    assert rc == 1
+    assert re.search(r"source sedge \(uncertainty\) +1 file\(s\) +sha256 changed", cap.out), cap.out
+    assert re.search(r"flow irrigation +1 file\(s\) +sha256 changed", cap.out), cap.out
+    assert "kestrel" not in cap.out
+
+
+def test_file_of_the_previous_writer_still_replays(study, capsys):
+    # written by the writer before compact provenance (tests/fixtures, saved before the change): one line per file
+    old = study / "old_selection.yaml"
+    shutil.copy(OLD_FIXTURE, old)
+    assert "provenance" not in yaml.safe_load(old.read_text())
+    rc, cap = _replay(old, capsys)
+    assert rc == 0 and "reproduced" in cap.out, cap.out + cap.err
+    _scale_netcdf(study / "grids" / "tansy_et_daily_0p25.nc", "ET")  # a used file: named, file by file
+    rc, cap = _replay(old, capsys)
+    assert rc == 1 and re.search(r"source tansy +grids/tansy_et_daily_0p25.nc +sha256 changed", cap.out), cap.out
+
+
+def test_water_body_file_of_the_previous_writer_still_replays(study, capsys):
+    old = study / "old_selection.yaml"
+    shutil.copy(OLD_FIXTURE.with_name("selection_v1_before_compact_waterbody.yaml"), old)
+    rc, cap = _replay(old, capsys)
+    assert rc == 0 and "reproduced" in cap.out, cap.out + cap.err
 
 
 @pytest.fixture(scope="module")

@@ -168,6 +168,17 @@ MALFORMED = [
     ("metrics", {"metrics": [1, 2]}),
     ("metrics.rmse", {"metrics.rmse": "small"}),
     ("metrics.rmse", {"metrics.rmse": True}),
+    ("provenance", {"provenance": ["x"]}),
+    ("provenance.extra", {"provenance.extra": {}}),
+    ("provenance.sources", {"provenance.sources": "heron"}),
+    ("provenance.sources.heron.sha256", {"provenance.sources.heron.sha256": "zz"}),
+    ("provenance.sources.heron.files", {"provenance.sources.heron.files": 0}),
+    ("provenance.sources.heron.files", {"provenance.sources.heron.files": "one"}),
+    ("provenance.inputs.basins", {"provenance.inputs.basins": "basins.geojson"}),
+    ("provenance.uncertainty_sources.kestrel.sha256", {"provenance.uncertainty_sources.kestrel.sha256": None}),
+]
+# the spelling before compact provenance (one {path, sha256} per file), still read: checked on a file of that writer
+OLD_SPELLING = [
     ("sources.P.files.0.path", {"sources.P.files.0.path": 5}),
     ("sources.P.files.0.sha256", {"sources.P.files.0.sha256": "zz"}),
     ("sources.TWSA.files", {"sources.TWSA.files": "quarry.nc"}),
@@ -176,6 +187,16 @@ MALFORMED = [
     ("uncertainty_sources", {"uncertainty_sources": ["x"]}),
     ("inputs", {"inputs": []}),
 ]
+
+
+@pytest.fixture(scope="module")
+def exported_old(exported):
+    """The saved file of the writer before compact provenance (tests/fixtures), naming the demo's catalog."""
+    doc = yaml.safe_load((Path(__file__).parent / "fixtures" / "selection_v1_before_compact.yaml").read_text())
+    doc["catalog"]["path"] = yaml.safe_load(exported.read_text())["catalog"]["path"]
+    p = exported.parent / "old_writer.yaml"
+    p.write_text(yaml.safe_dump(doc, sort_keys=False))
+    return p
 
 
 @pytest.mark.parametrize("i", range(len(MALFORMED)), ids=[f"{f}-{i}" for i, (f, _) in enumerate(MALFORMED)])
@@ -192,6 +213,20 @@ def test_malformed_selection_field(exported, i, capsys, monkeypatch):
     assert str(p) in line and f"field '{field}'" in line
 
 
+@pytest.mark.parametrize("i", range(len(OLD_SPELLING)), ids=[f"{f}-{i}" for i, (f, _) in enumerate(OLD_SPELLING)])
+def test_malformed_old_spelling_field(exported_old, i, capsys, monkeypatch):
+    import wbexplore.selection as selmod
+
+    def no_extract(*a, **k):
+        raise AssertionError("extraction started")
+
+    monkeypatch.setattr(selmod, "_extract_for", no_extract)
+    field, edits = OLD_SPELLING[i]
+    p = _mutated(exported_old, f"old_bad{i}", edits)
+    line = _one_line_error(*_run(["replay", p], capsys)[::2])
+    assert str(p) in line and f"field '{field}'" in line
+
+
 def test_nonfinite_metrics_compare_equal():
     from wbexplore.selection import _clean_metrics, _close
 
@@ -204,7 +239,9 @@ def test_nonfinite_metrics_compare_equal():
     assert back["a"] == inf and back["b"] == -inf and back["c"] is None
 
 
-def test_replay_never_opens_paths_outside_the_catalog(exported, demo_dir, capsys, monkeypatch):
+def test_replay_never_opens_paths_outside_the_catalog(exported_old, demo_dir, capsys, monkeypatch):
+    # paths are recorded only in the spelling before compact provenance: a file of that writer
+    exported = exported_old
     import wbexplore.selection as selmod
 
     real = selmod.file_sha256

@@ -14,6 +14,7 @@ Outside references, named beside each check:
 from __future__ import annotations
 
 import calendar
+import hashlib
 
 import numpy as np
 import pandas as pd
@@ -323,6 +324,12 @@ def test_cli_rank_a_water_body_prints_the_exchange_in_volume_units(study, capsys
     assert doc["rows"][0]["exchange_m3s"] == pytest.approx(SEEPAGE_M3S, rel=1e-9)
 
 
+def _manifest_sha256(folder, relpaths):
+    """hashlib: SHA-256 of the lines GNU `sha256sum` prints (`<hex>  <path>`), files sorted by path."""
+    lines = "".join(f"{hashlib.sha256((folder / r).read_bytes()).hexdigest()}  {r}\n" for r in sorted(relpaths))
+    return hashlib.sha256(lines.encode()).hexdigest()
+
+
 def test_cli_export_replay_report_a_water_body(study, capsys, tmp_path):
     sel = tmp_path / "sel.yaml"
     rc, out, err = run_cli(["export", study, "--basin", "RES1", "--P", "rain_true", "--ET", "evap_true",
@@ -330,7 +337,9 @@ def test_cli_export_replay_report_a_water_body(study, capsys, tmp_path):
     assert rc == 0, err
     doc = yaml.safe_load(sel.read_text())
     assert doc["unit"] == "waterbody" and doc["area"] == "surface" and doc["sources"]["TWSA"]["id"] == "levels"
-    assert {f["path"] for f in doc["sources"]["TWSA"]["files"]} == {"lakes.geojson", "levels.csv", "curves.csv"}
+    # one digest over its files (hashlib: SHA-256 of the `sha256sum` lines, sorted by path)
+    assert doc["provenance"]["sources"]["levels"] == {"files": 3, "sha256": _manifest_sha256(
+        study.parent, ["lakes.geojson", "levels.csv", "curves.csv"])}
     rc, out, err = run_cli(["replay", sel], capsys)
     assert rc == 0 and "replay ok" in out, err
     # replayed exactly: a changed level file is a difference (exit 1)
@@ -467,7 +476,8 @@ def test_cli_export_replay_with_pan(study, capsys, tmp_path):
                            capsys)
     assert rc == 0, err
     doc = yaml.safe_load(sel.read_text())
-    assert doc["sources"]["ET"]["id"] == "pan" and doc["sources"]["ET"]["files"][0]["path"] == "pan.csv"
+    assert doc["sources"]["ET"]["id"] == "pan"
+    assert doc["provenance"]["sources"]["pan"] == {"files": 1, "sha256": _manifest_sha256(study.parent, ["pan.csv"])}
     rc, out, err = run_cli(["replay", sel], capsys)
     assert rc == 0 and "replay ok" in out, err
 

@@ -11,6 +11,7 @@ creation time and the caution text. `replay` recomputes and compares.
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import json
 import math
 import os
@@ -58,10 +59,28 @@ def _rel(path: Path, base: Path) -> str:
 
 
 def _file_entries(paths, base: Path) -> list[dict]:
+    """One {path, sha256} entry per file: the spelling of files written before `files_digest` (still read)."""
     out = []
     for p in paths:
         out.append({"path": _rel(Path(p), base), "sha256": file_sha256(p)})
     return out
+
+
+def _manifest_path(path, base: Path) -> str:
+    return Path(_rel(Path(path), base)).as_posix()
+
+
+def files_digest(paths, base: Path) -> dict:
+    """One compact provenance entry for a product's (or an input's) files: ``{files: N, sha256: H}``.
+
+    ``H`` is the SHA-256 of the text GNU coreutils' ``sha256sum`` prints for the files, sorted by path:
+    one line ``<sha256 of the file>  <path>`` each, paths relative to the catalog's folder with ``/``
+    (so ``sha256sum $(sorted files) | sha256sum`` run in that folder gives it, for plain files). A zarr
+    store's line carries `io.catalog.file_sha256` of the store. ``N`` is the number of files.
+    """
+    lines = sorted((_manifest_path(p, base), file_sha256(p)) for p in paths)
+    text = "".join(f"{h}  {rel}\n" for rel, h in lines)
+    return {"files": len(lines), "sha256": hashlib.sha256(text.encode("utf-8")).hexdigest()}
 
 
 def _clean_metrics(metrics: dict) -> dict:
@@ -72,40 +91,79 @@ def _clean_metrics(metrics: dict) -> dict:
     return out
 
 
+# Top-level keys in the order they are written: the choice and its options, what it gave, then where it came
+# from. Optional keys (unit, area, flows) are left out where they do not apply.
+KEY_ORDER = ("wbexplore_selection", "basin", "unit", "sources", "period", "storage_change", "discharge_lag_months",
+             "min_valid_fraction", "water_year_start_month", "q_relative_error", "area", "unit_system", "flows",
+             "metrics", "uncertainty_source", "uncertainty_notes", "caution",
+             "catalog", "provenance", "created", "versions")
+# a comment line written before the key that opens each part of the file
+_PART_COMMENTS = {
+    "basin": "# the choice: unit, products, period and options",
+    "metrics": "# what it gave",
+    "catalog": ("# provenance: SHA-256 of the files replay reads; each `sha256` below is the SHA-256 of what\n"
+                "# `sha256sum` prints for its files, sorted by path (paths relative to the catalog's folder)"),
+}
+
+
+def _product_paths(cat: Catalog, sid: str, unit: str) -> tuple:
+    """The files of product ``sid`` (a water body's own series: its outlines, levels, curve or pan table)."""
+    own = _own_paths(cat, sid) if unit == "waterbody" else None
+    return tuple(own) if own is not None else tuple(cat.source(sid).paths)
+
+
+def _uncertainty_products(cat: Catalog, sel: Selection, result, ds, unit: str) -> list[str]:
+    """The products other than the chosen ones that the uncertainty was computed from (sorted)."""
+    from .balance.uncertainty import error_inputs
+
+    chosen = {sel.P, sel.ET, sel.TWSA}
+    out = set()
+    for err in result.uncertainty.values():
+        if ds is not None:
+            out.update(error_inputs(ds, err))
+        elif err.method in ("collocation", "spread"):  # without the series: the catalog's products
+            out.update(s.id for s in cat.sources if s.component == err.component)
+    return sorted(out - chosen)
+
+
 def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit_system: str = "mm",
-                       q_relative_error: float = Q_RELATIVE_ERROR, unit: str = "whole") -> dict:
-    """The selection as a plain dict (what `export_selection` writes); ``unit`` is "whole",
-    "incremental" (the basin minus its upstream basins) or "waterbody" (a lake or reservoir: its TWSA source
-    is the storage from levels, whose files are the water bodies' outlines, levels and curves), written only
-    when it is not "whole"; ``area`` (where P and E fall) is written for water bodies."""
+                       q_relative_error: float = Q_RELATIVE_ERROR, unit: str = "whole", ds=None) -> dict:
+    """The selection as a plain dict (what `export_selection` writes), keys in `KEY_ORDER`.
+
+    ``unit`` is "whole", "incremental" (the basin minus its upstream basins) or "waterbody" (a lake or
+    reservoir: its TWSA source is the storage from levels, whose files are the water bodies' outlines, levels
+    and curves), written only when it is not "whole"; ``area`` (where P and E fall) is written for water bodies.
+    ``ds``: the series the result was computed from; the products its uncertainty used are read from them
+    (`balance.uncertainty.error_inputs`; without them, every product of a component whose uncertainty is
+    collocation or spread). Provenance is one `files_digest` entry per product and per input.
+    """
+    folder = cat.path.parent
     sources = {}
+    used = {}
     for comp in SOURCE_COMPONENTS:
-        own = _own_paths(cat, getattr(sel, comp)) if unit == "waterbody" else None
-        if own is not None:  # the storage from levels, the pan evaporation: the water bodies' own files
-            sources[comp] = {"id": getattr(sel, comp), "label": _OWN_LABELS[getattr(sel, comp)],
-                             "files": _file_entries(own, cat.path.parent)}
-            continue
-        spec = cat.source(getattr(sel, comp))
-        sources[comp] = {"id": spec.id, "label": spec.display, "files": _file_entries(spec.paths, cat.path.parent)}
-    inputs = {"basins": _file_entries([cat.basins.path], cat.path.parent)[0]}
-    # the other products of each component set the uncertainty (their spread): record them too
-    spread = {}
-    for spec in cat.sources:
-        if spec.id not in (sel.P, sel.ET, sel.TWSA):
-            spread[spec.id] = _file_entries(spec.paths, cat.path.parent)
+        sid = getattr(sel, comp)
+        own = _own_paths(cat, sid) if unit == "waterbody" else None
+        label = _OWN_LABELS[sid] if own is not None else cat.source(sid).display
+        sources[comp] = {"id": sid, "label": label}
+        used[sid] = files_digest(_product_paths(cat, sid, unit), folder)
+    inputs = {"basins": files_digest([cat.basins.path], folder)}
     if cat.discharge:
-        inputs["discharge"] = _file_entries([cat.discharge.path], cat.path.parent)[0]
+        inputs["discharge"] = files_digest([cat.discharge.path], folder)
+    provenance = {"sources": used,
+                  "uncertainty_sources": {sid: files_digest(_product_paths(cat, sid, unit), folder)
+                                          for sid in _uncertainty_products(cat, sel, result, ds, unit)},
+                  "inputs": inputs}
     flows = _flow_entries(cat, result)
+    flow_files = {f["id"]: files_digest([_flow_path(cat, f["id"])], folder)
+                  for f in flows if _flow_path(cat, f["id"]) is not None}
+    if flow_files:
+        provenance["flows"] = flow_files
     doc = {
         "wbexplore_selection": SELECTION_VERSION,
-        "created": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
-        "caution": CAUTION,
-        "catalog": {"path": _rel(cat.path, base), "sha256": cat.sha256, "title": cat.title},
         "basin": {"id": sel.basin, "name": result.basin_name, "area_km2": float(result.area_km2)},
-        "period": {"start": f"{result.frame.index[0]:%Y-%m}", "end": f"{result.frame.index[-1]:%Y-%m}"},
+        "unit": unit,
         "sources": sources,
-        "inputs": inputs,
-        "uncertainty_sources": spread,
+        "period": {"start": f"{result.frame.index[0]:%Y-%m}", "end": f"{result.frame.index[-1]:%Y-%m}"},
         # options as given (replayed as they are); where they do not apply, the note says how storage was taken
         "storage_change": {"method": sel.storage_change, "window_matched": bool(sel.matched),
                            "fill_gaps": bool(sel.fill_gaps),
@@ -114,20 +172,51 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
         "min_valid_fraction": float(sel.min_valid_fraction),
         "water_year_start_month": int(sel.water_year_start),
         "q_relative_error": float(q_relative_error),
+        "area": sel.area,
+        "unit_system": unit_system,
+        "flows": flows,
+        "metrics": _clean_metrics(result.metrics),
         # where each product's error came from (issue 16); a file without it was made with the product spread
         "uncertainty_source": {**result.uncertainty_source, "Q": "gauge"},
         "uncertainty_notes": result.uncertainty_line,
-        "unit_system": unit_system,
-        "metrics": _clean_metrics(result.metrics),
+        "caution": CAUTION,
+        "catalog": {"path": _rel(cat.path, base), "sha256": cat.sha256, "title": cat.title},
+        "provenance": provenance,
+        "created": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "versions": _versions(),
     }
-    if flows:  # only where the balance has flows: a plain catalog's selection file stays as it was
-        doc["flows"] = flows
-    if unit != "whole":  # a whole basin's selection file stays as it was
-        doc["unit"] = unit
-    if sel.area != "outline" or unit == "waterbody":  # where P and E fall (water bodies)
-        doc["area"] = sel.area
+    if not flows:  # only where the balance has flows: a plain catalog's selection file has no `flows`
+        del doc["flows"]
+    if unit == "whole":  # a whole basin's file names no unit
+        del doc["unit"]
+    if not (sel.area != "outline" or unit == "waterbody"):  # where P and E fall (water bodies)
+        del doc["area"]
     return doc
+
+
+class _FlowDumper(yaml.SafeDumper):
+    """yaml's safe dumper writing each provenance entry ({files, sha256}) on one line."""
+
+
+class _OneLine(dict):
+    pass
+
+
+_FlowDumper.add_representer(_OneLine, lambda d, m: d.represent_mapping("tag:yaml.org,2002:map", m.items(),
+                                                                        flow_style=True))
+
+
+def selection_text(doc: dict, *, name: str) -> str:
+    """The YAML text of a selection document: a header naming the replay command, a comment before each part."""
+    doc = dict(doc)
+    if "provenance" in doc:
+        doc["provenance"] = {k: {n: _OneLine(e) for n, e in v.items()} for k, v in doc["provenance"].items()}
+    parts = [f"# wbexplore selection file: replay with `wbexplore replay {name}`\n"]
+    for key, value in doc.items():
+        if key in _PART_COMMENTS:
+            parts.append(_PART_COMMENTS[key] + "\n")
+        parts.append(yaml.dump({key: value}, Dumper=_FlowDumper, sort_keys=False, width=110))
+    return "".join(parts)
 
 
 _OWN_LABELS = {LEVELS: DS_LEVELS.label, "pan": "Lake evaporation from pan"}
@@ -154,16 +243,18 @@ def _catalog_flows(cat: Catalog) -> dict:
     return {str(f.id): f for f in (getattr(cat, "flows", None) or ())}
 
 
+def _flow_path(cat: Catalog, fid: str):
+    """The station table of flow ``fid`` as the catalog names it, or None."""
+    spec = _catalog_flows(cat).get(fid)
+    return None if spec is None else spec.table.path
+
+
 def _flow_entries(cat: Catalog, result) -> list[dict]:
-    """Each flow of the balance: id, direction, label and the SHA-256 of its station table."""
-    spec = _catalog_flows(cat)
+    """Each flow of the balance: id, direction and label (its station table: `_flow_path`)."""
     out = []
     for t in flow_terms_of(result.terms):
         fid = t.variable[len("flow_"):] if t.variable.startswith("flow_") else t.variable
-        entry = {"id": fid, "direction": "in" if t.sign > 0 else "out", "label": t.label}
-        if fid in spec and getattr(spec[fid], "path", None) is not None:
-            entry["file"] = _file_entries([spec[fid].path], cat.path.parent)[0]
-        out.append(entry)
+        out.append({"id": fid, "direction": "in" if t.sign > 0 else "out", "label": t.label})
     return out
 
 
@@ -216,7 +307,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     res = compute_selection(ds, sel)
     if res.n_valid == 0:
         raise InputError(res.messages[0])
-    doc = selection_document(cat, sel, res, base=out.resolve().parent, unit_system=unit_system, unit=unit)
+    doc = selection_document(cat, sel, res, base=out.resolve().parent, unit_system=unit_system, unit=unit, ds=ds)
     if incremental:
         doc["basin"]["whole_area_km2"] = float(ds["whole_area_km2"].sel(basin=sel.basin))
     written = {}
@@ -228,8 +319,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
                                 positions=series_positions(cat, sel.basin, incremental=incremental))
         written["series"] = str(series)
     with atomic_path(out, overwrite=overwrite, protect=cat) as tmp:
-        tmp.write_text("# wbexplore selection file: replay with `wbexplore replay " + out.name + "`\n"
-                       + yaml.safe_dump(doc, sort_keys=False, width=110))
+        tmp.write_text(selection_text(doc, name=out.name))
     written["selection"] = str(out)
     written["metrics"] = doc["metrics"]
     return written
@@ -248,6 +338,7 @@ def _extract_for(cat: Catalog, sel: Selection, cache_dir, *, incremental: bool =
         return extract(cat, basins=[sel.basin], cache_dir=cache_dir, incremental=incremental)
 
 
+_PROVENANCE_PARTS = ("sources", "uncertainty_sources", "inputs", "flows")  # `selection_document`'s provenance
 _UNCERTAINTY_SOURCES = ("stated", "collocation", "spread", "none")  # `balance.uncertainty` methods
 UNITS = ("whole", "incremental", "waterbody")  # the balance units a selection file may name (field ``unit``)
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")
@@ -315,6 +406,12 @@ class _Fields:
             self.fail(field, f"{_show(v)} must be a list of {{path, sha256}} entries")
         return [self.file_entry(e, f"{field}.{i}") for i, e in enumerate(v)]
 
+    def digest_entry(self, v, field: str) -> dict:
+        self.mapping(v, field)
+        self.integer(self.get(v, f"{field}.files", "files"), f"{field}.files", 1, 10**9)
+        self.sha256(self.get(v, f"{field}.sha256", "sha256"), f"{field}.sha256")
+        return v
+
     def file_entry(self, v, field: str) -> dict:
         self.mapping(v, field)
         self.text(self.get(v, f"{field}.path", "path"), f"{field}.path")
@@ -359,6 +456,14 @@ def _validate(doc: dict, p: Path) -> Selection:
                        "uncertainty_sources")
     for sid, files in spread.items():
         c.files(files, f"uncertainty_sources.{sid}")
+    prov = doc.get("provenance")
+    if prov is not None:
+        c.mapping(prov, "provenance")
+        for part, entries in prov.items():
+            if part not in _PROVENANCE_PARTS:
+                c.fail(f"provenance.{part}", f"is not one of {', '.join(_PROVENANCE_PARTS)}")
+            for name, entry in c.mapping(entries, f"provenance.{part}").items():
+                c.digest_entry(entry, f"provenance.{part}.{name}")
     sc = c.mapping(doc["storage_change"], "storage_change")
     method = c.get(sc, "storage_change.method", "method")
     if method not in METHODS:
@@ -447,8 +552,12 @@ def replay(path, *, cache_dir=None) -> dict:
     """Recompute a selection file.
 
     Only files the catalog itself names are opened and hashed: the expected files come from the
-    catalog, and a recorded path that is not one of them is reported as a difference, never read.
-    A directory is hashed only when the catalog names it as a zarr store.
+    catalog. A file in the spelling before compact provenance (one ``{path, sha256}`` per file) is
+    checked file by file, and a recorded path that is not one of the catalog's files is reported as a
+    difference, never read; a compact entry (`files_digest`) is compared with the digest of the
+    catalog's files of that product now. A directory is hashed only when the catalog names it as a
+    zarr store. Of the other products, only those the uncertainty uses
+    (`balance.uncertainty.error_inputs`) are checked: a changed product that nothing used is no difference.
 
     Raises `SelectionError` (exit 2) for a malformed file, a missing file or an unknown id;
     `ReplayMismatch` (exit 1) with a table when a file's hash or any metric differs.
@@ -461,7 +570,8 @@ def replay(path, *, cache_dir=None) -> dict:
     if cat.sha256 != doc["catalog"]["sha256"]:
         rows.append(("catalog", doc["catalog"]["path"], "sha256 changed"))
     known = {s.id: s for s in cat.sources}
-    waterbody = doc.get("unit", "whole") == "waterbody"
+    unit = doc.get("unit", "whole")
+    waterbody = unit == "waterbody"
     for comp in SOURCE_COMPONENTS:
         sid = getattr(sel, comp)
         if waterbody and _own_paths(cat, sid) is not None:
@@ -470,6 +580,15 @@ def replay(path, *, cache_dir=None) -> dict:
             raise SelectionError(f"{path}: field 'sources.{comp}.id': source {sid!r} is not in the catalog "
                                  f"{doc['catalog']['path']!r}")
     base = cat.path.parent
+    prov = doc.get("provenance")
+
+    def opened(fp: Path, label: str, key: str, *, store_ok: bool, shown: str) -> bool:
+        if fp.is_file() or (store_ok and fp.is_dir()):
+            return True
+        if not fp.exists():
+            raise SelectionError(f"{path}: {label} file {key!r} is missing")
+        rows.append((label, shown, "not a regular file (not opened)"))
+        return False
 
     def check(entries, expected_paths, label, *, store_ok=False):
         # recorded paths are compared as text with the catalog's own files: nothing else is touched
@@ -481,47 +600,74 @@ def replay(path, *, cache_dir=None) -> dict:
                 rows.append((label, f["path"], "not a file of the catalog (not opened)"))
                 continue
             recorded.add(key)
-            fp = expected[key]
-            if not (fp.is_file() or (store_ok and fp.is_dir())):
-                if not fp.exists():
-                    raise SelectionError(f"{path}: {label} file {key!r} is missing")
-                rows.append((label, f["path"], "not a regular file (not opened)"))
+            if not opened(expected[key], label, key, store_ok=store_ok, shown=f["path"]):
                 continue
-            if file_sha256(fp) != f["sha256"]:
+            if file_sha256(expected[key]) != f["sha256"]:
                 rows.append((label, f["path"], "sha256 changed"))
         for key in sorted(expected.keys() - recorded):
             rows.append((label, key, "a file of the catalog that was not recorded"))
 
-    def is_store(spec):
-        return spec.format == "zarr"
+    def check_digest(entry, paths, label, *, store_ok=False):
+        # the catalog's files of the product now, against the recorded digest over its files
+        shown = f"{entry['files']} file(s)"
+        if not all([opened(Path(q), label, _rel(Path(q), base), store_ok=store_ok, shown=shown) for q in paths]):
+            return
+        now = files_digest(paths, base)
+        if now["sha256"] != entry["sha256"]:  # which file is not known: name the files where they are few
+            names = sorted(_manifest_path(q, base) for q in paths)
+            rows.append((label, shown, "sha256 changed (" + (", ".join(names) if len(names) <= 3
+                                                             else f"{len(names)} files now") + ")"))
 
+    def is_store(sid):
+        return sid in known and known[sid].format == "zarr"
+
+    def product_paths(sid):
+        return _product_paths(cat, sid, unit)
+
+    # the chosen products
     for comp in SOURCE_COMPONENTS:
-        if waterbody and _own_paths(cat, getattr(sel, comp)) is not None:
-            check(doc["sources"][comp].get("files") or [], _own_paths(cat, getattr(sel, comp)),
-                  f"source {getattr(sel, comp)}")
-            continue
-        spec = known[getattr(sel, comp)]
-        check(doc["sources"][comp].get("files") or [], spec.paths, f"source {spec.id}", store_ok=is_store(spec))
-    for sid, files in (doc.get("uncertainty_sources") or {}).items():
-        if sid not in known:
-            rows.append((f"source {sid}", "(uncertainty)", "no longer in the catalog"))
-            continue
-        check(files, known[sid].paths, f"source {sid} (uncertainty)", store_ok=is_store(known[sid]))
+        sid = getattr(sel, comp)
+        label = f"source {sid}"
+        if prov is None:
+            check(doc["sources"][comp].get("files") or [], product_paths(sid), label, store_ok=is_store(sid))
+        elif sid not in prov.get("sources", {}):
+            rows.append((label, "(not recorded)", "its files were not recorded"))
+        else:
+            check_digest(prov["sources"][sid], product_paths(sid), label, store_ok=is_store(sid))
+    # the basins and discharge files
     catalog_inputs = {"basins": cat.basins.path}
     if cat.discharge:
         catalog_inputs["discharge"] = cat.discharge.path
-    for key, entry in (doc.get("inputs") or {}).items():
+    recorded_inputs = (doc.get("inputs") or {}) if prov is None else prov.get("inputs", {})
+    for key, entry in recorded_inputs.items():
         if key not in catalog_inputs:
-            rows.append((key, entry["path"], "not an input of the catalog (not opened)"))
-            continue
-        check([entry], [catalog_inputs[key]], key)
-    ds = _extract_for(cat, sel, cache_dir, incremental=doc.get("unit", "whole") == "incremental",
-                      waterbody=waterbody)
+            rows.append((key, entry.get("path", f"{entry.get('files')} file(s)"),
+                         "not an input of the catalog (not opened)"))
+        elif prov is None:
+            check([entry], [catalog_inputs[key]], key)
+        else:
+            check_digest(entry, [catalog_inputs[key]], key)
+    ds = _extract_for(cat, sel, cache_dir, incremental=unit == "incremental", waterbody=waterbody)
     # a file written before issue 16 has no uncertainty_source: its n_beyond_2sigma came from the product spread
     res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)),
                             uncertainty="auto" if doc.get("uncertainty_source") is not None else "spread")
+    # the other products: those the uncertainty uses now, each as recorded (a file before compact provenance
+    # recorded every product of the catalog; the ones nothing uses are not compared)
+    recorded_unc = (doc.get("uncertainty_sources") or {}) if prov is None else prov.get("uncertainty_sources", {})
+    for sid in sorted(recorded_unc):
+        if sid not in known and not (waterbody and _own_paths(cat, sid) is not None):
+            rows.append((f"source {sid}", "(uncertainty)", "no longer in the catalog"))
+    for sid in _uncertainty_products(cat, sel, res, ds, unit):
+        label = f"source {sid} (uncertainty)"
+        if sid not in recorded_unc:
+            rows.append((label, "(not recorded)", "the uncertainty uses it now"))
+        elif prov is None:
+            check(recorded_unc[sid], product_paths(sid), label, store_ok=is_store(sid))
+        else:
+            check_digest(recorded_unc[sid], product_paths(sid), label, store_ok=is_store(sid))
     # the balance's flows: the same ones, each from the same file
     recorded_flows = {str(f["id"]): f for f in doc.get("flows") or []}
+    flow_digests = {} if prov is None else prov.get("flows", {})
     now_flows = {f["id"]: f for f in _flow_entries(cat, res)}
     for fid in sorted(recorded_flows.keys() | now_flows.keys()):
         old, cur = recorded_flows.get(fid), now_flows.get(fid)
@@ -531,8 +677,12 @@ def replay(path, *, cache_dir=None) -> dict:
             rows.append((f"flow {fid}", "(not recorded)", f"now in the balance ({cur['direction']})"))
         elif old["direction"] != cur["direction"]:
             rows.append((f"flow {fid}", old["direction"], cur["direction"]))
-        elif old.get("file") and cur.get("file"):
-            check([old["file"]], [_catalog_flows(cat)[fid].path], f"flow {fid}")
+        elif _flow_path(cat, fid) is None:
+            continue
+        elif old.get("file"):
+            check([old["file"]], [_flow_path(cat, fid)], f"flow {fid}")
+        elif fid in flow_digests:
+            check_digest(flow_digests[fid], [_flow_path(cat, fid)], f"flow {fid}")
     new = _clean_metrics(res.metrics)
     n = 0
     for k, old in doc["metrics"].items():

@@ -48,7 +48,7 @@ __all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE",
            "DEFAULT_METHOD", "product_error", "product_errors", "all_product_errors", "product_disagreement", "stated_variance",
            "collocation_variances", "method_label", "uncertainty_text", "legend_text", "check_method",
            "component_products", "Q_RELATIVE_ERROR", "gauge_error", "SIGNIFICANCE_Z", "COLLOCATION_CAVEAT",
-           "collocation_doubt"]
+           "collocation_doubt", "error_inputs"]
 
 # Relative error of gauged monthly discharge: a few percent for a rated station (common practice;
 # the 5% used here is from memory of typical stage-discharge uncertainty, not from a standard).
@@ -324,3 +324,15 @@ def legend_text(errors: dict) -> str:
     if any(e.method == COLLOCATION for e in errors.values()):
         text += "; collocation: random error only"
     return text
+
+
+def error_inputs(ds: xr.Dataset, error: ProductError) -> tuple[str, ...]:
+    """The other products ``error`` was computed from: every independent product of its component
+    (`component_products`) for collocation and for the spread, none for a stated error or none.
+
+    What a selection file must record, besides its own products, for its uncertainty (and so its
+    ``n_beyond_2sigma``) to replay exactly.
+    """
+    if error.method in (COLLOCATION, SPREAD):
+        return tuple(s for s in component_products(ds, error.component) if s != error.source)
+    return ()
