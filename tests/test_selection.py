@@ -6,13 +6,13 @@ import shutil
 import subprocess
 import sys
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
 import yaml
-from pathlib import Path
 
 from conftest import copy_demo
 from wbexplore.balance import Selection, compute_selection

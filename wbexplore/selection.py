@@ -1,11 +1,16 @@
 """Selection files (YAML, schema version 1): export, load and exact replay; series export.
 
-A selection file records everything needed to recompute a combination next year:
-the catalog (path relative to the selection file, and its SHA-256), the SHA-256 of
-every file of the three sources, of the basin file and of the discharge file, the
-basin, period, storage-change method and options, the unit system, the metrics
-obtained (full precision), the versions of wbexplore and key libraries, the
-creation time and the caution text. `replay` recomputes and compares.
+A selection file reads as configuration, in the order of `KEY_ORDER`: first the choice (basin, unit,
+the P, ET and TWSA products, period, storage-change method, window matching, fill, lag, thresholds,
+Q error, area, unit system, the balance's flows), then what it gave (the metrics, full precision; where
+each uncertainty came from; the caution text), then provenance: the catalog (path relative to the
+selection file, and its SHA-256) and one block, ``provenance``, holding one `files_digest` entry
+(``{files: N, sha256: H}``: the SHA-256 of the lines ``sha256sum`` prints for the files, sorted by path)
+per chosen product, per other product the uncertainty was computed from (collocation and the spread use
+the other products of a component; a stated error none: `balance.uncertainty.error_inputs`), per input
+(basins, discharge) and per flow; last the creation time and the versions of wbexplore and key libraries.
+`replay` recomputes and compares. Files of the earlier spelling (one ``{path, sha256}`` per file, every
+product of the catalog under ``uncertainty_sources``) are still read and replayed.
 """
 
 from __future__ import annotations
@@ -34,7 +39,8 @@ from .io.catalog import Catalog, file_sha256, open_catalog
 from .io.writers import CAUTION, atomic_path, cf_ready, check_output, same_file, write_netcdf
 from .io.yamlsafe import load_yaml
 
-__all__ = ["SELECTION_VERSION", "export_selection", "selection_document", "load_selection", "replay",
+__all__ = ["SELECTION_VERSION", "KEY_ORDER", "export_selection", "selection_document", "selection_text", "files_digest",
+           "load_selection", "replay",
            "write_series_csv", "write_series_netcdf", "series_dataset", "series_positions"]
 
 SELECTION_VERSION = 1
@@ -194,16 +200,16 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
     return doc
 
 
-class _FlowDumper(yaml.SafeDumper):
+class _OneLineDumper(yaml.SafeDumper):
     """yaml's safe dumper writing each provenance entry ({files, sha256}) on one line."""
 
 
 class _OneLine(dict):
-    pass
+    """A mapping `_OneLineDumper` writes in flow style."""
 
 
-_FlowDumper.add_representer(_OneLine, lambda d, m: d.represent_mapping("tag:yaml.org,2002:map", m.items(),
-                                                                        flow_style=True))
+_OneLineDumper.add_representer(_OneLine, lambda d, m: d.represent_mapping("tag:yaml.org,2002:map", m.items(),
+                                                                           flow_style=True))
 
 
 def selection_text(doc: dict, *, name: str) -> str:
@@ -215,7 +221,7 @@ def selection_text(doc: dict, *, name: str) -> str:
     for key, value in doc.items():
         if key in _PART_COMMENTS:
             parts.append(_PART_COMMENTS[key] + "\n")
-        parts.append(yaml.dump({key: value}, Dumper=_FlowDumper, sort_keys=False, width=110))
+        parts.append(yaml.dump({key: value}, Dumper=_OneLineDumper, sort_keys=False, width=110))
     return "".join(parts)
 
 
@@ -610,7 +616,10 @@ def replay(path, *, cache_dir=None) -> dict:
     def check_digest(entry, paths, label, *, store_ok=False):
         # the catalog's files of the product now, against the recorded digest over its files
         shown = f"{entry['files']} file(s)"
-        if not all([opened(Path(q), label, _rel(Path(q), base), store_ok=store_ok, shown=shown) for q in paths]):
+        ok = True
+        for q in paths:  # every file that cannot be opened is a row (or, missing, refused)
+            ok = opened(Path(q), label, _rel(Path(q), base), store_ok=store_ok, shown=shown) and ok
+        if not ok:
             return
         now = files_digest(paths, base)
         if now["sha256"] != entry["sha256"]:  # which file is not known: name the files where they are few
