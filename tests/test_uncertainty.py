@@ -418,3 +418,31 @@ def test_demo_damped_product_falls_back_to_the_spread(demo_series):
     # tansy (random error) keeps collocation, and its text says what collocation cannot see
     t = compute_selection(demo_series, Selection("VEL", "heron", "tansy", "quarry"))
     assert t.uncertainty_source["ET"] == "collocation" and "random error only" in t.uncertainty_line
+
+
+def test_error_inputs_are_what_the_error_depends_on():
+    # what a selection file records for exact replay (issue 17, item 8): a product named by `error_inputs` changes
+    # the error when it changes, one it leaves out does not (checked against `product_error` itself)
+    from utils import canonical_series
+
+    ds, _ = canonical_series(nb=1, nt=96, flows=())
+    rng = np.random.default_rng(7)
+    ds["P2"] = ds["P1"] + rng.normal(0, 9, ds["P1"].shape)  # a third P product: collocation or spread
+    ds["P2"].attrs = dict(ds["P1"].attrs)
+    ds["valid_fraction_P2"] = ds["valid_fraction_P1"]
+    ds["ET0"].attrs["absolute_error_mm"] = 4.0  # a stated error: no other product needed
+    cases = {"P0": ("P1", "P2"), "ET0": (), "TWSA0": ("TWSA1",)}
+    for source, expected in cases.items():
+        err = unc.product_error(ds, source, 0)
+        assert unc.error_inputs(ds, err) == expected, (source, err.method)
+        for other in unc.component_products(ds, err.component):
+            if other == source:
+                continue
+            changed = ds.copy()
+            changed[other] = ds[other] * 1.3 + 2.0
+            again = unc.product_error(changed, source, 0).variance
+            same = np.array_equal(again, err.variance, equal_nan=True)
+            assert same == (other not in expected), (source, other)
+    one = ds.drop_vars(["TWSA1", "valid_fraction_TWSA1"])
+    err = unc.product_error(one, "TWSA0", 0)
+    assert err.method == unc.NONE and unc.error_inputs(one, err) == ()
