@@ -459,7 +459,7 @@ def test_rank_by_shows_plain_names_and_the_legend_and_header_follow(page, artifa
     labels = sel.locator("option").all_inner_texts()
     assert all("_" not in t for t in labels) and "Relative imbalance (%)" in labels
     # the map colours by KGE while Rank by is a depth (names.map_metric), and says so; by PBIAS itself
-    titles = lambda: page.evaluate(_COLORBAR_TITLES)  # noqa: E731
+    titles = lambda: page.evaluate(_COLORBAR_TITLES)
     assert len(titles()) == 1 and titles()[0].startswith(f"best {metric_label('kge')} per basin")
     sel.select_option(label=metric_label("pbias"))
     heads = lambda: page.locator(".wbx-ranking .tabulator-col-title").all_inner_texts()

@@ -168,7 +168,7 @@ def test_view_follows_the_outlines_with_true_aspect(mapplot, basins):
     assert fig.x_range.renderers == fig.y_range.renderers and len(fig.x_range.renderers) == 1
     assert fig.x_range.renderers[0].data_source is mapplot.src
     assert fig.x_range.range_padding == fig.y_range.range_padding == pytest.approx(2 * plots.MapPlot.MARGIN)
-    w, s, e, n = basins.total_bounds
+    _, s, _, n = basins.total_bounds
     lat = (s + n) / 2
     geod = Geod(ellps="WGS84")
     east = geod.inv(0.0, lat, 0.01, lat)[2]

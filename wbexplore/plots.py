@@ -506,7 +506,14 @@ class MapPlot(_Plot):
         return float(b[:, 0].min()), float(b[:, 1].min()), float(b[:, 2].max()), float(b[:, 3].max())
 
     def _build_waterbodies(self, fig):
-        from bokeh.models import ColumnDataSource, HoverTool, LabelSet, Legend, LegendItem, Patches
+        from bokeh.models import (
+            ColumnDataSource,
+            HoverTool,
+            LabelSet,
+            Legend,
+            LegendItem,
+            Patches,
+        )
 
         w = self.waterbodies
         self.wb_src = ColumnDataSource({"xs": list(w.xs), "ys": list(w.ys), "waterbody": list(w.basin),
