@@ -77,11 +77,17 @@ def test_a_change_refills_the_same_figures_with_engine_values(explorer):
 
 
 def test_map_colours_the_engine_scores_and_outlines_the_basin(explorer):
+    """The map shows `names.map_metric` of "Rank by" (KGE for the default RMSE: depths do not compare between
+    basins), each basin's value being the engine's best (`balance.combos.best_scores`, called directly)."""
+    from wbexplore.balance.combos import best_scores
+    from wbexplore.names import map_metric
+
     ex, page = explorer
     s = ex.state
     fig = _figure(page, "wbx-map").object
     src = _source(fig, "score").data
-    scores = s.basin_scores()
+    assert s.metric == "rmse" and map_metric(s.metric) == "kge"
+    scores = best_scores(s.series, s.options(), by="kge")
     np.testing.assert_array_equal(src["score"], [float(scores[b]) for b in src["basin"]])  # NaN: unscored
     s.basin = next(b for b in s.param.basin.objects if b != s.basin)
     src = _source(fig, "score").data

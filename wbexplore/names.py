@@ -17,8 +17,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["METRIC_NAMES", "OPTIONS", "TERM_NAMES", "Name", "column_label", "metric_label", "metric_name",
-           "option_label", "term_units"]
+__all__ = ["COMPARABLE_METRICS", "EFFICIENCY_METRICS", "MAP_METRIC", "METRIC_NAMES", "OPTIONS", "SIGNED_METRICS",
+           "TERM_NAMES", "Name", "column_label", "map_metric", "map_note", "metric_label", "metric_name",
+           "metric_scale", "option_label", "term_units"]
 
 
 @dataclass(frozen=True)
@@ -73,6 +74,51 @@ def _metric_names() -> dict:
 
 
 METRIC_NAMES: dict[str, Name] = _metric_names()
+
+# How a metric's values read on a colour scale (the map), the one place that says it:
+# signed metrics: 0 is exact closure and the sign is a direction (a diverging scale centred on zero). The value is
+# the sign of the water the products leave over: +1 where a positive value means the balance gives *more* water than
+# the gauge carries away (the residual's sign), -1 for PBIAS (Moriasi et al. 2007: positive = the balance gives less).
+SIGNED_METRICS: dict[str, int] = {"bias": 1, "rel_imbalance": 1, "annual_bias": 1, "pbias": -1}
+# efficiencies: 1 is perfect, no lower bound (r: -1); 0 is "no better than the mean of Q" for NSE
+EFFICIENCY_METRICS: tuple[str, ...] = ("nse", "nse_cyclo", "kge", "kge_prime", "r")
+# the rest (rmse, mae, annual_rmse, n_valid) are magnitudes: >= 0, sequential scale from 0
+
+# metrics without a depth unit, whose values mean the same in a wet and in a dry basin
+COMPARABLE_METRICS: tuple[str, ...] = ("rel_imbalance", "pbias", *EFFICIENCY_METRICS)
+
+#: What the basin map shows when "Rank by" is a depth (RMSE, mean residual, in mm): the Kling-Gupta efficiency.
+#: Why KGE and not the relative imbalance: each basin shows its *best* combination, and the relative imbalance is
+#: signed, so among the 75 combinations of the demo one nearly always crosses zero (best |value| 0.08 to 0.51 % in
+#: every basin: all basins would look closed); KGE compares P - ET - dS with gauged Q relative to Q's own mean and
+#: spread, so wet and dry basins share one scale (demo: 0.90 to 0.98 in the three wettest, -1.7 to -5.6 in the four
+#: with small flows, which RMSE in mm/month ranks among the best because their flows are small).
+MAP_METRIC = "kge"
+
+
+def metric_scale(key: str) -> str:
+    """How `key` reads on a colour scale: ``"signed"``, ``"efficiency"`` or ``"magnitude"`` (see `SIGNED_METRICS`)."""
+    if key in SIGNED_METRICS:
+        return "signed"
+    return "efficiency" if key in EFFICIENCY_METRICS else "magnitude"
+
+
+def map_metric(rank_by: str) -> str:
+    """The metric the basin map colours by for "Rank by" `rank_by`: itself where it compares across basins
+    (`COMPARABLE_METRICS`), else `MAP_METRIC`."""
+    return rank_by if rank_by in COMPARABLE_METRICS else MAP_METRIC
+
+
+def map_note(rank_by: str) -> str:
+    """The map's explanation when it colours by another metric than "Rank by" ("" when it does not); three short lines
+    (a narrow map cuts a long line)."""
+    shown = map_metric(rank_by)
+    if shown == rank_by:
+        return ""
+    n = METRIC_NAMES.get(rank_by)
+    units = n.units if n else ""
+    return (f"Colours: {metric_name(shown)}, not Rank by:\n{metric_name(rank_by)} in {units or 'its units'} "
+            "does not compare\nbetween wet and dry basins")
 
 # balance terms and other series columns: plain name and help; units come from the unit system shown
 TERM_NAMES: dict[str, Name] = {n.key: n for n in (

@@ -60,7 +60,6 @@ UNIT_LABEL = {"mm": "mm/month", "m3": "m3/month", "m3/s": "m3/s", "hm3": "hm3/mo
 WATERBODY_COLOR = "#56B4E9"  # lakes and reservoirs on the map (Okabe-Ito sky blue), whatever the scores
 # a water body's residual r is shown as the unmeasured exchange X = -r (`balance.waterbody.Exchange`)
 EXCHANGE_LABEL = "unmeasured exchange (= residual, net unmeasured outflow; positive = unmeasured loss)"
-ERROR_METRICS = ("rmse", "mae", "annual_rmse")  # smaller is better: the map's colours are reversed for them
 
 
 def waterbody_messages(result) -> list[str]:
@@ -305,6 +304,8 @@ class Outlines:
     xs, ys : exterior ring coordinates in degrees east / north (EPSG:4326), largest basins first so
     that small (nested) ones are drawn on top; basin, name : text of each part's basin;
     area_km2 : the basin's area; drains_to : the id of the basin it is nested in ("" for none).
+    label_basin, label_x, label_y : one entry per basin: its id and a point inside the part of it not covered
+    by a basin nested in it (degrees; shapely's ``representative_point``, see `_label_points`).
     """
 
     xs: tuple
@@ -313,6 +314,17 @@ class Outlines:
     name: tuple
     area_km2: tuple
     drains_to: tuple = ()
+    label_basin: tuple = ()
+    label_x: tuple = ()
+    label_y: tuple = ()
+
+    def bounds(self) -> tuple[float, float, float, float]:
+        """(west, south, east, north) of every part, in degrees; the unit square for no outline."""
+        if not self.xs:
+            return (0.0, 0.0, 1.0, 1.0)
+        x = np.concatenate([np.asarray(a, dtype=float) for a in self.xs])
+        y = np.concatenate([np.asarray(a, dtype=float) for a in self.ys])
+        return (float(np.nanmin(x)), float(np.nanmin(y)), float(np.nanmax(x)), float(np.nanmax(y)))
 
 
 def basin_outlines(basins) -> Outlines:
@@ -321,7 +333,8 @@ def basin_outlines(basins) -> Outlines:
     xs, ys, ids, names, areas, down = [], [], [], [], [], []
     if basins is None:
         return Outlines((), (), (), (), (), ())
-    for bid, row in basins.sort_values("area_km2", ascending=False).iterrows():
+    ordered = basins.sort_values("area_km2", ascending=False)
+    for bid, row in ordered.iterrows():
         for g in getattr(row.geometry, "geoms", [row.geometry]):
             x, y = g.exterior.coords.xy
             xs.append(np.asarray(x))
@@ -331,26 +344,96 @@ def basin_outlines(basins) -> Outlines:
             areas.append(float(row["area_km2"]))
             d = row["drains_to"] if "drains_to" in basins.columns else None
             down.append("" if d is None or (isinstance(d, float) and np.isnan(d)) else str(d))
-    return Outlines(tuple(xs), tuple(ys), tuple(ids), tuple(names), tuple(areas), tuple(down))
+    points = _label_points(ordered.geometry)
+    return Outlines(tuple(xs), tuple(ys), tuple(ids), tuple(names), tuple(areas), tuple(down),
+                    tuple(str(b) for b in ordered.index), tuple(float(p.x) for p in points),
+                    tuple(float(p.y) for p in points))
+
+
+def _label_points(geoms) -> list:
+    """A point inside the visible part of each geometry (`geoms` largest first, drawn in that order): the
+    geometry minus the later ones drawn over it (nested basins), so that a basin's label does not sit on the
+    basin nested in it. The point is shapely's ``polylabel`` of the largest visible part (the point farthest
+    from its edges); shapely's ``representative_point`` where that fails (both always inside, unlike a
+    centroid; ``representative_point`` alone put a basin's label against the edge of the basin nested in it)."""
+    import shapely
+    from shapely.ops import polylabel
+
+    arr = np.asarray(geoms.values, dtype=object)
+    tree = shapely.STRtree(arr)
+    out = []
+    for i, g in enumerate(arr):
+        over = [arr[j] for j in tree.query(g, predicate="intersects") if j > i]
+        visible = shapely.difference(g, shapely.union_all(over)) if over else g
+        part = max(getattr(visible, "geoms", [visible]), key=lambda p: p.area) if not visible.is_empty else g
+        point = None
+        if part.geom_type == "Polygon":  # the point farthest from the part's edges: room for the text
+            x0, y0, x1, y1 = part.bounds
+            point = polylabel(part, tolerance=max(x1 - x0, y1 - y0) / 100.0)
+        out.append(point if point is not None and part.contains(point) else part.representative_point())
+    return out
 
 
 def _best_title(metric: str) -> str:
-    """The map legend's title: the plain name of the ranking metric with its units (`wbexplore.names`)."""
-    from .names import metric_label
+    """The map legend's title: the plain name of the metric with its units (`wbexplore.names`), and for an
+    efficiency which end is best."""
+    from .names import metric_label, metric_scale
 
-    return f"best {metric_label(metric)}"
+    extra = " (1 is perfect)" if metric_scale(metric) == "efficiency" else ""
+    return f"best {metric_label(metric)} per basin{extra}"
+
+
+def _map_colours(metric: str, score: np.ndarray) -> dict:
+    """Palette and limits of the map's colour scale for `metric` (`wbexplore.names.metric_scale`).
+
+    signed: a diverging palette (brown: the balance gives less water than the gauge carries away, blue-green:
+    more, whatever the metric's sign convention) with limits +-max|v|, so that 0 is its pale middle colour;
+    efficiency: sequential from -1 to 1 (values below -1 drawn in the lowest colour), 1 the bright end;
+    magnitude: sequential from 0 to the largest value, 0 the bright end (magnitudes are >= 0: a scale from the
+    smallest value would make a small difference look large).
+    """
+    from bokeh.palettes import BrBG, Viridis256
+
+    from .names import SIGNED_METRICS, metric_scale
+
+    finite = np.abs(score[np.isfinite(score)])
+    top = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
+    kind = metric_scale(metric)
+    if kind == "signed":
+        # BrBG runs from blue-green to brown: brown for "less water" at the negative end of a residual-signed metric
+        brbg = tuple(BrBG[11])
+        return {"palette": brbg[::-1] if SIGNED_METRICS[metric] > 0 else brbg, "low": -top, "high": top}
+    if kind == "efficiency":
+        return {"palette": Viridis256, "low": -1.0, "high": 1.0}
+    return {"palette": Viridis256[::-1], "low": 0.0, "high": top}
 
 
 class MapPlot(_Plot):
     """Basin outlines on lon/lat axes (no tiles) coloured by their best closure score; the selected one outlined.
 
-    Nesting: a basin that drains into another is outlined dashed, and its hover names the basin it drains to.
+    Each basin carries its id at a point inside it (`Outlines.label_x`, ``label_y``). Nesting: a basin that
+    drains into another is outlined dashed, and its hover names the basin it drains to.
 
     Water bodies (``waterbodies``, their `Outlines`) are drawn on top in one fixed colour (they are not
-    scored against basins), outlined; the selected one (a water-body id as ``selected``) thick.
+    scored against basins), outlined and labelled; the selected one (a water-body id as ``selected``) thick.
+
+    Shape: the figure fills its container's width (or ``width`` pixels) at a fixed height; the data ranges are
+    computed by bokehjs from the outlines alone (basins and water bodies, plus `MARGIN` of their extent on each
+    side) after every layout, widened in one direction so that a kilometre east spans as many pixels as a
+    kilometre north at the outlines' middle latitude (``match_aspect`` with ``aspect_scale`` = cos(latitude): a
+    degree of longitude is that much shorter than a degree of latitude). Whatever the width, every outline is
+    inside the frame and none is squeezed. The colour bar lies under the map, across its width, so that it never
+    takes width from a narrow map and its title (the metric and its units) is never cut.
+
+    Colours: `update` says which metric the scores are; the scale follows `wbexplore.names.metric_scale`
+    (diverging and symmetric about 0 for signed metrics, 1 best for efficiencies, from 0 for magnitudes).
+    Which metric the explorer shows is `wbexplore.names.map_metric` ("Rank by" where it compares across
+    basins, else the Kling-Gupta efficiency, explained under the title).
 
     `on_tap(lon, lat)` (explorer) is called with the clicked point in degrees.
     """
+
+    MARGIN = 0.06  # share of the outlines' extent added on each side (bokeh's range_padding is the total: 2x)
 
     def __init__(self, outlines: Outlines, *, width: int | None = None, css: str | None = None,
                  waterbodies: Outlines | None = None):
@@ -360,12 +443,17 @@ class MapPlot(_Plot):
 
     def _build(self, width):
         from bokeh.models import (
+            BasicTicker,
             ColorBar,
             ColumnDataSource,
+            DataRange1d,
+            FixedTicker,
             HoverTool,
+            LabelSet,
             LinearColorMapper,
             Patches,
             TapTool,
+            Title,
         )
         from bokeh.palettes import Viridis256
 
@@ -377,23 +465,55 @@ class MapPlot(_Plot):
                                      "dash": ["dashed" if d else "solid" for d in down],
                                      "score": [np.nan] * len(o.basin), "lw": [0.8] * len(o.basin)})
         self.mapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
-        self.fig = fig = _figure(width=width, height=360, match_aspect=True, title="Basins (click to select)")
+        _, south, _, north = self._extent()
+        self.fig = fig = _figure(width=width, height=440, match_aspect=True,
+                                 aspect_scale=float(np.cos(np.radians((south + north) / 2.0))),
+                                 x_range=DataRange1d(range_padding=2 * self.MARGIN),
+                                 y_range=DataRange1d(range_padding=2 * self.MARGIN),
+                                 title="Basins (click to select)")
         outline = Patches(xs="xs", ys="ys", fill_color={"field": "score", "transform": self.mapper},
                           line_color="black", line_width={"field": "lw"}, line_dash={"field": "dash"},
                           fill_alpha=0.85)
-        _add(fig, outline, self.src).nonselection_glyph = outline  # a tapped basin does not fade the others
-        self.colorbar = ColorBar(color_mapper=self.mapper, title=_best_title("rmse"))
-        fig.add_layout(self.colorbar, "right")
-        self.hover = HoverTool(tooltips=self._tooltips("rmse"))
+        basins = _add(fig, outline, self.src)
+        basins.nonselection_glyph = outline  # a tapped basin does not fade the others
+        self.note = Title(text="", text_font_size="9pt", text_font_style="italic", text_color="#444444")
+        fig.add_layout(self.note, "above")
+        self._tickers = {"efficiency": FixedTicker(ticks=[-1.0, -0.5, 0.0, 0.5, 1.0]), "other": BasicTicker()}
+        self.colorbar = ColorBar(color_mapper=self.mapper, title=_best_title("rmse"), orientation="horizontal",
+                                 height=12, title_standoff=4, padding=6, ticker=self._tickers["other"])
+        fig.add_layout(self.colorbar, "below")
+        self.hover = HoverTool(renderers=[basins], tooltips=self._tooltips("rmse"))
         fig.add_tools(self.hover, TapTool())
         fig.xaxis.axis_label = "longitude (deg E)"
         fig.yaxis.axis_label = "latitude (deg N)"
+        self.label_src = ColumnDataSource({"x": list(o.label_x), "y": list(o.label_y), "text": list(o.label_basin)})
+        self.labels = LabelSet(x="x", y="y", text="text", source=self.label_src, text_font_size="9pt",
+                               text_align="center", text_baseline="middle", background_fill_color="white",
+                               background_fill_alpha=0.7)
+        fig.add_layout(self.labels)
         self.wb_src = None
+        ranged = [basins]
         if self.waterbodies is not None:
-            self._build_waterbodies(fig)
+            ranged.append(self._build_waterbodies(fig))
+        fig.x_range.renderers = fig.y_range.renderers = ranged  # the outlines alone set the view
 
-    def _build_waterbodies(self, fig) -> None:
-        from bokeh.models import ColumnDataSource, HoverTool, Patches
+    def _extent(self) -> tuple[float, float, float, float]:
+        """(west, south, east, north) of the basins and water bodies, in degrees."""
+        boxes = [self.outlines.bounds()] + ([self.waterbodies.bounds()] if self.waterbodies is not None else [])
+        if not self.outlines.xs and self.waterbodies is not None:
+            boxes = boxes[1:]
+        b = np.array(boxes)
+        return float(b[:, 0].min()), float(b[:, 1].min()), float(b[:, 2].max()), float(b[:, 3].max())
+
+    def _build_waterbodies(self, fig):
+        from bokeh.models import (
+            ColumnDataSource,
+            HoverTool,
+            LabelSet,
+            Legend,
+            LegendItem,
+            Patches,
+        )
 
         w = self.waterbodies
         self.wb_src = ColumnDataSource({"xs": list(w.xs), "ys": list(w.ys), "waterbody": list(w.basin),
@@ -401,12 +521,22 @@ class MapPlot(_Plot):
                                         "lw": [1.5] * len(w.basin)})
         lake = Patches(xs="xs", ys="ys", fill_color=WATERBODY_COLOR, fill_alpha=0.9, line_color="black",
                        line_width={"field": "lw"})
-        r = _add(fig, lake, self.wb_src, legend="water body")
+        r = _add(fig, lake, self.wb_src)
         r.nonselection_glyph = lake
+        # the legend under the map (inside the frame it covered basins at 1024 px)
+        fig.add_layout(Legend(items=[LegendItem(label="water body (not scored)", renderers=[r])],
+                              orientation="horizontal", location="top_left", border_line_alpha=0.0,
+                              padding=2, margin=4, label_text_font_size="9pt"), "below")
         fig.add_tools(HoverTool(renderers=[r], tooltips=[("water body", "@waterbody"), ("name", "@name"),
                                                          ("outline area (km2)", "@area_km2{0,0}")]))
-        fig.legend.location = "top_left"
+        # a water body is small: its id beside it (to the right of its point), not on top of it
+        self.wb_labels = LabelSet(x="x", y="y", text="text", x_offset=6, text_font_size="8pt",
+                                  text_baseline="middle", text_color="#1f4e79",
+                                  source=ColumnDataSource({"x": list(w.label_x), "y": list(w.label_y),
+                                                           "text": list(w.label_basin)}))
+        fig.add_layout(self.wb_labels)
         fig.title.text = "Basins and water bodies (click to select)"
+        return r
 
     @staticmethod
     def _tooltips(metric: str) -> list:
@@ -415,8 +545,11 @@ class MapPlot(_Plot):
         return [("basin", "@basin"), ("name", "@name"), (f"best {metric_label(metric)}", "@score{0.000}"),
                 ("area (km2)", "@area_km2{0,0}"), ("drains to", "@drains_to")]
 
-    def update(self, scores: pd.Series, selected: str | None = None, metric: str = "rmse") -> None:
-        from bokeh.palettes import Viridis256
+    def update(self, scores: pd.Series, selected: str | None = None, metric: str = "rmse", *,
+               rank_by: str | None = None) -> None:
+        """Colour each basin by its score in `scores` (best `metric` per basin id; NaN: grey) and outline
+        `selected`; `rank_by`: the ranking's metric, explained on the map when it is not `metric`."""
+        from .names import map_note, metric_scale
 
         score = np.array([float(scores.get(b, np.nan)) for b in self.outlines.basin])
         self.src.data = dict(self.src.data, score=score,
@@ -424,12 +557,12 @@ class MapPlot(_Plot):
         if self.wb_src is not None:
             self.wb_src.data = dict(self.wb_src.data,
                                     lw=[4.0 if w == selected else 1.5 for w in self.waterbodies.basin])
-        finite = score[np.isfinite(score)]
-        lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
-        self.mapper.update(low=lo, high=hi if hi > lo else lo + 1.0,
-                           palette=Viridis256[::-1] if metric in ERROR_METRICS else Viridis256)
-        self.colorbar.title = _best_title(metric)
+        self.mapper.update(**_map_colours(metric, score))
+        efficiency = metric_scale(metric) == "efficiency"  # clipped at -1: the tick says so
+        self.colorbar.update(title=_best_title(metric), ticker=self._tickers["efficiency" if efficiency else "other"],
+                             major_label_overrides={-1.0: "-1 or less"} if efficiency else {})
         self.hover.tooltips = self._tooltips(metric)
+        self.note.text = map_note(rank_by) if rank_by is not None and rank_by != metric else ""
 
 
 class MultiBasinPlot(_Plot):
@@ -579,10 +712,11 @@ def balance_scatter(result, unit_system: str = "mm", *, width: int | None = None
 
 
 def basin_map(basins, scores: pd.Series, selected: str | None = None, metric: str = "rmse", *,
-              width: int | None = None, title: str | None = None) -> figure:
-    """`MapPlot` of a basin GeoDataFrame coloured by `scores` (best `metric` per basin id)."""
+              width: int | None = None, title: str | None = None, rank_by: str | None = None) -> figure:
+    """`MapPlot` of a basin GeoDataFrame coloured by `scores` (best `metric` per basin id; `rank_by`: the
+    ranking's metric where it differs, explained on the map)."""
     p = MapPlot(basin_outlines(basins), width=width)
-    p.update(scores, selected, metric)
+    p.update(scores, selected, metric, rank_by=rank_by)
     if title:
         p.fig.title.text = title
     return p.fig

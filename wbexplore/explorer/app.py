@@ -329,10 +329,17 @@ class Explorer:
     def _map(self):
         from bokeh.events import Tap
 
+        from ..names import map_metric
+
         s = self.state
         m = plots.MapPlot(self.outlines, waterbodies=self.wb_outlines)
         m.fig.on_event(Tap, lambda ev: s.pick_basin_at(ev.x, ev.y))
-        return self._view(m, lambda p: p.update(s.basin_scores(), s.basin, s.metric), _MAP_DEPS, "wbx-map")
+
+        def draw(p):  # the map's metric compares across basins: "Rank by" itself, or KGE explained on the map
+            shown = map_metric(s.metric)
+            p.update(s.basin_scores(shown), s.basin, shown, rank_by=s.metric)
+
+        return self._view(m, draw, _MAP_DEPS, "wbx-map")
 
     def _waterbody_views(self, summary, warn, resid, scatter):
         """The water body's views (unmeasured exchange, level and volume) and which views show for which kind:
@@ -403,7 +410,7 @@ class Explorer:
             pn.pane.Markdown("### Export"), self.export_where, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
         views_col = pn.Column(
-            pn.Row(self._map(), bars,
+            pn.Row(pn.Column(self._map(), sizing_mode="stretch_width"), bars,
                    sizing_mode="stretch_width"),
             resid, exchange,
             pn.Row(scatter, levels, multi, sizing_mode="stretch_width"),

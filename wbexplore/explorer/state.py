@@ -277,14 +277,15 @@ class ClosureState(param.Parameterized):
         """All combinations for the basin and period, best first."""
         return self._rank_for(self.basin)
 
-    def basin_scores(self) -> pd.Series:
-        """Best score of the ranking metric per basin (for the map)."""
+    def basin_scores(self, metric: str | None = None) -> pd.Series:
+        """Best score of `metric` (default: the ranking metric) per basin (for the map)."""
         opts = self.options()
-        key = ("scores", opts, self.metric)
+        metric = self.metric if metric is None else metric
+        key = ("scores", opts, metric)
 
         def run():
             try:
-                return best_scores(self.series, opts, by=self.metric)
+                return best_scores(self.series, opts, by=metric)
             except InputError:
                 return pd.Series(np.nan, index=self.param.basin.objects)
 
