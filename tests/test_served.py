@@ -68,10 +68,10 @@ def test_summary_escapes_basin_name(evil_state):
 
 
 def test_warnings_pane_renders_no_markup_from_messages(evil_state, monkeypatch):
-    from wbexplore.explorer import views
+    from wbexplore import texts  # the warnings' text lives there (shared with the report); views re-exports it
     from wbexplore.explorer.app import Explorer
 
-    monkeypatch.setattr(views, "warnings_for", lambda res, ds: [f"gauge note {EVIL} [x](javascript:alert(2))"])
+    monkeypatch.setattr(texts, "warnings_for", lambda res, ds: [f"gauge note {EVIL} [x](javascript:alert(2))"])
     page = Explorer(evil_state).panel()
     text = _pane(page, "wbx-warnings").object
     text = text() if callable(text) else text
