@@ -53,9 +53,9 @@ p { margin: 2px 0; } ul { margin: 2px 0; padding-left: 16px; }
 .verdict { font-size: 10.5px; border-left: 4px solid #0072B2; padding: 3px 6px; background: #f2f7fb; }
 .caution { border: 1.5px solid #D55E00; padding: 2px 5px; }
 table { border-collapse: collapse; } td, th { padding: 0 4px; border-bottom: 1px solid #ddd; line-height: 1.15; }
-th { text-align: left; background: #f0f0f0; font-weight: 600; } td.n { text-align: right; }
+th { text-align: left; background: #f0f0f0; font-weight: 600; overflow-wrap: anywhere; } td.n { text-align: right; }
 tr.chosen td { font-weight: 700; }
-.cols { display: flex; gap: 10px; align-items: flex-start; } .cols > div { flex: 1 1 0; }
+.cols { display: flex; gap: 10px; align-items: flex-start; } .cols > div { flex: 1 1 0; min-width: 0; }
 .cols > div.wide { flex: 1.25 1 0; } table.metrics td:first-child { white-space: nowrap; }
 .plots { display: grid; grid-template-columns: 360px 360px; gap: 4px 10px; }
 .small { font-size: 8.5px; color: #333; }
