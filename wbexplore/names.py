@@ -17,9 +17,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["COMPARABLE_METRICS", "EFFICIENCY_METRICS", "MAP_METRIC", "METRIC_NAMES", "OPTIONS", "SIGNED_METRICS",
-           "TERM_NAMES", "Name", "column_label", "map_metric", "map_note", "metric_label", "metric_name",
-           "metric_scale", "option_label", "term_units"]
+__all__ = ["COMPARABLE_METRICS", "EFFICIENCY_METRICS", "MAP_METRIC", "METRIC_NAMES", "OPTIONS", "REPORT_NAMES",
+           "SIGNED_METRICS", "TERM_NAMES", "Name", "column_label", "map_metric", "map_note", "metric_label",
+           "metric_name", "metric_scale", "option_label", "term_units"]
 
 
 @dataclass(frozen=True)
@@ -149,6 +149,21 @@ OPTIONS: dict[str, Name] = {n.key: n for n in (
     Name("hm3", "hm3/month", "", "cubic hectometres (10^6 m3) per month; a water body's default (storage in hm3)"),
 )}
 
+# the report's tables: their column headings (units given where the column has them)
+REPORT_NAMES: dict[str, Name] = {n.key: n for n in (
+    Name("product", "Product", "", "display name of the catalog entry, its id in brackets"),
+    Name("component", "Term", "", "the balance term the product gives: P, ET or TWSA"),
+    Name("grid", "Grid spacing", "", "cell size of the product's grid: degrees (geographic) or km (projected)"),
+    Name("step", "Time step", "", "the product's own time step, before summing to calendar months"),
+    Name("water_year", "Water year", "", "twelve months from the water-year start, named by the year it ends"),
+    Name("annual_n_valid", "Valid months", "", "months of the water year with every term present (0..12)"),
+    Name("exchange_hm3", "Unmeasured exchange", "hm3/month",
+         "mean residual as a volume: the net unmeasured outflow, positive = unmeasured loss"),
+    Name("exchange_hm3_se", "Exchange standard error", "hm3/month", "1 standard error, lag-1 inflated"),
+    Name("exchange_m3s", "Unmeasured exchange", "m3/s", "mean residual as a mean flow; positive = unmeasured loss"),
+    Name("exchange_m3s_se", "Exchange standard error", "m3/s", "1 standard error, lag-1 inflated"),
+)}
+
 _SYSTEM_UNITS = {"mm": ("mm/month", "mm"), "m3": ("m3/month", "m3"), "m3/s": ("m3/s", "m3"), "hm3": ("hm3/month", "hm3")}
 
 
@@ -186,6 +201,8 @@ def column_label(key: str, unit_system: str = "mm") -> str:
     """
     if key in METRIC_NAMES:
         return metric_label(key)
+    if key in REPORT_NAMES:
+        return REPORT_NAMES[key].label
     if key.startswith("valid_fraction_"):
         return f"{key.removeprefix('valid_fraction_')} valid share of basin (0..1)"
     if key == "beyond_2sigma":

@@ -1,0 +1,92 @@
+"""Texts for readers shared by the explorer and the report: summaries, warnings (no panel, no bokeh).
+
+Every function takes a `SelectionResult` (or the series) and formats it; nothing here computes a balance
+term. Names and units come from `wbexplore.names`; rules that decide a warning live in `wbexplore.balance`
+(`balance.cautions`). Every text from a file (basin names, ids) is escaped (`wbexplore.escape`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .balance.cautions import storage_resolution_warning
+from .balance.terms import SOURCE_COMPONENTS
+from .escape import html_text, md_text
+from .names import METRIC_NAMES, metric_name, option_label
+from .plots import (  # plots imports bokeh only inside its drawing code
+    EXCHANGE_LABEL,
+    waterbody_messages,
+)
+
+__all__ = ["COVERAGE_MIN", "summary_html", "warnings_for", "warnings_markdown", "waterbody_summary_html", "waterbody_warnings_markdown"]
+
+COVERAGE_MIN = 0.9  # a product covering less of the basin than this share on average is named in the warnings
+
+
+def _fmt(v, spec):
+    return "n/a" if v is None or not np.isfinite(v) else format(v, spec)
+
+
+def markdown_list(lines, empty: str = "No warnings for this selection.") -> str:
+    """``lines`` as a Markdown list, each escaped to literal text (``empty`` when there is none)."""
+    return "\n".join(f"- {md_text(w)}" for w in lines) or empty
+
+
+def warnings_markdown(result, series) -> str:
+    """`warnings_for` as a Markdown list, each warning escaped to literal text."""
+    return markdown_list(warnings_for(result, series))
+
+
+def warnings_for(result, series) -> list[str]:
+    """Reader-facing warnings for a selection (size vs storage resolution, coverage, gaps)."""
+    out = []
+    size = storage_resolution_warning(result.area_km2)
+    if size:
+        out.append(size)
+    f = result.frame
+    for comp in SOURCE_COMPONENTS:
+        vf = f[f"valid_fraction_{comp}"].replace(0, np.nan).mean()
+        if np.isfinite(vf) and vf < COVERAGE_MIN:
+            out.append(f"{comp} product covers only {vf:.0%} of the basin on average.")
+    out.extend(m for m in result.messages if not m.startswith("uncertainty"))
+    return out
+
+
+def summary_html(result, *, metric: str = "rmse") -> str:
+    """The selection's metrics as a small HTML table (every text from a file escaped)."""
+    m = result.metrics
+    sel = result.selection
+    # (metric key, css name kept for scripts and tests, number format); names and units from `wbexplore.names`
+    shown = (("rel_imbalance", "relative-imbalance", ".1f"), ("bias", "mean-residual", ".2f"), ("rmse", "RMSE", ".2f"),
+             ("kge", "KGE", ".3f"), ("nse", "NSE", ".3f"), ("pbias", "PBIAS", ".1f"))
+    rows = [(metric_name(k), css, f"{_fmt(m[k], spec)} {METRIC_NAMES[k].units}".strip(), METRIC_NAMES[k].help)
+            for k, css, spec in shown]
+    rows += [("Valid months", "valid-months", str(m["n_valid"]), METRIC_NAMES["n_valid"].help),
+             ("Basin area", "basin-area", f"{result.area_km2:,.0f} km2", "area of the balance unit (ellipsoidal)")]
+    cells = "".join(f"<tr title='{html_text(h)}'><td>{html_text(k)}</td><td style='text-align:right'>"
+                    f"<b class='wbx-{c}'>{html_text(v)}</b></td></tr>" for k, c, v, h in rows)
+    e = html_text  # names and ids come from input files: never markup
+    return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{e(result.basin_name)} ({e(sel.basin)})</h4>"
+            f"<div>{e(sel.P)} / {e(sel.ET)} / {e(sel.TWSA)}, {e(option_label(sel.storage_change).lower())} difference"
+            f"{', window-matched' if sel.matched else ''}</div><table>{cells}</table></div>")
+
+
+def waterbody_warnings_markdown(result) -> str:
+    """A water body's warnings (`waterbody_messages`) as a Markdown list, each escaped to literal text."""
+    return markdown_list(waterbody_messages(result))
+
+
+def waterbody_summary_html(result, exchange) -> str:
+    """A water body's selection: the unmeasured exchange (mean and standard error, m3/s and hm3/month; positive =
+    unmeasured loss) and the closure's spread, as a small HTML table (every text from a file escaped)."""
+    m, se, sel = exchange.mean, exchange.standard_error, result.selection
+    rows = [("unmeasured exchange", f"{_fmt(m['m3/s'], '.2f')} ± {_fmt(se['m3/s'], '.2f')} m3/s"),
+            ("per month", f"{_fmt(m['hm3'], '.2f')} ± {_fmt(se['hm3'], '.2f')} hm3"),
+            ("RMSE", f"{_fmt(result.metrics['rmse'], '.2f')} mm/month"),
+            ("valid months", str(result.metrics["n_valid"])), ("outline area", f"{result.area_km2:,.0f} km2")]
+    cells = "".join(f"<tr><td>{k}</td><td style='text-align:right'><b class='wbx-{k.replace(' ', '-')}'>{v}</b></td></tr>"
+                    for k, v in rows)
+    e = html_text
+    return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{e(result.basin_name)} ({e(sel.basin)}), water body</h4>"
+            f"<div>P {e(sel.P)} / E {e(sel.ET)} / storage from levels</div><table>{cells}</table>"
+            f"<div><i>{e(EXCHANGE_LABEL)}; ± 1 standard error</i></div></div>")
