@@ -296,17 +296,27 @@ def _uncertainty_sources(a: dict, opts: ClosureOptions, mask) -> str:
     return json.dumps(out, sort_keys=True)
 
 
+def _year_month(months: pd.DatetimeIndex) -> tuple:
+    """(calendar year, month 1..12) of each stamp, int32 as pandas' ``.year`` / ``.month`` give them (from the
+    datetime64 values directly: pandas' field accessors cost more than the arithmetic)."""
+    m = np.asarray(months.values).astype("datetime64[M]").astype(np.int64)  # months since 1970-01
+    return (m // 12 + 1970).astype(np.int32), (m % 12 + 1).astype(np.int32)
+
+
 def water_year(months: pd.DatetimeIndex, start_month: int = 1) -> np.ndarray:
     """Water year of each month, named by the calendar year in which it ends."""
-    y = months.year.values
-    return np.where(months.month.values >= start_month, y + (1 if start_month > 1 else 0), y)
+    return _water_year(*_year_month(months), start_month)
+
+
+def _water_year(year, month, start_month: int) -> np.ndarray:
+    return np.where(month >= start_month, year + (1 if start_month > 1 else 0), year)
 
 
 def metrics_arrays(residual, qhat, Q, P, months: pd.DatetimeIndex, options: ClosureOptions, *,
                    explain: bool = False) -> dict:
     """`metrics_from_residual` with the month of year and water year of ``months`` and ``options``."""
-    return metrics_from_residual(residual, qhat, Q, P, month_of_year=months.month.values,
-                                 water_year=water_year(months, options.water_year_start),
+    y, m = _year_month(months)
+    return metrics_from_residual(residual, qhat, Q, P, month_of_year=m, water_year=_water_year(y, m, options.water_year_start),
                                  min_valid=options.min_valid, explain=explain)
 
 
