@@ -9,6 +9,12 @@ Medians of repeated runs, measured side by side in one run.
     python benchmarks/balance.py --cli      # also the whole-process rank --all (writes a small study)
     python benchmarks/balance.py --cli --against ../other-checkout   # and the same command from another checkout
     python benchmarks/balance.py --cli-only [--against DIR] [--repeat N]   # the whole-process part alone
+    python benchmarks/balance.py --selection-against DIR [--rounds N]   # one selection, ours and DIR's engine in
+                                                                          # child processes taking turns
+
+One selection is timed twice: recomputed as it is (the explorer redrawing after another option changed:
+collocation estimates come from the memo of `balance.uncertainty`) and with a new period each call (the first
+visit: every collocation computed).
 """
 
 from __future__ import annotations
@@ -77,6 +83,55 @@ def engine_times(ds, twsa="TWSA0"):
     sel = Selection("B000", "P0", "ET0", twsa)
     ts, _ = median_time(lambda: compute_selection(ds, sel), repeat=51)
     return t1, t100, ts, len(r)
+
+
+def selection_times(ds, twsa="TWSA0", repeat=51):
+    """(one selection recomputed, one selection over a period not seen before) medians, s."""
+    from wbexplore.balance import Selection, compute_selection
+
+    sel = Selection("B000", "P0", "ET0", twsa)
+    warm, _ = median_time(lambda: compute_selection(ds, sel), repeat=repeat)
+    starts = iter(pd.date_range("2001-02-01", periods=repeat + 1, freq="MS").strftime("%Y-%m"))
+    cold, _ = median_time(lambda: compute_selection(ds, sel.replace(start=next(starts))), repeat=repeat)
+    return warm, cold
+
+
+def _selection_child():
+    """``--selection-child``: one line of JSON, the selection medians (no flows, two flows) of the wbexplore found
+    first on the path (PYTHONPATH: ours or another checkout)."""
+    import json
+
+    out = {}
+    for flows in (0, 2):
+        out[f"warm{flows}"], out[f"cold{flows}"] = selection_times(synthetic(flows=flows))
+    print(json.dumps(out))
+
+
+def selection_against(other, rounds=5):
+    """One selection, ours and ``other``'s engine in child processes taking turns (``rounds`` each); medians of
+    the children's medians."""
+    import json
+    import os
+    import statistics
+    import subprocess
+    import tempfile
+
+    sides = {"ours": Path(__file__).resolve().parent.parent, "against": Path(other).resolve()}
+    got = {k: [] for k in sides}
+    with tempfile.TemporaryDirectory() as tmp:
+        for _ in range(rounds):
+            for k, root in sides.items():
+                p = subprocess.run([sys.executable, str(Path(__file__).resolve()), "--selection-child"], check=True,
+                                   capture_output=True, text=True, cwd=tmp, env={**os.environ, "PYTHONPATH": str(root)})
+                got[k].append(json.loads(p.stdout.strip().splitlines()[-1]))
+    med = {k: {m: statistics.median(r[m] for r in v) for m in v[0]} for k, v in got.items()}
+    o, a = med["ours"], med["against"]
+    for f in (0, 2):
+        print(f"one selection, {'two flows' if f else 'no flows '}: recomputed {o[f'warm{f}'] * 1e3:5.2f} ms "
+              f"(that: {a[f'warm{f}'] * 1e3:5.2f}, ratio {o[f'warm{f}'] / a[f'warm{f}']:.2f}); new period "
+              f"{o[f'cold{f}'] * 1e3:5.2f} ms (that: {a[f'cold{f}'] * 1e3:5.2f}, ratio {o[f'cold{f}'] / a[f'cold{f}']:.2f}); "
+              f"target <= 5 ms (ratio to it {o[f'warm{f}'] / 0.005:.2f}, new period {o[f'cold{f}'] / 0.005:.2f})")
+    print(f"  {rounds} child processes each, taking turns, against {other}")
 
 
 def write_study(d: Path, nb=100, nt=240, seed=0):
@@ -163,6 +218,11 @@ def cli_times(repeat=5, against=None):
 
 
 def main():
+    if "--selection-child" in sys.argv:
+        return _selection_child()
+    if "--selection-against" in sys.argv:
+        rounds = int(sys.argv[sys.argv.index("--rounds") + 1]) if "--rounds" in sys.argv else 5
+        return selection_against(sys.argv[sys.argv.index("--selection-against") + 1], rounds=rounds)
     if "--cli-only" in sys.argv:
         sys.argv.append("--cli")
         return _cli()
@@ -176,6 +236,9 @@ def main():
     print(f"ratios to target: {t1 / 0.020:.2f}, {t100 / 1.0:.2f}, {ts / 0.005:.2f}; "
           f"with two flows: {f1 / 0.020:.2f}, {f100 / 1.0:.2f}, {fs / 0.005:.2f}")
     print(f"two flows / none: {f1 / t1:.2f}, {f100 / t100:.2f}, {fs / ts:.2f}")
+    sw, sc = selection_times(ds)
+    print(f"one selection recomputed {sw * 1e3:.2f} ms, over a period not seen before {sc * 1e3:.2f} ms "
+          f"(every collocation computed); ratios to target {sw / 0.005:.2f}, {sc / 0.005:.2f}")
     # water bodies (issue 15): the same 5 x 5 x 1 combinations and two flows as basins, side by side
     two = synthetic(flows=2)
     b1, b100, bs, _ = engine_times(basins_one_twsa(two))

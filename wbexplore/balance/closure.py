@@ -208,7 +208,9 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     res_unmatched, _ = combine({t.name: (a[t.name][0, 0] if t.storage else a[f"{t.name}_raw"][0, 0]
                                          if t.name in on_sources else a[f"{t.name}_raw"][0]) for t in terms_}, terms_)
     method = unc.DEFAULT_METHOD if uncertainty is None else uncertainty
-    kw = {"period": mask, "min_valid_fraction": sel.min_valid_fraction, "method": method}
+    # one basin, period and valid fraction: each component's products stacked, collocated and spread once
+    shared: dict = {}
+    kw = {"period": mask, "min_valid_fraction": sel.min_valid_fraction, "method": method, "cache": shared}
     errors = {"P": unc.product_error(ds, sel.P, b, values=P_raw, **kw),
               "ET": unc.product_error(ds, sel.ET, b, values=ET_raw, **kw),
               "TWSA": unc.product_error(ds, sel.TWSA, b, values=M_used, **kw)}
@@ -251,7 +253,8 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
         cols[f"valid_fraction_{comp}"] = (_values(ds, name)[b] if name in ds.variables
                                           else np.full(months.size, np.nan))
     for comp in SOURCE_COMPONENTS:
-        cols[f"disagreement_{comp}"] = unc.product_disagreement(ds, comp, b, min_valid_fraction=sel.min_valid_fraction)
+        cols[f"disagreement_{comp}"] = unc.product_disagreement(ds, comp, b, min_valid_fraction=sel.min_valid_fraction,
+                                                                cache=shared)
     for t in flows:
         cols[t.name] = a[t.name][0]
         cols[f"{t.name}_raw"] = a[f"{t.name}_raw"][0]
@@ -259,13 +262,13 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     if flows:
         cols["net_flow"] = net
     # one frame built at once (inserting columns one by one costs more than the balance itself)
-    frame = pd.DataFrame({k: v[mask] for k, v in cols.items()}, index=pd.Index(months[mask], name="month"))
     pm = months[mask]
+    frame = pd.DataFrame({k: v[mask] for k, v in cols.items()}, index=pd.Index(pm, name="month"))
     metrics = metrics_arrays(res[mask], qhat[mask], None if no_q else Q[mask], P[mask], pm, opts, explain=True)
     undefined = str(metrics.pop("undefined"))
     metrics = {k: float(v) if np.ndim(v) == 0 else v for k, v in metrics.items()}
     metrics["n_valid"] = int(metrics["n_valid"])
-    metrics["n_beyond_2sigma"] = int(frame["beyond_2sigma"].sum())
+    metrics["n_beyond_2sigma"] = int(cols["beyond_2sigma"][mask].sum())
     msgs = []
     n = metrics["n_valid"]
     terms = {"P": P_raw, "ET": ET_raw, "dS": a["dS"][0, 0], "Q": Q_raw}
@@ -282,8 +285,8 @@ def compute_selection(ds: xr.Dataset, sel: Selection, *, q_relative_error: float
     if filled[mask].any():
         msgs.append(f"{int(filled[mask].sum())} TWSA months interpolated across a gap (flagged)")
     return SelectionResult(selection=sel, frame=frame, metrics=metrics,
-                           area_km2=float(ds["basin_area_km2"].values[b]) if "basin_area_km2" in ds.coords else float("nan"),
-                           basin_name=str(ds["basin_name"].values[b]) if "basin_name" in ds.coords else str(sel.basin),
+                           area_km2=float(_values(ds, "basin_area_km2")[b]) if "basin_area_km2" in ds.coords else float("nan"),
+                           basin_name=str(_values(ds, "basin_name")[b]) if "basin_name" in ds.coords else str(sel.basin),
                            messages=msgs + [f"uncertainty: P {errors['P'].method}, ET {errors['ET'].method}, "
                                             + (f"TWSA {errors['TWSA'].method}, " if state is None else
                                                "storage: no error stated for levels (sigma_dS and sigma_residual "

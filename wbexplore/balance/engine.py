@@ -124,18 +124,23 @@ def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sour
     ``net_flow`` (sum of the flows' signed values, matched; None without flows), ``months``.
     """
     ds, ids = prepare(ds, options, sources)
-    all_ids = basin_ids(ds)
-    if basins is None:
-        b = np.arange(ds.sizes["basin"])
+    found = None if basins is None else _positions(ds, basins)
+    if found is not None:  # a few basins of text ids: looked up in the index (listing every id costs more)
+        b, names = found
     else:
-        where = {x: i for i, x in enumerate(all_ids)}
-        for x in basins:
-            if str(x) not in where:
-                raise InputError(f"basin {x!r} is not in the series (known: {', '.join(all_ids)})")
-        b = np.array([where[str(x)] for x in basins], dtype=np.intp)
+        all_ids = basin_ids(ds)
+        if basins is None:
+            b = np.arange(ds.sizes["basin"])
+        else:
+            where = {x: i for i, x in enumerate(all_ids)}
+            for x in basins:
+                if str(x) not in where:
+                    raise InputError(f"basin {x!r} is not in the series (known: {', '.join(all_ids)})")
+            b = np.array([where[str(x)] for x in basins], dtype=np.intp)
+        names = [all_ids[i] for i in b]
     mvf = options.min_valid_fraction
     method = options.storage_change
-    out = {"ids": ids, "basins": [all_ids[i] for i in b], "b": b, "ds": ds}
+    out = {"ids": ids, "basins": names, "b": b, "ds": ds}
     wb = is_waterbody(ds)
     if options.area != "outline" and not wb:
         raise InputError(f"area {options.area!r}: only a water body's P and E can fall on another area than its "
@@ -187,8 +192,34 @@ def closure_arrays(ds: xr.Dataset, options: ClosureOptions, *, basins=None, sour
     out["net_flow"] = net
     out["net_flow_raw"] = net_raw
     out["terms"] = (WATERBODY_TERMS if wb else BASE_TERMS) + flows
-    out["months"] = pd.DatetimeIndex(ds["time"].values)
+    out["months"] = _months(ds)
     return out
+
+
+def _months(ds: xr.Dataset) -> pd.DatetimeIndex:
+    """The series' time stamps as a `pandas.DatetimeIndex` (unnamed): its own index where it has one."""
+    idx = getattr(ds.xindexes.get("time"), "index", None)
+    if isinstance(idx, pd.DatetimeIndex):
+        return idx.rename(None)
+    return pd.DatetimeIndex(ds["time"].values)
+
+
+def _positions(ds: xr.Dataset, basins) -> tuple | None:
+    """(indices, ids) of ``basins`` found in the series' unique index of text basin ids, or None (then the
+    caller lists every id as text and looks them up there, refusing unknown ones)."""
+    idx = getattr(ds.xindexes.get("basin"), "index", None)
+    if idx is None or not pd.api.types.is_string_dtype(idx.dtype) or not idx.is_unique:
+        return None
+    b = []
+    for x in basins:
+        try:
+            i = idx.get_loc(str(x))
+        except KeyError:
+            return None
+        if not isinstance(i, (int, np.integer)) or not isinstance(idx[i], str):
+            return None
+        b.append(int(i))
+    return np.array(b, dtype=np.intp), [str(idx[i]) for i in b]
 
 
 def closure_terms(ds: xr.Dataset, options: ClosureOptions | None = None, *, basins=None,
@@ -296,17 +327,27 @@ def _uncertainty_sources(a: dict, opts: ClosureOptions, mask) -> str:
     return json.dumps(out, sort_keys=True)
 
 
+def _year_month(months: pd.DatetimeIndex) -> tuple:
+    """(calendar year, month 1..12) of each stamp, int32 as pandas' ``.year`` / ``.month`` give them (from the
+    datetime64 values directly: pandas' field accessors cost more than the arithmetic)."""
+    m = np.asarray(months.values).astype("datetime64[M]").astype(np.int64)  # months since 1970-01
+    return (m // 12 + 1970).astype(np.int32), (m % 12 + 1).astype(np.int32)
+
+
 def water_year(months: pd.DatetimeIndex, start_month: int = 1) -> np.ndarray:
     """Water year of each month, named by the calendar year in which it ends."""
-    y = months.year.values
-    return np.where(months.month.values >= start_month, y + (1 if start_month > 1 else 0), y)
+    return _water_year(*_year_month(months), start_month)
+
+
+def _water_year(year, month, start_month: int) -> np.ndarray:
+    return np.where(month >= start_month, year + (1 if start_month > 1 else 0), year)
 
 
 def metrics_arrays(residual, qhat, Q, P, months: pd.DatetimeIndex, options: ClosureOptions, *,
                    explain: bool = False) -> dict:
     """`metrics_from_residual` with the month of year and water year of ``months`` and ``options``."""
-    return metrics_from_residual(residual, qhat, Q, P, month_of_year=months.month.values,
-                                 water_year=water_year(months, options.water_year_start),
+    y, m = _year_month(months)
+    return metrics_from_residual(residual, qhat, Q, P, month_of_year=m, water_year=_water_year(y, m, options.water_year_start),
                                  min_valid=options.min_valid, explain=explain)
 
 

@@ -83,9 +83,56 @@ def sort_key(name: str, values) -> np.ndarray:
 
 
 def _nanmean(a, axis=-1):
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmean(a, axis=axis)
+    """`numpy.nanmean` without its warning for all-NaN slices (NaN there): for float arrays the same operations
+    as numpy's (NaN set to zero, ``add.reduce`` of the values and of the valid count, one division), so bitwise
+    its result, at a third of its cost (this runs a dozen times per selection)."""
+    a = np.asarray(a)
+    if a.dtype.kind != "f":
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            return np.nanmean(a, axis=axis)
+    nan = np.isnan(a)
+    cnt = np.add.reduce(~nan, axis=axis, dtype=np.intp)
+    tot = np.add.reduce(np.where(nan, 0.0, a), axis=axis)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.true_divide(tot, cnt)
+
+
+def _month_groups(month_of_year) -> list:
+    """Time positions of each calendar month, as index arrays (groups, n) of the months with n values each.
+
+    ``a[..., idx]`` gathers every group at once with, for each row, the memory layout that ``a[..., month == m]``
+    gives for that month alone, so reducing its last axis adds each month's values exactly as taking that month
+    alone did (bitwise: numpy's summation order follows the layout; `np.take`, C-ordered, would differ for
+    arrays of more than one dimension). tests/test_metrics_groups.py checks it against the month-by-month form."""
+    moy = np.asarray(month_of_year)
+    where = np.flatnonzero((moy >= 1) & (moy <= 12))  # other values have no climatology (NaN), as before
+    return [where[g] for g in _groups(moy[where], keep=None)]
+
+
+def _complete_years(water_year) -> np.ndarray:
+    """Time positions (years, 12) of the (water) years with 12 months, years ascending, months in time order."""
+    wy = np.asarray(water_year)
+    groups = _groups(wy, keep=12)
+    return groups[0] if groups else np.zeros((0, 12), dtype=np.intp)
+
+
+def _groups(labels, *, keep) -> list:
+    """Positions of equal ``labels`` (ints), one (groups, n) array per group size n (labels ascending within it,
+    positions in order within each label); with ``keep``, only the groups of that size."""
+    if labels.size == 0:
+        return []
+    lo = labels.min()
+    counts = np.bincount(labels - lo)
+    order = np.argsort(labels, kind="stable")  # by label, time order within each
+    start = np.concatenate(([0], np.cumsum(counts)[:-1]))
+    sizes = np.unique(counts[counts > 0]) if keep is None else [keep]
+    out = []
+    for n in sizes:
+        which = np.flatnonzero(counts == n)
+        if which.size:
+            out.append(order[start[which][:, None] + np.arange(n)])
+    return out
 
 
 def _moments(sim, obs):
@@ -215,12 +262,9 @@ def _from_masked(res, qhat, Q, P, *, month_of_year, water_year, min_valid, expla
         num = np.nansum((qhat - Q) ** 2, axis=-1)
         out["nse"] = 1 - num / den
         if month_of_year is not None:
-            moy = np.asarray(month_of_year)
             clim = np.full(Q.shape, np.nan)
-            for m in range(1, 13):
-                sel = moy == m
-                if sel.any():
-                    clim[..., sel] = _nanmean(Q[..., sel])[..., None]
+            for idx in _month_groups(month_of_year):  # the mean of each calendar month's values
+                clim[..., idx] = _nanmean(Q[..., idx])[..., None]
             out["nse_cyclo"] = 1 - num / np.nansum((Q - clim) ** 2, axis=-1)
         else:
             out["nse_cyclo"] = np.full(n.shape, np.nan)
@@ -228,17 +272,11 @@ def _from_masked(res, qhat, Q, P, *, month_of_year, water_year, min_valid, expla
         out["r"] = r
     out["pbias"] = pbias(qhat, Q)
     if water_year is not None:
-        wy = np.asarray(water_year)
-        totals = []
-        for y in np.unique(wy):
-            sel = wy == y
-            if sel.sum() != 12:
-                continue
-            blk = res[..., sel]
-            complete = np.all(np.isfinite(blk), axis=-1)
-            totals.append(np.where(complete, np.sum(blk, axis=-1), np.nan))
-        if totals:
-            tot = np.stack(totals, axis=-1)
+        idx = _complete_years(water_year)
+        if idx.size:
+            blk = res[..., idx]  # (..., years, 12): the residuals of each complete year
+            # C order, as the year-by-year totals were stacked (the mean over years then adds them in the same order)
+            tot = np.ascontiguousarray(np.where(np.all(np.isfinite(blk), axis=-1), np.sum(blk, axis=-1), np.nan))
             out["annual_bias"] = _nanmean(tot)
             out["annual_rmse"] = np.sqrt(_nanmean(tot * tot))
         else:

@@ -6,6 +6,7 @@ the selection file all carry one of these; the old keyword arguments of `rank` a
 
 from __future__ import annotations
 
+import functools
 from dataclasses import asdict, dataclass, fields, replace
 
 import numpy as np
@@ -33,10 +34,21 @@ def check_lag(lag) -> int:
 
 def parse_month(v, what: str) -> pd.Timestamp:
     """A month given as text ("YYYY-MM", or anything pandas reads as a date) as its month-start stamp."""
+    if isinstance(v, str):  # text (what options hold): read once per distinct text
+        return _parse_month_text(v, what)
+    return _parse_month(v, what)
+
+
+def _parse_month(v, what: str) -> pd.Timestamp:
     try:
         return pd.Timestamp(v).to_period("M").to_timestamp()
     except Exception:
         raise InputError(f"{what} {v!r} is not a month (YYYY-MM)") from None
+
+
+@functools.lru_cache(maxsize=512)
+def _parse_month_text(v: str, what: str) -> pd.Timestamp:
+    return _parse_month(v, what)  # a refusal is an exception: never cached
 
 
 def period_mask(months: pd.DatetimeIndex, start: str | None, end: str | None) -> np.ndarray:
@@ -47,7 +59,8 @@ def period_mask(months: pd.DatetimeIndex, start: str | None, end: str | None) ->
         raise InputError(f"period {lo:%Y-%m}..{hi:%Y-%m} ends before it starts")
     if hi < months[0] or lo > months[-1]:
         raise InputError(f"period {lo:%Y-%m}..{hi:%Y-%m} is outside the data ({months[0]:%Y-%m}..{months[-1]:%Y-%m})")
-    return np.asarray((months >= lo) & (months <= hi))
+    v = np.asarray(months.values)  # compared as datetime64 (pandas' index comparisons cost more than the rest)
+    return (v >= np.datetime64(lo)) & (v <= np.datetime64(hi))
 
 
 @dataclass(frozen=True)

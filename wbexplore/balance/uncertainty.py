@@ -24,6 +24,13 @@ around zero, and would get a band of hundredths of a mm/month): the band falls b
 What was used is recorded (`ProductError.method`, `method_label`) and travels with every output that
 carries an uncertainty. The product spread stays available on its own as `product_disagreement`.
 
+Speed: collocation error variances are memoised by the content of what they are estimated from
+(`collocation_variances`: component, product ids and the bytes of the masked values over the period), so a
+selection recomputed after another option changed (a different P product, storage method, lag) does not
+collocate again; a changed series is a different key (never a stale result). Within one selection the stacked
+products and their spread are shared between the error of each product and the disagreement columns (the
+``cache`` argument of `product_error` and `product_disagreement`).
+
 What collocation measures: the *random* error of a product around a linear calibration of the truth
 (``x = a + b t + e``, errors independent of the truth and of each other). A multiplicative bias or a
 damped seasonal cycle is part of ``a + b t`` and is not in the error variance: collocation is blind to
@@ -34,6 +41,9 @@ Pure computation: no files, no prints.
 
 from __future__ import annotations
 
+import hashlib
+import threading
+from collections import OrderedDict
 from dataclasses import dataclass
 
 import numpy as np
@@ -174,8 +184,11 @@ def collocation_variances(stack, names, *, component: str = "", min_months: int 
 
     `InputError` with fewer than three products (saying how many there are) or fewer than ``min_months``
     months where every product is valid (naming the minimum).
+
+    Results are memoised by content (`_MEMO`): the same component, product ids, ``min_months`` and bitwise the
+    same ``stack`` give the estimate computed before (a fresh copy); anything else is computed again.
     """
-    stack = np.asarray(stack, dtype=np.float64)
+    stack = np.ascontiguousarray(stack, dtype=np.float64)
     what = f"{component} " if component else ""
     if stack.shape[0] < 3:
         raise InputError(f"collocation needs at least three {what}products; there {'is' if stack.shape[0] == 1 else 'are'} "
@@ -184,7 +197,48 @@ def collocation_variances(stack, names, *, component: str = "", min_months: int 
     if n < min_months:
         raise InputError(f"period too short to estimate error variances by collocation: {n} months where every "
                          f"{what}product ({', '.join(names)}) is valid, at least {min_months} needed")
-    return multiple_collocation(stack, names=names, min_samples=min_months)
+    key = (component, tuple(str(x) for x in names), int(min_months), stack.shape,
+           hashlib.blake2b(stack, digest_size=32).digest())
+    found = _MEMO.get(key)
+    if found is None:
+        found = multiple_collocation(stack, names=names, min_samples=min_months)
+        _MEMO.put(key, found)
+    return {k: dict(v) for k, v in found.items()}
+
+
+class _Memo:
+    """A small least-recently-used memo (thread-safe: the explorer's server may compute from several threads)."""
+
+    def __init__(self, size: int):
+        self.size = size
+        self._d: OrderedDict = OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, key):
+        with self._lock:
+            v = self._d.get(key)
+            if v is not None:
+                self._d.move_to_end(key)
+            return v
+
+    def put(self, key, value) -> None:
+        with self._lock:
+            self._d[key] = value
+            self._d.move_to_end(key)
+            while len(self._d) > self.size:
+                self._d.popitem(last=False)
+
+    def clear(self) -> None:
+        with self._lock:
+            self._d.clear()
+
+    def __len__(self) -> int:
+        return len(self._d)
+
+
+# Collocation estimates by content of their input (`collocation_variances`): a few kB per entry (the key holds a
+# 32-byte digest of the stack, the value one small dict per product); 4096 entries cover 1,000 basins x 3 components.
+_MEMO = _Memo(4096)
 
 
 def _spread(stack) -> np.ndarray:
@@ -196,13 +250,44 @@ def _spread(stack) -> np.ndarray:
     return np.where(n >= 2, sd, np.nan)
 
 
-def product_disagreement(ds: xr.Dataset, component: str, basin_index: int, *, min_valid_fraction: float = 0.5) -> np.ndarray:
-    """Standard deviation (mm/month; TWSA mm) of ``component``'s products in each month: how much they
-    disagree (NaN where fewer than two are valid). Not the error of any one product."""
+def _products(ds: xr.Dataset, component: str, basin_index: int, min_valid_fraction: float,
+              cache: dict | None) -> tuple:
+    """(ids, stack): ``component``'s independent products (`component_products`) and their values at the basin
+    (products x months, months below ``min_valid_fraction`` missing; None without products), from ``cache``
+    when it holds them."""
+    key = ("products", component)
+    if cache is not None and key in cache:
+        return cache[key]
     ids = component_products(ds, component)
+    stack = np.stack([masked_values(ds, s, basin_index, min_valid_fraction) for s in ids]) if ids else None
+    if cache is not None:
+        cache[key] = (ids, stack)
+    return ids, stack
+
+
+def _products_spread(ds, component, basin_index, min_valid_fraction, cache) -> np.ndarray:
+    """`_spread` of ``component``'s products at the basin (shared through ``cache``); callers need >= 2 products."""
+    key = ("spread", component)
+    if cache is not None and key in cache:
+        return cache[key]
+    sd = _spread(_products(ds, component, basin_index, min_valid_fraction, cache)[1])
+    if cache is not None:
+        cache[key] = sd
+    return sd
+
+
+def product_disagreement(ds: xr.Dataset, component: str, basin_index: int, *, min_valid_fraction: float = 0.5,
+                         cache: dict | None = None) -> np.ndarray:
+    """Standard deviation (mm/month; TWSA mm) of ``component``'s products in each month: how much they
+    disagree (NaN where fewer than two are valid). Not the error of any one product.
+
+    ``cache`` : dict, optional; shared with `product_error` calls for the same basin and valid fraction (the
+    products are stacked once). Do not change the returned array when passing one.
+    """
+    ids, _ = _products(ds, component, basin_index, min_valid_fraction, cache)
     if len(ids) < 2:
         return np.full(ds.sizes["time"], np.nan)
-    return _spread(np.stack([masked_values(ds, s, basin_index, min_valid_fraction) for s in ids]))
+    return _products_spread(ds, component, basin_index, min_valid_fraction, cache)
 
 
 def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None, period=None,
@@ -229,8 +314,9 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         estimate not distinguishable from zero, `collocation_doubt`, falls back to the spread, saying why,
         unless collocation was asked for.)
     cache : dict, optional
-        Shared between calls for one basin, period and valid fraction (`all_product_errors`): each
-        component's products are stacked and collocated once.
+        Shared between calls for one basin, period and valid fraction (`all_product_errors`,
+        `closure.compute_selection`, with `product_disagreement`): each component's products are stacked,
+        collocated and spread once.
 
     Returns
     -------
@@ -239,8 +325,11 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
     check_method(method)
     attrs = ds.variables[source].attrs
     comp = attrs.get("component")
-    own = masked_values(ds, source, basin_index, min_valid_fraction)
-    x = own if values is None else np.asarray(values, dtype=np.float64)
+    ids, stack = _products(ds, comp, basin_index, min_valid_fraction, cache)
+    if values is not None:
+        x = np.asarray(values, dtype=np.float64)
+    else:  # the series' own values (the product's row of the stack when it is one of the products)
+        x = stack[ids.index(source)] if source in ids else masked_values(ds, source, basin_index, min_valid_fraction)
     if method in ("auto", STATED):
         v = stated_variance(attrs, x, source=source)
         if v is not None:
@@ -248,7 +337,6 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         if method == STATED:
             raise InputError(f"source {source!r}: no stated error in the catalog (fields 'relative_error', "
                              "'absolute_error_mm')")
-    ids = component_products(ds, comp)
     why = ""
     if source not in ids and method == COLLOCATION:
         raise InputError(f"source {source!r} is derived from the {comp} products (not independent of them): "
@@ -257,12 +345,10 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         if cache is not None and comp in cache:
             tc, failure = cache[comp]
         else:
-            stack = np.stack([own if s == source else masked_values(ds, s, basin_index, min_valid_fraction) for s in ids])
-            if period is not None:
-                stack = np.where(np.asarray(period, dtype=bool), stack, np.nan)
+            cut = stack if period is None else np.where(np.asarray(period, dtype=bool), stack, np.nan)
             tc = failure = None
             try:
-                tc = collocation_variances(stack, ids, component=comp)
+                tc = collocation_variances(cut, ids, component=comp)
             except InputError as exc:
                 failure = exc
             if cache is not None:
@@ -282,7 +368,7 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
             note = f"{kind} collocation with {', '.join(s for s in ids if s != source)} over {tc[source]['n']} months"
             return ProductError(source, comp, COLLOCATION, np.where(np.isfinite(x), ev, np.nan), note)
     if len(ids) >= 2:
-        sd = _spread(np.stack([masked_values(ds, s, basin_index, min_valid_fraction) for s in ids]))
+        sd = _products_spread(ds, comp, basin_index, min_valid_fraction, cache)
         return ProductError(source, comp, SPREAD, sd**2, f"spread of {', '.join(ids)}{why}")
     return ProductError(source, comp, NONE, np.full(x.shape, np.nan), f"one {comp} product only{why}")
 
