@@ -217,7 +217,7 @@ def closure_terms(ds: xr.Dataset, options: ClosureOptions | None = None, *, basi
     Each term variable carries ``sign``, ``kind`` and ``label`` from the term table; the options are in
     ``attrs["closure_options"]`` (JSON text, `ClosureOptions.from_json`); where each product's error would
     come from in each basin is ``attrs["uncertainty_source"]`` (JSON text {basin: {source: "stated" |
-    "collocation" | "spread" | "none"}}, `wbexplore.balance.uncertainty`).
+    "collocation" | "spread" | "none" | "posterior"}}, `wbexplore.balance.uncertainty`).
     """
     opts = ClosureOptions.from_kwargs(options, **kwargs)
     a = closure_arrays(ds, opts, basins=basins, sources=sources)

@@ -230,7 +230,8 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         Months over which collocation error variances are estimated (default all).
     min_valid_fraction : months where a product covers less of the basin are missing (0..1)
     method : "auto" | "stated" | "collocation" | "spread"
-        "auto": stated, else collocation, else spread. An explicit method is used or refused.
+        "auto": stated, else collocation, else spread; for a merged source (``merged_<component>`` with its
+        ``_standard_error``) its posterior (`POSTERIOR`). An explicit method is used or refused.
     strict : bool
         With "auto", refuse (`InputError`) instead of falling back to the spread when the component has
         three products or more but the period is too short to estimate collocation error variances. (An
