@@ -64,7 +64,7 @@ def test_posterior_variance_without_a_constraint_is_the_inverse_variance_formula
 
     ds, _ = canonical_series(nb=1, nt=48)
     ds = _stated(ds)
-    _, var, n = inverse_variance_merge(np.stack([ds["P0"].values[0], ds["P1"].values[0]]),
+    _, var, _ = inverse_variance_merge(np.stack([ds["P0"].values[0], ds["P1"].values[0]]),
                                        np.stack([np.full(48, 16.0), np.full(48, 36.0)]))
     np.testing.assert_allclose(var, 1.0 / (1 / 16.0 + 1 / 36.0), rtol=1e-15)
     post = merge_products(ds, method="ckf")["merged_P_standard_error"].values[0] ** 2
@@ -210,6 +210,6 @@ def test_page_pickers_follow_the_merged_sources(merged_state):
     assert s.TWSA == "merged_TWSA" and s.result().uncertainty["TWSA"].method == "posterior"
     s.basin = "B1"
     assert "merged_P" not in ex.w_src["P"].options.values() and ex.w_src["TWSA"].value == s.TWSA == "TWSA0"
-    warn = [o for o in ex.panel().select(lambda o: "wbx-warnings" in getattr(o, "css_classes", []))][0]
+    warn = next(o for o in ex.panel().select(lambda o: "wbx-warnings" in getattr(o, "css_classes", [])))
     text = warn.object if isinstance(warn.object, str) else warn.object()
     assert "Kalman filter\\) not offered for B1" in str(text)  # escaped to literal Markdown text

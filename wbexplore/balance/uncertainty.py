@@ -250,9 +250,9 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
     comp = attrs.get("component")
     posterior = f"{source}_standard_error"
     if method == "auto" and source.startswith(MERGED_PREFIX) and posterior in ds.variables:
-        se = ds.variables[posterior].values[basin_index].astype(np.float64)
-        from .merge import MERGE_METHODS  # merge.py builds on this module: imported where used
+        from .merge import MERGE_METHODS  # merge.py builds on this module: imported where it is used
 
+        se = ds.variables[posterior].values[basin_index].astype(np.float64)
         how = MERGE_METHODS.get(attrs.get("merge_method"), "merge")
         return ProductError(source, comp, POSTERIOR, se**2, f"posterior of the merge ({how}; products "
                             f"{attrs.get('products', '?')}, errors {attrs.get('error_variance_source', '?')})")
