@@ -228,15 +228,16 @@ class ClosureState(param.Parameterized):
     def _merge_one(self, ds, basin: str) -> tuple:
         """(`merge_products` of ``basin`` in ``ds``, or None; why not: its one-line refusal), in the page's closure
         form (storage-change method, window matching) with `merge_method`; memoised."""
-        opts = ClosureOptions(storage_change=self.storage_change, matched=self.matched)
+        form = (self.storage_change, self.matched)
 
         def run():
+            opts = ClosureOptions(storage_change=form[0], matched=form[1])
             try:
                 return merge_products(ds, method=self.merge_method, basins=[basin], options=opts), ""
             except InputError as exc:
                 return None, str(exc).removeprefix(f"basin {basin!r}: ")
 
-        return self._cached(("merge", ds.attrs.get("unit", "whole"), basin, self.merge_method, opts), run)
+        return self._cached(("merge", ds.attrs.get("unit", "whole"), basin, self.merge_method, form), run)
 
     def _merged(self) -> tuple:
         """(the chosen basin's series (that basin alone: a basin's balance does not depend on the others) with its
