@@ -730,9 +730,12 @@ def _cmd_estimate(args) -> int:
         positions = series_positions(cat, sel.basin, incremental=args.incremental)
     with _no_distributed_probe():
         write_estimate(est, args.out, overwrite=args.force, protect=cat, positions=positions)
+    from .io.estimates import water_years_text
+
     lt = est.long_term
     print(f"wrote {args.out}: {est.formula}, basin {sel.basin}, {len(est.monthly)} months, "
-          f"{lt['water_years']} whole water years; long-term {args.term} {lt['estimate']:.1f} +- "
+          f"{lt['water_years']} whole water years ({water_years_text(lt['years']) or 'none'}); "
+          f"long-term {args.term} {lt['estimate']:.1f} +- "
           f"{lt['standard_error']:.1f} mm/year (random errors only)")
     return 0
 

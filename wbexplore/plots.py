@@ -215,6 +215,7 @@ class ResidualPlot(_Plot):
         _add(fig, VStrip(x0="x0", x1="x1", fill_color=COLORS["gap"], fill_alpha=0.45, line_width=0), self.gaps)
         _add(fig, VArea(x="month", y1="lo", y2="hi", fill_color=COLORS["band"], fill_alpha=0.3), self.src,
              legend="± 2 sigma")
+        self.band_item = fig.legend[0].items[-1]  # `update` names the band's error source in it
         line = _add(fig, Line(x="month", y="residual", line_color=COLORS["residual"], line_width=2), self.src,
                     legend="residual")
         _add(fig, Scatter(x="month", y="residual", marker="x", size=9, line_width=2, line_color="black"),
@@ -241,6 +242,12 @@ class ResidualPlot(_Plot):
     def update(self, result, unit_system: str = "mm") -> None:
         f = to_unit_system(result.frame, result.area_km2, unit_system)
         self._fill(result, f, f["residual"].values)
+        from bokeh.core.properties import value
+
+        from .balance.uncertainty import legend_text
+
+        # which error the band is made of (stated, collocation, product spread, merge posterior), per component
+        self.band_item.label = value(legend_text(result.uncertainty) if result.uncertainty else "± 2 sigma")
         sel = result.selection
         self.fig.yaxis.axis_label = f"{_balance_label(result)} ({UNIT_LABEL[unit_system]})"
         self.fig.title.text = _nodata(result) or f"Residual, {sel.P} / {sel.ET} / {sel.TWSA} (grey: gaps)"

@@ -11,6 +11,7 @@ import numpy as np
 
 from .balance.cautions import storage_resolution_warning
 from .balance.terms import SOURCE_COMPONENTS
+from .balance.uncertainty import band_text
 from .escape import html_text, md_text
 from .names import METRIC_NAMES, metric_name, option_label
 from .plots import (  # plots imports bokeh only inside its drawing code
@@ -32,13 +33,15 @@ def markdown_list(lines, empty: str = "No warnings for this selection.") -> str:
     return "\n".join(f"- {md_text(w)}" for w in lines) or empty
 
 
-def warnings_markdown(result, series) -> str:
-    """`warnings_for` as a Markdown list, each warning escaped to literal text."""
-    return markdown_list(warnings_for(result, series))
+def warnings_markdown(result, series, *, notes=()) -> str:
+    """`warnings_for` as a Markdown list, then ``notes`` (lines from the state, e.g. why no merged source is
+    offered; empty ones left out), each escaped to literal text."""
+    return markdown_list([*warnings_for(result, series), *(n for n in notes if n)])
 
 
 def warnings_for(result, series) -> list[str]:
-    """Reader-facing warnings for a selection (size vs storage resolution, coverage, gaps)."""
+    """Reader-facing warnings for a selection (size vs storage resolution, coverage, gaps). The uncertainty
+    messages are left to the summary's one line on the band (`summary_html`)."""
     out = []
     size = storage_resolution_warning(result.area_km2)
     if size:
@@ -66,9 +69,11 @@ def summary_html(result, *, metric: str = "rmse") -> str:
     cells = "".join(f"<tr title='{html_text(h)}'><td>{html_text(k)}</td><td style='text-align:right'>"
                     f"<b class='wbx-{c}'>{html_text(v)}</b></td></tr>" for k, c, v, h in rows)
     e = html_text  # names and ids come from input files: never markup
+    band = (f"<div class='wbx-band'>{e(band_text(result.uncertainty, q_relative_error=result.q_relative_error))}</div>"
+            if result.uncertainty else "")
     return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{e(result.basin_name)} ({e(sel.basin)})</h4>"
             f"<div>{e(sel.P)} / {e(sel.ET)} / {e(sel.TWSA)}, {e(option_label(sel.storage_change).lower())} difference"
-            f"{', window-matched' if sel.matched else ''}</div><table>{cells}</table></div>")
+            f"{', window-matched' if sel.matched else ''}</div><table>{cells}</table>{band}</div>")
 
 
 def waterbody_warnings_markdown(result) -> str:

@@ -120,7 +120,8 @@ class SelectionResult:
 
     @property
     def uncertainty_source(self) -> dict:
-        """component -> how its error was obtained ("stated", "collocation", "spread", "none")."""
+        """component -> how its error was obtained ("stated", "collocation", "spread", "none"; "posterior" for a
+        merged source)."""
         return {c: e.method for c, e in self.uncertainty.items()}
 
     @property

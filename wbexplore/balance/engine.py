@@ -36,10 +36,11 @@ SOURCE_DIMS = {c: f"{c}_source" for c in SOURCE_COMPONENTS}
 
 def with_ensembles(ds: xr.Dataset) -> xr.Dataset:
     """Add ``ensemble_<component>`` for every source component: the mean of its products (months where
-    every product is valid)."""
+    every product is valid); series derived from the products (`DERIVED_PREFIXES`: ensembles, merged
+    sources) are not members."""
     out = ds.copy()
     for comp in SOURCE_COMPONENTS:
-        ids = [s for s in source_ids(ds, comp) if not s.startswith(ENSEMBLE_PREFIX)]
+        ids = [s for s in source_ids(ds, comp) if not s.startswith(DERIVED_PREFIXES)]
         if len(ids) < 2:
             continue
         stack = xr.concat([ds[s] for s in ids], dim="member")
@@ -247,7 +248,7 @@ def closure_terms(ds: xr.Dataset, options: ClosureOptions | None = None, *, basi
     Each term variable carries ``sign``, ``kind`` and ``label`` from the term table; the options are in
     ``attrs["closure_options"]`` (JSON text, `ClosureOptions.from_json`); where each product's error would
     come from in each basin is ``attrs["uncertainty_source"]`` (JSON text {basin: {source: "stated" |
-    "collocation" | "spread" | "none"}}, `wbexplore.balance.uncertainty`).
+    "collocation" | "spread" | "none" | "posterior"}}, `wbexplore.balance.uncertainty`).
     """
     opts = ClosureOptions.from_kwargs(options, **kwargs)
     a = closure_arrays(ds, opts, basins=basins, sources=sources)

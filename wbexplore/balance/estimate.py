@@ -70,7 +70,8 @@ class DifferenceEstimate:
     annual : DataFrame indexed by ``water_year`` (named by the year it ends): ``estimate``,
         ``standard_error`` (mm per water year), ``months``, and for ET and Q ``storage_change`` with its
         ``storage_change_standard_error`` (the dS term the estimate includes)
-    long_term : dict: ``water_years`` (count), ``years`` (their names), ``first``, ``last``, ``estimate`` and ``standard_error``
+    long_term : dict: ``water_years`` (count), ``years`` (their names: years left out between ``first`` and ``last``
+        are not in it, so name ``years``, not the span), ``first``, ``last``, ``estimate`` and ``standard_error``
         (mm/year, storage term left out), ``storage_change`` (mm/year, mean over the years where the TWSA
         product gives it, None otherwise: the term that was left out), ``storage_change_years``
     uncertainty : component -> `uncertainty.ProductError` of each product used

@@ -55,7 +55,8 @@ from .storage import match_window, storage_change
 from .terms import SOURCE_COMPONENTS, balance_terms
 
 __all__ = ["MERGE_METHODS", "MERGED_PREFIX", "ComponentErrors", "merge_products", "product_error_variances",
-           "inverse_variance_merge", "force_closure", "proportional_redistribution", "with_merged", "merged_name"]
+           "inverse_variance_merge", "force_closure", "proportional_redistribution", "with_merged", "merged_name",
+           "merged_label"]
 
 MERGE_METHODS = {
     "pr": "proportional redistribution of the residual",
@@ -63,6 +64,12 @@ MERGE_METHODS = {
     "collocation": "multiple collocation, then the constrained Kalman filter",
 }
 GIVEN = "given"  # error variances passed to `merge_products` (``variances``): they override the order
+
+
+def merged_label(method: str) -> str:
+    """Display name of the merged sources of ``method``: "Merged (constrained Kalman filter)" (the variant named)."""
+    _check_method(method)
+    return f"Merged ({MERGE_METHODS[method].split(' (')[0]})"
 
 
 def merged_name(term_or_component: str) -> str:

@@ -21,6 +21,10 @@ and a tiny positive one is not used either (a damped or scaled copy of the truth
 around zero, and would get a band of hundredths of a mm/month): the band falls back to the spread and says why
 (`collocation_doubt`), the merge (and ``method="collocation"``) refuses, naming the product.
 
+A merged source (`wbexplore.balance.merge`, ``merged_<component>``) is not a product: its error is the merge's
+posterior standard error (``<name>_standard_error``, month by month), ``posterior`` (`POSTERIOR`), whatever
+the order above (its correlation with the other merged terms, which the closure constraint creates, is left out).
+
 What was used is recorded (`ProductError.method`, `method_label`) and travels with every output that
 carries an uncertainty. The product spread stays available on its own as `product_disagreement`.
 
@@ -52,9 +56,9 @@ import xarray as xr
 from ..errors import InputError
 from ..series import source_ids
 from .collocation import multiple_collocation
-from .engine import DERIVED_PREFIXES, masked_values
+from .engine import DERIVED_PREFIXES, MERGED_PREFIX, masked_values
 
-__all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "MIN_COLLOCATION_MONTHS",
+__all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "POSTERIOR", "band_text", "MIN_COLLOCATION_MONTHS",
            "DEFAULT_METHOD", "product_error", "product_errors", "all_product_errors", "product_disagreement", "stated_variance",
            "collocation_variances", "method_label", "uncertainty_text", "legend_text", "check_method",
            "component_products", "Q_RELATIVE_ERROR", "gauge_error", "SIGNIFICANCE_Z", "COLLOCATION_CAVEAT",
@@ -65,6 +69,7 @@ __all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE",
 Q_RELATIVE_ERROR = 0.05
 
 STATED, COLLOCATION, SPREAD, NONE = "stated", "collocation", "spread", "none"
+POSTERIOR = "posterior"  # a merged source: the merge's posterior standard error
 METHODS = ("auto", STATED, COLLOCATION, SPREAD)
 # Two years of common months: the sampling standard error of a variance estimate is about sqrt(2 / n)
 # of it (normal errors), 29% at n = 24; fewer months and the estimate is mostly noise (common practice).
@@ -81,6 +86,7 @@ _LABELS = {
     COLLOCATION: "collocation error variance of the product (random error only: blind to scaling and damping errors)",
     SPREAD: "product spread (disagreement between products, not the chosen product's error)",
     NONE: "no error estimate",
+    POSTERIOR: "posterior error of the merged source (inverse error variances, then the closure constraint)",
 }
 
 
@@ -107,6 +113,7 @@ class ProductError:
     method : `STATED` | `COLLOCATION` | `SPREAD` | `NONE`
     variance : array (T,), mm2 (P, ET: (mm/month)^2; TWSA: mm^2), NaN where unknown
     note : how it was obtained (products, months) or why ``auto`` fell back
+    reason : why ``auto`` fell back to the spread (or to none), in a few words ("" when it did not)
     """
 
     source: str
@@ -114,6 +121,7 @@ class ProductError:
     method: str
     variance: np.ndarray
     note: str = ""
+    reason: str = ""
 
     @property
     def sigma(self) -> np.ndarray:
@@ -307,7 +315,8 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         Months over which collocation error variances are estimated (default all).
     min_valid_fraction : months where a product covers less of the basin are missing (0..1)
     method : "auto" | "stated" | "collocation" | "spread"
-        "auto": stated, else collocation, else spread. An explicit method is used or refused.
+        "auto": stated, else collocation, else spread; for a merged source (``merged_<component>`` with its
+        ``_standard_error``) its posterior (`POSTERIOR`). An explicit method is used or refused.
     strict : bool
         With "auto", refuse (`InputError`) instead of falling back to the spread when the component has
         three products or more but the period is too short to estimate collocation error variances. (An
@@ -325,6 +334,14 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
     check_method(method)
     attrs = ds.variables[source].attrs
     comp = attrs.get("component")
+    posterior = f"{source}_standard_error"
+    if method == "auto" and source.startswith(MERGED_PREFIX) and posterior in ds.variables:
+        from .merge import MERGE_METHODS  # merge.py builds on this module: imported where it is used
+
+        se = ds.variables[posterior].values[basin_index].astype(np.float64)
+        how = MERGE_METHODS.get(attrs.get("merge_method"), "merge")
+        return ProductError(source, comp, POSTERIOR, se**2, f"posterior of the merge ({how}; products "
+                            f"{attrs.get('products', '?')}, errors {attrs.get('error_variance_source', '?')})")
     ids, stack = _products(ds, comp, basin_index, min_valid_fraction, cache)
     if values is not None:
         x = np.asarray(values, dtype=np.float64)
@@ -337,7 +354,7 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
         if method == STATED:
             raise InputError(f"source {source!r}: no stated error in the catalog (fields 'relative_error', "
                              "'absolute_error_mm')")
-    why = ""
+    why = reason = ""
     if source not in ids and method == COLLOCATION:
         raise InputError(f"source {source!r} is derived from the {comp} products (not independent of them): "
                          "collocation needs independent products")
@@ -357,20 +374,25 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
             if method == COLLOCATION or strict:
                 raise InputError(str(failure))
             why = f" (collocation not used: {failure})"
+            reason = f"period too short for collocation ({MIN_COLLOCATION_MONTHS} common months needed)"
         doubt = None if tc is None else collocation_doubt(source, tc[source])
         if doubt is not None:
             if method == COLLOCATION:
                 raise InputError(doubt)
             why = f" ({doubt}; the product spread is used)"
+            reason = "collocation sees no random error in it"
         if tc is not None and doubt is None:
             ev = tc[source]["error_variance"]
             kind = "triple" if len(ids) == 3 else f"multiple ({len(ids)} products)"
             note = f"{kind} collocation with {', '.join(s for s in ids if s != source)} over {tc[source]['n']} months"
             return ProductError(source, comp, COLLOCATION, np.where(np.isfinite(x), ev, np.nan), note)
+    if not reason and method == "auto":
+        reason = ("derived from the products, not independent of them" if source not in ids
+                  else f"{len(ids)} {comp} product{'s' if len(ids) != 1 else ''}, collocation needs 3")
     if len(ids) >= 2:
         sd = _products_spread(ds, comp, basin_index, min_valid_fraction, cache)
-        return ProductError(source, comp, SPREAD, sd**2, f"spread of {', '.join(ids)}{why}")
-    return ProductError(source, comp, NONE, np.full(x.shape, np.nan), f"one {comp} product only{why}")
+        return ProductError(source, comp, SPREAD, sd**2, f"spread of {', '.join(ids)}{why}", reason)
+    return ProductError(source, comp, NONE, np.full(x.shape, np.nan), f"one {comp} product only{why}", reason)
 
 
 def all_product_errors(ds: xr.Dataset, basin_index: int, *, sources: dict | None = None, **kw) -> dict:
@@ -400,7 +422,8 @@ def uncertainty_text(errors: dict, *, q_relative_error: float | None = None) -> 
     return "; ".join(parts)
 
 
-_SHORT = {STATED: "stated", COLLOCATION: "collocation", SPREAD: "product spread", NONE: "none"}
+_SHORT = {STATED: "stated", COLLOCATION: "collocation", SPREAD: "product spread", NONE: "none",
+          POSTERIOR: "merge posterior"}
 
 
 def legend_text(errors: dict) -> str:
@@ -422,3 +445,16 @@ def error_inputs(ds: xr.Dataset, error: ProductError) -> tuple[str, ...]:
     if error.method in (COLLOCATION, SPREAD):
         return tuple(s for s in component_products(ds, error.component) if s != error.source)
     return ()
+
+
+def band_text(errors: dict, *, q_relative_error: float | None = None) -> str:
+    """One short line: which error each component's band uses, with the reason of a fallback to the spread
+    ("Band ± 2 sigma: P collocation (random error only); ET product spread (collocation sees no random error in
+    it); TWSA product spread (2 TWSA products, collocation needs 3); Q 5% of flow")."""
+    parts = []
+    for c, e in errors.items():
+        why = " (random error only)" if e.method == COLLOCATION else f" ({e.reason})" if e.reason else ""
+        parts.append(f"{c} {_SHORT[e.method]}{why}")
+    if q_relative_error is not None:
+        parts.append(f"Q {q_relative_error:.0%} of flow")
+    return "Band ± 2 sigma: " + "; ".join(parts)

@@ -165,11 +165,11 @@ class Explorer:
         self.w_units.param.watch(lambda e: setattr(s, "unit_system", e.new), "value")
         s.param.watch(lambda e: setattr(self.w_units, "value", e.new), "unit_system")  # hm3 for a water body
 
-        def on_kind(e):  # a water body has its own sources (storage from levels): the pickers follow
+        def on_kind(*e):  # a water body has its own sources (storage from levels): the pickers follow
             for comp, w in self.w_src.items():
                 self._follow_source(w, comp, getattr(s, comp), refresh=True)
 
-        s.param.watch(on_kind, "basin")
+        s.param.watch(on_kind, ["basin", "unit", "storage_change", "matched"])  # and merged sources come and go
 
         self.w_metric.param.watch(lambda e: setattr(s, "metric", e.new), "value")
         s.param.watch(lambda e: self.w_metric.param.update(value=e.new, description=METRIC_NAMES[e.new].help), "metric")
@@ -396,7 +396,8 @@ class Explorer:
                              "wbx-scatter")
         summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
                                css_classes=["wbx-summary-pane"], width=260)
-        warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.unit_series()), _SEL_DEPS),
+        warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.unit_series(),
+                                                                            notes=[s.merged_note()]), _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
         multi = self._view(plots.MultiBasinPlot(), lambda p: p.update(s.multi_basin()), _MULTI_DEPS, "wbx-multi")
         exchange, levels = self._waterbody_views(summary, warn, resid, scatter)

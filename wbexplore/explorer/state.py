@@ -13,6 +13,7 @@ import param
 
 from ..balance import (METHODS, METRICS, UNIT_SYSTEMS, ClosureOptions, Selection, best_scores, compute_selection,
                        long_term_all, rank)
+from ..balance.merge import MERGE_METHODS, MERGED_PREFIX, merge_products, merged_label, merged_name, with_merged
 from ..balance.terms import SOURCE_COMPONENTS
 from ..series import source_ids
 from ..errors import InputError
@@ -50,6 +51,9 @@ class ClosureState(param.Parameterized):
     unit_system = param.Selector(objects=list(UNIT_SYSTEMS), default="mm", label="Units")
     metric = param.Selector(objects=[m for m in METRICS if m != "n_valid"], default="rmse", label="Rank by")
     min_valid = param.Integer(default=24, bounds=(1, None), precedence=-1)
+    merge_method = param.Selector(objects=list(MERGE_METHODS), default="ckf", precedence=-1,
+                                  doc="variant of the merged sources offered beside the products "
+                                      "(`balance.merge.MERGE_METHODS`)")
 
     def __init__(self, series, basins=None, *, memo: dict | None = None, **params):
         """`memo`: results computed from `series` by other states on the same series (a served page
@@ -70,6 +74,7 @@ class ClosureState(param.Parameterized):
                 raise InputError(f"the series hold no {comp} source")
             getattr(self.param, comp).objects = opts
             labels.update({s: str(series[s].attrs.get("long_name", s)) for s in opts})
+        labels.update({merged_name(c): merged_label(self.merge_method) for c in SOURCE_COMPONENTS})
         self.labels = labels
         n = series.sizes["time"]
         self.months = pd.DatetimeIndex(series["time"].values)
@@ -89,9 +94,13 @@ class ClosureState(param.Parameterized):
         self._sources_of = {"basin": {c: source_ids(series, c) for c in SOURCE_COMPONENTS},
                             "waterbody": {c: source_ids(wbs, c) for c in SOURCE_COMPONENTS} if wbs is not None else {}}
         self._shown_kind = "basin"
+        self._last_product = {c: getattr(self, c) for c in SOURCE_COMPONENTS}  # the products a merged choice left
         if self.is_waterbody:
             self._switch_kind()
         self.param.watch(self._kind_follows_basin, ["basin"])
+        self._follow_merged()
+        self.param.watch(self._follow_merged, ["basin", "unit", "storage_change", "matched"])
+        self.param.watch(self._remember_product, list(SOURCE_COMPONENTS))
         if "P" not in params:
             self.select_best()
 
@@ -180,7 +189,7 @@ class ClosureState(param.Parameterized):
         for comp in SOURCE_COMPONENTS:
             new[comp] = self._source(comp)
             # a copy: a Selector without check_on_set appends a value set outside its objects to this list
-            getattr(self.param, comp).objects = list(self._sources_of[self._kind][comp])
+            getattr(self.param, comp).objects = self._offered(comp)
         if to_wb and self.unit_system == "mm":
             new["unit_system"] = "hm3"
         elif not to_wb and self.unit_system == "hm3":
@@ -197,11 +206,96 @@ class ClosureState(param.Parameterized):
         a water body and its sources following) the one the switch gives: a basin's earlier choice, or the first
         of the water body's sources (its storage: ``levels``). Every view sees the same selection."""
         v = getattr(self, comp)
-        opts = self._sources_of[self._kind][comp]
+        opts = self._offered(comp)
         if v in opts:
             return v
-        back = self._basin_choice.get(comp)
-        return back if self._kind == "basin" and back in opts else opts[0]
+        if self._kind == "basin":  # back from a water body: the basin's choice; from a merged source: the product
+            backs = (self._basin_choice.get(comp), self._last_product.get(comp))
+            for back in (backs[::-1] if str(v).startswith(MERGED_PREFIX) else backs):
+                if back in opts:
+                    return back
+        return opts[0]
+
+    # ----------------------------------------------------------------- merged sources (`balance.merge`)
+    def _offered(self, comp: str) -> list[str]:
+        """The sources the picker of ``comp`` offers: the unit's products, then the merged source where the chosen
+        basin's can be built (a new list: a Selector may append to it)."""
+        opts = list(self._sources_of[self._kind][comp])
+        if self._kind == "basin" and self._merged()[0] is not None:
+            opts.append(merged_name(comp))
+        return opts
+
+    def _merge_one(self, ds, basin: str) -> tuple:
+        """(`merge_products` of ``basin`` in ``ds``, or None; why not: its one-line refusal), in the page's closure
+        form (storage-change method, window matching) with `merge_method`; memoised."""
+        form = (self.storage_change, self.matched)
+
+        def run():
+            opts = ClosureOptions(storage_change=form[0], matched=form[1])
+            try:
+                return merge_products(ds, method=self.merge_method, basins=[basin], options=opts), ""
+            except InputError as exc:
+                return None, str(exc).removeprefix(f"basin {basin!r}: ")
+
+        return self._cached(("merge", ds.attrs.get("unit", "whole"), basin, self.merge_method, form), run)
+
+    def _merged(self) -> tuple:
+        """(the chosen basin's series (that basin alone: a basin's balance does not depend on the others) with its
+        merged sources, or None; why not)."""
+        if self.is_waterbody:
+            return None, "a water body has no merged sources"
+        ds = self.unit_series()
+        m, why = self._merge_one(ds, self.basin)
+        if m is None:
+            return None, why
+        key = ("merged series", ds.attrs.get("unit", "whole"), self.basin, self.merge_method, m.attrs["closure_options"])
+        one = [[str(b) for b in ds["basin"].values].index(self.basin)]
+        return self._cached(key, lambda: with_merged(ds.isel(basin=one), m)), ""
+
+    def _merged_everywhere(self):
+        """The whole basins' series with the merged sources of every basin where they can be built (NaN elsewhere)."""
+        import xarray as xr
+
+        ds = self.series
+        parts = [m for m, _ in (self._merge_one(ds, b) for b in self._basin_ids) if m is not None]
+        if not parts:
+            return ds
+        opts = parts[0].attrs["closure_options"]
+        return self._cached(("merged everywhere", self.merge_method, opts), lambda: with_merged(
+            ds, xr.concat(parts, "basin", data_vars="all", coords="minimal", compat="override",
+                          join="outer").reindex(basin=ds["basin"].values)))
+
+    def _follow_merged(self, *events) -> None:
+        """The pickers offer a merged source only where the chosen unit has one; a merged choice where there is
+        none goes back to the product chosen before it."""
+        if self._kind != self._shown_kind:  # `_switch_kind` sets the pickers
+            return
+        new = {}
+        for comp in SOURCE_COMPONENTS:
+            getattr(self.param, comp).objects = self._offered(comp)
+            if getattr(self, comp) not in getattr(self.param, comp).objects:
+                new[comp] = self._source(comp)
+        if new:
+            self.param.update(**new)
+
+    def _remember_product(self, *events) -> None:
+        for e in events:
+            if self._kind == "basin" and not str(e.new).startswith(MERGED_PREFIX):
+                self._last_product[e.name] = e.new
+
+    def merged_note(self) -> str:
+        """One line saying why the pickers offer no merged source for the chosen basin ("" where they do, and
+        for a water body, whose sources are its own)."""
+        if self.is_waterbody:
+            return ""
+        m, why = self._merged()
+        return "" if m is not None else f"{merged_label(self.merge_method)} not offered for {self.basin}: {why}"
+
+    def _computed_series(self):
+        """The series the chosen unit's balance is computed on: the unit's, with its merged sources where they
+        can be built."""
+        m, _ = self._merged()
+        return self.unit_series() if m is None else m
 
     def exchange(self):
         """A water body's residual as unmeasured exchange (`balance.waterbody.unmeasured_exchange`), or None."""
@@ -253,15 +347,15 @@ class ClosureState(param.Parameterized):
     def result(self):
         """`SelectionResult` of the current selection, over the chosen balance unit."""
         sel = self.selection()
-        ds = self.unit_series()
+        ds = self._computed_series()
         unit = ds.attrs.get("unit", "whole")
-        return self._cached(("result", unit, sel, self.min_valid),
+        return self._cached(("result", unit, sel, self.min_valid, self.merge_method),
                             lambda: compute_selection(ds, sel, min_valid=self.min_valid))
 
     def _rank_for(self, basin: str) -> pd.DataFrame:
         opts = self.options()
-        ds = self.unit_series() if basin == self.basin else self.series
-        key = ("rank", ds.attrs.get("unit", "whole"), basin, opts, self.metric)
+        ds = self._computed_series() if basin == self.basin else self.series
+        key = ("rank", ds.attrs.get("unit", "whole"), basin, opts, self.metric, self.merge_method)
 
         def run():
             try:
@@ -296,7 +390,9 @@ class ClosureState(param.Parameterized):
         sel = self.selection()
         if self.is_waterbody:
             sel = sel.replace(**{c: self._basin_choice[c] for c in SOURCE_COMPONENTS})
-        return self._cached(("multi", sel.replace(basin="")), lambda: long_term_all(self.series, sel))
+        merged = any(str(getattr(sel, c)).startswith(MERGED_PREFIX) for c in SOURCE_COMPONENTS)
+        return self._cached(("multi", sel.replace(basin=""), self.merge_method if merged else None),
+                            lambda: long_term_all(self._merged_everywhere() if merged else self.series, sel))
 
     def select_best(self) -> None:
         """Set P, ET and TWSA to the first-ranked combination for the basin and period."""

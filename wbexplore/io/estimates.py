@@ -18,7 +18,7 @@ from .. import __version__
 from ..errors import InputError
 from .writers import CAUTION, atomic_path, write_netcdf
 
-__all__ = ["FORMATS", "estimate_table", "estimate_dataset", "write_estimate", "uncertainty_line"]
+__all__ = ["FORMATS", "estimate_table", "estimate_dataset", "write_estimate", "uncertainty_line", "water_years_text"]
 
 FORMATS = (".csv", ".nc")
 _LONG_NAMES = {"ET": "evapotranspiration", "Q": "outlet discharge as depth over the basin",
@@ -40,6 +40,17 @@ def uncertainty_line(est) -> str:
     return uncertainty_text(est.uncertainty, q_relative_error=None if est.term == "Q" else est.q_relative_error)
 
 
+def water_years_text(years) -> str:
+    """The water years used, runs of consecutive years joined: "WY2001..WY2002, WY2004" ("" for none)."""
+    runs = []
+    for y in sorted(int(v) for v in years):
+        if runs and y == runs[-1][1] + 1:
+            runs[-1][1] = y
+        else:
+            runs.append([y, y])
+    return ", ".join(f"WY{a}" if a == b else f"WY{a}..WY{b}" for a, b in runs)
+
+
 def estimate_table(est) -> pd.DataFrame:
     """One table: rows of every month, every whole water year and the long-term mean (column ``scale``),
     values in mm over the row's span; column names carry the unit."""
@@ -55,7 +66,7 @@ def estimate_table(est) -> pd.DataFrame:
         yr["storage_change_mm"] = a["storage_change"].to_numpy()
         yr["storage_change_standard_error_mm"] = a["storage_change_standard_error"].to_numpy()
     lt = est.long_term
-    span = f"WY{lt['first']}..WY{lt['last']}" if lt["water_years"] else ""
+    span = water_years_text(lt["years"])
     last = {"scale": "long_term", "period": span, "months": 12 * lt["water_years"], f"{t}_mm": lt["estimate"],
             f"{t}_standard_error_mm": lt["standard_error"]}
     if t != "dS":
@@ -124,7 +135,8 @@ def estimate_dataset(est):
             "storage change in the water year (included in the estimate)", "mm", a["storage_change_standard_error"])
     lt = est.long_term
     put(f"{t}_long_term", (), lt["estimate"], f"{what.split(' (')[0]}, mean per water year over "
-        f"{lt['water_years']} whole water years, storage term left out", "mm year-1", lt["standard_error"])
+        f"{lt['water_years']} whole water years ({water_years_text(lt['years'])}), storage term left out", "mm year-1",
+        lt["standard_error"])
     if t != "dS":
         put("storage_change_long_term", (), np.nan if lt["storage_change"] is None else lt["storage_change"],
             f"mean storage change per water year left out of {t}_long_term ({lt['storage_change_years']} years)",
