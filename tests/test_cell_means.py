@@ -240,6 +240,39 @@ def test_difference_from_the_others_cell_for_cell_and_across_grids(tmp_path):
     assert np.isfinite(d["a"][t]).sum() > 4
 
 
+def test_disagreement_map_one_panel_per_product_and_a_symmetric_diverging_scale(tmp_path):
+    from bokeh.models import ColorBar, GridPlot, Patches
+
+    from wbexplore.names import TERM_NAMES
+    from wbexplore.plots import basin_outlines, disagreement_map
+
+    cells = _two_products_same_grid(tmp_path)
+    gdf = load_basins(open_catalog(tmp_path / "catalog.yaml"))
+    grid = disagreement_map(cells["B1"], basin_outlines(gdf), basin="B1", component="P",
+                            labels={"a": "Rain A"})
+    assert isinstance(grid, GridPlot)
+    figs = [child[0] for child in grid.children]
+    assert len(figs) == 2 * 3  # a mean and a difference panel for each of the three P products
+    titles = [f.title.text for f in figs]
+    assert titles[0].startswith("Rain A: mean 2003-01..2005-02")
+    assert sum("minus mean of the others" in t for t in titles) == 3
+    bars = [r for f in figs for r in f.right if isinstance(r, ColorBar)]
+    assert len(bars) == 2
+    diff = bars[1].color_mapper
+    assert diff.low == -diff.high and diff.high > 0  # centred on zero
+    assert len(diff.palette) % 2 == 1  # an odd diverging palette: its middle colour sits at zero
+    assert TERM_NAMES["P"].name in bars[0].title and "mm/month" in bars[0].title
+    # each panel: the touched cells, coloured and with opacity by coverage, plus the basin outline
+    cell_src = [r.data_source for r in figs[0].renderers if isinstance(r.glyph, Patches)
+                and "alpha" in r.data_source.data][0]
+    assert len(cell_src.data["xs"]) == int(cells["B1"]["a"].touched.sum())
+    assert min(cell_src.data["alpha"]) < max(cell_src.data["alpha"])  # partial cells at the edge
+    assert any(r.glyph.fill_alpha == 0.0 for r in figs[0].renderers if isinstance(r.glyph, Patches))
+    # a component with no product: a one-line text, no empty panels
+    text = disagreement_map(cells["B1"], basin="B1", component="ET").text
+    assert text.startswith(f"No {TERM_NAMES['ET'].name} product")
+
+
 @pytest.mark.parametrize("nt", [5, 40, 70])  # one tile, and several (32 steps a tile)
 def test_fused_kernel_keeps_basin_sums_bitwise_and_its_cell_sums_equal_numpys(nt):
     """The cell sums ride in the basin kernel's pass: basin sums bit for bit those of `accumulate`; cell sums
