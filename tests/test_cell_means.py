@@ -273,6 +273,32 @@ def test_disagreement_map_one_panel_per_product_and_a_symmetric_diverging_scale(
     assert text.startswith(f"No {TERM_NAMES['ET'].name} product")
 
 
+def test_explorer_map_follows_basin_and_component(demo_dir):
+    """The explorer's disagreement pane (no browser): one panel pair per product of the chosen component, for
+    the basin on screen; the cell means read back from the cache the extraction wrote beside the series."""
+    from wbexplore.explorer.app import explore
+    from wbexplore.pipeline import load_cell_means
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        app = explore(demo_dir / "catalog.yaml")
+        cells = load_cell_means(demo_dir / "catalog.yaml")
+    app.panel()
+    col = app._disagreement()
+    chooser, pane = col[1], col[2]
+
+    def products(comp, basin):
+        return [s for s, cm in cells[basin].items() if cm.component == comp]
+
+    basin = app.state.basin
+    assert len(pane.object.children) == 2 * len(products("P", basin))
+    chooser.value = "TWSA"
+    assert len(pane.object.children) == 2 * len(products("TWSA", basin))
+    other = [b for b in cells if b != basin][0]
+    app.state.basin = other
+    assert pane.object.name == f"disagreement {other} TWSA"
+
+
 @pytest.mark.parametrize("nt", [5, 40, 70])  # one tile, and several (32 steps a tile)
 def test_fused_kernel_keeps_basin_sums_bitwise_and_its_cell_sums_equal_numpys(nt):
     """The cell sums ride in the basin kernel's pass: basin sums bit for bit those of `accumulate`; cell sums
