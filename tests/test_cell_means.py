@@ -319,4 +319,8 @@ def test_fused_kernel_keeps_basin_sums_bitwise_and_its_cell_sums_equal_numpys(nt
     plain = accumulate(X, None, None, 99.0, args=args, **mask)
     out, cs = accumulate_with_cells(X, args, f, 99.0, **mask)
     assert out.tobytes() == plain.tobytes()
-    np.testing.assert_allclose(cs, cell_sums(X, cells, f, 99.0, **mask), rtol=1e-12)
+    assert cs.shape == (-(-nt // 32), cells.size, 3)  # one slice per tile of 32 steps
+    np.testing.assert_allclose(cs.sum(axis=0), cell_sums(X, cells, f, 99.0, **mask), rtol=1e-12)
+    # added in place into a task's array: two reads give the sums of both
+    again = accumulate_with_cells(X, args, f, 99.0, **mask, cell=cs.copy())[1]
+    np.testing.assert_allclose(again.sum(axis=0), 2 * cell_sums(X, cells, f, 99.0, **mask), rtol=1e-12)

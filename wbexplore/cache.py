@@ -710,15 +710,17 @@ def cached_series(cat, build: Callable[[], object], *, cache_dir=None, use_cache
 
 
 def _cells_payload(cells: dict) -> bytes:
-    """Cell means (basin id -> product id -> `CellMeans`) as one npz: a JSON index plus five arrays each."""
+    """Cell means (basin id -> product id -> `CellMeans`) as one npz: a JSON index plus five arrays each
+    (the cell corners are computed again from the centres when they are drawn)."""
     index, arrays = [], {}
     for basin, by_source in cells.items():
         for source, cm in by_source.items():
             i = len(index)
             index.append({"basin": str(basin), "source": str(source), "component": cm.component, "units": cm.units,
-                          "row0": int(cm.row0), "col0": int(cm.col0), "period": list(cm.period)})
+                          "row0": int(cm.row0), "col0": int(cm.col0), "period": list(cm.period),
+                          "dx": float(cm.dx), "dy": float(cm.dy), "crs": cm.crs, "lon_offset": float(cm.lon_offset)})
             arrays.update({f"mean{i}": cm.mean, f"months{i}": cm.months, f"coverage{i}": cm.coverage,
-                           f"lon{i}": cm.lon, f"lat{i}": cm.lat})
+                           f"x{i}": cm.x, f"y{i}": cm.y})
     buf = io.BytesIO()
     np.savez(buf, index=np.array(json.dumps(index, sort_keys=True)), basins=np.array(list(cells), dtype=str),
              **arrays)
@@ -733,8 +735,9 @@ def _cells_from(payload: bytes) -> dict:
         for i, e in enumerate(json.loads(str(z["index"]))):
             out[e["basin"]][e["source"]] = CellMeans(
                 basin=e["basin"], source=e["source"], component=e["component"], units=e["units"],
-                mean=z[f"mean{i}"], months=z[f"months{i}"], coverage=z[f"coverage{i}"], lon=z[f"lon{i}"],
-                lat=z[f"lat{i}"], row0=e["row0"], col0=e["col0"], period=tuple(e["period"]))
+                mean=z[f"mean{i}"], months=z[f"months{i}"], coverage=z[f"coverage{i}"], x=z[f"x{i}"], y=z[f"y{i}"],
+                dx=e["dx"], dy=e["dy"], crs=e["crs"], lon_offset=e["lon_offset"], row0=e["row0"], col0=e["col0"],
+                period=tuple(e["period"]))
     return out
 
 

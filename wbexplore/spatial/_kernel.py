@@ -57,9 +57,9 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                             s += f[i] * np.float64(v)
                             sf += f[i]
                             n += 1.0
-                    cell[tile, j, 0] = s
-                    cell[tile, j, 1] = sf
-                    cell[tile, j, 2] = n
+                    cell[tile, j, 0] += s
+                    cell[tile, j, 1] += sf
+                    cell[tile, j, 2] += n
                 for k in range(indptr[j], indptr[j + 1]):
                     w = data[k]
                     b = indices[k]
@@ -151,20 +151,30 @@ def accumulate(X2: np.ndarray, used: np.ndarray, wu_t, nodata: float = np.nan, *
 
 
 def accumulate_with_cells(X2: np.ndarray, args: tuple, factor: np.ndarray, nodata: float = np.nan, *,
-                          valid_min: float = -np.inf, valid_max: float = np.inf, codes=()) -> tuple:
-    """`accumulate` plus, in the same pass, each used cell's (cells, 3) sums [sum f x, sum f, valid steps]
+                          valid_min: float = -np.inf, valid_max: float = np.inf, codes=(),
+                          cell: np.ndarray | None = None) -> tuple:
+    """`accumulate` plus, in the same pass, each used cell's sums [sum f x, sum f, valid steps]
     (``factor`` (t,): decoded monthly value -> canonical unit; see `cell_sums`). The basin sums are those of
-    `accumulate`, bit for bit: the cell sums are separate accumulators."""
+    `accumulate`, bit for bit: the cell sums are separate accumulators.
+
+    ``cell``: a (tiles, cells, 3) array to add the sums into (one slice per tile of 32 steps, at least as
+    many as the block has), so that a streaming task adds every read into one array instead of allocating
+    one per read; default a new one. Returns ``(basin sums, cell)``; sum ``cell`` over its first axis.
+    """
     c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
     cells = args[0]
     ntile = (X2.shape[0] + _TB - 1) // _TB
+    if cell is None:
+        cell = np.zeros((max(1, ntile), cells.size, 3))
     if ntile == 0 or not HAVE_NUMBA:  # pragma: no cover - no steps, or no numba: two passes
-        return (accumulate(X2, None, None, nodata, args=args, valid_min=valid_min, valid_max=valid_max, codes=codes),
-                cell_sums(X2, cells, factor, nodata, valid_min=valid_min, valid_max=valid_max, codes=codes))
-    tiles = np.zeros((ntile, cells.size, 3))
+        cell[0] += cell_sums(X2, cells, factor, nodata, valid_min=valid_min, valid_max=valid_max, codes=codes)
+        return (accumulate(X2, None, None, nodata, args=args, valid_min=valid_min, valid_max=valid_max,
+                           codes=codes), cell)
+    if cell.shape[0] < ntile or cell.shape[1:] != (cells.size, 3):
+        raise ValueError(f"cell sums of shape {cell.shape} for {ntile} tiles of {cells.size} cells")
     out = _accumulate(X2, *args, np.float64(nodata), np.float64(valid_min), np.float64(valid_max), c,
-                      np.ascontiguousarray(factor, np.float64), tiles)
-    return out, tiles.sum(axis=0) if ntile > 1 else tiles[0]
+                      np.ascontiguousarray(factor, np.float64), cell)
+    return out, cell
 
 
 def accumulate_months(X2: np.ndarray, args: tuple, w: np.ndarray, s0: np.ndarray, s1: np.ndarray,

@@ -10,6 +10,7 @@ fraction of the basin, from the weights the basin means use.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -39,9 +40,11 @@ class CellMeans:
     coverage : ndarray (rows, cols)
         Share of the cell's area inside the basin (0..1, exact coverage fraction: the weight of the
         basin mean divided by the cell's ellipsoidal area, m2 / m2).
-    lon, lat : ndarray (rows, cols, 4)
-        Corners of each cell in degrees (EPSG:4326), counter-clockwise from the lower left corner
-        in the grid's own CRS.
+    x, y : ndarray (cols,), (rows,)
+        Cell centres of the window in the grid's CRS (longitudes as the grid was normalised).
+    dx, dy : float
+        Cell size in the grid's CRS; ``crs``: its WKT; ``lon_offset``: subtracted from geographic longitudes
+        to meet the basins (`GridSpec.lon_offset`).
     row0, col0 : int
         File row and column of the window's first cell.
     period : tuple of str
@@ -56,8 +59,12 @@ class CellMeans:
     mean: np.ndarray = field(repr=False)
     months: np.ndarray = field(repr=False)
     coverage: np.ndarray = field(repr=False)
-    lon: np.ndarray = field(repr=False)
-    lat: np.ndarray = field(repr=False)
+    x: np.ndarray = field(repr=False)
+    y: np.ndarray = field(repr=False)
+    dx: float = 0.0
+    dy: float = 0.0
+    crs: str = "EPSG:4326"
+    lon_offset: float = 0.0
     row0: int = 0
     col0: int = 0
     period: tuple[str, str] = ("", "")
@@ -67,22 +74,39 @@ class CellMeans:
         """Mask of the cells the basin covers (coverage > 0)."""
         return self.coverage > 0
 
+    @cached_property
+    def _corners(self) -> tuple[np.ndarray, np.ndarray]:
+        return _corners_lonlat(self.x, self.y, self.dx, self.dy, self.crs, self.lon_offset)
 
-def _corners_lonlat(grid: GridSpec, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Cell corners (rows, cols, 4) in degrees EPSG:4326 for file rows and columns."""
-    x = np.asarray(grid.x, np.float64)[cols]
-    if grid.is_geographic and grid.x.max() > 180.0 and grid.lon_offset == 0.0:
-        x = np.where(x >= 180.0, x - 360.0, x)  # as `describe_grid` normalised it
-    y = np.asarray(grid.y, np.float64)[rows]
-    hx, hy = grid.dx / 2.0, grid.dy / 2.0
-    X = np.stack([x - hx, x + hx, x + hx, x - hx], axis=-1)[None, :, :].repeat(rows.size, axis=0)
-    Y = np.stack([y - hy, y - hy, y + hy, y + hy], axis=-1)[:, None, :].repeat(cols.size, axis=1)
-    if grid.is_geographic:
-        return X - grid.lon_offset, Y
+    @property
+    def lon(self) -> np.ndarray:
+        """(rows, cols, 4) corner longitudes (deg E, EPSG:4326), counter-clockwise from the lower left corner
+        in the grid's CRS; computed when first asked (drawing), never during the extraction."""
+        return self._corners[0]
+
+    @property
+    def lat(self) -> np.ndarray:
+        """(rows, cols, 4) corner latitudes (deg N, EPSG:4326), in the order of `lon`."""
+        return self._corners[1]
+
+
+def _corners_lonlat(x, y, dx, dy, crs, lon_offset) -> tuple[np.ndarray, np.ndarray]:
+    """Cell corners (rows, cols, 4) in degrees EPSG:4326 from centres ``x`` (cols) and ``y`` (rows)."""
+    from pyproj import CRS
+
+    x = np.asarray(x, np.float64)
+    y = np.asarray(y, np.float64)
+    hx, hy = dx / 2.0, dy / 2.0
+    shape = (y.size, x.size, 4)
+    X = np.broadcast_to(np.stack([x - hx, x + hx, x + hx, x - hx], axis=-1)[None, :, :], shape)
+    Y = np.ascontiguousarray(np.broadcast_to(np.stack([y - hy, y - hy, y + hy, y + hy], axis=-1)[:, None, :], shape))
+    crs = CRS.from_user_input(crs)
+    if crs.is_geographic:
+        return X - lon_offset, Y
     from pyproj import Transformer
 
-    tr = Transformer.from_crs(grid.crs, "EPSG:4326", always_xy=True)
-    lon, lat = tr.transform(X, Y)
+    tr = Transformer.from_crs(crs, "EPSG:4326", always_xy=True)
+    lon, lat = tr.transform(np.ascontiguousarray(X), Y)
     return np.asarray(lon), np.asarray(lat)
 
 
@@ -106,16 +130,30 @@ def basin_cell_means(grid: GridSpec, weights, cell_mean: np.ndarray, cell_months
     Returns
     -------
     dict
-        Basin id -> `CellMeans`.
+        Basin id -> `CellMeans` (the arrays of different basins may share memory: do not write to them).
     """
     cell_mean = np.asarray(cell_mean, np.float64)
     cell_months = np.asarray(cell_months, np.float64)
-    _, _, wu_t, _ = weights.window()
+    rs, cs, wu_t, _ = weights.window()
     r_used, c_used = weights.used_rows_cols()
     if cell_mean.shape != r_used.shape:
         raise ValueError(f"{cell_mean.size} cell means for {r_used.size} used cells")
-    area_file = np.empty(grid.shape)
-    area_file[np.ix_(grid.row_order, grid.col_order)] = cell_areas_m2(grid)
+    if r_used.size == 0:
+        return {}
+    # the window of every used cell, once per product: basins take slices of it
+    shape = (rs.stop - rs.start, cs.stop - cs.start)
+    mean_w = np.full(shape, np.nan)
+    months_w = np.zeros(shape)
+    mean_w[r_used - rs.start, c_used - cs.start] = cell_mean
+    months_w[r_used - rs.start, c_used - cs.start] = cell_months
+    x_w = np.asarray(grid.x, np.float64)[cs]
+    if grid.is_geographic and grid.x.max() > 180.0 and grid.lon_offset == 0.0:
+        x_w = np.where(x_w >= 180.0, x_w - 360.0, x_w)  # as `describe_grid` normalised it
+    y_w = np.asarray(grid.y, np.float64)[rs]
+    crs = grid.crs.to_wkt()
+    area_w = np.empty(grid.shape)
+    area_w[np.ix_(grid.row_order, grid.col_order)] = cell_areas_m2(grid)
+    area_used = area_w[r_used, c_used]
     by_basin = wu_t.tocsc()  # (used cells x basins): column b holds basin b's cells
     out = {}
     for b, bid in enumerate(weights.basin):
@@ -126,18 +164,16 @@ def basin_cell_means(grid: GridSpec, weights, cell_mean: np.ndarray, cell_months
         idx, w = idx[keep], w[keep]
         if idx.size == 0:
             continue
-        r, c = r_used[idx], c_used[idx]
+        r, c = r_used[idx] - rs.start, c_used[idx] - cs.start
         r0, r1, c0, c1 = int(r.min()), int(r.max()) + 1, int(c.min()), int(c.max()) + 1
-        shape = (r1 - r0, c1 - c0)
-        mean = np.full(shape, np.nan)
-        months = np.zeros(shape)
-        cov = np.zeros(shape)
-        mean[r - r0, c - c0] = cell_mean[idx]
-        months[r - r0, c - c0] = cell_months[idx]
-        cov[r - r0, c - c0] = np.clip(w / area_file[r, c], 0.0, 1.0)
-        lon, lat = _corners_lonlat(grid, np.arange(r0, r1), np.arange(c0, c1))
-        out[str(bid)] = CellMeans(basin=str(bid), source=source, component=component, units=units, mean=mean,
-                                  months=months, coverage=cov, lon=lon, lat=lat, row0=r0, col0=c0,
+        cov = np.zeros((r1 - r0, c1 - c0))
+        cov[r - r0, c - c0] = np.clip(w / area_used[idx], 0.0, 1.0)
+        touched = cov > 0
+        win = (slice(r0, r1), slice(c0, c1))
+        out[str(bid)] = CellMeans(basin=str(bid), source=source, component=component, units=units,
+                                  mean=np.where(touched, mean_w[win], np.nan), months=np.where(touched, months_w[win], 0.0),
+                                  coverage=cov, x=x_w[c0:c1], y=y_w[r0:r1], dx=grid.dx, dy=grid.dy, crs=crs,
+                                  lon_offset=grid.lon_offset, row0=rs.start + r0, col0=cs.start + c0,
                                   period=tuple(period))
     return out
 

@@ -168,8 +168,11 @@ def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub, factor=None):
 
     ``factor`` (per stored month, canonical unit): also the (cells, 3) per-cell sums of `_kernel.cell_sums`
     of the strip's cells, from the same reads; the task then returns ``(sums, cell sums)``."""
+    from ._kernel import _TB, accumulate_with_cells
+
     out = np.empty((t1 - t0, args[-1], 2))
-    cell = None if factor is None else np.zeros((args[0].size, 3))
+    # one (tiles, cells, 3) array for every read of the task: the kernel adds into it in place
+    cell = None if factor is None else np.zeros((-(-min(sub, t1 - t0) // _TB), args[0].size, 3))
     mask = getattr(reader, "mask_args", {})
     for s0 in range(t0, t1, sub):
         s1 = min(t1, s0 + sub)
@@ -178,11 +181,9 @@ def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub, factor=None):
         if cell is None:
             out[s0 - t0:s1 - t0] = _accumulate_raw(X2, args, reader.fill, mask)
         else:  # the cell sums in the same kernel pass (each value read once)
-            from ._kernel import accumulate_with_cells
-
-            out[s0 - t0:s1 - t0], part = accumulate_with_cells(X2, args, factor[s0:s1], reader.fill, **mask)
-            cell += part
-    return out if cell is None else (out, cell)
+            out[s0 - t0:s1 - t0] = accumulate_with_cells(X2, args, factor[s0:s1], reader.fill, **mask,
+                                                         cell=cell)[0]
+    return out if cell is None else (out, cell.sum(axis=0) if cell.shape[0] > 1 else cell[0])
 
 
 def _accumulate_raw(X2, args, nodata, mask: dict | None = None) -> np.ndarray:
