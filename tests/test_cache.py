@@ -206,7 +206,7 @@ def _interrupted_write(tmp_path, sig):
 
 
 def _leftovers(cache: Path):
-    return [p.name for p in cache.iterdir() if not (p.name.startswith(("weights-", "series-"))
+    return [p.name for p in cache.iterdir() if not (p.name.startswith(("weights-", "series-", "cells-"))
                                                     and p.suffix == ".wbxc") and p.name != "file-digests.json"]
 
 

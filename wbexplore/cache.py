@@ -78,7 +78,7 @@ from . import __version__
 from .errors import InputError
 
 __all__ = ["CACHE_FORMAT", "CacheRebuiltWarning", "CacheWriteWarning", "default_cache_dir", "cache_root",
-           "file_digest", "input_files", "inputs_digest", "sweep_stale", "weights_key", "cached_weights", "cached_series",
+           "file_digest", "input_files", "inputs_digest", "sweep_stale", "weights_key", "cached_weights", "cached_series", "cached_extraction",
            "check_root_for", "load_basins", "clear_memory"]
 
 CACHE_FORMAT = "wbx-cache-2"
@@ -707,6 +707,77 @@ def cached_series(cat, build: Callable[[], object], *, cache_dir=None, use_cache
         return ds
     _store(root, path, "series", key, payload)
     return ds
+
+
+def _cells_payload(cells: dict) -> bytes:
+    """Cell means (basin id -> product id -> `CellMeans`) as one npz: a JSON index plus five arrays each
+    (the cell corners are computed again from the centres when they are drawn)."""
+    index, arrays = [], {}
+    for basin, by_source in cells.items():
+        for source, cm in by_source.items():
+            i = len(index)
+            index.append({"basin": str(basin), "source": str(source), "component": cm.component, "units": cm.units,
+                          "row0": int(cm.row0), "col0": int(cm.col0), "period": list(cm.period),
+                          "dx": float(cm.dx), "dy": float(cm.dy), "crs": cm.crs, "lon_offset": float(cm.lon_offset)})
+            arrays.update({f"mean{i}": cm.mean, f"months{i}": cm.months, f"coverage{i}": cm.coverage,
+                           f"x{i}": cm.x, f"y{i}": cm.y})
+    buf = io.BytesIO()
+    np.savez(buf, index=np.array(json.dumps(index, sort_keys=True)), basins=np.array(list(cells), dtype=str),
+             **arrays)
+    return buf.getvalue()
+
+
+def _cells_from(payload: bytes) -> dict:
+    from .spatial.cells import CellMeans
+
+    with np.load(io.BytesIO(payload), allow_pickle=False) as z:
+        out = {str(b): {} for b in z["basins"]}
+        for i, e in enumerate(json.loads(str(z["index"]))):
+            out[e["basin"]][e["source"]] = CellMeans(
+                basin=e["basin"], source=e["source"], component=e["component"], units=e["units"],
+                mean=z[f"mean{i}"], months=z[f"months{i}"], coverage=z[f"coverage{i}"], x=z[f"x{i}"], y=z[f"y{i}"],
+                dx=e["dx"], dy=e["dy"], crs=e["crs"], lon_offset=e["lon_offset"], row0=e["row0"], col0=e["col0"],
+                period=tuple(e["period"]))
+    return out
+
+
+def cached_extraction(cat, build: Callable[[], tuple], *, want: str, cache_dir=None, use_cache: bool = True,
+                      options: dict | None = None):
+    """The series or the cell means of ``cat`` (``want``: "series" | "cells"), from a checked cache file, or
+    ``build()`` -> ``(series, cell means)``: one extraction gives both, and both are stored under the one
+    content key of `cached_series` (catalog text, every input file's SHA-256, options, version), so a changed
+    product file invalidates the cell means exactly as it does the series.
+    """
+    if want not in ("series", "cells"):
+        raise ValueError(f"want={want!r}: 'series' or 'cells'")
+    if not use_cache:
+        return build()[0 if want == "series" else 1]
+    root = cache_root(cache_dir)
+    check_root_for(cat, root)
+    key = inputs_digest(cat, root=root, options=options)
+    paths = {"series": root / f"series-{key}.wbxc", "cells": root / f"cells-{key}.wbxc"}
+    path = paths[want]
+    if path.exists():
+        try:
+            payload = _read_checked(path, want, key)
+            return _series_from(payload) if want == "series" else _cells_from(payload)
+        except (OSError, ValueError, KeyError, RuntimeError, EOFError, zipfile.BadZipFile) as exc:
+            _rebuilt(path, _why(exc))
+    ds, cells = build()
+    wanted = ds if want == "series" else cells
+    if inputs_digest(cat, root=root, options=options) != key:
+        warnings.warn(f"{cat.path}: an input file changed during the extraction; the series are not cached",
+                      CacheWriteWarning, stacklevel=2)
+        return wanted
+    for kind, make in (("series", lambda: _series_payload(root, ds)), ("cells", lambda: _cells_payload(cells))):
+        try:
+            payload = make()
+        except (OSError, RuntimeError) as exc:
+            warnings.warn(f"{paths[kind]}: cache file not written ({_why(exc)}); the result is used without caching",
+                          CacheWriteWarning, stacklevel=2)
+            continue
+        _store(root, paths[kind], kind, key, payload)
+    return wanted
 
 
 # --------------------------------------------------------------------------- basins (in process)

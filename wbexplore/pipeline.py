@@ -39,7 +39,7 @@ if TYPE_CHECKING:
 
 __all__ = ["extract", "load_series", "check_scheduler", "weights_for", "source_means", "CoverageWarning", "LOW_COVERAGE",
            "source_vars", "valid_var", "default_cache_dir", "load_basins", "load_incremental_basins", "warn_implausible",
-           "ImplausibleValueWarning", "flow_vars", "waterbody_series"]
+           "ImplausibleValueWarning", "flow_vars", "waterbody_series", "load_cell_means"]
 
 LOW_COVERAGE = 0.9  # warn when a grid covers less than this share of a basin
 
@@ -86,20 +86,35 @@ def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None 
                                  cache_dir=cache_dir, use_cache=use_cache)
 
 
-def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True) -> xr.Dataset:
+def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True, cells: bool = False) -> xr.Dataset:
     """Lazy basin means of one source: streamed from its stored blocks where a direct reader
     decodes it exactly (`SourceGrid.blocks`), else through its xarray/dask array.
 
     ``keep_open=False`` opens the file in every task (for workers of a distributed cluster, which
     would otherwise hold product files open after the run); locally the handles are kept until
-    `wbexplore.io.blocks.release_handles`.
+    `wbexplore.io.blocks.release_handles`. ``cells=True`` adds, from the same reads, each used cell's
+    long-term mean in the canonical unit (``cell_mean``, ``cell_months``; see `zonal_mean_blocks`).
     """
     from .spatial.zonal import zonal_mean, zonal_mean_blocks
 
+    factor = src.factor if cells else None
     if src.blocks is not None:
         blocks = src.blocks if keep_open else dataclasses.replace(src.blocks, keep_open=False)
-        return zonal_mean_blocks(blocks, weights, src.data["time"].values, month_weights=src.step_weights)
-    return zonal_mean(src.data, weights)
+        return zonal_mean_blocks(blocks, weights, src.data["time"].values, month_weights=src.step_weights,
+                                 cell_factor=factor)
+    return zonal_mean(src.data, weights, cell_factor=factor)
+
+
+def _cell_means(src: SourceGrid, w: Weights, zm: xr.Dataset) -> dict:
+    """Basin id -> `wbexplore.spatial.cells.CellMeans` of one product, from its computed reduction."""
+    from .spatial.cells import basin_cell_means
+    from .spatial.grid import describe_grid
+
+    grid = describe_grid(src.data["x"].values, src.data["y"].values, src.crs)
+    m = src.months
+    period = (f"{m[0]:%Y-%m}", f"{m[-1]:%Y-%m}") if len(m) else ("", "")
+    return basin_cell_means(grid, w, zm["cell_mean"].values, zm["cell_months"].values, source=src.spec.id,
+                            component=src.spec.component, units=src.canonical_units, period=period)
 
 
 def check_scheduler(address) -> str:
@@ -156,7 +171,7 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
             basins: list[str] | None = None, scheduler: str | None = None, workers: int | None = None,
             client=None, progress: bool = False, cache_dir: str | os.PathLike | None = None,
             use_cache: bool = True, engine: str = "auto", incremental: bool = False,
-            waterbodies: bool = False) -> xr.Dataset:
+            waterbodies: bool = False, cell_means: bool = False):
     """Every source of a catalog over every basin (or every water body), in the canonical form.
 
     Parameters
@@ -194,10 +209,16 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
         ``surface_area_km2`` (basin, time) is the surface area at the month's mean level (storage curve),
         used by ``ClosureOptions(area="surface")``. A level outside the curve leaves that month's storage
         (and surface area) empty with a `LevelOutsideCurveWarning`.
+    cell_means : bool
+        Also return, from the same single pass over each product's blocks, the long-term mean of every
+        product in each cell that touches each basin (`wbexplore.spatial.cells.CellMeans`, converted like
+        the series: mm/month for P and ET, mm for TWSA), with each cell's coverage fraction of the basin
+        (`load_cell_means` caches them with the series). Water bodies get none.
 
     Returns
     -------
-    xarray.Dataset (basin, time); see module docstring.
+    xarray.Dataset (basin, time); see module docstring. With ``cell_means=True``: ``(series, cells)``, cells as
+    basin id -> product id -> `CellMeans`.
     """
     if scheduler is not None and client is None:
         check_scheduler(scheduler)  # before any reading: a wrong address fails in seconds
@@ -209,7 +230,7 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
             raise InputError(f"{cat.path}: a water body has no incremental unit (--incremental is for nested basins)")
         return _extract_waterbodies(cat, sources=sources, ids=basins, scheduler=scheduler, workers=workers,
                                     client=client, progress=progress, cache_dir=cache_dir, use_cache=use_cache,
-                                    engine=engine)
+                                    engine=engine, cells=cell_means)
     gdf = load_incremental_basins(cat) if incremental else load_basins(cat)
     if incremental and len(gdf) == 0:
         raise InputError(f"{cat.basins.path}: field 'downstream_field': no basin has upstream basins, so there is "
@@ -227,7 +248,8 @@ def extract(catalog: Catalog | str | os.PathLike, *, sources: list[str] | None =
     basin_flows = split_flows(cat)[0]
     flows = read_flow_series(basin_flows, load_basins(cat)["area_km2"], catalog=cat.path) if basin_flows else None
     return _extract_on(cat, gdf, specs, scheduler=scheduler, workers=workers, client=client, progress=progress,
-                       cache_dir=cache_dir, use_cache=use_cache, engine=engine, incremental=incremental, flows=flows)
+                       cache_dir=cache_dir, use_cache=use_cache, engine=engine, incremental=incremental, flows=flows,
+                       cells=cell_means)
 
 
 def _extract_on(cat, gdf, specs, *, scheduler, workers, client, **kwargs) -> xr.Dataset:
@@ -244,7 +266,7 @@ def _extract_on(cat, gdf, specs, *, scheduler, workers, client, **kwargs) -> xr.
 
 
 def _extract_waterbodies(cat: Catalog, *, sources, ids, scheduler, workers, client, progress, cache_dir, use_cache,
-                         engine) -> xr.Dataset:
+                         engine, cells=False):
     """`extract(..., waterbodies=True)`: the water bodies' P and ET over their outlines, storage from levels."""
     from .io.waterbodies import read_waterbodies
 
@@ -268,11 +290,14 @@ def _extract_waterbodies(cat: Catalog, *, sources, ids, scheduler, workers, clie
     wb_flows = split_flows(cat)[1]
     flows = read_flow_series(wb_flows, wbs.outlines["area_km2"], catalog=cat.path) if wb_flows else None
     return _extract_on(cat, gdf, specs, scheduler=scheduler, workers=workers, client=client, progress=progress,
-                       cache_dir=cache_dir, use_cache=use_cache, engine=engine, flows=flows, waterbodies=wbs)
+                       cache_dir=cache_dir, use_cache=use_cache, engine=engine, flows=flows, waterbodies=wbs,
+                       cells=cells)
 
 
 def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine, incremental=False,
-             flows=None, waterbodies=None) -> xr.Dataset:
+             flows=None, waterbodies=None, cells=False):
+    """The series; with ``cells=True`` ``(series, cell means)``, the cell means as basin id -> product id ->
+    `wbexplore.spatial.cells.CellMeans` (basins only: water bodies get none)."""
     lazy = {}
     meta = {}
     remote = client is not None
@@ -293,7 +318,7 @@ def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine,
         for i in np.flatnonzero(cover < LOW_COVERAGE):
             warnings.warn(f"source {spec.id!r} covers only {cover[i]:.0%} of {noun} {str(w.basin[i])!r}",
                           CoverageWarning, stacklevel=2)
-        zm = source_means(src, w, keep_open=not remote)
+        zm = source_means(src, w, keep_open=not remote, cells=cells and waterbodies is None)
         lazy[spec.id] = zm
         meta[spec.id] = (src, w)
     try:
@@ -313,11 +338,18 @@ def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine,
         if notes:  # kept in the series: a cached series names them again when loaded (`warn_level_outside`)
             ds["levels"].attrs["level_outside_curve"] = "\n".join(dict.fromkeys(notes))
         warn_level_outside(ds)
-        return ds
+        return (ds, {}) if cells else ds
     ds, _ = screen_implausible(_assemble(cat, gdf, specs, computed, meta, incremental=incremental,
                                                 flows=flows))
     warn_implausible(ds)
-    return ds
+    if not cells:
+        return ds
+    by_basin: dict = {str(b): {} for b in gdf.index}
+    for spec in specs:
+        src, w = meta[spec.id]
+        for b, cm in _cell_means(src, w, computed[spec.id]).items():
+            by_basin[b][spec.id] = cm
+    return ds, by_basin
 
 
 def warn_implausible(ds: xr.Dataset) -> None:
@@ -650,22 +682,48 @@ def load_series(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.Pat
     ``waterbodies=True`` (the water bodies' series) and ``incremental=True`` are part of the key."""
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
     # options that change the result are part of the key; scheduler, workers, client do not
+    options = _series_options(kwargs)
+    built = []
+
+    def build():
+        built.append(True)  # extract warns of implausible values itself
+        return extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, cell_means=True, **kwargs)
+
+    ds = _cache.cached_extraction(cat, build, want="series", cache_dir=cache_dir, use_cache=use_cache,
+                                  options=options)
+    if not built:
+        warn_implausible(ds)  # a cache hit names the masked values again, from their attributes
+        warn_level_outside(ds)
+    return ds
+
+
+def _series_options(kwargs: dict) -> dict:
+    """The options of `load_series` that change its result (the cache key's part)."""
     options = {"sources": kwargs.get("sources"), "basins": kwargs.get("basins"), "engine": kwargs.get("engine", "auto")}
     if kwargs.get("incremental"):
         options["incremental"] = True  # other polygons, other series (the weights key has the geometries)
     if kwargs.get("waterbodies"):
         options["waterbodies"] = True  # the water bodies' series: other polygons, other terms
-    built = []
+    return options
+
+
+def load_cell_means(catalog: Catalog | str | os.PathLike, *, cache_dir: str | os.PathLike | None = None,
+                    use_cache: bool = True, progress: bool = False, **kwargs) -> dict:
+    """The per-cell long-term means of every product over the cells touching each basin, as `load_series`
+    caches them beside the series (same key, same options; one extraction makes both).
+
+    Returns
+    -------
+    dict
+        Basin id -> product id -> `wbexplore.spatial.cells.CellMeans` (mm/month for P and ET, mm for TWSA).
+    """
+    cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
 
     def build():
-        built.append(True)  # extract warns of implausible values itself
-        return extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, **kwargs)
+        return extract(cat, cache_dir=cache_dir, use_cache=use_cache, progress=progress, cell_means=True, **kwargs)
 
-    ds = _cache.cached_series(cat, build, cache_dir=cache_dir, use_cache=use_cache, options=options)
-    if not built:
-        warn_implausible(ds)  # a cache hit names the masked values again, from their attributes
-        warn_level_outside(ds)
-    return ds
+    return _cache.cached_extraction(cat, build, want="cells", cache_dir=cache_dir, use_cache=use_cache,
+                                    options=_series_options(kwargs))
 
 
 def waterbody_series(catalog: Catalog | str | os.PathLike, *, method: str = "central") -> xr.Dataset:

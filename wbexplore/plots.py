@@ -46,6 +46,7 @@ __all__ = [
     "basin_map",
     "basin_outlines",
     "component_bars",
+    "disagreement_map",
     "exchange_series",
     "level_volume",
     "multi_basin",
@@ -694,6 +695,110 @@ class LevelVolumePlot(_Plot):
         self.out.data = {"x0": np.array(x0, dtype="datetime64[ns]"), "x1": np.array(x1, dtype="datetime64[ns]")}
         what = f"{name}: " if name else ""
         self.fig.title.text = f"{what}level and volume (grey: outside the period)"
+
+
+def _cell_patches(cm, values) -> dict:
+    """Columns of a Patches source for the touched cells of a `CellMeans`: corners, value, coverage."""
+    t = cm.touched
+    lon, lat = cm.lon[t], cm.lat[t]
+    cov = cm.coverage[t]
+    return {"xs": [list(r) for r in lon], "ys": [list(r) for r in lat], "value": values[t].astype(float),
+            "mean": cm.mean[t].astype(float), "coverage_pct": 100.0 * cov, "months": cm.months[t].astype(int),
+            # fully covered cells opaque, a cell 10% inside the basin faint: alpha by coverage fraction
+            "alpha": 0.25 + 0.7 * cov}
+
+
+def disagreement_map(cells: dict, outlines: Outlines | None = None, *, basin: str, component: str,
+                     labels: dict | None = None, panel_width: int = 240, height: int = 240):
+    """Where the products of one component disagree in one basin: per product, its long-term mean in each
+    cell (top row, one colour scale shared by all products) and its difference from the mean of the other
+    products (bottom row, a diverging scale centred on zero, symmetric), over the basin outline.
+
+    Each cell's opacity is its coverage fraction of the basin (a cell half inside is half transparent);
+    hover shows the value, the coverage in percent and the months behind the mean.
+
+    Parameters
+    ----------
+    cells : dict
+        Product id -> `wbexplore.spatial.cells.CellMeans` of ``basin`` (products of other components are
+        left out), e.g. ``load_cell_means(catalog)[basin]``.
+    outlines : Outlines, optional
+        Basin outlines (`basin_outlines`); ``basin``'s parts are drawn.
+    basin, component : str
+        The basin id and the component (P, ET or TWSA).
+    labels : dict, optional
+        Product id -> display label (default: the id).
+    panel_width, height : int
+        Size of each panel in pixels.
+
+    Returns
+    -------
+    bokeh.models.GridPlot
+        Two rows of one panel per product (``len(children) == 2 * products``); empty text when the
+        component has no product with cell means.
+    """
+    from bokeh.layouts import gridplot
+    from bokeh.models import ColorBar, ColumnDataSource, Div, HoverTool, LinearColorMapper, Patches
+    from bokeh.palettes import RdBu11, Viridis256
+
+    from .names import TERM_NAMES, term_units
+    from .spatial.cells import difference_from_others
+
+    chosen = {s: cm for s, cm in cells.items() if cm.component == component}
+    name = TERM_NAMES[component].name if component in TERM_NAMES else component
+    units = term_units(component)
+    if not chosen:
+        return Div(text=f"No {name} product has cell means for basin {basin}.")
+    labels = labels or {}
+    diffs = difference_from_others(chosen)
+    finite = np.concatenate([cm.mean[cm.touched] for cm in chosen.values()])
+    finite = finite[np.isfinite(finite)]
+    lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
+    mean_mapper = LinearColorMapper(palette=Viridis256, low=lo, high=hi if hi > lo else lo + 1.0,
+                                    nan_color="#d9d9d9")
+    dvals = np.concatenate([d[chosen[s].touched] for s, d in diffs.items()])
+    m = float(np.nanmax(np.abs(dvals))) if np.isfinite(dvals).any() else 1.0
+    m = m if m > 0 else 1.0
+    # RdBu runs red to blue: red where a product has less than the others, blue where it has more
+    diff_mapper = LinearColorMapper(palette=list(RdBu11), low=-m, high=m, nan_color="#d9d9d9")
+    if outlines is not None:
+        parts = [i for i, b in enumerate(outlines.basin) if b == basin]
+        o_xs = [list(outlines.xs[i]) for i in parts]
+        o_ys = [list(outlines.ys[i]) for i in parts]
+    else:
+        o_xs = o_ys = []
+    top, bottom = [], []
+    x_range = y_range = None
+    for row, mapper, what in ((top, mean_mapper, "mean"), (bottom, diff_mapper, "difference")):
+        for s, cm in chosen.items():
+            label = labels.get(s, s)
+            values = cm.mean if what == "mean" else diffs[s]
+            title = (f"{label}: mean {cm.period[0]}..{cm.period[1]}" if what == "mean"
+                     else f"{label} minus mean of the others")
+            kw = {"x_range": x_range, "y_range": y_range} if x_range is not None else {}
+            fig = _figure(width=panel_width, height=height, match_aspect=True, title=title, **kw)
+            x_range, y_range = fig.x_range, fig.y_range
+            src = ColumnDataSource(_cell_patches(cm, values))
+            glyph = Patches(xs="xs", ys="ys", fill_color={"field": "value", "transform": mapper},
+                            fill_alpha={"field": "alpha"}, line_color="white", line_width=0.3)
+            r = _add(fig, glyph, src)
+            if o_xs:
+                fig.patches(o_xs, o_ys, fill_alpha=0.0, line_color="black", line_width=2)
+            value_name = (f"{name} mean ({units})" if what == "mean"
+                          else f"difference from the others ({units})")
+            fig.add_tools(HoverTool(renderers=[r], tooltips=[(value_name, "@value{0.0}"),
+                                                             (f"product mean ({units})", "@mean{0.0}"),
+                                                             ("share of cell in basin (%)", "@coverage_pct{0}"),
+                                                             ("months", "@months")]))
+            fig.xaxis.axis_label = "longitude (deg E)"
+            fig.yaxis.axis_label = "latitude (deg N)"
+            row.append(fig)
+        title = f"{name} long-term mean ({units})" if what == "mean" else f"difference from the others ({units})"
+        row[-1].add_layout(ColorBar(color_mapper=mapper, title=title, width=10), "right")
+        row[-1].width = panel_width + 90
+    grid = gridplot([top, bottom], toolbar_location="right", merge_tools=True)
+    grid.name = f"disagreement {basin} {component}"
+    return grid
 
 
 # One-shot figures (the report, notebooks, tests): build, fill once, return the bokeh figure.

@@ -78,10 +78,11 @@ class Explorer:
     """
 
     def __init__(self, state: ClosureState, *, export_dir: str | os.PathLike | None = None,
-                 outlines: plots.Outlines | None = None):
+                 outlines: plots.Outlines | None = None, cell_means: dict | None = None):
         import panel as pn
 
         self.state = state
+        self.cell_means = cell_means or {}  # basin -> product -> CellMeans (`pipeline.load_cell_means`)
         self._layout = None
         self.outlines = plots.basin_outlines(state.basins) if outlines is None else outlines
         s = state
@@ -341,6 +342,29 @@ class Explorer:
 
         return self._view(m, draw, _MAP_DEPS, "wbx-map")
 
+    def _disagreement(self):
+        """Where the products of one component disagree in the basin: `plots.disagreement_map` of the cell means
+        the extraction cached with the series, redrawn when the basin or the chooser's component changes."""
+        import panel as pn
+
+        from ..names import TERM_NAMES
+
+        s = self.state
+        chooser = pn.widgets.RadioButtonGroup(name="Map of", options={TERM_NAMES[c].name: c for c in SOURCE_COMPONENTS},
+                                              value=SOURCE_COMPONENTS[0], css_classes=["wbx-disagree-component"])
+        pane = pn.pane.Bokeh(sizing_mode="stretch_width", css_classes=["wbx-disagree"])
+
+        def draw(*events):
+            pane.object = plots.disagreement_map(self.cell_means.get(s.basin, {}), self.outlines, basin=s.basin,
+                                                 component=chooser.value, labels=dict(s.labels))
+
+        draw()
+        s.param.watch(draw, "basin")
+        chooser.param.watch(draw, "value")
+        return pn.Column(pn.pane.Markdown("### Where the products disagree in this basin (cell by cell, whole basin; "
+                                          "opacity: share of the cell inside the basin)"),
+                         chooser, pane, sizing_mode="stretch_width")
+
     def _waterbody_views(self, summary, warn, resid, scatter):
         """The water body's views (unmeasured exchange, level and volume) and which views show for which kind:
         a water body has no gauged outlet (no Q scatter) and its residual is the unmeasured exchange."""
@@ -415,6 +439,7 @@ class Explorer:
                    sizing_mode="stretch_width"),
             resid, exchange,
             pn.Row(scatter, levels, multi, sizing_mode="stretch_width"),
+            self._disagreement(),
             pn.pane.Markdown("### Every combination for this basin and period (click a row to select it)"),
             self._table_box,
             sizing_mode="stretch_width")
@@ -509,7 +534,19 @@ def explore(catalog_or_path, *, cache_dir=None, export_dir=None):
         state = load_state(catalog_or_path, cache_dir=cache_dir)
     except InputError as exc:
         return _error_page(str(exc), _study_dir(catalog_or_path))
-    return Explorer(state, export_dir=export_dir)
+    return Explorer(state, export_dir=export_dir, cell_means=_cell_means_of(catalog_or_path, cache_dir))
+
+
+def _cell_means_of(catalog, cache_dir=None) -> dict:
+    """The cell means the extraction cached with the series (`pipeline.load_cell_means`); none for series given
+    as a Dataset."""
+    if hasattr(catalog, "data_vars"):
+        return {}
+    from ..pipeline import CoverageWarning, load_cell_means
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", CoverageWarning)
+        return load_cell_means(catalog, cache_dir=cache_dir)
 
 
 def _study_dir(catalog) -> Path | None:
@@ -540,9 +577,10 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
         err = None
     except InputError as exc:
         base, err = None, str(exc)
-    outlines = None
+    outlines = cells = None
     if base is not None:
         outlines = plots.basin_outlines(base.basins)
+        cells = _cell_means_of(catalog, cache_dir)
         base.view_data()  # the first page's results, computed before anyone waits for them
 
     def page():
@@ -554,7 +592,7 @@ def serve(catalog, *, port: int = 5006, address: str = "127.0.0.1", show: bool =
                           waterbody_series=base.waterbody_series, waterbody_levels=base.waterbody_levels,
                           waterbodies=base.waterbodies,
                           catalog_path=base.catalog_path, title=base.title, memo=base._memo)
-        return Explorer(st, export_dir=out_dir, outlines=outlines).panel()
+        return Explorer(st, export_dir=out_dir, outlines=outlines, cell_means=cells).panel()
 
     print(f"wbexplore explorer on http://{address}:{port}/  (Ctrl+C to stop); exports go to "
           f"{out_dir}", flush=True)

@@ -162,16 +162,28 @@ def _aligned(sl: slice, block: int, n: int) -> tuple[int, int]:
     return sl.start // block * block, min(n, -(-sl.stop // block) * block)
 
 
-def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub) -> np.ndarray:
+def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub, factor=None):
     """One streaming task: read raw blocks of ``sub`` time steps and accumulate each while it is
-    still in cache; only the (t, basins, 2) sums leave the task."""
+    still in cache; only the (t, basins, 2) sums leave the task.
+
+    ``factor`` (per stored month, canonical unit): also the (cells, 3) per-cell sums of `_kernel.cell_sums`
+    of the strip's cells, from the same reads; the task then returns ``(sums, cell sums)``."""
+    from ._kernel import _TB, accumulate_with_cells
+
     out = np.empty((t1 - t0, args[-1], 2))
+    # one (tiles, cells, 3) array for every read of the task: the kernel adds into it in place
+    cell = None if factor is None else np.zeros((-(-min(sub, t1 - t0) // _TB), args[0].size, 3))
+    mask = getattr(reader, "mask_args", {})
     for s0 in range(t0, t1, sub):
         s1 = min(t1, s0 + sub)
         X = reader.read(s0, s1, r0, r1, c0, c1)
-        out[s0 - t0:s1 - t0] = _accumulate_raw(X.reshape(X.shape[0], -1), args, reader.fill,
-                                               getattr(reader, "mask_args", {}))
-    return out
+        X2 = X.reshape(X.shape[0], -1)
+        if cell is None:
+            out[s0 - t0:s1 - t0] = _accumulate_raw(X2, args, reader.fill, mask)
+        else:  # the cell sums in the same kernel pass (each value read once)
+            out[s0 - t0:s1 - t0] = accumulate_with_cells(X2, args, factor[s0:s1], reader.fill, **mask,
+                                                         cell=cell)[0]
+    return out if cell is None else (out, cell.sum(axis=0) if cell.shape[0] > 1 else cell[0])
 
 
 def _accumulate_raw(X2, args, nodata, mask: dict | None = None) -> np.ndarray:
@@ -258,26 +270,44 @@ def _plan_months(plan) -> int:
     return plan[-1][1] - plan[0][0]
 
 
-def _read_accumulate_months(reader, t0, t1, r0, r1, c0, c1, args, plan) -> np.ndarray:
+def _read_accumulate_months(reader, t0, t1, r0, r1, c0, c1, args, plan, factor=None):
     """One streaming task of sub-monthly steps: read the periods of whole months and form each cell's
-    monthly values while they are in cache; only the (months, basins, 2) sums leave the task."""
+    monthly values while they are in cache; only the (months, basins, 2) sums leave the task.
+
+    ``factor`` (per month, canonical unit): also the per-cell sums of each valid monthly value, formed in
+    the same kernel call (`_kernel.accumulate_months`); the task then returns ``(sums, cell sums)``."""
     from ._kernel import accumulate_months
 
     m_first = plan[0][0]
     out = np.empty((_plan_months(plan), args[-1], 2))
+    cell = None if factor is None else np.zeros((args[0].size, 3))
     mask = getattr(reader, "mask_args", {})
     for a, b, q0, q1, w, s0, s1 in plan:
         if q1 > q0:
             X = reader.read(q0, q1, r0, r1, c0, c1)
-            out[a - m_first:b - m_first] = accumulate_months(X.reshape(X.shape[0], -1), args, w, s0, s1,
-                                                             reader.fill, **mask)
+            out[a - m_first:b - m_first] = accumulate_months(
+                X.reshape(X.shape[0], -1), args, w, s0, s1, reader.fill, **mask, cell=cell,
+                factor=None if factor is None else factor[a:b])
         else:
             out[a - m_first:b - m_first] = 0.0  # incomplete months only
-    return out
+    return out if cell is None else (out, cell)
+
+
+def _finish_cells(parts, los, n_used, scale, offset) -> np.ndarray:
+    """(2, used cells) of [long-term mean in the canonical unit, valid months] from the per-cell sums of every
+    task (``parts``: per task, one (cells, 3) array per strip; ``los``: each strip's first used cell)."""
+    acc = np.zeros((n_used, 3))
+    for task in parts:
+        for lo, p in zip(los, task):
+            acc[lo:lo + p.shape[0]] += p
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(acc[:, 2] > 0, (scale * acc[:, 0] + offset * acc[:, 1]) / acc[:, 2], np.nan)
+    return np.stack([mean, acc[:, 2]])
 
 
 def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarray | None = None,
-                      task_bytes: int = TASK_BYTES, read_bytes: int = READ_BYTES) -> xr.Dataset:
+                      task_bytes: int = TASK_BYTES, read_bytes: int = READ_BYTES,
+                      cell_factor: np.ndarray | None = None) -> xr.Dataset:
     """`zonal_mean` straight from a `wbexplore.io.blocks.BlockReader` (lazy, like the dask path).
 
     Each dask task reads one block of stored values (a run of time steps, whole rows of the
@@ -294,7 +324,14 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarr
     basin's other cells. Tasks and the reads inside them hold whole months: a period that spans two
     months at a task boundary (a composite) is read by both tasks, and no month is ever split, so
     its sums and its valid fraction never depend on where the tasks are cut.
+
+    ``cell_factor`` (one per month of ``time``: decoded monthly value -> canonical unit, e.g. mm/day ->
+    mm/month) adds one more reduction to the same reads: each used cell's long-term mean over its valid
+    months, in the canonical unit (``cell_mean``, dim ``cell`` in the order of `Weights.window`), and the
+    number of those months (``cell_months``). The basin sums are computed exactly as without it.
     """
+    import operator
+
     import dask.array as dsa
 
     nt, ny, nx = reader.shape
@@ -340,14 +377,28 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarr
     else:
         tasks = _month_tasks(month_weights, steps, sub)
         n_out = len(time)
+    cells = cell_factor is not None
+    if cells:
+        cell_factor = np.asarray(cell_factor, np.float64)
+        if cell_factor.shape != (n_out,):
+            raise ValueError(f"{cell_factor.size} cell factors for {n_out} months")
     parts = []
+    cell_parts = []
     for j, (t0, t1, plan) in enumerate(tasks):
         keys = []
+        task_cells = []
         for i, (r0, r1, c0, c1, _) in enumerate(strips):
             k = (name + "-part", j, i)
             fn = _read_accumulate if month_weights is None else _read_accumulate_months
-            dsk[k] = (fn, (name + "-reader",), t0, t1, r0, r1, c0, c1, (name + "-weights", i), plan)
+            dsk[k] = (fn, (name + "-reader",), t0, t1, r0, r1, c0, c1, (name + "-weights", i), plan,
+                      *((cell_factor,) if cells else ()))
+            if cells:  # the task returns (basin sums, cell sums)
+                dsk[(name + "-cells", j, i)] = (operator.getitem, k, 1)
+                task_cells.append((name + "-cells", j, i))
+                dsk[(name + "-basins", j, i)] = (operator.getitem, k, 0)
+                k = (name + "-basins", j, i)
             keys.append(k)
+        cell_parts.append(task_cells)
         if not keys:
             parts.append(np.zeros((t1 - t0 if month_weights is None else _plan_months(plan), nb, 2)))
         elif len(keys) == 1:
@@ -362,8 +413,19 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarr
                             float(reader.scale), offset)
     stacked = dsa.Array(dsk, name, chunks=((2,), (nb,), (n_out,)), dtype=np.float64)
     coords = {"basin": weights.basin, "time": np.asarray(time)}
-    return xr.Dataset({"mean": (("basin", "time"), stacked[0]), "valid_fraction": (("basin", "time"), stacked[1])},
-                      coords)
+    out = xr.Dataset({"mean": (("basin", "time"), stacked[0]), "valid_fraction": (("basin", "time"), stacked[1])},
+                     coords)
+    if cells:
+        r_used, _ = weights.used_rows_cols()
+        los = [int(np.searchsorted(r_used, st[0])) for st in strips]
+        cname = name + "-cellmeans"
+        cdsk = dict(dsk)
+        cdsk[(cname, 0, 0)] = (_finish_cells, cell_parts, los, int(r_used.size), float(reader.scale),
+                               float(reader.offset))
+        cstack = dsa.Array(cdsk, cname, chunks=((2,), (int(r_used.size),)), dtype=np.float64)
+        out["cell_mean"] = ("cell", cstack[0])
+        out["cell_months"] = ("cell", cstack[1])
+    return out
 
 
 def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray, args: tuple | None = None) -> np.ndarray:
@@ -425,12 +487,26 @@ def _finish_parts(parts, covered, gc) -> np.ndarray:
     return np.stack([mean, vf])
 
 
-def zonal_mean(data: xr.DataArray, weights: Weights) -> xr.Dataset:
+def _cell_means_array(arr, used: np.ndarray, factor: np.ndarray, xp):
+    """(2, used cells): long-term mean of ``arr`` (time, wy, wx) x ``factor`` (per month) over each cell's
+    valid months, and their number; ``xp`` is numpy or dask.array (then lazy, on the same chunks)."""
+    t = arr.shape[0]
+    flat = arr.reshape(t, -1)[:, used]
+    valid = ~xp.isnan(flat)
+    s = xp.where(valid, flat * factor[:, None], 0.0).sum(axis=0)
+    n = valid.sum(axis=0).astype(np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = xp.where(n > 0, s / xp.where(n > 0, n, 1.0), np.nan)
+    return xp.stack([mean, n])
+
+
+def zonal_mean(data: xr.DataArray, weights: Weights, *, cell_factor: np.ndarray | None = None) -> xr.Dataset:
     """Area-weighted, NaN-aware basin means of ``data`` (dims ``time, y, x``; numpy or dask).
 
     Returns a Dataset with ``mean`` and ``valid_fraction`` (dims ``basin, time``).
     With dask input the result is lazy: call ``.compute()`` (locally or on a
-    distributed client).
+    distributed client). ``cell_factor``: also ``cell_mean`` and ``cell_months`` (dim ``cell``), as in
+    `zonal_mean_blocks`, from the same chunks.
     """
     if data.dims != ("time", "y", "x"):
         data = data.transpose("time", "y", "x")
@@ -447,9 +523,16 @@ def zonal_mean(data: xr.DataArray, weights: Weights) -> xr.Dataset:
     except ImportError:  # pragma: no cover
         is_dask = False
     coords = {"basin": weights.basin, "time": data["time"].values}
+    if cell_factor is not None:
+        cell_factor = np.asarray(cell_factor, np.float64)
     if not is_dask:
-        mean, vf = _finish(_block(np.asarray(arr), wu_t, used, weights.window_args()), weights)
-        return xr.Dataset({"mean": (("basin", "time"), mean), "valid_fraction": (("basin", "time"), vf)}, coords)
+        X = np.asarray(arr)
+        mean, vf = _finish(_block(X, wu_t, used, weights.window_args()), weights)
+        out = xr.Dataset({"mean": (("basin", "time"), mean), "valid_fraction": (("basin", "time"), vf)}, coords)
+        if cell_factor is not None:
+            cm = _cell_means_array(X.astype(np.float64, copy=False), used, cell_factor, np)
+            out["cell_mean"], out["cell_months"] = ("cell", cm[0]), ("cell", cm[1])
+        return out
     import dask
     import dask.array as dsa
 
@@ -465,4 +548,8 @@ def zonal_mean(data: xr.DataArray, weights: Weights) -> xr.Dataset:
     nt = int(sum(arr.chunks[0]))
     stacked = dsa.from_delayed(both, shape=(2, nb, nt), dtype=np.float64)
     mean, vf = stacked[0], stacked[1]
-    return xr.Dataset({"mean": (("basin", "time"), mean), "valid_fraction": (("basin", "time"), vf)}, coords)
+    out = xr.Dataset({"mean": (("basin", "time"), mean), "valid_fraction": (("basin", "time"), vf)}, coords)
+    if cell_factor is not None:  # the same chunk keys as the basin sums: each chunk is read once
+        cm = _cell_means_array(arr.astype(np.float64), used, cell_factor, dsa)
+        out["cell_mean"], out["cell_months"] = ("cell", cm[0]), ("cell", cm[1])
+    return out
