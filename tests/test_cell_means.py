@@ -260,6 +260,10 @@ def test_disagreement_map_one_panel_per_product_and_a_symmetric_diverging_scale(
     assert len(bars) == 2
     diff = bars[1].color_mapper
     assert diff.low == -diff.high and diff.high > 0  # centred on zero
+    # less than the others is red (the low end), more is blue: bokeh lists RdBu11 from dark blue to dark red
+    from bokeh.palettes import RdBu11
+
+    assert diff.palette[0] == RdBu11[-1] and diff.palette[-1] == RdBu11[0]
     assert len(diff.palette) % 2 == 1  # an odd diverging palette: its middle colour sits at zero
     assert TERM_NAMES["P"].name in bars[0].title and "mm/month" in bars[0].title
     # each panel: the touched cells, coloured and with opacity by coverage, plus the basin outline

@@ -328,3 +328,16 @@ def test_report_prints_on_one_page(basin_report, report_text, tmp_path, artifact
                 pg.close()
         finally:
             b.close()
+
+
+def test_report_map_colours_by_a_metric_that_compares_across_basins(basin_report):
+    """Ranked by RMSE (the default), the report's map colours by KGE like the explorer's (`names.map_metric`; an
+    absolute RMSE makes the basins with the smallest flows look best) and says so (`names.map_note`); found by
+    review: the report's map kept the best RMSE."""
+    from wbexplore.names import map_metric, map_note, metric_name
+
+    _, raw, text = basin_report
+    assert map_metric("rmse") == "kge"
+    assert f"Basins by best {metric_name('kge')}" in text
+    assert f"Basins by best {metric_name('rmse')}" not in text
+    assert map_note("rmse").splitlines()[0] in text

@@ -293,3 +293,19 @@ def test_core_import_does_not_pull_widgets():
             "print(bad); sys.exit(1 if bad else 0)")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert r.returncode == 0, r.stdout + r.stderr
+
+
+def test_a_flow_without_its_recorded_digest_is_a_difference(study, tmp_path, capsys):
+    """A selection file whose provenance lacks a flow's station table cannot vouch for it: replay names it (as it
+    does a product whose files were not recorded) instead of skipping it (found by review)."""
+    out = tmp_path / "sel.yaml"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["export", str(study / "catalog.yaml"), "--basin", "VEL", "--P", "heron", "--ET", "tansy",
+                     "--TWSA", "quarry", "--out", str(out)]) == 0
+    doc = yaml.safe_load(out.read_text())
+    assert "irrigation" in doc["provenance"]["flows"]
+    del doc["provenance"]["flows"]["irrigation"]
+    out.write_text(yaml.safe_dump(doc, sort_keys=False))
+    rc, cap = _replay(out, capsys)
+    assert rc == 1 and re.search(r"flow irrigation .*its station table was not recorded", cap.out), cap.out

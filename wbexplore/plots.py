@@ -759,8 +759,9 @@ def disagreement_map(cells: dict, outlines: Outlines | None = None, *, basin: st
     dvals = np.concatenate([d[chosen[s].touched] for s, d in diffs.items()])
     m = float(np.nanmax(np.abs(dvals))) if np.isfinite(dvals).any() else 1.0
     m = m if m > 0 else 1.0
-    # RdBu runs red to blue: red where a product has less than the others, blue where it has more
-    diff_mapper = LinearColorMapper(palette=list(RdBu11), low=-m, high=m, nan_color="#d9d9d9")
+    # bokeh's RdBu11 runs from dark blue to dark red: reversed, so that the low end (a product with less than the
+    # others) is red and the high end (more) blue
+    diff_mapper = LinearColorMapper(palette=list(RdBu11)[::-1], low=-m, high=m, nan_color="#d9d9d9")
     if outlines is not None:
         parts = [i for i, b in enumerate(outlines.basin) if b == basin]
         o_xs = [list(outlines.xs[i]) for i in parts]

@@ -32,6 +32,7 @@ from .names import (
     OPTIONS,
     REPORT_NAMES,
     column_label,
+    map_metric,
     metric_label,
     metric_name,
 )
@@ -303,9 +304,11 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
     from .texts import warnings_for
 
     incremental = ds.attrs.get("unit") == "incremental"
-    best = rank_all(ds, sel.options(), by=by)
-    scores = best[best["rank"] == 1].set_index("basin")[by] if len(best) else pd.Series(dtype=float)
-    figs = [plots.basin_map(load_basins(cat), scores, sel.basin, by, title=f"Basins by best {metric_name(by)}"),
+    shown = map_metric(by)  # a depth metric (RMSE) would make the smallest flows look best: the map says which
+    best = rank_all(ds, sel.options(), by=shown)
+    scores = best[best["rank"] == 1].set_index("basin")[shown] if len(best) else pd.Series(dtype=float)
+    figs = [plots.basin_map(load_basins(cat), scores, sel.basin, shown, title=f"Basins by best {metric_name(shown)}",
+                            rank_by=by),
             plots.component_bars(res), plots.residual_series(res), plots.balance_scatter(res)]
     unit = ""
     if incremental:

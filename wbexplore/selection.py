@@ -690,6 +690,8 @@ def replay(path, *, cache_dir=None) -> dict:
             continue
         elif old.get("file"):
             check([old["file"]], [_flow_path(cat, fid)], f"flow {fid}")
+        elif prov is not None and fid not in flow_digests:
+            rows.append((f"flow {fid}", "(not recorded)", "its station table was not recorded"))
         elif fid in flow_digests:
             check_digest(flow_digests[fid], [_flow_path(cat, fid)], f"flow {fid}")
     new = _clean_metrics(res.metrics)
