@@ -255,7 +255,7 @@ def test_disagreement_map_one_panel_per_product_and_a_symmetric_diverging_scale(
     assert len(figs) == 2 * 3  # a mean and a difference panel for each of the three P products
     titles = [f.title.text for f in figs]
     assert titles[0].startswith("Rain A: mean 2003-01..2005-02")
-    assert sum("minus mean of the others" in t for t in titles) == 3
+    assert sum("minus others' mean" in t for t in titles) == 3
     bars = [r for f in figs for r in f.right if isinstance(r, ColorBar)]
     assert len(bars) == 2
     diff = bars[1].color_mapper
@@ -287,20 +287,31 @@ def test_explorer_map_follows_basin_and_component(demo_dir):
         warnings.simplefilter("ignore")
         app = explore(demo_dir / "catalog.yaml")
         cells = load_cell_means(demo_dir / "catalog.yaml")
-    app.panel()
-    col = app._disagreement()
-    chooser, pane = col[1], col[2]
+    page = app.panel()
+    section = next(iter(page.select(lambda o: "wbx-disagree-show" in getattr(o, "css_classes", []))))
+    assert not list(page.select(lambda o: "wbx-disagree" in getattr(o, "css_classes", [])))  # not drawn yet
+    section.clicks += 1  # as a click would: the maps are drawn on the first one
+    chooser = next(iter(page.select(lambda o: "wbx-disagree-component" in getattr(o, "css_classes", []))))
+    pane = next(iter(page.select(lambda o: "wbx-disagree" in getattr(o, "css_classes", []))))
 
     def products(comp, basin):
         return [s for s, cm in cells[basin].items() if cm.component == comp]
 
+    def titles():  # each panel is its own pane in a panel grid, a row per kind (means, differences)
+        return [o.object.title.text for o in pane.objects]
+
     basin = app.state.basin
-    assert len(pane.object.children) == 2 * len(products("P", basin))
+    assert len(pane.objects) == 2 * len(products("P", basin)) and pane.ncols == len(products("P", basin))
     chooser.value = "TWSA"
-    assert len(pane.object.children) == 2 * len(products("TWSA", basin))
+    assert len(pane.objects) == 2 * len(products("TWSA", basin))
+    assert sum("minus others' mean" in t for t in titles()) == len(products("TWSA", basin))
     other = [b for b in cells if b != basin][0]
     app.state.basin = other
-    assert pane.object.name == f"disagreement {other} TWSA"
+    assert len(pane.objects) == 2 * len(products("TWSA", other))
+    # the other basin's own cells: each mean panel draws as many cells as that basin's product touches
+    drawn = [len(r.data_source.data["xs"]) for o in pane.objects[:pane.ncols] for r in o.object.renderers
+             if "alpha" in r.data_source.data]
+    assert sorted(drawn) == sorted(int(cells[other][p].touched.sum()) for p in products("TWSA", other))
 
 
 @pytest.mark.parametrize("nt", [5, 40, 70])  # one tile, and several (32 steps a tile)

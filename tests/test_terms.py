@@ -207,7 +207,7 @@ def test_selection_file_records_flows_and_refuses_a_bad_one(tmp_path):
     from types import SimpleNamespace
 
     from wbexplore.errors import SelectionError
-    from wbexplore.selection import _flow_entries, _validate
+    from wbexplore.selection import _flow_entries, _validate, files_digest
 
     ds, _ = synthetic_series()
     res = compute_selection(ds, Selection("B0", "P0", "ET0", "TWSA0"), min_valid=12)
@@ -216,8 +216,11 @@ def test_selection_file_records_flows_and_refuses_a_bad_one(tmp_path):
     cat = SimpleNamespace(path=tmp_path / "catalog.yaml", flows=[SimpleNamespace(id="up", path=table)])
     entries = _flow_entries(cat, res)
     assert [(e["id"], e["direction"]) for e in entries] == [("up", "in"), ("irr", "out")]
-    assert entries[0]["file"] == {"path": "gauges.csv", "sha256": hashlib.sha256(table.read_bytes()).hexdigest()}
-    assert "file" not in entries[1]
+    # the station table's digest lives in the file's provenance block (one entry per flow, `files_digest`):
+    # sha256sum's line for the file, hashed again (hashlib as the outside reference)
+    assert all("file" not in e for e in entries)
+    line = f"{hashlib.sha256(table.read_bytes()).hexdigest()}  gauges.csv\n"
+    assert files_digest([table], tmp_path) == {"files": 1, "sha256": hashlib.sha256(line.encode()).hexdigest()}
     doc = {"wbexplore_selection": 1, "catalog": {"path": "catalog.yaml", "sha256": "0" * 64}, "basin": {"id": "B0"},
            "period": {"start": "2001-01", "end": "2008-12"},
            "sources": {c: {"id": f"{c}0", "files": []} for c in ("P", "ET", "TWSA")},

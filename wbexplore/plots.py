@@ -773,9 +773,10 @@ def disagreement_map(cells: dict, outlines: Outlines | None = None, *, basin: st
     for row, mapper, what in ((top, mean_mapper, "mean"), (bottom, diff_mapper, "difference")):
         for s, cm in chosen.items():
             label = labels.get(s, s)
+            label = label if len(label) <= 12 else s  # a panel is 240 px: longer titles were cut off
             values = cm.mean if what == "mean" else diffs[s]
             title = (f"{label}: mean {cm.period[0]}..{cm.period[1]}" if what == "mean"
-                     else f"{label} minus mean of the others")
+                     else f"{label} minus others' mean")
             kw = {"x_range": x_range, "y_range": y_range} if x_range is not None else {}
             fig = _figure(width=panel_width, height=height, match_aspect=True, title=title, **kw)
             x_range, y_range = fig.x_range, fig.y_range

@@ -358,18 +358,43 @@ class Explorer:
         s = self.state
         chooser = pn.widgets.RadioButtonGroup(name="Map of", options={TERM_NAMES[c].name: c for c in SOURCE_COMPONENTS},
                                               value=SOURCE_COMPONENTS[0], css_classes=["wbx-disagree-component"])
-        pane = pn.pane.Bokeh(sizing_mode="stretch_width", css_classes=["wbx-disagree"])
+        # each panel its own pane in a panel grid: the bokeh grid of the same figures, placed on this page, drew
+        # every panel as an empty frame a few pixels wide (seen in headless chromium; alone on a page it drew well)
+        pane = pn.GridBox(ncols=1, css_classes=["wbx-disagree"])
 
         def draw(*events):
-            pane.object = plots.disagreement_map(self.cell_means.get(s.basin, {}), self.outlines, basin=s.basin,
-                                                 component=chooser.value, labels=dict(s.labels))
+            grid = plots.disagreement_map(self.cell_means.get(s.basin, {}), self.outlines, basin=s.basin,
+                                          component=chooser.value, labels=dict(s.labels))
+            children = getattr(grid, "children", None)
+            if not children:  # a one-line message (no product of the component for this basin)
+                pane.ncols, pane.objects = 1, [pn.pane.Bokeh(grid)]
+                return
+            for fig, _, _ in children:
+                fig.toolbar_location = None  # the hover stays; one toolbar per panel would crowd the grid
+            pane.ncols = 1 + max(c for _, _, c in children)
+            pane.objects = [pn.pane.Bokeh(fig) for fig, _, _ in sorted(children, key=lambda t: (t[1], t[2]))]
 
         draw()
         s.param.watch(draw, "basin")
         chooser.param.watch(draw, "value")
-        return pn.Column(pn.pane.Markdown("### Where the products disagree in this basin (cell by cell, whole basin; "
-                                          "opacity: share of the cell inside the basin)"),
-                         chooser, pane, sizing_mode="stretch_width")
+        return chooser, pane
+
+    def _disagreement_section(self):
+        """The disagreement maps behind a button: drawn on the first click only (two panels per product kept the
+        first page heavier by about a tenth and its notebook file over 2 MB)."""
+        import panel as pn
+
+        head = pn.pane.Markdown("### Where the products disagree in this basin (cell by cell, whole basin; "
+                                "opacity: share of the cell inside the basin)")
+        show = pn.widgets.Button(name="Show the maps of where the products disagree", button_type="default",
+                                 width=360, css_classes=["wbx-disagree-show"])
+        col = pn.Column(head, show, sizing_mode="stretch_width")
+
+        def on_show(event):
+            col.objects = [head, *self._disagreement()]
+
+        show.on_click(on_show)
+        return col
 
     def _waterbody_views(self, summary, warn, resid, scatter):
         """The water body's views (unmeasured exchange, level and volume) and which views show for which kind:
@@ -445,7 +470,7 @@ class Explorer:
                    sizing_mode="stretch_width"),
             resid, exchange,
             pn.Row(scatter, levels, multi, sizing_mode="stretch_width"),
-            self._disagreement(),
+            self._disagreement_section(),
             pn.pane.Markdown("### Every combination for this basin and period (click a row to select it)"),
             self._table_box,
             sizing_mode="stretch_width")
