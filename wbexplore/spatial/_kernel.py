@@ -26,6 +26,19 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
 
     _TB = 32  # time steps per tile (16: 0.052 s, 32: 0.044 s, 64: 0.048 s on the benchmark stack)
 
+    @numba.njit(inline="always")
+    def _is_data(v, nodata, vmin, vmax, codes, ncode, clo, chi):
+        """``v`` is a value (not NaN, not the fill, inside the valid range, not one of the further no-data
+        ``codes``); the codes (sorted) are looked up only between the lowest and the highest, so data rarely pay
+        for them."""
+        if not (v == v and v != nodata and v >= vmin and v <= vmax):
+            return False
+        if ncode and v >= clo and v <= chi:
+            for q in range(ncode):
+                if v == codes[q]:
+                    return False
+        return True
+
     @numba.njit(cache=True, nogil=True, parallel=True)
     def _accumulate(X, cells, indptr, indices, data, nb, nodata, vmin, vmax, codes, f, cell):  # noqa: D401
         t = X.shape[0]
@@ -46,14 +59,7 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                     n = 0.0
                     for i in range(t0, t1):
                         v = X[i, c]
-                        if v == v and v != nodata and v >= vmin and v <= vmax:
-                            if ncode and v >= clo and v <= chi:
-                                skip = False
-                                for q in range(ncode):
-                                    if v == codes[q]:
-                                        skip = True
-                                if skip:
-                                    continue
+                        if _is_data(v, nodata, vmin, vmax, codes, ncode, clo, chi):
                             s += f[i] * np.float64(v)
                             sf += f[i]
                             n += 1.0
@@ -65,16 +71,7 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                     b = indices[k]
                     for i in range(t0, t1):
                         v = X[i, c]
-                        if v == v and v != nodata and v >= vmin and v <= vmax:
-                            if ncode and v >= clo and v <= chi:
-                                # further no-data codes (sorted; only values between the lowest
-                                # and the highest code are looked up, so data rarely pay for it)
-                                skip = False
-                                for q in range(ncode):
-                                    if v == codes[q]:
-                                        skip = True
-                                if skip:
-                                    continue
+                        if _is_data(v, nodata, vmin, vmax, codes, ncode, clo, chi):
                             out[i, b, 0] += w * np.float64(v)
                             out[i, b, 1] += w
         return out
@@ -101,13 +98,9 @@ try:  # pragma: no cover - exercised whenever numba is installed (it is a depend
                 wi = w[m, i]
                 for j in range(nc):
                     v = X[i, cells[j]]
-                    if v == v and v != nodata and v >= vmin and v <= vmax:
-                        if ncode and v >= clo and v <= chi:
-                            for q in range(ncode):
-                                if v == codes[q]:
-                                    good[j] = False
+                    if _is_data(v, nodata, vmin, vmax, codes, ncode, clo, chi):
                         acc[j] += wi * np.float64(v)
-                    else:
+                    else:  # the month of this cell is incomplete: its sum is not used
                         good[j] = False
             for j in range(nc):
                 if good[j]:  # the cell has a valid value for every period of the month
