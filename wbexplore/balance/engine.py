@@ -25,12 +25,18 @@ from .options import ClosureOptions
 from .storage import fill_gaps, match_state_window, match_window, shift_later, state_storage_change, storage_change
 from .terms import BASE_TERMS, DS, P, Q, SOURCE_COMPONENTS, WATERBODY_TERMS, combine, flow_terms
 
-__all__ = ["closure_terms", "closure_metrics", "closure_arrays", "combination_arrays", "metrics_arrays", "ENSEMBLE_PREFIX", "MERGED_PREFIX", "DERIVED_PREFIXES", "with_ensembles", "SOURCE_DIMS", "masked_values"]
+__all__ = ["closure_terms", "closure_metrics", "closure_arrays", "combination_arrays", "metrics_arrays", "ENSEMBLE_PREFIX", "MERGED_PREFIX", "DERIVED_PREFIXES", "is_merged", "with_ensembles", "SOURCE_DIMS", "masked_values"]
 
 ENSEMBLE_PREFIX = "ensemble_"
 MERGED_PREFIX = "merged_"  # `wbexplore.balance.merge`: merged best estimates
 # Sources computed from a component's products (not independent of them: never collocated with them)
 DERIVED_PREFIXES = (ENSEMBLE_PREFIX, MERGED_PREFIX)
+
+
+def is_merged(source) -> bool:
+    """``source`` (an id, or anything whose text is one) names a merged best estimate (`MERGED_PREFIX`)."""
+    return str(source).startswith(MERGED_PREFIX)
+
 SOURCE_DIMS = {c: f"{c}_source" for c in SOURCE_COMPONENTS}
 
 

@@ -56,7 +56,7 @@ import xarray as xr
 from ..errors import InputError
 from ..series import source_ids
 from .collocation import multiple_collocation
-from .engine import DERIVED_PREFIXES, MERGED_PREFIX, masked_values
+from .engine import DERIVED_PREFIXES, is_merged, masked_values
 
 __all__ = ["ProductError", "METHODS", "STATED", "COLLOCATION", "SPREAD", "NONE", "POSTERIOR", "band_text", "MIN_COLLOCATION_MONTHS",
            "DEFAULT_METHOD", "product_error", "product_errors", "all_product_errors", "product_disagreement", "stated_variance",
@@ -335,7 +335,7 @@ def product_error(ds: xr.Dataset, source: str, basin_index: int, *, values=None,
     attrs = ds.variables[source].attrs
     comp = attrs.get("component")
     posterior = f"{source}_standard_error"
-    if method == "auto" and source.startswith(MERGED_PREFIX) and posterior in ds.variables:
+    if method == "auto" and is_merged(source) and posterior in ds.variables:
         from .merge import MERGE_METHODS  # merge.py builds on this module: imported where it is used
 
         se = ds.variables[posterior].values[basin_index].astype(np.float64)

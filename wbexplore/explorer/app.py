@@ -22,7 +22,7 @@ import pandas as pd
 from .. import plots
 from ..names import METRIC_NAMES, OPTIONS, column_label, metric_label
 from ..balance.combos import RANK_TABLE_COLUMNS, WATERBODY_TABLE_COLUMNS
-from ..balance.engine import MERGED_PREFIX
+from ..balance.engine import is_merged
 from ..balance.terms import SOURCE_COMPONENTS
 from ..errors import InputError
 from ..escape import md_text, public_message, safe_filename, study_relative
@@ -282,7 +282,7 @@ class Explorer:
         try:
             if not s.catalog_path:
                 raise InputError(f"{what} needs the explorer to be opened on a catalog file")
-            merged = [getattr(s, c) for c in SOURCE_COMPONENTS if str(getattr(s, c)).startswith(MERGED_PREFIX)]
+            merged = [getattr(s, c) for c in SOURCE_COMPONENTS if is_merged(getattr(s, c))]
             if merged:  # the selection file cannot record a merge for replay yet: refuse before writing anything
                 raise InputError(f"{what} of a merged source ({', '.join(merged)}) is not possible yet: a selection "
                                  "file cannot record the merge for replay; choose a product for that component "

@@ -13,7 +13,8 @@ import param
 
 from ..balance import (METHODS, METRICS, UNIT_SYSTEMS, ClosureOptions, Selection, best_scores, compute_selection,
                        long_term_all, rank)
-from ..balance.merge import MERGE_METHODS, MERGED_PREFIX, merge_products, merged_label, merged_name, with_merged
+from ..balance.engine import is_merged
+from ..balance.merge import MERGE_METHODS, merge_products, merged_label, merged_name, with_merged
 from ..balance.terms import SOURCE_COMPONENTS
 from ..series import source_ids
 from ..errors import InputError
@@ -211,7 +212,7 @@ class ClosureState(param.Parameterized):
             return v
         if self._kind == "basin":  # back from a water body: the basin's choice; from a merged source: the product
             backs = (self._basin_choice.get(comp), self._last_product.get(comp))
-            for back in (backs[::-1] if str(v).startswith(MERGED_PREFIX) else backs):
+            for back in (backs[::-1] if is_merged(v) else backs):
                 if back in opts:
                     return back
         return opts[0]
@@ -280,7 +281,7 @@ class ClosureState(param.Parameterized):
 
     def _remember_product(self, *events) -> None:
         for e in events:
-            if self._kind == "basin" and not str(e.new).startswith(MERGED_PREFIX):
+            if self._kind == "basin" and not is_merged(e.new):
                 self._last_product[e.name] = e.new
 
     def merged_note(self) -> str:
@@ -390,7 +391,7 @@ class ClosureState(param.Parameterized):
         sel = self.selection()
         if self.is_waterbody:
             sel = sel.replace(**{c: self._basin_choice[c] for c in SOURCE_COMPONENTS})
-        merged = any(str(getattr(sel, c)).startswith(MERGED_PREFIX) for c in SOURCE_COMPONENTS)
+        merged = any(is_merged(getattr(sel, c)) for c in SOURCE_COMPONENTS)
         return self._cached(("multi", sel.replace(basin=""), self.merge_method if merged else None),
                             lambda: long_term_all(self._merged_everywhere() if merged else self.series, sel))
 
