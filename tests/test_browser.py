@@ -96,6 +96,19 @@ def open_page(browser, url, *, height=1700):
     return pg
 
 
+def open_report(browser, path):
+    """A written HTML report opened from its file, its plots drawn; returns the page, every URL it requested
+    and its page errors."""
+    pg = browser.new_page(viewport={"width": 1100, "height": 1200})
+    requests, errors = [], []
+    pg.on("request", lambda r: requests.append(r.url))
+    pg.on("pageerror", lambda e: errors.append(str(e)))
+    pg.goto(path.as_uri())
+    pg.wait_for_selector("canvas", timeout=30_000)
+    pg.wait_for_timeout(1500)
+    return pg, requests, errors
+
+
 @pytest.fixture(scope="module")
 def page(browser, server):
     pg = open_page(browser, server)
@@ -243,13 +256,7 @@ def test_report_opens_offline(browser, study, tmp_path, artifacts):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         assert main(["report", str(study / "catalog.yaml"), "--basin", "VEL", "--out", str(out)]) == 0
-    pg = browser.new_page(viewport={"width": 1100, "height": 1200})
-    requests, errors = [], []
-    pg.on("request", lambda r: requests.append(r.url))
-    pg.on("pageerror", lambda e: errors.append(str(e)))
-    pg.goto(out.as_uri())
-    pg.wait_for_selector("canvas", timeout=30_000)
-    pg.wait_for_timeout(1500)
+    pg, requests, errors = open_report(browser, out)
     pg.screenshot(path=str(artifacts / "report.png"), full_page=True)
     assert [r for r in requests if r != out.as_uri()] == []  # nothing leaves the file
     assert errors == []

@@ -10,7 +10,7 @@ import re
 import warnings
 
 import pytest
-from test_browser import _deep_text, browser, open_page, server, study  # noqa: F401 - the fixtures of the served page
+from test_browser import _deep_text, browser, open_page, open_report, server, study  # noqa: F401 - the fixtures of the served page
 
 pytestmark = pytest.mark.browser
 WID = "TALV"
@@ -57,13 +57,7 @@ def test_reservoir_report_opens_offline(browser, study, tmp_path, artifacts):  #
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         assert main(["report", str(study / "catalog.yaml"), "--basin", WID, "--out", str(out)]) == 0
-    pg = browser.new_page(viewport={"width": 1100, "height": 1200})
-    requests, errors = [], []
-    pg.on("request", lambda r: requests.append(r.url))
-    pg.on("pageerror", lambda e: errors.append(str(e)))
-    pg.goto(out.as_uri())
-    pg.wait_for_selector("canvas", timeout=30_000)
-    pg.wait_for_timeout(1500)
+    pg, requests, errors = open_report(browser, out)
     pg.screenshot(path=str(artifacts / "report_waterbody.png"), full_page=True)
     assert [r for r in requests if r != out.as_uri()] == []
     assert errors == []

@@ -30,14 +30,19 @@ def wb_series(demo_dir):
         return load_series(demo_dir / "catalog.yaml", waterbodies=True)
 
 
-@pytest.fixture(scope="module")
-def report_text(demo_dir, tmp_path_factory):
+def _write_report(demo_dir, out, basin):
+    """``wbexplore report`` of the demo for ``basin`` into ``out`` (exit 0 asserted); returns ``out``."""
     from wbexplore.cli import main
 
-    out = tmp_path_factory.mktemp("wbreport") / "r.html"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        assert main(["report", str(demo_dir / "catalog.yaml"), "--basin", WID, "--out", str(out)]) == 0
+        assert main(["report", str(demo_dir / "catalog.yaml"), "--basin", basin, "--out", str(out)]) == 0
+    return out
+
+
+@pytest.fixture(scope="module")
+def report_text(demo_dir, tmp_path_factory):
+    out = _write_report(demo_dir, tmp_path_factory.mktemp("wbreport") / "r.html", WID)
     raw = out.read_text(encoding="utf-8")
     return raw, html.unescape(html.unescape(raw))
 
@@ -141,12 +146,7 @@ BASIN = "VEL"
 
 @pytest.fixture(scope="module")
 def basin_report(demo_dir, tmp_path_factory):
-    from wbexplore.cli import main
-
-    out = tmp_path_factory.mktemp("report") / "r.html"
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        assert main(["report", str(demo_dir / "catalog.yaml"), "--basin", BASIN, "--out", str(out)]) == 0
+    out = _write_report(demo_dir, tmp_path_factory.mktemp("report") / "r.html", BASIN)
     raw = out.read_text(encoding="utf-8")
     return out, raw, html.unescape(raw)
 

@@ -199,32 +199,28 @@ def exported_old(exported):
     return p
 
 
-@pytest.mark.parametrize("i", range(len(MALFORMED)), ids=[f"{f}-{i}" for i, (f, _) in enumerate(MALFORMED)])
-def test_malformed_selection_field(exported, i, capsys, monkeypatch):
+def _refused_before_extraction(exported, name, field, edits, capsys, monkeypatch):
+    """Replay of ``exported`` with ``edits`` is refused in one line naming the file and ``field``, before any
+    computation."""
     import wbexplore.selection as selmod
 
     def no_extract(*a, **k):  # a malformed file must be refused before any computation
         raise AssertionError("extraction started")
 
     monkeypatch.setattr(selmod, "_extract_for", no_extract)
-    field, edits = MALFORMED[i]
-    p = _mutated(exported, f"bad{i}", edits)
+    p = _mutated(exported, name, edits)
     line = _one_line_error(*_run(["replay", p], capsys)[::2])
     assert str(p) in line and f"field '{field}'" in line
+
+
+@pytest.mark.parametrize("i", range(len(MALFORMED)), ids=[f"{f}-{i}" for i, (f, _) in enumerate(MALFORMED)])
+def test_malformed_selection_field(exported, i, capsys, monkeypatch):
+    _refused_before_extraction(exported, f"bad{i}", *MALFORMED[i], capsys, monkeypatch)
 
 
 @pytest.mark.parametrize("i", range(len(OLD_SPELLING)), ids=[f"{f}-{i}" for i, (f, _) in enumerate(OLD_SPELLING)])
 def test_malformed_old_spelling_field(exported_old, i, capsys, monkeypatch):
-    import wbexplore.selection as selmod
-
-    def no_extract(*a, **k):
-        raise AssertionError("extraction started")
-
-    monkeypatch.setattr(selmod, "_extract_for", no_extract)
-    field, edits = OLD_SPELLING[i]
-    p = _mutated(exported_old, f"old_bad{i}", edits)
-    line = _one_line_error(*_run(["replay", p], capsys)[::2])
-    assert str(p) in line and f"field '{field}'" in line
+    _refused_before_extraction(exported_old, f"old_bad{i}", *OLD_SPELLING[i], capsys, monkeypatch)
 
 
 def test_nonfinite_metrics_compare_equal():
