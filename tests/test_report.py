@@ -243,6 +243,25 @@ def test_verdict_figures_are_the_ranking(basin_report, demo_series):
     assert all(f"[{run[c]}]" in combo for c in ("P", "ET", "TWSA"))
 
 
+def test_water_year_table_names_the_flows_by_catalog_id_with_their_labels(report_text, demo_dir):
+    """The flows of the water-year table and of the residual line are the catalog's ids (never the series' internal
+    ``flow_<id>`` names), and the caption gives each one's catalog label and direction (read here from the catalog
+    YAML itself, the user's own words)."""
+    import yaml
+
+    raw, text = report_text
+    flows = [f for f in yaml.safe_load((demo_dir / "catalog.yaml").read_text())["flows"] if f["basin"] == WID]
+    assert len(flows) == 3
+    assert "flow_" not in re.sub(r"<script.*?</script>", "", raw, flags=re.S)  # the plots' data may keep the names
+    cap = re.search(r"Totals per water year in mm/year over the balance unit \((.*?)\); water year", text).group(1)
+    line = "P - ET - dS " + " ".join(("+ " if f["direction"] == "in" else "- ") + f["id"] for f in flows)
+    assert cap.startswith(line + " = residual"), cap
+    for f in flows:
+        assert f"; {f['id']}: {f['label']} ({'inflow' if f['direction'] == 'in' else 'outflow'})" in cap
+        assert f"<th>{f['id']}</th>" in raw
+    assert f"Residual r = {line} (mm/month)." in text
+
+
 def test_waterbody_verdict_gives_the_exchange(report_text, wb_series):
     from wbexplore.balance import ClosureOptions, rank
 
@@ -250,7 +269,7 @@ def test_waterbody_verdict_gives_the_exchange(report_text, wb_series):
     v = _verdict(raw)
     r = rank(wb_series, WID, ClosureOptions(), by="rmse")
     best, run = r.iloc[0], r.iloc[1]
-    assert "the P and E products that closes best is P " in v and "TWSA" not in v
+    assert "the pair of P and E products that closes best is P " in v and "TWSA" not in v
     nums = re.findall(r"Residual RMSE ([\d.]+) mm/month, unmeasured exchange (-?[\d.]+) ± ([\d.]+) m3/s", v)
     assert len(nums) == 2, v
     for (rm, mean, se), row in zip(nums, (best, run)):

@@ -11,6 +11,7 @@ wbexplore version. Nothing here computes a balance term; the texts shared with t
 
 from __future__ import annotations
 
+import dataclasses
 import re
 from datetime import UTC, datetime
 from pathlib import Path
@@ -27,6 +28,7 @@ from .balance.terms import SOURCE_COMPONENTS, balance_text
 from .escape import html_text
 from .io.catalog import Catalog, CatalogError, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output
+from .series import FLOW_PREFIX
 from .names import (
     METRIC_NAMES,
     OPTIONS,
@@ -122,7 +124,7 @@ def verdict(cat: Catalog, ranking: pd.DataFrame, *, name: str, unit: str, by: st
                      f"{_fmt(row['exchange_m3s_se'], '.2f')} m3/s")
         return text
 
-    what = "P and E products" if waterbody else "combination"
+    what = "pair of P and E products" if waterbody else "combination"
     s = f"{name} ({unit}), {period}: the {what} that closes best is {_combo(cat, best, comps)} ({fig(best)})"
     if len(scored) > 1:
         run = scored.iloc[1]
@@ -199,13 +201,14 @@ def _annual_table(cat: Catalog, res) -> str:
     def head(k):
         if k == "residual":
             return "Residual"
-        return k  # P, ET, Q, dS, flow_<id>: the symbols of the balance line above the table
+        return _symbol(k)  # P, ET, Q, dS, a flow's catalog id: the symbols of the balance line above the table
     heads = [REPORT_NAMES["water_year"].name] + [head(k) for k in a.terms]
     rows = [[str(y)] + [_fmt(r[k], ".0f") for k in a.terms] for y, r in a.complete.iterrows()]
     part = t[~t["complete"]]
     start = pd.Timestamp(2001, a.water_year_start, 1).strftime("%B")
     caption = (f"<p class='small'>Totals per water year in {a.units} over the balance unit "
-               f"({e(balance_text(a.balance_terms))} = residual); water year from {start}, named by the year it ends. "
+               f"({e(_balance_line(a.balance_terms))} = residual{e(_flow_legend(a.balance_terms))}); water year from "
+               f"{start}, named by the year it ends. "
                f"Mean residual of the {len(a.complete)} complete years "
                f"{_fmt(res.metrics.get('annual_bias'), '.1f')} {a.units}.</p>")
     missing = ("<p class='small'>Years with a missing month (no totals, never scaled up; valid months): "
@@ -237,7 +240,25 @@ def _ranking_table(cat: Catalog, ranking, sel, cols, comps) -> str:
               "`wbexplore rank` lists them all.</p>")
 
 
+def _symbol(name: str) -> str:
+    """A term's symbol in the report: P, ET, Q, dS, or a flow's catalog id (``flow_<id>`` is the series' name)."""
+    return name.removeprefix(FLOW_PREFIX)
+
+
+def _balance_line(terms) -> str:
+    """The residual as text with the report's symbols ("P - ET - dS + ombrel - release")."""
+    return balance_text(tuple(dataclasses.replace(t, name=_symbol(t.name)) for t in terms))
+
+
+def _flow_legend(terms) -> str:
+    """"; ombrel: <its label> (inflow), ..." for the flows among ``terms`` ("" without flows): the table's headers
+    are the catalog's ids, the legend gives the catalog's labels."""
+    flows = [t for t in terms if t.name.startswith(FLOW_PREFIX)]
+    return "".join(f"; {_symbol(t.name)}: {t.label} ({'inflow' if t.sign > 0 else 'outflow'})" for t in flows)
+
+
 def _method_notes(res, sel, *, waterbody: bool, extra: str = "") -> str:
+    terms = annual_closure(res).balance_terms  # the flows' labels are in the water-year table's caption
     sc = OPTIONS[sel.storage_change]
     if res.storage_note:  # a water body with end-of-month volumes: the options do not apply
         storage = e(res.storage_note)
@@ -256,7 +277,7 @@ def _method_notes(res, sel, *, waterbody: bool, extra: str = "") -> str:
               "seasons (Lehmann et al. 2022) and PBIAS (Moriasi et al. 2007) compare P - ET - dS with gauged Q; "
               "PBIAS has the opposite sign of the mean residual.")
     return (f"<ul class='small notes'><li>{means}</li><li>{storage}</li>"
-            f"<li>Residual r = {e(balance_text(annual_closure(res).balance_terms))} (mm/month).{scores}{extra}</li>"
+            f"<li>Residual r = {e(_balance_line(terms))} (mm/month).{scores}{extra}</li>"
             f"<li>Uncertainty (stated error, else collocation, else product spread; residual sigma by propagation of "
             f"independent errors). Used here: {e(res.uncertainty_line)}.</li></ul>")
 
