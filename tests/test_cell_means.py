@@ -265,7 +265,10 @@ def test_disagreement_map_one_panel_per_product_and_a_symmetric_diverging_scale(
 
     assert diff.palette[0] == RdBu11[-1] and diff.palette[-1] == RdBu11[0]
     assert len(diff.palette) % 2 == 1  # an odd diverging palette: its middle colour sits at zero
-    assert TERM_NAMES["P"].name in bars[0].title and "mm/month" in bars[0].title
+    assert bars[0].title == "P mean (mm/month)" and bars[1].title == "difference (mm/month)"
+    # a bar's title runs along the bar, over the panel's height (240 px): the longer "Precipitation (P) long-term
+    # mean (mm/month)" was cut off there (seen in a screenshot); 24 characters of bokeh's 13 px title fit
+    assert all(len(b.title) <= 24 for b in bars)
     # each panel: the touched cells, coloured and with opacity by coverage, plus the basin outline
     cell_src = [r.data_source for r in figs[0].renderers if isinstance(r.glyph, Patches)
                 and "alpha" in r.data_source.data][0]

@@ -795,8 +795,10 @@ def disagreement_map(cells: dict, outlines: Outlines | None = None, *, basin: st
             fig.xaxis.axis_label = "longitude (deg E)"
             fig.yaxis.axis_label = "latitude (deg N)"
             row.append(fig)
-        title = f"{name} long-term mean ({units})" if what == "mean" else f"difference from the others ({units})"
-        row[-1].add_layout(ColorBar(color_mapper=mapper, title=title, width=10), "right")
+        # short enough for the panel's height (the bar's title runs along it): "Precipitation (P) long-term mean
+        # (mm/month)" was cut off at 240 px; what the colours are is in each panel's title
+        title = f"{component} mean ({units})" if what == "mean" else f"difference ({units})"
+        row[-1].add_layout(ColorBar(color_mapper=mapper, title=title, width=10, name=f"colorbar {what}"), "right")
         row[-1].width = panel_width + 90
     grid = gridplot([top, bottom], toolbar_location="right", merge_tools=True)
     grid.name = f"disagreement {basin} {component}"
