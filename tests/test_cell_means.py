@@ -275,6 +275,13 @@ def test_disagreement_map_one_panel_per_product_and_a_symmetric_diverging_scale(
     assert len(cell_src.data["xs"]) == int(cells["B1"]["a"].touched.sum())
     assert min(cell_src.data["alpha"]) < max(cell_src.data["alpha"])  # partial cells at the edge
     assert any(r.glyph.fill_alpha == 0.0 for r in figs[0].renderers if isinstance(r.glyph, Patches))
+    # TWSA anomalies, each about its own baseline (a constant offset of one product, here 25 mm, would show as
+    # a 25 mm "disagreement" in every cell): one line saying why, no panels (common practice: anomalies compare
+    # only after removing each one's mean over a common period)
+    import dataclasses
+
+    as_storage = {s: dataclasses.replace(cm, component="TWSA", units="mm") for s, cm in cells["B1"].items()}
+    assert "own baseline period" in disagreement_map(as_storage, basin="B1", component="TWSA").text
     # a component with no product: a one-line text, no empty panels
     text = disagreement_map(cells["B1"], basin="B1", component="ET").text
     assert text.startswith(f"No {TERM_NAMES['ET'].name} product")
@@ -305,16 +312,19 @@ def test_explorer_map_follows_basin_and_component(demo_dir):
 
     basin = app.state.basin
     assert len(pane.objects) == 2 * len(products("P", basin)) and pane.ncols == len(products("P", basin))
-    chooser.value = "TWSA"
-    assert len(pane.objects) == 2 * len(products("TWSA", basin))
-    assert sum("minus others' mean" in t for t in titles()) == len(products("TWSA", basin))
+    chooser.value = "ET"
+    assert len(pane.objects) == 2 * len(products("ET", basin))
+    assert sum("minus others' mean" in t for t in titles()) == len(products("ET", basin))
     other = [b for b in cells if b != basin][0]
     app.state.basin = other
-    assert len(pane.objects) == 2 * len(products("TWSA", other))
+    assert len(pane.objects) == 2 * len(products("ET", other))
     # the other basin's own cells: each mean panel draws as many cells as that basin's product touches
     drawn = [len(r.data_source.data["xs"]) for o in pane.objects[:pane.ncols] for r in o.object.renderers
              if "alpha" in r.data_source.data]
-    assert sorted(drawn) == sorted(int(cells[other][p].touched.sum()) for p in products("TWSA", other))
+    assert sorted(drawn) == sorted(int(cells[other][p].touched.sum()) for p in products("ET", other))
+    # storage anomalies: one line saying why their means are not compared, no panels
+    chooser.value = "TWSA"
+    assert len(pane.objects) == 1 and "own baseline period" in pane.objects[0].object.text
 
 
 @pytest.mark.parametrize("nt", [5, 40, 70])  # one tile, and several (32 steps a tile)

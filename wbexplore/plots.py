@@ -734,13 +734,15 @@ def disagreement_map(cells: dict, outlines: Outlines | None = None, *, basin: st
     Returns
     -------
     bokeh.models.GridPlot
-        Two rows of one panel per product (``len(children) == 2 * products``); empty text when the
-        component has no product with cell means.
+        Two rows of one panel per product (``len(children) == 2 * products``); a one-line text (a ``Div``)
+        when the component has no product with cell means, or is the storage (TWSA anomalies are each about
+        their own baseline: their long-term means do not compare).
     """
     from bokeh.layouts import gridplot
     from bokeh.models import ColorBar, ColumnDataSource, Div, HoverTool, LinearColorMapper, Patches
     from bokeh.palettes import RdBu11, Viridis256
 
+    from .balance.terms import DS
     from .names import TERM_NAMES, term_units
     from .spatial.cells import difference_from_others
 
@@ -749,6 +751,14 @@ def disagreement_map(cells: dict, outlines: Outlines | None = None, *, basin: st
     units = term_units(component)
     if not chosen:
         return Div(text=f"No {name} product has cell means for basin {basin}.")
+    if component == DS.component:
+        # storage anomalies are each about their own product's baseline period (and a gap moves a mean): two
+        # products' long-term means differ by those choices, not by water, so a map of their differences would
+        # show a disagreement that is not there. The balance uses their month-to-month differences (dS).
+        return Div(text=f"{name} products are not mapped against each other: each is an anomaly about its own "
+                        "baseline period, so their long-term means differ by that choice (and by gaps), not by "
+                        "water. The balance uses their month-to-month differences (storage change), which the "
+                        "residual and ranking compare.")
     labels = labels or {}
     diffs = difference_from_others(chosen)
     finite = np.concatenate([cm.mean[cm.touched] for cm in chosen.values()])
