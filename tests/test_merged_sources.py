@@ -17,7 +17,7 @@ from utils import canonical_series
 from wbexplore.balance import ClosureOptions
 from wbexplore.balance import uncertainty as unc
 from wbexplore.balance.engine import with_ensembles
-from wbexplore.balance.merge import merge_products, with_merged
+from wbexplore.balance.merge import merge_products, merged_label, with_merged
 
 GIVEN = {s: 4.0 for s in ("P0", "P1", "ET0", "ET1", "TWSA0", "TWSA1")}
 
@@ -213,6 +213,28 @@ def test_page_pickers_follow_the_merged_sources(merged_state):
     warn = next(o for o in ex.panel().select(lambda o: "wbx-warnings" in getattr(o, "css_classes", [])))
     text = warn.object if isinstance(warn.object, str) else warn.object()
     assert "Kalman filter\\) not offered for B1" in str(text)  # escaped to literal Markdown text
+
+
+def test_another_merge_variant_relabels_the_pickers_and_recomputes(merged_state):
+    """`merge_method` set after the page is built (a notebook cell may): the merged entries' labels and the
+    page's pickers name the new variant, and the merged result is that variant's, as a plain script computes it
+    (found in review: the labels kept the first variant's name while the numbers were the new one's)."""
+    from wbexplore.balance import Selection, compute_selection
+    from wbexplore.explorer.app import Explorer
+
+    s = merged_state
+    ex = Explorer(s)
+    ex.panel()
+    s.P = "merged_P"
+    s.merge_method = "pr"
+    assert s.labels["merged_P"] == merged_label("pr") != merged_label("ckf")
+    assert ex.w_src["P"].options[f"{merged_label('pr')} [merged_P]"] == "merged_P" == s.P
+    assert not any(merged_label("ckf") in k for k in ex.w_src["ET"].options)
+    ds = _three_products()
+    m = merge_products(ds, method="pr", basins=["B0"], options=ClosureOptions())
+    ref = compute_selection(with_merged(ds, m.reindex(basin=ds["basin"].values)),
+                            Selection("B0", "merged_P", s.ET, s.TWSA))
+    pd.testing.assert_frame_equal(s.result().frame, ref.frame)
 
 
 def test_export_and_report_of_a_merged_source_are_refused_before_writing(merged_state, tmp_path):

@@ -171,7 +171,8 @@ class Explorer:
             for comp, w in self.w_src.items():
                 self._follow_source(w, comp, getattr(s, comp), refresh=True)
 
-        s.param.watch(on_kind, ["basin", "unit", "storage_change", "matched"])  # and merged sources come and go
+        # and merged sources come and go (another merge variant: their label too)
+        s.param.watch(on_kind, ["basin", "unit", "storage_change", "matched", "merge_method"])
 
         self.w_metric.param.watch(lambda e: setattr(s, "metric", e.new), "value")
         s.param.watch(lambda e: self.w_metric.param.update(value=e.new, description=METRIC_NAMES[e.new].help), "metric")

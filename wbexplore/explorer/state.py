@@ -101,6 +101,7 @@ class ClosureState(param.Parameterized):
         self.param.watch(self._kind_follows_basin, ["basin"])
         self._follow_merged()
         self.param.watch(self._follow_merged, ["basin", "unit", "storage_change", "matched"])
+        self.param.watch(self._merge_method_changed, ["merge_method"])
         self.param.watch(self._remember_product, list(SOURCE_COMPONENTS))
         if "P" not in params:
             self.select_best()
@@ -278,6 +279,12 @@ class ClosureState(param.Parameterized):
                 new[comp] = self._source(comp)
         if new:
             self.param.update(**new)
+
+    def _merge_method_changed(self, *events) -> None:
+        """Another merge variant: the merged entries' labels name it, and the pickers offer a merged source where
+        that variant can be built (collocation may refuse where the filter does not)."""
+        self.labels = {**self.labels, **{merged_name(c): merged_label(self.merge_method) for c in SOURCE_COMPONENTS}}
+        self._follow_merged()
 
     def _remember_product(self, *events) -> None:
         for e in events:
