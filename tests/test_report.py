@@ -253,13 +253,39 @@ def test_water_year_table_names_the_flows_by_catalog_id_with_their_labels(report
     flows = [f for f in yaml.safe_load((demo_dir / "catalog.yaml").read_text())["flows"] if f["basin"] == WID]
     assert len(flows) == 3
     assert "flow_" not in re.sub(r"<script.*?</script>", "", raw, flags=re.S)  # the plots' data may keep the names
-    cap = re.search(r"Totals per water year in mm/year over the balance unit \((.*?)\); water year", text).group(1)
+    cap = re.search(r"Totals per water year in hm3/year \(1 mm over .*? hm3\) \((.*?)\); water year", text).group(1)
     line = "P - ET - dS " + " ".join(("+ " if f["direction"] == "in" else "- ") + f["id"] for f in flows)
     assert cap.startswith(line + " = residual"), cap
     for f in flows:
         assert f"; {f['id']}: {f['label']} ({'inflow' if f['direction'] == 'in' else 'outflow'})" in cap
         assert f"<th>{f['id']}</th>" in raw
     assert f"Residual r = {line} (mm/month)." in text
+
+
+def test_waterbody_water_year_table_in_hm3_against_pint(report_text, wb_series):
+    """A water body's water-year table is in hm3/year, as its other views (the explorer's default for a water
+    body): each total is the engine's mm/year over the outline times the outline's area, converted by pint."""
+    import pint
+
+    from wbexplore import report
+    from wbexplore.balance import ClosureOptions, Selection, compute_selection, rank
+    from wbexplore.balance.annual import annual_closure
+
+    _, text = report_text
+    assert "Totals per water year in hm3/year (1 mm over the outline's" in text
+    best = rank(wb_series, WID, ClosureOptions(), by="rmse").iloc[0]
+    res = compute_selection(wb_series, Selection(WID, best["P"], best["ET"], "levels"))
+    ureg = pint.UnitRegistry()
+    factor = (1 * ureg.mm * (res.area_km2 * ureg.km**2)).to("hm**3").magnitude
+    html_table = report._annual_table(None, res, volumes=True)
+    a = annual_closure(res)
+    rows = re.findall(r"<tr><td class='n'>(\d{4})</td>(.*?)</tr>", html_table)
+    assert len(rows) == len(a.complete)
+    for (year, cells), (y, mm) in zip(rows, a.complete.iterrows()):
+        got = [float(v) for v in re.findall(r"<td class='n'>(-?[\d.]+)</td>", cells)]
+        assert int(year) == y and len(got) == len(a.terms)
+        np.testing.assert_allclose(got, [mm[k] * factor for k in a.terms], atol=0.5 + 1e-9)
+    assert f"= {factor:.4g} hm3)" in html_table
 
 
 def test_waterbody_verdict_gives_the_exchange(report_text, wb_series):

@@ -194,23 +194,33 @@ def _metrics_table(res, other, keys, *, other_name: str) -> str:
     return _table(heads, rows, cls="metrics", titles=titles)
 
 
-def _annual_table(cat: Catalog, res) -> str:
+def _annual_table(cat: Catalog, res, *, volumes: bool = False) -> str:
+    """The water-year closure table (`balance.annual`): totals in mm/year over the balance unit, or with
+    ``volumes`` (a water body, whose other views are in hm3) in hm3/year over the same area (the outline's)."""
+    from .units import mm_to_m3
+
     a = annual_closure(res)
     t = a.table
+    # hm3 per mm over the unit's area (1 mm over 1 km2 = 1000 m3; `units.mm_to_m3`, checked against pint)
+    factor = float(mm_to_m3(1.0, res.area_km2 * 1e6)) / 1e6 if volumes else 1.0
+    units = "hm3/year" if volumes else a.units
+    over = (f" (1 mm over the outline's {res.area_km2:,.0f} km2 = {_fmt(factor, '.4g')} hm3)" if volumes
+            else " over the balance unit")
 
     def head(k):
         if k == "residual":
             return "Residual"
         return _symbol(k)  # P, ET, Q, dS, a flow's catalog id: the symbols of the balance line above the table
     heads = [REPORT_NAMES["water_year"].name] + [head(k) for k in a.terms]
-    rows = [[str(y)] + [_fmt(r[k], ".0f") for k in a.terms] for y, r in a.complete.iterrows()]
+    rows = [[str(y)] + [_fmt(r[k] * factor, ".0f") for k in a.terms] for y, r in a.complete.iterrows()]
     part = t[~t["complete"]]
     start = pd.Timestamp(2001, a.water_year_start, 1).strftime("%B")
-    caption = (f"<p class='small'>Totals per water year in {a.units} over the balance unit "
+    bias = res.metrics.get("annual_bias")
+    caption = (f"<p class='small'>Totals per water year in {units}{e(over)} "
                f"({e(_balance_line(a.balance_terms))} = residual{e(_flow_legend(a.balance_terms))}); water year from "
                f"{start}, named by the year it ends. "
                f"Mean residual of the {len(a.complete)} complete years "
-               f"{_fmt(res.metrics.get('annual_bias'), '.1f')} {a.units}.</p>")
+               f"{_fmt(None if bias is None else bias * factor, '.1f')} {units}.</p>")
     missing = ("<p class='small'>Years with a missing month (no totals, never scaled up; valid months): "
                + ", ".join(f"{y} ({int(n)})" for y, n in part["n_valid"].items()) + ".</p>") if len(part) else ""
     return caption + _table(heads, rows, cls="annual") + missing
@@ -443,7 +453,7 @@ def _waterbody_parts(cat: Catalog, ds, sel, res, ranking, *, by: str):
             f"<h2>Unmeasured exchange, mean and standard error</h2>"
             f"{_table(['unit', 'mean', 'standard error'], xrows, cls='exchange')}</div></div>"
             "{plots}"
-            f"<div class='cols'><div><h2>Water-year closure</h2>{_annual_table(cat, res)}</div>"
+            f"<div class='cols'><div><h2>Water-year closure</h2>{_annual_table(cat, res, volumes=True)}</div>"
             f"<div class='wide'><h2>Every P and E combination, ranked by {e(metric_label(by))}: the best</h2>"
             f"{_ranking_table(cat, ranking, sel, cols, comps)}"
             f"<h2>Warnings</h2><ul class='small'>{warn}</ul>"
