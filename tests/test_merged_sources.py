@@ -235,21 +235,3 @@ def test_another_merge_variant_relabels_the_pickers_and_recomputes(merged_state)
     ref = compute_selection(with_merged(ds, m.reindex(basin=ds["basin"].values)),
                             Selection("B0", "merged_P", s.ET, s.TWSA))
     pd.testing.assert_frame_equal(s.result().frame, ref.frame)
-
-
-def test_export_and_report_of_a_merged_source_are_refused_before_writing(merged_state, tmp_path):
-    """A selection file cannot record a merge for replay: the page's export and report buttons say so in one line
-    and write nothing (found by review: the export failed on the catalog lookup with a bare 'not in the series')."""
-    from wbexplore.explorer.app import Explorer
-
-    s = merged_state
-    (tmp_path / "catalog.yaml").write_text("version: 1\n")  # never read: the refusal comes first
-    s.catalog_path = str(tmp_path / "catalog.yaml")
-    ex = Explorer(s, export_dir=tmp_path / "out")
-    s.P = "merged_P"
-    shown = lambda: ex.export_msg.object.replace("\\", "")  # noqa: E731 - the message is escaped Markdown
-    ex._on_export(None)
-    assert "merged source (merged_P) is not possible yet" in shown()
-    ex._on_report(None)
-    assert shown().startswith("**The report failed:**") and "merged source (merged_P)" in shown()
-    assert not (tmp_path / "out").exists()

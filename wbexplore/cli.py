@@ -81,6 +81,13 @@ def _month_number(text: str) -> int:
     return n
 
 
+def _add_merge_method(p):
+    p.add_argument("--merge-method", default="ckf", choices=list(MERGE_METHOD_NAMES), metavar="VARIANT",
+                   help="variant of a merged source given as --P merged_P, --ET merged_ET or --TWSA merged_TWSA: "
+                        "pr, ckf or collocation (default ckf, as in the explorer); built in the selection's "
+                        "storage-change method and window matching")
+
+
 def _add_selection_args(p, *, sources: bool, every_basin: bool = False):
     p.add_argument("catalog", help="catalog YAML file")
     if every_basin:
@@ -169,6 +176,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, metavar="FILE.yaml")
     p.add_argument("--series", metavar="FILE", help="also write the series (.csv or .nc)")
     p.add_argument("--units", default="mm", choices=["mm", "m3", "m3/s"], help="unit system of a CSV series")
+    _add_merge_method(p)
     p.add_argument("--force", action="store_true")
 
     p = sub.add_parser("replay", help="recompute a selection file and compare every metric")
@@ -182,6 +190,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--ET", metavar="SRC")
     p.add_argument("--TWSA", metavar="SRC")
     p.add_argument("--by", default="rmse", metavar="METRIC")
+    _add_merge_method(p)
     p.add_argument("--out", required=True, metavar="FILE.html")
     p.add_argument("--force", action="store_true")
 
@@ -596,7 +605,7 @@ def _cmd_export(args) -> int:
         _check_incremental(args.catalog, args.basin)
     out = export_selection(args.catalog, sel, args.out, overwrite=args.force, series=args.series,
                            unit_system=args.units, cache_dir=args.cache_dir, incremental=args.incremental,
-                           waterbody=kind == "waterbody")
+                           waterbody=kind == "waterbody", merge_method=args.merge_method)
     print(f"wrote {out['selection']}" + (f" and {out['series']}" if out.get("series") else ""))
     return 0
 
@@ -647,7 +656,8 @@ def _cmd_report(args) -> int:
                          "best-ranked combination is used)")
     else:
         sel = best_selection(ds, args.basin, opts, by=args.by)
-    out = write_report(args.catalog, ds, sel, args.out, overwrite=args.force, by=args.by)
+    out = write_report(args.catalog, ds, sel, args.out, overwrite=args.force, by=args.by,
+                       merge_method=args.merge_method)
     print(f"wrote {out}")
     return 0
 

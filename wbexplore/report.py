@@ -23,8 +23,11 @@ from . import __version__
 from .balance import compute_selection, rank
 from .balance.annual import annual_closure
 from .balance.combos import RANK_TABLE_COLUMNS
+from .balance.engine import MERGED_PREFIX, is_merged
+from .balance.merge import MERGE_METHODS, merge_form, merged_basin, merged_name
 from .balance.metrics import METRICS
 from .balance.terms import SOURCE_COMPONENTS, balance_text
+from .errors import InputError
 from .escape import html_text
 from .io.catalog import Catalog, CatalogError, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output
@@ -84,7 +87,10 @@ def _metric_value(key: str, v, *, units: bool = True) -> str:
 
 
 def _label(cat: Catalog, sid: str) -> str:
-    """A product's display name with its id in brackets (the id alone where the catalog has no label)."""
+    """A product's display name with its id in brackets (the id alone where the catalog has no label; a merged
+    source: "Merged P [merged_P]", its variant named in the method notes)."""
+    if is_merged(sid):
+        return f"Merged {sid.removeprefix(MERGED_PREFIX)} [{sid}]"
     try:
         spec = cat.source(sid)
     except CatalogError:  # a pseudo-source (a water body's levels) or an ensemble: no catalog entry
@@ -323,8 +329,31 @@ def _header(cat, res, sel, *, kind: str, sources: str, area: str) -> str:
             f"Written {now:%Y-%m-%d %H:%M} UTC by wbexplore {e(__version__)}.</p>")
 
 
-def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
-    """The report page of selection ``sel`` over the series ``ds`` (basins, incremental units or water bodies)."""
+def _merge_note(ds, sel) -> str:
+    """The method note of the merged sources of ``sel`` ("" where none is chosen)."""
+    merged = [c for c in SOURCE_COMPONENTS if is_merged(getattr(sel, c))]
+    if not merged:
+        return ""
+    a = ds[merged_name(merged[0])].attrs
+    parts = "; ".join(f"{c} from {ds[merged_name(c)].attrs.get('products', '?')} (error variances: "
+                      f"{ds[merged_name(c)].attrs.get('error_variance_source', '?')})" for c in merged)
+    return (f" Merged sources: the products of each component merged with inverse error variances, then the budget "
+            f"closed by {MERGE_METHODS[a['merge_method']]} ({a['merge_method']}); {parts}. A merged source is not "
+            "independent of its products, and it closes the budget by construction over the months the merge "
+            "used: its metrics say how much had to be moved, not that the products are right.")
+
+
+def report_html(cat: Catalog, ds, sel, *, by: str = "rmse", merge_method: str | None = None) -> str:
+    """The report page of selection ``sel`` over the series ``ds`` (basins, incremental units or water bodies).
+
+    A merged source in ``sel`` (``merged_P`` ...) is built for the basin with ``merge_method`` (default ckf, as
+    in the explorer) in `balance.merge.merge_form`; the map still ranks the products of every basin."""
+    full = ds
+    if any(is_merged(getattr(sel, c)) for c in SOURCE_COMPONENTS):
+        if ds.attrs.get("unit") == "waterbody":
+            raise InputError(f"water body {sel.basin!r} has no merged sources (its storage is its own)")
+        ds = merged_basin(ds, sel.basin, method=merge_method or "ckf",
+                          options=merge_form(sel.storage_change, sel.matched))
     res = compute_selection(ds, sel)
     ranking = rank(ds, sel.basin, sel.options(), by=by)
     if ds.attrs.get("unit") == "waterbody":
@@ -336,7 +365,7 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
 
     incremental = ds.attrs.get("unit") == "incremental"
     shown = map_metric(by)  # a depth metric (RMSE) would make the smallest flows look best: the map says which
-    best = rank_all(ds, sel.options(), by=shown)
+    best = rank_all(full, sel.options(), by=shown)
     scores = best[best["rank"] == 1].set_index("basin")[shown] if len(best) else pd.Series(dtype=float)
     figs = [plots.basin_map(load_basins(cat), scores, sel.basin, shown, title=f"Basins by best {metric_name(shown)}",
                             rank_by=by),
@@ -363,7 +392,7 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse") -> str:
             f"{_ranking_table(cat, ranking, sel, list(RANK_TABLE_COLUMNS), comps)}"
             f"<h2>Warnings</h2><ul class='small'>{warn}</ul>"
             f"<p class='caution small'><b>Caution.</b> {e(CAUTION)}</p></div></div>"
-            f"<h2>Method notes</h2>{_method_notes(res, sel, waterbody=False)}")
+            f"<h2>Method notes</h2>{_method_notes(res, sel, waterbody=False, extra=e(_merge_note(ds, sel)))}")
     return _page((head, figs, body), f"wbexplore report {sel.basin}{' (incremental)' if incremental else ''}")
 
 
@@ -462,11 +491,12 @@ def _waterbody_parts(cat: Catalog, ds, sel, res, ranking, *, by: str):
     return head, figs, body
 
 
-def write_report(catalog, ds, sel, out, *, overwrite: bool = False, by: str = "rmse") -> Path:
+def write_report(catalog, ds, sel, out, *, overwrite: bool = False, by: str = "rmse",
+                 merge_method: str | None = None) -> Path:
     """Write the HTML report atomically (refuses to overwrite unless asked, and any input of the catalog always)."""
     cat = catalog if isinstance(catalog, Catalog) else open_catalog(catalog)
     check_output(out, overwrite=overwrite, protect=cat)
-    text = report_html(cat, ds, sel, by=by)
+    text = report_html(cat, ds, sel, by=by, merge_method=merge_method)
     with atomic_path(out, overwrite=overwrite, protect=cat) as tmp:
         tmp.write_text(text, encoding="utf-8")
     return Path(out)

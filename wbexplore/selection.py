@@ -9,7 +9,11 @@ selection file, and its SHA-256) and one block, ``provenance``, holding one `fil
 per chosen product, per other product the uncertainty was computed from (collocation and the spread use
 the other products of a component; a stated error none: `balance.uncertainty.error_inputs`), per input
 (basins, discharge) and per flow; last the creation time and the versions of wbexplore and key libraries.
-`replay` recomputes and compares. Files of the earlier spelling (one ``{path, sha256}`` per file, every
+A merged source (``merged_P``, ``merged_ET``, ``merged_TWSA``: `balance.merge`) is recorded by the block
+``merge`` (variant, the closure form it was built in, the products merged per component and where their error
+variances came from) and, under ``provenance.merged_from``, one digest per product merged; replay builds the
+merge again from the catalog's products (`balance.merge.merged_basin`) and reports a product added, removed
+or changed as a difference. `replay` recomputes and compares. Files of the earlier spelling (one ``{path, sha256}`` per file, every
 product of the catalog under ``uncertainty_sources``) are still read and replayed.
 """
 
@@ -30,6 +34,8 @@ import yaml
 from . import __version__
 from .balance import ClosureOptions, Selection, compute_selection, to_unit_system
 from .balance.closure import MAX_LAG_MONTHS, Q_RELATIVE_ERROR, UNIT_SYSTEMS, flow_terms_of
+from .balance.engine import is_merged
+from .balance.merge import MERGE_METHODS, merge_form, merged_basin, merged_label, merged_name
 from .balance.storage import METHODS
 from .balance.options import AREAS
 from .balance.terms import BASE_TERMS, DS, DS_LEVELS, SOURCE_COMPONENTS, balance_text
@@ -99,7 +105,7 @@ def _clean_metrics(metrics: dict) -> dict:
 
 # Top-level keys in the order they are written: the choice and its options, what it gave, then where it came
 # from. Optional keys (unit, area, flows) are left out where they do not apply.
-KEY_ORDER = ("wbexplore_selection", "basin", "unit", "sources", "period", "storage_change", "discharge_lag_months",
+KEY_ORDER = ("wbexplore_selection", "basin", "unit", "sources", "merge", "period", "storage_change", "discharge_lag_months",
              "min_valid_fraction", "water_year_start_month", "q_relative_error", "area", "unit_system", "flows",
              "metrics", "uncertainty_source", "uncertainty_notes", "caution",
              "catalog", "provenance", "created", "versions")
@@ -132,8 +138,41 @@ def _uncertainty_products(cat: Catalog, sel: Selection, result, ds, unit: str) -
     return sorted(out - chosen)
 
 
+DEFAULT_MERGE_METHOD = "ckf"  # the variant a merged source is built with unless one is named (the explorer's too)
+
+
+def merged_components(sel: Selection) -> list[str]:
+    """The components whose chosen source is a merged one (``merged_<component>``)."""
+    return [c for c in SOURCE_COMPONENTS if is_merged(getattr(sel, c))]
+
+
+def _check_merged_ids(sel: Selection, where: str) -> None:
+    for c in merged_components(sel):
+        if getattr(sel, c) != merged_name(c):
+            raise InputError(f"{where}: source {getattr(sel, c)!r} for {c}: the merged {c} source is "
+                             f"{merged_name(c)!r}")
+
+
+def with_merge(ds, sel: Selection, *, method: str, options: ClosureOptions | None = None,
+               q_relative_error: float = Q_RELATIVE_ERROR) -> tuple:
+    """(the basin's series with its merged sources, the ``merge`` block of its selection file); ``options``
+    default: `balance.merge.merge_form` of the selection (the form the explorer builds merged sources in)."""
+    from .balance.uncertainty import component_products
+
+    opts = options if options is not None else merge_form(sel.storage_change, sel.matched)
+    one = merged_basin(ds, sel.basin, method=method, options=opts, q_relative_error=q_relative_error)
+    block = {"method": method, "variant": MERGE_METHODS[method],
+             "storage_change": opts.storage_change, "window_matched": bool(opts.matched),
+             "min_valid_fraction": float(opts.min_valid_fraction), "q_relative_error": float(q_relative_error),
+             "products": {c: list(component_products(one, c)) for c in SOURCE_COMPONENTS},
+             "error_variance_source": {c: str(one[merged_name(c)].attrs.get("error_variance_source", ""))
+                                       for c in SOURCE_COMPONENTS}}
+    return one, block
+
+
 def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit_system: str = "mm",
-                       q_relative_error: float = Q_RELATIVE_ERROR, unit: str = "whole", ds=None) -> dict:
+                       q_relative_error: float = Q_RELATIVE_ERROR, unit: str = "whole", ds=None,
+                       merge: dict | None = None) -> dict:
     """The selection as a plain dict (what `export_selection` writes), keys in `KEY_ORDER`.
 
     ``unit`` is "whole", "incremental" (the basin minus its upstream basins) or "waterbody" (a lake or
@@ -142,12 +181,19 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
     ``ds``: the series the result was computed from; the products its uncertainty used are read from them
     (`balance.uncertainty.error_inputs`; without them, every product of a component whose uncertainty is
     collocation or spread). Provenance is one `files_digest` entry per product and per input.
+    ``merge``: the ``merge`` block of `with_merge` where a chosen source is a merged one (its products are
+    recorded under ``provenance.merged_from``).
     """
     folder = cat.path.parent
     sources = {}
     used = {}
     for comp in SOURCE_COMPONENTS:
         sid = getattr(sel, comp)
+        if is_merged(sid):
+            if merge is None:
+                raise InputError(f"source {sid!r}: a merged source needs its merge (`with_merge`) to be recorded")
+            sources[comp] = {"id": sid, "label": f"{merged_label(merge['method'])} {comp}"}
+            continue
         own = _own_paths(cat, sid) if unit == "waterbody" else None
         label = _OWN_LABELS[sid] if own is not None else cat.source(sid).display
         sources[comp] = {"id": sid, "label": label}
@@ -164,11 +210,15 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
                   for f in flows if _flow_path(cat, f["id"]) is not None}
     if flow_files:
         provenance["flows"] = flow_files
+    if merge is not None:
+        merged_from = sorted({sid for ids in merge["products"].values() for sid in ids} - set(used))
+        provenance["merged_from"] = {sid: files_digest(_product_paths(cat, sid, unit), folder) for sid in merged_from}
     doc = {
         "wbexplore_selection": SELECTION_VERSION,
         "basin": {"id": sel.basin, "name": result.basin_name, "area_km2": float(result.area_km2)},
         "unit": unit,
         "sources": sources,
+        "merge": merge,
         "period": {"start": f"{result.frame.index[0]:%Y-%m}", "end": f"{result.frame.index[-1]:%Y-%m}"},
         # options as given (replayed as they are); where they do not apply, the note says how storage was taken
         "storage_change": {"method": sel.storage_change, "window_matched": bool(sel.matched),
@@ -193,6 +243,8 @@ def selection_document(cat: Catalog, sel: Selection, result, *, base: Path, unit
     }
     if not flows:  # only where the balance has flows: a plain catalog's selection file has no `flows`
         del doc["flows"]
+    if merge is None:  # only where a chosen source is merged
+        del doc["merge"]
     if unit == "whole":  # a whole basin's file names no unit
         del doc["unit"]
     if not (sel.area != "outline" or unit == "waterbody"):  # where P and E fall (water bodies)
@@ -217,6 +269,9 @@ def selection_text(doc: dict, *, name: str) -> str:
     doc = dict(doc)
     if "provenance" in doc:
         doc["provenance"] = {k: {n: _OneLine(e) for n, e in v.items()} for k, v in doc["provenance"].items()}
+    if doc.get("merge"):  # one line per component: the products merged, where their errors came from
+        doc["merge"] = {**doc["merge"], "products": _OneLine(doc["merge"]["products"]),
+                        "error_variance_source": _OneLine(doc["merge"]["error_variance_source"])}
     parts = [f"# wbexplore selection file: replay with `wbexplore replay {name}`\n"]
     for key, value in doc.items():
         if key in _PART_COMMENTS:
@@ -266,7 +321,7 @@ def _flow_entries(cat: Catalog, result) -> list[dict]:
 
 def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, series: str | None = None,
                      unit_system: str = "mm", cache_dir=None, ds=None, incremental: bool = False,
-                     waterbody: bool = False) -> dict:
+                     waterbody: bool = False, merge_method: str | None = None) -> dict:
     """Compute ``sel`` from the catalog's files and write the selection file (and optionally the series).
 
     Parameters
@@ -280,6 +335,8 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     incremental : the basin's incremental unit (its area minus its upstream basins); recorded as
         ``unit: incremental`` in the file, and replayed over that unit
     waterbody : ``sel.basin`` is a water body (its TWSA source is "levels"); recorded as ``unit: waterbody``
+    merge_method : variant of a chosen merged source (``merged_P`` ...; `balance.merge.MERGE_METHODS`, default
+        `DEFAULT_MERGE_METHOD`), built in `balance.merge.merge_form` and recorded in the ``merge`` block
 
     Returns
     -------
@@ -294,7 +351,16 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
         if same_file(out, series):
             raise InputError(f"{series}: the series file is the selection file {out}; give two different files")
     unit = "waterbody" if waterbody else "incremental" if incremental else "whole"
+    merged = merged_components(sel)
+    _check_merged_ids(sel, str(cat.path))
+    if merged and waterbody:
+        raise InputError(f"{cat.path}: water body {sel.basin!r} has no merged sources (its storage is its own)")
+    method = DEFAULT_MERGE_METHOD if merge_method is None else merge_method
+    if method not in MERGE_METHODS:
+        raise InputError(f"merge method {method!r} is not one of {', '.join(MERGE_METHODS)}")
     for comp in SOURCE_COMPONENTS:
+        if comp in merged:
+            continue
         if waterbody and comp == DS.component:
             if sel.TWSA != LEVELS:
                 raise InputError(f"{cat.path}: water body {sel.basin!r}: its storage comes from levels "
@@ -310,10 +376,14 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     elif ds.attrs.get("unit", "whole") != unit:
         raise InputError(f"{cat.path}: the series given are {ds.attrs.get('unit', 'whole')} units, "
                          f"not {unit} ones")
+    merge = None
+    if merged:
+        ds, merge = with_merge(ds, sel, method=method)
     res = compute_selection(ds, sel)
     if res.n_valid == 0:
         raise InputError(res.messages[0])
-    doc = selection_document(cat, sel, res, base=out.resolve().parent, unit_system=unit_system, unit=unit, ds=ds)
+    doc = selection_document(cat, sel, res, base=out.resolve().parent, unit_system=unit_system, unit=unit, ds=ds,
+                             merge=merge)
     if incremental:
         doc["basin"]["whole_area_km2"] = float(ds["whole_area_km2"].sel(basin=sel.basin))
     written = {}
@@ -344,8 +414,9 @@ def _extract_for(cat: Catalog, sel: Selection, cache_dir, *, incremental: bool =
         return extract(cat, basins=[sel.basin], cache_dir=cache_dir, incremental=incremental)
 
 
-_PROVENANCE_PARTS = ("sources", "uncertainty_sources", "inputs", "flows")  # `selection_document`'s provenance
-_UNCERTAINTY_SOURCES = ("stated", "collocation", "spread", "none")  # `balance.uncertainty` methods
+# `selection_document`'s provenance
+_PROVENANCE_PARTS = ("sources", "uncertainty_sources", "inputs", "flows", "merged_from")
+_UNCERTAINTY_SOURCES = ("stated", "collocation", "spread", "none", "posterior")  # `balance.uncertainty` methods
 UNITS = ("whole", "incremental", "waterbody")  # the balance units a selection file may name (field ``unit``)
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")
 _MONTH = re.compile(r"[0-9]{4}-(0[1-9]|1[0-2])\Z")
@@ -425,6 +496,26 @@ class _Fields:
         return v
 
 
+def _validate_merge(c, merge) -> None:
+    m = c.mapping(merge, "merge")
+    method = c.get(m, "merge.method", "method")
+    if method not in MERGE_METHODS:
+        c.fail("merge.method", f"{_show(method)} is not one of {', '.join(MERGE_METHODS)}")
+    sc = c.get(m, "merge.storage_change", "storage_change")
+    if sc not in METHODS:
+        c.fail("merge.storage_change", f"{_show(sc)} is not one of {', '.join(METHODS)}")
+    c.boolean(c.get(m, "merge.window_matched", "window_matched"), "merge.window_matched")
+    c.number(c.get(m, "merge.min_valid_fraction", "min_valid_fraction"), "merge.min_valid_fraction", 0.0, 1.0)
+    c.number(c.get(m, "merge.q_relative_error", "q_relative_error"), "merge.q_relative_error", 0.0)
+    products = c.mapping(c.get(m, "merge.products", "products"), "merge.products")
+    for comp in SOURCE_COMPONENTS:
+        ids = c.get(products, f"merge.products.{comp}", comp)
+        if not isinstance(ids, list) or not ids:
+            c.fail(f"merge.products.{comp}", f"{_show(ids)} must be a list of product ids")
+        for i, sid in enumerate(ids):
+            c.text(sid, f"merge.products.{comp}.{i}")
+
+
 def _validate(doc: dict, p: Path) -> Selection:
     """Every field of a selection document checked for type and range; returns its `Selection`."""
     c = _Fields(p)
@@ -455,6 +546,15 @@ def _validate(doc: dict, p: Path) -> Selection:
         entry = c.mapping(c.get(sources, f"sources.{comp}", comp), f"sources.{comp}")
         ids[comp] = c.text(c.get(entry, f"sources.{comp}.id", "id"), f"sources.{comp}.id")
         c.files(entry.get("files", []), f"sources.{comp}.files")
+    merge = doc.get("merge")
+    if merge is not None:
+        _validate_merge(c, merge)
+    for comp, sid in ids.items():
+        if is_merged(sid):
+            if sid != merged_name(comp):
+                c.fail(f"sources.{comp}.id", f"{_show(sid)}: the merged {comp} source is {merged_name(comp)!r}")
+            if merge is None:
+                c.fail(f"sources.{comp}.id", f"{_show(sid)} is a merged source, but the file has no 'merge' block")
     inputs = c.mapping({} if doc.get("inputs") is None else doc["inputs"], "inputs")
     for key, entry in inputs.items():
         c.file_entry(entry, f"inputs.{key}")
@@ -578,8 +678,11 @@ def replay(path, *, cache_dir=None) -> dict:
     known = {s.id: s for s in cat.sources}
     unit = doc.get("unit", "whole")
     waterbody = unit == "waterbody"
+    merge = doc.get("merge")
     for comp in SOURCE_COMPONENTS:
         sid = getattr(sel, comp)
+        if is_merged(sid):
+            continue  # built again from the products recorded in `merge` (checked below)
         if waterbody and _own_paths(cat, sid) is not None:
             continue  # the storage from levels, the pan: checked below against the catalog's water-body files
         if sid not in known:
@@ -637,6 +740,8 @@ def replay(path, *, cache_dir=None) -> dict:
     for comp in SOURCE_COMPONENTS:
         sid = getattr(sel, comp)
         label = f"source {sid}"
+        if is_merged(sid):
+            continue
         if prov is None:
             check(doc["sources"][comp].get("files") or [], product_paths(sid), label, store_ok=is_store(sid))
         elif sid not in prov.get("sources", {}):
@@ -657,6 +762,31 @@ def replay(path, *, cache_dir=None) -> dict:
         else:
             check_digest(entry, [catalog_inputs[key]], key)
     ds = _extract_for(cat, sel, cache_dir, incremental=unit == "incremental", waterbody=waterbody)
+    if merge is not None:  # the merged sources, built again from the catalog's products now
+        from .balance.uncertainty import component_products
+
+        merged_from = {} if prov is None else prov.get("merged_from", {})
+        chosen = {getattr(sel, c) for c in SOURCE_COMPONENTS}
+        now_all = set()
+        for comp in SOURCE_COMPONENTS:
+            rec, now = list(merge["products"][comp]), list(component_products(ds, comp))
+            now_all.update(now)
+            if rec != now:
+                rows.append((f"merge {comp} products", ", ".join(rec), ", ".join(now)))
+        for sid in sorted(now_all - chosen):
+            label = f"source {sid} (merged)"
+            if sid not in merged_from:
+                rows.append((label, "(not recorded)", "the merge uses it now"))
+            else:
+                check_digest(merged_from[sid], product_paths(sid), label, store_ok=is_store(sid))
+        opts = ClosureOptions(storage_change=merge["storage_change"], matched=bool(merge["window_matched"]),
+                              min_valid_fraction=float(merge["min_valid_fraction"]))
+        try:
+            ds, _ = with_merge(ds, sel, method=merge["method"], options=opts,
+                               q_relative_error=float(merge["q_relative_error"]))
+        except InputError as exc:
+            rows.append((f"merge ({merge['method']})", "built", f"cannot be built now: {exc}"))
+            _raise_mismatch(path, rows)
     # a file written before issue 16 has no uncertainty_source: its n_beyond_2sigma came from the product spread
     res = compute_selection(ds, sel, q_relative_error=float(doc.get("q_relative_error", Q_RELATIVE_ERROR)),
                             uncertainty="auto" if doc.get("uncertainty_source") is not None else "spread")
@@ -703,12 +833,17 @@ def replay(path, *, cache_dir=None) -> dict:
         elif not _close(old, new[k]):
             rows.append((f"metric {k}", repr(old), repr(new[k])))
     if rows:
-        w = [max(len(str(r[i])) for r in rows + [("what", "recorded", "now")]) for i in range(3)]
-        lines = [f"{'what'.ljust(w[0])}  {'recorded'.ljust(w[1])}  now"]
-        lines += [f"{str(a).ljust(w[0])}  {str(b).ljust(w[1])}  {c}" for a, b, c in rows]
-        first = rows[0]
-        raise ReplayMismatch(f"{path}: {len(rows)} difference(s), first: {first[0]} ({first[2]})", "\n".join(lines))
+        _raise_mismatch(path, rows)
     return {"n_metrics": n, "metrics": new}
+
+
+def _raise_mismatch(path, rows) -> None:
+    """`ReplayMismatch` with the table of differences (what, recorded, now)."""
+    w = [max(len(str(r[i])) for r in rows + [("what", "recorded", "now")]) for i in range(3)]
+    lines = [f"{'what'.ljust(w[0])}  {'recorded'.ljust(w[1])}  now"]
+    lines += [f"{str(a).ljust(w[0])}  {str(b).ljust(w[1])}  {c}" for a, b, c in rows]
+    first = rows[0]
+    raise ReplayMismatch(f"{path}: {len(rows)} difference(s), first: {first[0]} ({first[2]})", "\n".join(lines))
 
 
 # --------------------------------------------------------------------------- series export
@@ -819,6 +954,9 @@ def series_dataset(result, *, doc: dict | None = None):
     }
     if doc:
         ds.attrs["catalog_sha256"] = doc["catalog"]["sha256"]
+        if doc.get("merge"):  # a merged source: its variant and products, as the selection file records them
+            ds.attrs["merge_method"] = doc["merge"]["method"]
+            ds.attrs["merge"] = json.dumps(doc["merge"], sort_keys=True)
     ds = ds.assign_coords(basin=((), str(sel.basin), {"long_name": "basin identifier"}))
     for v in ds.variables:
         ds[v].encoding = {}

@@ -56,6 +56,7 @@ from .terms import SOURCE_COMPONENTS, balance_terms
 
 __all__ = ["MERGE_METHODS", "MERGED_PREFIX", "ComponentErrors", "merge_products", "product_error_variances",
            "inverse_variance_merge", "force_closure", "proportional_redistribution", "with_merged", "merged_name",
+           "merge_form", "merged_basin",
            "merged_label"]
 
 MERGE_METHODS = {
@@ -468,3 +469,20 @@ def with_merged(ds: xr.Dataset, merged: xr.Dataset) -> xr.Dataset:
         out[f"{n}_standard_error"] = (("basin", "time"), merged[f"{n}_standard_error"].values,
                                       dict(merged[f"{n}_standard_error"].attrs))
     return out
+
+
+def merge_form(storage_change: str, matched: bool) -> ClosureOptions:
+    """The closure form in which a merged source offered beside the products is built for a selection: its
+    storage-change method and window matching; the other options at their defaults (``min_valid_fraction``
+    0.5, no lag, no gap filling, the whole record: the merge does not follow the period). The explorer and a
+    selection file's export use this one form, so that the file replays what the page showed."""
+    return ClosureOptions(storage_change=storage_change, matched=bool(matched))
+
+
+def merged_basin(ds: xr.Dataset, basin: str, *, method: str, options: ClosureOptions,
+                 q_relative_error: float = unc.Q_RELATIVE_ERROR) -> xr.Dataset:
+    """``basin``'s series alone (a basin's balance does not depend on the others) with its merged sources
+    (`merge_products` in the closure form ``options``, then `with_merged`). Refusals as `merge_products`."""
+    m = merge_products(ds, method=method, basins=[basin], options=options, q_relative_error=q_relative_error)
+    one = [basin_ids(ds).index(str(basin))]
+    return with_merged(ds.isel(basin=one), m)

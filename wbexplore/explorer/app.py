@@ -22,7 +22,6 @@ import pandas as pd
 from .. import plots
 from ..names import METRIC_NAMES, OPTIONS, column_label, metric_label
 from ..balance.combos import RANK_TABLE_COLUMNS, WATERBODY_TABLE_COLUMNS
-from ..balance.engine import is_merged
 from ..balance.terms import SOURCE_COMPONENTS
 from ..errors import InputError
 from ..escape import md_text, public_message, safe_filename, study_relative
@@ -283,11 +282,6 @@ class Explorer:
         try:
             if not s.catalog_path:
                 raise InputError(f"{what} needs the explorer to be opened on a catalog file")
-            merged = [getattr(s, c) for c in SOURCE_COMPONENTS if is_merged(getattr(s, c))]
-            if merged:  # the selection file cannot record a merge for replay yet: refuse before writing anything
-                raise InputError(f"{what} of a merged source ({', '.join(merged)}) is not possible yet: a selection "
-                                 "file cannot record the merge for replay; choose a product for that component "
-                                 "(`wbexplore merge` writes the merged series)")
             folder.mkdir(parents=True, exist_ok=True)
             unit = ["incremental"] if s.unit_series() is not s.series else []
             written = write(s, folder, safe_filename(s.basin, *unit, s.P, s.ET, s.TWSA, s.start, s.end))
@@ -302,7 +296,8 @@ class Explorer:
         def write(s, folder, stem):
             out = export_selection(s.catalog_path, s.selection(), folder / f"selection_{stem}.yaml", overwrite=True,
                                    series=str(folder / f"selection_{stem}.csv"), unit_system=s.unit_system,
-                                   ds=s.unit_series(), incremental=s.unit_series() is not s.series)
+                                   ds=s.unit_series(), incremental=s.unit_series() is not s.series,
+                                   merge_method=s.merge_method)
             return [out["selection"], out["series"]]
 
         self._write_to_folder("export", write)
@@ -312,7 +307,7 @@ class Explorer:
 
         def write(s, folder, stem):
             out = write_report(s.catalog_path, s.unit_series(), s.selection(), folder / f"report_{stem}.html",
-                               overwrite=True, by=s.metric)
+                               overwrite=True, by=s.metric, merge_method=s.merge_method)
             return [out]
 
         self._write_to_folder("the report", write)

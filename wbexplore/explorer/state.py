@@ -14,7 +14,7 @@ import param
 from ..balance import (METHODS, METRICS, UNIT_SYSTEMS, ClosureOptions, Selection, best_scores, compute_selection,
                        long_term_all, rank)
 from ..balance.engine import is_merged
-from ..balance.merge import MERGE_METHODS, merge_products, merged_label, merged_name, with_merged
+from ..balance.merge import MERGE_METHODS, merge_form, merge_products, merged_label, merged_name, with_merged
 from ..balance.terms import SOURCE_COMPONENTS
 from ..series import source_ids
 from ..errors import InputError
@@ -233,9 +233,8 @@ class ClosureState(param.Parameterized):
         form = (self.storage_change, self.matched)
 
         def run():
-            opts = ClosureOptions(storage_change=form[0], matched=form[1])
-            try:
-                return merge_products(ds, method=self.merge_method, basins=[basin], options=opts), ""
+            try:  # the form a selection file's export builds the merge in (`balance.merge.merge_form`)
+                return merge_products(ds, method=self.merge_method, basins=[basin], options=merge_form(*form)), ""
             except InputError as exc:
                 return None, str(exc).removeprefix(f"basin {basin!r}: ")
 
