@@ -215,3 +215,18 @@ def test_page_export_and_report_of_a_merged_source(study, tmp_path):
     ex._on_report(None)
     assert ex.export_msg.object.startswith("Wrote"), ex.export_msg.object
     assert "Merged P [merged_P]" in next((tmp_path / "out").glob("report_*.html")).read_text()
+
+
+def test_a_product_added_to_the_catalog_changes_the_merge_and_is_a_difference(study, tmp_path, capsys):
+    """A fourth P product in the catalog after the export: the merge would now weigh it in, so replay exits 1
+    naming the component's products as recorded and now (never a silently different merge)."""
+    out = tmp_path / "merged.yaml"
+    assert _export(study, out, capsys)[0] == 0
+    cat = study / "catalog.yaml"
+    doc = yaml.safe_load(cat.read_text())
+    extra = dict(next(s for s in doc["sources"] if s["id"] == "plover"), id="wren", label="Wren rain")
+    doc["sources"].append(extra)
+    cat.write_text(yaml.safe_dump(doc, sort_keys=False))
+    rc, cap = _cli(["replay", out], capsys)
+    assert rc == 1, cap.err + cap.out
+    assert "merge P products" in cap.out and "kestrel, plover, heron, wren" in cap.out
