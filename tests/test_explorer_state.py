@@ -224,3 +224,39 @@ def test_explore_returns_a_handle_a_next_cell_can_read(demo_dir):
     mine = app.result
     mine["P"] = -1.0  # a copy: the next cell cannot change what the page shows
     assert (app.result["P"] != -1.0).all()
+
+
+def test_a_new_view_is_one_class_and_follows_only_its_parameters(state):
+    """Issue 17 item 2: a plot on the page is a `views.PlotView` subclass; the page redraws it when one of its
+    ``deps`` changes and only then, with the state's numbers (the residual plot's columns are the selection's
+    residual as `compute_selection` gives it)."""
+    import numpy as np
+
+    from wbexplore import plots
+    from wbexplore.explorer import views
+    from wbexplore.explorer.app import Explorer
+
+    drawn, made = [], []
+
+    class ResidualOnBasin(views.PlotView):
+        deps, css = ("basin",), "wbx-test-view"
+
+        def make_plot(self):
+            made.append(plots.ResidualPlot())
+            return made[-1]
+
+        def draw(self):
+            drawn.append(self.state.basin)
+            self.plot.update(self.state.result(), self.state.unit_system)
+
+    ex = Explorer(state)
+    pane = ex._view(ResidualOnBasin)
+    assert pane.css_classes == ["wbx-test-view"] and drawn == [state.basin]
+    state.metric = "kge"  # not one of its parameters: no redraw
+    assert len(drawn) == 1
+    other = next(b for b in state.param.basin.objects if b != state.basin)
+    state.basin = other
+    assert drawn == [drawn[0], other]
+    want = compute_selection(state.unit_series(), state.selection()).frame["residual"].to_numpy()
+    assert len(made) == 1 and pane.object is made[0].fig  # one figure, refilled in place
+    np.testing.assert_allclose(made[0].src.data["residual"], want)

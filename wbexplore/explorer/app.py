@@ -31,10 +31,7 @@ from .state import ClosureState
 
 __all__ = ["Explorer", "explore", "serve", "load_state", "default_export_dir"]
 
-_DEPS = ("basin", "unit", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system", "metric")
-_SEL_DEPS = ("basin", "unit", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system")
-_MAP_DEPS = ("basin", "period", "storage_change", "matched", "metric")
-_MULTI_DEPS = (*SOURCE_COMPONENTS, "period", "storage_change", "matched")
+_DEPS, _SEL_DEPS = views.DEPS, views.SEL_DEPS
 
 
 def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureState:
@@ -319,30 +316,9 @@ class Explorer:
         s = self.state
         return pn.bind(lambda *a: fn(), *[s.param[d] for d in deps])
 
-    def _view(self, plot, draw, deps, css: str):
-        """A plot pane: the figure is built once per session and `draw(plot)` refills its sources in place
-        when one of `deps` changes (bokeh then sends the new columns, not a new figure)."""
-        import panel as pn
-
-        plot.fig.css_classes = [css]
-        draw(plot)
-        self.state.param.watch(lambda *events: draw(plot), list(deps))
-        return pn.pane.Bokeh(plot.fig, sizing_mode="stretch_width", css_classes=[css])
-
-    def _map(self):
-        from bokeh.events import Tap
-
-        from ..names import map_metric
-
-        s = self.state
-        m = plots.MapPlot(self.outlines, waterbodies=self.wb_outlines)
-        m.fig.on_event(Tap, lambda ev: s.pick_basin_at(ev.x, ev.y))
-
-        def draw(p):  # the map's metric compares across basins: "Rank by" itself, or KGE explained on the map
-            shown = map_metric(s.metric)
-            p.update(s.basin_scores(shown), s.basin, shown, rank_by=s.metric)
-
-        return self._view(m, draw, _MAP_DEPS, "wbx-map")
+    def _view(self, cls):
+        """The pane of `views.PlotView` subclass ``cls`` (its figure built once for this page)."""
+        return cls(self).pane()
 
     def _disagreement(self):
         """Where the products of one component disagree in the basin: `plots.disagreement_map` of the cell means
@@ -398,18 +374,7 @@ class Explorer:
         import panel as pn
 
         s = self.state
-
-        def draw_exchange(p):
-            if s.is_waterbody:
-                p.update(s.result(), s.exchange(), s.unit_system)
-
-        def draw_levels(p):
-            lv = s.levels()
-            if lv is not None:
-                p.update(lv, start=s.start, end=s.end, name=s.names().get(s.basin, s.basin))
-
-        exchange = self._view(plots.ExchangePlot(), draw_exchange, _SEL_DEPS, "wbx-exchange")
-        levels = self._view(plots.LevelVolumePlot(), draw_levels, ("basin", "period"), "wbx-levels")
+        exchange, levels = self._view(views.ExchangeView), self._view(views.LevelsView)
         wb_summary = pn.pane.HTML(
             self._bound(lambda: views.waterbody_summary_html(s.result(), s.exchange()) if s.is_waterbody else "",
                         _SEL_DEPS), css_classes=["wbx-summary-pane", "wbx-waterbody-summary"], width=260)
@@ -440,17 +405,13 @@ class Explorer:
 
         s = self.state
         res = lambda: s.result()  # noqa: E731
-        bars = self._view(plots.BarsPlot(), lambda p: p.update(res(), s.unit_system), _SEL_DEPS, "wbx-bars")
-        resid = self._view(plots.ResidualPlot(), lambda p: p.update(res(), s.unit_system), _SEL_DEPS,
-                           "wbx-residual")
-        scatter = self._view(plots.ScatterPlot(), lambda p: p.update(res(), s.unit_system), _SEL_DEPS,
-                             "wbx-scatter")
+        bars, resid, scatter = (self._view(v) for v in (views.BarsView, views.ResidualView, views.ScatterView))
         summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
                                css_classes=["wbx-summary-pane"], width=260)
         warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.unit_series(),
                                                                             notes=[s.merged_note()]), _SEL_DEPS),
                                 css_classes=["wbx-warnings"], width=260)
-        multi = self._view(plots.MultiBasinPlot(), lambda p: p.update(s.multi_basin()), _MULTI_DEPS, "wbx-multi")
+        multi = self._view(views.MultiBasinView)
         exchange, levels = self._waterbody_views(summary, warn, resid, scatter)
         controls = pn.Column(
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search,
@@ -462,7 +423,7 @@ class Explorer:
             pn.pane.Markdown("### Export"), self.export_where, self.w_export, self.w_report, self.export_msg, self.w_download,
             width=290)
         views_col = pn.Column(
-            pn.Row(pn.Column(self._map(), sizing_mode="stretch_width"), bars,
+            pn.Row(pn.Column(self._view(views.MapView), sizing_mode="stretch_width"), bars,
                    sizing_mode="stretch_width"),
             resid, exchange,
             pn.Row(scatter, levels, multi, sizing_mode="stretch_width"),
