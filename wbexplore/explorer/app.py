@@ -31,7 +31,7 @@ from .state import ClosureState
 
 __all__ = ["Explorer", "explore", "serve", "load_state", "default_export_dir"]
 
-_DEPS, _SEL_DEPS = views.DEPS, views.SEL_DEPS
+_DEPS = views.DEPS  # what the ranking table follows
 
 
 def load_state(catalog, *, cache_dir=None, progress: bool = False) -> ClosureState:
@@ -310,14 +310,8 @@ class Explorer:
         self._write_to_folder("the report", write)
 
     # ----------------------------------------------------------------- views
-    def _bound(self, fn, deps=_DEPS):
-        import panel as pn
-
-        s = self.state
-        return pn.bind(lambda *a: fn(), *[s.param[d] for d in deps])
-
     def _view(self, cls):
-        """The pane of `views.PlotView` subclass ``cls`` (its figure built once for this page)."""
+        """The pane of view class ``cls`` (`views.PlotView`: its figure built once for this page; `views.TextView`)."""
         return cls(self).pane()
 
     def _disagreement(self):
@@ -371,16 +365,10 @@ class Explorer:
     def _waterbody_views(self, summary, warn, resid, scatter):
         """The water body's views (unmeasured exchange, level and volume) and which views show for which kind:
         a water body has no gauged outlet (no Q scatter) and its residual is the unmeasured exchange."""
-        import panel as pn
 
         s = self.state
         exchange, levels = self._view(views.ExchangeView), self._view(views.LevelsView)
-        wb_summary = pn.pane.HTML(
-            self._bound(lambda: views.waterbody_summary_html(s.result(), s.exchange()) if s.is_waterbody else "",
-                        _SEL_DEPS), css_classes=["wbx-summary-pane", "wbx-waterbody-summary"], width=260)
-        wb_warn = pn.pane.Markdown(
-            self._bound(lambda: views.waterbody_warnings_markdown(s.result()) if s.is_waterbody else "", _SEL_DEPS),
-            css_classes=["wbx-warnings"], width=260)
+        wb_summary, wb_warn = self._view(views.WaterbodySummaryView), self._view(views.WaterbodyWarningsView)
         self._wb_panes = (wb_summary, wb_warn)
 
         def show(*events):
@@ -404,13 +392,8 @@ class Explorer:
         import panel as pn
 
         s = self.state
-        res = lambda: s.result()  # noqa: E731
         bars, resid, scatter = (self._view(v) for v in (views.BarsView, views.ResidualView, views.ScatterView))
-        summary = pn.pane.HTML(self._bound(lambda: views.summary_html(res(), metric=s.metric), _SEL_DEPS + ("metric",)),
-                               css_classes=["wbx-summary-pane"], width=260)
-        warn = pn.pane.Markdown(self._bound(lambda: views.warnings_markdown(res(), s.unit_series(),
-                                                                            notes=[s.merged_note()]), _SEL_DEPS),
-                                css_classes=["wbx-warnings"], width=260)
+        summary, warn = self._view(views.SummaryView), self._view(views.WarningsView)
         multi = self._view(views.MultiBasinView)
         exchange, levels = self._waterbody_views(summary, warn, resid, scatter)
         controls = pn.Column(

@@ -1,8 +1,8 @@
 """Views: the explorer's text panes (summary, warnings) and its plots, drawn by `wbexplore.plots`.
 
-Each plot of the page is a small `PlotView` class: which `plots` figure, which state parameters it follows
-(``deps``), its CSS class and how it refills the figure from the state (``draw``). Adding a plot to the page is
-one class here and one line in `Explorer._build_layout`.
+Each view of the page is a small class: a `PlotView` (which `plots` figure, which state parameters it follows,
+``deps``, its CSS class and how it refills the figure from the state, ``draw``) or a `TextView` (``deps``, CSS
+class, ``text``). Adding a view to the page is one class here and one line in `Explorer._build_layout`.
 
 Nothing here computes a balance term. The texts (summary, warnings) are shared with the HTML report and
 live in `wbexplore.texts`, the plots in `wbexplore.plots` (the report never imports the explorer); they
@@ -24,7 +24,7 @@ from ..texts import (
     waterbody_warnings_markdown,
 )
 
-__all__ = ["PlotView", "BarsView", "ResidualView", "ScatterView", "MultiBasinView", "MapView", "ExchangeView",
+__all__ = ["TextView", "SummaryView", "WarningsView", "WaterbodySummaryView", "WaterbodyWarningsView", "PlotView", "BarsView", "ResidualView", "ScatterView", "MultiBasinView", "MapView", "ExchangeView",
            "LevelsView", "DEPS", "SEL_DEPS", "MAP_DEPS", "MULTI_DEPS", "COLORS", "GRAVIMETRY_MIN_KM2", "SEASON_COLORS", "UNIT_LABEL", "balance_scatter", "basin_map", "component_bars",
            "multi_basin", "residual_series", "summary_html", "warnings_for", "warnings_markdown",
            "waterbody_summary_html", "waterbody_warnings_markdown"]
@@ -189,3 +189,69 @@ class LevelsView(PlotView):
         lv = s.levels()
         if lv is not None:
             self.plot.update(lv, start=s.start, end=s.end, name=s.names().get(s.basin, s.basin))
+
+
+# --------------------------------------------------------------------------- the page's texts, one class each
+class TextView:
+    """A text pane of the page: ``text()`` from the state, redrawn when one of ``deps`` changes (the pane is
+    bound to those parameters: they are declared once, here). HTML unless ``markdown``; every text from a
+    file is escaped by the functions of `wbexplore.texts` that make it."""
+
+    deps: tuple = SEL_DEPS
+    css: tuple = ("wbx-summary-pane",)
+    markdown: bool = False
+    width: int = 260
+
+    def __init__(self, explorer):
+        self.explorer = explorer
+        self.state = explorer.state
+
+    def text(self) -> str:
+        raise NotImplementedError
+
+    def pane(self):
+        import panel as pn
+
+        bound = pn.bind(lambda *a: self.text(), *[self.state.param[d] for d in self.deps])
+        kind = pn.pane.Markdown if self.markdown else pn.pane.HTML
+        return kind(bound, css_classes=list(self.css), width=self.width)
+
+
+class SummaryView(TextView):
+    """The summary card: the combination, its metrics (the "Rank by" one first), the uncertainty source."""
+
+    deps = DEPS
+
+    def text(self):
+        return summary_html(self.state.result(), metric=self.state.metric)
+
+
+class WarningsView(TextView):
+    """What the analyst should know about this selection (`texts.warnings_for`) and why no merged source is
+    offered where there is none."""
+
+    css, markdown = ("wbx-warnings",), True
+
+    def text(self):
+        s = self.state
+        return warnings_markdown(s.result(), s.unit_series(), notes=[s.merged_note()])
+
+
+class WaterbodySummaryView(TextView):
+    """A water body's summary card (the unmeasured exchange); empty for a basin."""
+
+    css = ("wbx-summary-pane", "wbx-waterbody-summary")
+
+    def text(self):
+        s = self.state
+        return waterbody_summary_html(s.result(), s.exchange()) if s.is_waterbody else ""
+
+
+class WaterbodyWarningsView(TextView):
+    """A water body's warnings; empty for a basin."""
+
+    css, markdown = ("wbx-warnings",), True
+
+    def text(self):
+        s = self.state
+        return waterbody_warnings_markdown(s.result()) if s.is_waterbody else ""
