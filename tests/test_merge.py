@@ -416,6 +416,8 @@ def test_cli_merge_bad_input(study, tmp_path, capsys, argv, says):
 
 
 def test_cli_method_names_are_the_library_methods():
-    from wbexplore.cli import MERGE_METHOD_NAMES
+    from wbexplore.balance.merge import DEFAULT_METHOD
+    from wbexplore.cli import MERGE_DEFAULT, MERGE_METHOD_NAMES
 
     assert tuple(MERGE_METHODS) == MERGE_METHOD_NAMES
+    assert MERGE_DEFAULT == DEFAULT_METHOD

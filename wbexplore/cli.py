@@ -82,7 +82,7 @@ def _month_number(text: str) -> int:
 
 
 def _add_merge_method(p):
-    p.add_argument("--merge-method", default="ckf", choices=list(MERGE_METHOD_NAMES), metavar="VARIANT",
+    p.add_argument("--merge-method", default=MERGE_DEFAULT, choices=list(MERGE_METHOD_NAMES), metavar="VARIANT",
                    help="variant of a merged source given as --P merged_P, --ET merged_ET or --TWSA merged_TWSA: "
                         "pr, ckf or collocation (default ckf, as in the explorer); built in the selection's "
                         "storage-change method and window matching")
@@ -129,6 +129,7 @@ class _Parser(argparse.ArgumentParser):
 
 # the techniques of `wbexplore.balance.merge.MERGE_METHODS` (spelled here so that --help imports no numpy)
 MERGE_METHOD_NAMES = ("pr", "ckf", "collocation")
+MERGE_DEFAULT = "ckf"  # `wbexplore.balance.merge.DEFAULT_METHOD`, spelled here for the same reason
 
 
 def _caution() -> str:

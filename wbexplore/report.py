@@ -24,10 +24,9 @@ from .balance import compute_selection, rank
 from .balance.annual import annual_closure
 from .balance.combos import RANK_TABLE_COLUMNS
 from .balance.engine import MERGED_PREFIX, is_merged
-from .balance.merge import MERGE_METHODS, merge_form, merged_basin, merged_name
+from .balance.merge import DEFAULT_METHOD, MERGE_METHODS, merge_form, merged_basin, merged_components, merged_name
 from .balance.metrics import METRICS
 from .balance.terms import SOURCE_COMPONENTS, balance_text
-from .errors import InputError
 from .escape import html_text
 from .io.catalog import Catalog, CatalogError, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output
@@ -331,7 +330,7 @@ def _header(cat, res, sel, *, kind: str, sources: str, area: str) -> str:
 
 def _merge_note(ds, sel) -> str:
     """The method note of the merged sources of ``sel`` ("" where none is chosen)."""
-    merged = [c for c in SOURCE_COMPONENTS if is_merged(getattr(sel, c))]
+    merged = merged_components(sel)
     if not merged:
         return ""
     a = ds[merged_name(merged[0])].attrs
@@ -346,13 +345,11 @@ def _merge_note(ds, sel) -> str:
 def report_html(cat: Catalog, ds, sel, *, by: str = "rmse", merge_method: str | None = None) -> str:
     """The report page of selection ``sel`` over the series ``ds`` (basins, incremental units or water bodies).
 
-    A merged source in ``sel`` (``merged_P`` ...) is built for the basin with ``merge_method`` (default ckf, as
-    in the explorer) in `balance.merge.merge_form`; the map still ranks the products of every basin."""
+    A merged source in ``sel`` (``merged_P`` ...) is built for the basin with ``merge_method`` (default
+    `balance.merge.DEFAULT_METHOD`, as in the explorer) in `balance.merge.merge_form`; the map still ranks the products of every basin."""
     full = ds
-    if any(is_merged(getattr(sel, c)) for c in SOURCE_COMPONENTS):
-        if ds.attrs.get("unit") == "waterbody":
-            raise InputError(f"water body {sel.basin!r} has no merged sources (its storage is its own)")
-        ds = merged_basin(ds, sel.basin, method=merge_method or "ckf",
+    if merged_components(sel):
+        ds = merged_basin(ds, sel.basin, method=merge_method or DEFAULT_METHOD,
                           options=merge_form(sel.storage_change, sel.matched))
     res = compute_selection(ds, sel)
     ranking = rank(ds, sel.basin, sel.options(), by=by)

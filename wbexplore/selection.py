@@ -35,7 +35,8 @@ from . import __version__
 from .balance import ClosureOptions, Selection, compute_selection, to_unit_system
 from .balance.closure import MAX_LAG_MONTHS, Q_RELATIVE_ERROR, UNIT_SYSTEMS, flow_terms_of
 from .balance.engine import is_merged
-from .balance.merge import MERGE_METHODS, merge_form, merged_basin, merged_label, merged_name
+from .balance.merge import (DEFAULT_METHOD, MERGE_METHODS, merge_form, merged_basin, merged_components, merged_label,
+                            merged_name)
 from .balance.storage import METHODS
 from .balance.options import AREAS
 from .balance.terms import BASE_TERMS, DS, DS_LEVELS, SOURCE_COMPONENTS, balance_text
@@ -136,14 +137,6 @@ def _uncertainty_products(cat: Catalog, sel: Selection, result, ds, unit: str) -
         elif err.method in ("collocation", "spread"):  # without the series: the catalog's products
             out.update(s.id for s in cat.sources if s.component == err.component)
     return sorted(out - chosen)
-
-
-DEFAULT_MERGE_METHOD = "ckf"  # the variant a merged source is built with unless one is named (the explorer's too)
-
-
-def merged_components(sel: Selection) -> list[str]:
-    """The components whose chosen source is a merged one (``merged_<component>``)."""
-    return [c for c in SOURCE_COMPONENTS if is_merged(getattr(sel, c))]
 
 
 def _check_merged_ids(sel: Selection, where: str) -> None:
@@ -336,7 +329,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
         ``unit: incremental`` in the file, and replayed over that unit
     waterbody : ``sel.basin`` is a water body (its TWSA source is "levels"); recorded as ``unit: waterbody``
     merge_method : variant of a chosen merged source (``merged_P`` ...; `balance.merge.MERGE_METHODS`, default
-        `DEFAULT_MERGE_METHOD`), built in `balance.merge.merge_form` and recorded in the ``merge`` block
+        `balance.merge.DEFAULT_METHOD`), built in `balance.merge.merge_form` and recorded in the ``merge`` block
 
     Returns
     -------
@@ -355,7 +348,7 @@ def export_selection(catalog, sel: Selection, out, *, overwrite: bool = False, s
     _check_merged_ids(sel, str(cat.path))
     if merged and waterbody:
         raise InputError(f"{cat.path}: water body {sel.basin!r} has no merged sources (its storage is its own)")
-    method = DEFAULT_MERGE_METHOD if merge_method is None else merge_method
+    method = DEFAULT_METHOD if merge_method is None else merge_method
     if method not in MERGE_METHODS:
         raise InputError(f"merge method {method!r} is not one of {', '.join(MERGE_METHODS)}")
     for comp in SOURCE_COMPONENTS:

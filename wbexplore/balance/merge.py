@@ -49,14 +49,14 @@ import xarray as xr
 from ..errors import InputError
 from . import uncertainty as unc
 from .correction import constrained_projection
-from .engine import MERGED_PREFIX, basin_ids, masked_values
+from .engine import MERGED_PREFIX, basin_ids, is_merged, masked_values
 from .options import ClosureOptions
 from .storage import match_window, storage_change
 from .terms import SOURCE_COMPONENTS, balance_terms
 
 __all__ = ["MERGE_METHODS", "MERGED_PREFIX", "ComponentErrors", "merge_products", "product_error_variances",
            "inverse_variance_merge", "force_closure", "proportional_redistribution", "with_merged", "merged_name",
-           "merge_form", "merged_basin",
+           "merge_form", "merged_basin", "merged_components", "DEFAULT_METHOD",
            "merged_label"]
 
 MERGE_METHODS = {
@@ -64,6 +64,7 @@ MERGE_METHODS = {
     "ckf": "constrained Kalman filter (Pan and Wood 2006)",
     "collocation": "multiple collocation, then the constrained Kalman filter",
 }
+DEFAULT_METHOD = "ckf"  # the variant a merged source is built with unless one is named (explorer, export, report)
 GIVEN = "given"  # error variances passed to `merge_products` (``variances``): they override the order
 
 
@@ -471,6 +472,11 @@ def with_merged(ds: xr.Dataset, merged: xr.Dataset) -> xr.Dataset:
     return out
 
 
+def merged_components(sel) -> list[str]:
+    """The components whose chosen source in ``sel`` (a `Selection`) is a merged one (``merged_<component>``)."""
+    return [c for c in SOURCE_COMPONENTS if is_merged(getattr(sel, c))]
+
+
 def merge_form(storage_change: str, matched: bool) -> ClosureOptions:
     """The closure form in which a merged source offered beside the products is built for a selection: its
     storage-change method and window matching; the other options at their defaults (``min_valid_fraction``
@@ -482,7 +488,10 @@ def merge_form(storage_change: str, matched: bool) -> ClosureOptions:
 def merged_basin(ds: xr.Dataset, basin: str, *, method: str, options: ClosureOptions,
                  q_relative_error: float = unc.Q_RELATIVE_ERROR) -> xr.Dataset:
     """``basin``'s series alone (a basin's balance does not depend on the others) with its merged sources
-    (`merge_products` in the closure form ``options``, then `with_merged`). Refusals as `merge_products`."""
+    (`merge_products` in the closure form ``options``, then `with_merged`). Refusals as `merge_products`, and
+    a water body's series (its storage is its own: it has no merged sources)."""
+    if ds.attrs.get("unit") == "waterbody":
+        raise InputError(f"water body {basin!r} has no merged sources (its storage is its own)")
     m = merge_products(ds, method=method, basins=[basin], options=options, q_relative_error=q_relative_error)
     one = [basin_ids(ds).index(str(basin))]
     return with_merged(ds.isel(basin=one), m)

@@ -14,7 +14,7 @@ import param
 from ..balance import (METHODS, METRICS, UNIT_SYSTEMS, ClosureOptions, Selection, best_scores, compute_selection,
                        long_term_all, rank)
 from ..balance.engine import is_merged
-from ..balance.merge import MERGE_METHODS, merge_form, merge_products, merged_label, merged_name, with_merged
+from ..balance.merge import DEFAULT_METHOD, MERGE_METHODS, merge_form, merge_products, merged_label, merged_name, with_merged
 from ..balance.terms import SOURCE_COMPONENTS
 from ..series import source_ids
 from ..errors import InputError
@@ -52,7 +52,7 @@ class ClosureState(param.Parameterized):
     unit_system = param.Selector(objects=list(UNIT_SYSTEMS), default="mm", label="Units")
     metric = param.Selector(objects=[m for m in METRICS if m != "n_valid"], default="rmse", label="Rank by")
     min_valid = param.Integer(default=24, bounds=(1, None), precedence=-1)
-    merge_method = param.Selector(objects=list(MERGE_METHODS), default="ckf", precedence=-1,
+    merge_method = param.Selector(objects=list(MERGE_METHODS), default=DEFAULT_METHOD, precedence=-1,
                                   doc="variant of the merged sources offered beside the products "
                                       "(`balance.merge.MERGE_METHODS`)")
 
