@@ -112,7 +112,8 @@ def _parse(text: str, *, what: str):
     ureg = _ureg()
     try:
         q = ureg.Quantity(1.0, _normalise(text))
-    except Exception as exc:  # pint raises several classes
+    except Exception as exc:  # noqa: BLE001 - pint's parser raises UndefinedUnitError, AssertionError, tokenize.TokenError,
+        # ZeroDivisionError, TypeError ... (tried: 'foo', 'mm/', '((mm', '1/0', 'mm**x'): one line each, exit 2
         raise UnitError(f"{what}: cannot parse unit {text!r} ({exc.__class__.__name__})") from None
     return q
 
