@@ -561,3 +561,31 @@ def test_injected_basin_name_is_shown_as_text(browser, study, tmp_path, _cache_d
         pg.close()
     finally:
         _stop(proc)
+
+
+def test_estimate_by_difference_follows_the_term_chooser(browser, server, study, artifacts):
+    """Issue 16 item 5 in the page: the term chooser redraws the estimate by difference; its text gives the engine's
+    long-term value (`balance.estimate`, checked against P - Q with pandas in tests/test_estimate_view.py) for the
+    selection on the page, and names the error sources of the band; the plot is drawn (a canvas)."""
+    from wbexplore.balance import best_selection
+    from wbexplore.balance.estimate import estimate_by_difference
+
+    pg = open_page(browser, server)  # a fresh session: the best combination over the whole period
+    try:
+        sec = pg.locator(".wbx-estimate-section").first
+        sec.scroll_into_view_if_needed()
+        text = lambda: _deep_text(pg, ".wbx-estimate-text")
+        basin = _selects(pg).nth(0).locator("option:checked").inner_text().split(" - ")[0]
+        sel = best_selection(_series(study), basin)
+        et = estimate_by_difference(_series(study), sel, "ET").long_term
+        assert _wait(lambda: f"Long-term ET = P - Q: {et['estimate']:.0f} ± {et['standard_error']:.0f}" in text(), pg)
+        assert "Band ± 2 sigma: P " in text() and sec.locator("canvas").count() >= 1
+        pg.locator(".wbx-estimate-term button", has_text="Q = P - ET - dS").first.click()
+        q = estimate_by_difference(_series(study), sel, "Q").long_term
+        assert _wait(lambda: f"Long-term Q = P - ET: {q['estimate']:.0f} ± {q['standard_error']:.0f}" in text(), pg)
+        assert f"Gauged Q: {q['product']:.0f} mm/year" in text()
+        pg.wait_for_timeout(800)
+        sec.screenshot(path=str(artifacts / "explorer_estimate_q.png"))
+        assert pg.errors == []
+    finally:
+        pg.close()

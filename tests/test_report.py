@@ -340,7 +340,7 @@ def test_report_page_parts(basin_report, demo_dir, demo_series):
 
 
 @pytest.mark.browser
-def test_report_prints_on_one_page(basin_report, report_text, tmp_path, artifacts):
+def test_report_prints_on_one_page(basin_report, report_text, demo_dir, tmp_path, artifacts):
     """Chromium's print-to-PDF (A4) of the basin and the water-body report: one page each, nothing requested
     from outside the file; the pages are also rendered with print media as PNG in artifacts/."""
     import shutil
@@ -351,10 +351,12 @@ def test_report_prints_on_one_page(basin_report, report_text, tmp_path, artifact
     assert chromium, "Debian's chromium is required (.ci/run installs it)"
     wb = tmp_path / "wb.html"
     wb.write_text(report_text[0], encoding="utf-8")
+    # the demo's fullest basin pages: TIR (long verdict and notes) and SAR (two flows: wider tables, longer lines)
+    fuller = [(f"report_print_{b}", _write_report(demo_dir, tmp_path / f"{b}.html", b)) for b in ("TIR", "SAR")]
     with sync_playwright() as p:
         b = p.chromium.launch(executable_path=chromium, args=["--no-sandbox", "--disable-gpu"])
         try:
-            for name, path in (("report_print", basin_report[0]), ("report_print_waterbody", wb)):
+            for name, path in (("report_print", basin_report[0]), ("report_print_waterbody", wb), *fuller):
                 pg = b.new_page(viewport={"width": 794, "height": 1123})
                 requests, errors = [], []
                 pg.on("request", lambda r, req=requests: req.append(r.url))

@@ -35,6 +35,7 @@ __all__ = [
     "UNIT_LABEL",
     "WATERBODY_COLOR",
     "BarsPlot",
+    "EstimatePlot",
     "ExchangePlot",
     "LevelVolumePlot",
     "MapPlot",
@@ -47,6 +48,9 @@ __all__ = [
     "basin_outlines",
     "component_bars",
     "disagreement_map",
+    "estimate_band_label",
+    "difference_estimate",
+    "estimate_label",
     "exchange_series",
     "level_volume",
     "multi_basin",
@@ -636,6 +640,97 @@ class ExchangePlot(ResidualPlot):
             + ("" if np.isfinite(s).any() else "; no 2-sigma band: a term's error is unknown"))
 
 
+def estimate_label(est) -> str:
+    """The chosen product or gauge a `DifferenceEstimate` is drawn beside ("ET product tansy", "gauged Q", "dS of
+    TWSA quarry"), or "" where none was chosen (its ``product`` column is empty)."""
+    sel = est.selection
+    if est.term == "Q":
+        return "gauged Q"
+    src = sel.ET if est.term == "ET" else sel.TWSA
+    if src is None:
+        return ""
+    return f"ET product {src}" if est.term == "ET" else f"dS of TWSA {src}"
+
+
+def estimate_band_label(est) -> str:
+    """The band's legend: which error each known term carries (`balance.uncertainty.legend_text`), and the gauge's."""
+    from .balance.uncertainty import legend_text
+
+    text = legend_text(est.uncertainty) if est.uncertainty else "± 2 sigma"
+    return text + (f"; Q ± {est.q_relative_error:.0%} (gauge)" if est.term != "Q" else "")
+
+
+class EstimatePlot(_Plot):
+    """One balance term estimated by difference from the others (`balance.estimate.DifferenceEstimate`) per month,
+    with its +/- 2 standard-error band, beside the chosen product of that term (ET, the storage change of the
+    chosen TWSA) or the gauged Q; the legend (under the plot: it covers no data) names each term's error source.
+
+    The band holds the random errors the estimate propagates; a product's bias is not in it (`estimate.NOTE`).
+    """
+
+    def _build(self, width):
+        from bokeh.models import ColumnDataSource, HoverTool, Legend, LegendItem, Line, Patches
+
+        empty_t = np.array([], dtype="datetime64[ns]")
+        self.src = ColumnDataSource({"month": empty_t, "estimate": [], "lo": [], "hi": [], "product": []})
+        self.fig = fig = _figure(width=width, height=300, x_axis_type="datetime")
+        # the band as one polygon per run of estimated months: an area over NaN would bridge a gap with a band
+        self.band = ColumnDataSource({"xs": [], "ys": []})
+        band = _add(fig, Patches(xs="xs", ys="ys", fill_color=COLORS["band"], fill_alpha=0.3, line_width=0), self.band)
+        self.line = _add(fig, Line(x="month", y="estimate", line_color=COLORS["residual"], line_width=2), self.src)
+        self.prod = _add(fig, Line(x="month", y="product", line_color="black", line_width=1.2, line_dash="dashed"),
+                         self.src)
+        self.items = [LegendItem(label="± 2 sigma", renderers=[band]), LegendItem(label="estimate", renderers=[self.line]),
+                      LegendItem(label="product", renderers=[self.prod])]
+        fig.add_layout(Legend(items=self.items, orientation="vertical", location="top_left", border_line_alpha=0.0,
+                              padding=2, margin=2, spacing=0, label_text_font_size="9pt"), "below")
+        _zero_line(fig)
+        self.hover = HoverTool(renderers=[self.line], tooltips=[("month", "@month{%Y-%m}"), ("estimate", "@estimate{0.00}"),
+                                                                ("product", "@product{0.00}")],
+                               formatters={"@month": "datetime"})
+        fig.add_tools(self.hover)
+        fig.xaxis.axis_label = "month"
+
+    def update(self, est, unit_system: str = "mm", *, note: str = "") -> None:
+        """Draw ``est`` (a `DifferenceEstimate`; None: an empty plot titled with ``note``, why there is none) in
+        ``unit_system`` (`UNIT_LABEL`); the title gives the long-term estimate in mm/year over whole water years."""
+        from bokeh.core.properties import value
+
+        if est is None:
+            empty_t = np.array([], dtype="datetime64[ns]")
+            self.src.data = {"month": empty_t, "estimate": [], "lo": [], "hi": [], "product": []}
+            self.band.data = {"xs": [], "ys": []}
+            self.fig.title.text = _short(f"No estimate by difference: {note}" if note else "No estimate by difference")
+            return
+        m = est.monthly
+        months = pd.DatetimeIndex(m.index)
+        # one factor per month turns mm/month into the unit system (the same for the estimate, its error and the
+        # product: every conversion is linear in the depth)
+        ones = pd.DataFrame({"Q": np.ones(len(months))}, index=months)
+        k = to_unit_system(ones, est.area_km2, unit_system)["Q"].to_numpy(float)
+        e, se, pr = (m[c].to_numpy(float) * k for c in ("estimate", "standard_error", "product"))
+        lo, hi = e - 2 * se, e + 2 * se
+        self.src.data = {"month": months.values, "estimate": e, "lo": lo, "hi": hi, "product": pr}
+        ms = months.values.astype("datetime64[ms]").astype(np.int64).astype(float)  # bokeh's datetime: ms since 1970
+        runs = _runs(np.isfinite(lo) & np.isfinite(hi))
+        self.band.data = {"xs": [np.r_[ms[a:b + 1], ms[a:b + 1][::-1]] for a, b in runs],
+                          "ys": [np.r_[lo[a:b + 1], hi[a:b + 1][::-1]] for a, b in runs]}
+        shown = estimate_label(est)
+        self.prod.visible = bool(shown) and bool(np.isfinite(pr).any())
+        self.items[0].label = value(estimate_band_label(est))
+        self.items[1].label = value(f"{est.formula} (by difference)")
+        self.items[2].label = value(shown or "no product chosen")
+        self.hover.tooltips = [("month", "@month{%Y-%m}"), (f"{est.term} by difference", "@estimate{0.00}"),
+                               ("± 2 sigma", "@lo{0.00} .. @hi{0.00}")] + ([(shown, "@product{0.00}")] if shown else [])
+        self.fig.yaxis.axis_label = f"{est.term} ({UNIT_LABEL[unit_system]})"
+        lt = est.long_term
+        if lt["water_years"]:
+            self.fig.title.text = (f"{est.term} by difference: {lt['estimate']:.0f} ± {lt['standard_error']:.0f} "
+                                   f"mm/year long-term ({lt['water_years']} water years)")
+        else:
+            self.fig.title.text = f"{est.term} by difference (no whole water year in the period: no long-term value)"
+
+
 class LevelVolumePlot(_Plot):
     """A water body's level (m, left axis) and the volume its storage curve gives (hm3, right axis) per month;
     months outside the selected period shaded."""
@@ -852,6 +947,13 @@ def multi_basin(table: pd.DataFrame, unit: str = "mm/year", *, width: int | None
     """`MultiBasinPlot` of a `long_term_all` table."""
     p = MultiBasinPlot(width=width)
     p.update(table, unit)
+    return p.fig
+
+
+def difference_estimate(est, unit_system: str = "mm", *, width: int | None = None) -> figure:
+    """`EstimatePlot` of one `DifferenceEstimate`."""
+    p = EstimatePlot(width=width)
+    p.update(est, unit_system)
     return p.fig
 
 

@@ -27,6 +27,7 @@ from .balance.engine import MERGED_PREFIX, is_merged
 from .balance.merge import DEFAULT_METHOD, MERGE_METHODS, merge_form, merged_basin, merged_components, merged_name
 from .balance.metrics import METRICS
 from .balance.terms import SOURCE_COMPONENTS, balance_text
+from .errors import InputError
 from .escape import html_text
 from .io.catalog import Catalog, CatalogError, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output
@@ -48,21 +49,23 @@ e = html_text  # every text from a file (names, ids, labels, titles) reaches the
 # metrics shown for a water body (the others compare the balance with a gauged outlet, which a water body lacks)
 WATERBODY_METRICS = ("rmse", "bias", "mae", "rel_imbalance", "n_valid", "n_beyond_2sigma")
 TOP_ROWS = 5  # combinations listed in the ranking table (the selection's own row is added when it is lower)
-PLOT_WIDTH, PLOT_HEIGHT = 360, 160  # px: two plots side by side fit an A4 page's printable width (730 px)
+PLOT_WIDTH, PLOT_HEIGHT = 360, 115  # px: two plots side by side fit an A4 page's printable width (730 px)
 
 STYLE = """
-@page { size: A4; margin: 8mm; }
-body { font: 9.5px/1.3 sans-serif; color: #111; width: 730px; margin: 4px auto; }
-h1 { font-size: 15px; margin: 0 0 2px 0; } h2 { font-size: 11px; margin: 6px 0 2px 0; }
+@page { size: A4; margin: 7mm; }
+body { font: 9px/1.3 sans-serif; color: #111; width: 730px; margin: 4px auto; }
+h1 { font-size: 15px; margin: 0 0 2px 0; } h2 { font-size: 11px; margin: 4px 0 2px 0; }
 p { margin: 2px 0; } ul { margin: 2px 0; padding-left: 16px; }
-.verdict { font-size: 10.5px; border-left: 4px solid #0072B2; padding: 3px 6px; background: #f2f7fb; }
+.verdict { font-size: 10px; border-left: 4px solid #0072B2; padding: 3px 6px; background: #f2f7fb; }
 .caution { border: 1.5px solid #D55E00; padding: 2px 5px; }
 table { border-collapse: collapse; } td, th { padding: 0 4px; border-bottom: 1px solid #ddd; line-height: 1.15; }
 th { text-align: left; background: #f0f0f0; font-weight: 600; overflow-wrap: anywhere; } td.n { text-align: right; }
 tr.chosen td { font-weight: 700; }
 .cols { display: flex; gap: 10px; align-items: flex-start; } .cols > div { flex: 1 1 0; min-width: 0; }
 .cols > div.wide { flex: 1.25 1 0; } table.metrics td:first-child { white-space: nowrap; }
-.plots { display: grid; grid-template-columns: 360px 360px; gap: 4px 10px; }
+.plots { display: grid; grid-template-columns: 360px 360px; gap: 4px 10px; } .plots > div.tall { grid-row: span 2; }
+table.estimates td.n, table.estimates th { white-space: nowrap; } table.ranking th { font-size: 8px; } table.ranking th:first-child { white-space: nowrap; }
+table.annual { font-size: 8.5px; } ul.notes { columns: 2; column-gap: 14px; } ul.notes li { break-inside: avoid; }
 .small { font-size: 8.5px; color: #333; }
 @media print { body { margin: 0 auto; } .plots, table { break-inside: avoid; } }
 """
@@ -364,9 +367,15 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse", merge_method: str | 
     shown = map_metric(by)  # a depth metric (RMSE) would make the smallest flows look best: the map says which
     best = rank_all(full, sel.options(), by=shown)
     scores = best[best["rank"] == 1].set_index("basin")[shown] if len(best) else pd.Series(dtype=float)
-    figs = [plots.basin_map(load_basins(cat), scores, sel.basin, shown, title=f"Basins by best {metric_name(shown)}",
-                            rank_by=by),
-            plots.component_bars(res), plots.residual_series(res), plots.balance_scatter(res)]
+    estimates = _estimates(ds, sel)
+    et = estimates.get("ET")
+    # the component means are in the water-year table: the long-term estimates by difference take their place,
+    # beside the monthly ET by difference
+    figs = [(plots.basin_map(load_basins(cat), scores, sel.basin, shown, title=f"Basins by best {metric_name(shown)}",
+                             rank_by=by), "tall"),
+            f"<h2>Long-term estimates by difference</h2>{_estimates_table(estimates)}",
+            *([_one_line_legend(plots.difference_estimate(et))] if not isinstance(et, (str, type(None))) else []),
+            plots.residual_series(res), plots.balance_scatter(res)]
     unit = ""
     if incremental:
         b = ds.sel(basin=sel.basin)
@@ -393,6 +402,69 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse", merge_method: str | 
     return _page((head, figs, body), f"wbexplore report {sel.basin}{' (incremental)' if incremental else ''}")
 
 
+def _one_line_legend(fig):
+    """The estimate plot's legend on one line under it, its entries short: the band's sources are in the note under
+    the estimates table (a three-line legend left the plot a strip on the page)."""
+    from bokeh.core.properties import value
+
+    lg = fig.legend[0]
+    lg.orientation = "horizontal"
+    lg.items[0].label = value("± 2 sigma")
+    lg.items[1].label = value("by difference")
+    return fig
+
+
+def _estimates(ds, sel) -> dict:
+    """Term -> `balance.estimate.DifferenceEstimate` of ET, Q and dS from the other terms of ``sel`` (the
+    explorer's uncertainty: stated, else collocation, else the product spread, labelled); a term that cannot be
+    estimated maps to its one-line reason (text)."""
+    from .balance.estimate import TERMS, estimate_by_difference
+
+    out = {}
+    for t in TERMS:
+        try:
+            out[t] = estimate_by_difference(ds, sel, t)
+        except InputError as exc:  # the term's row says why
+            out[t] = str(exc)
+    return out
+
+
+def _estimates_table(estimates: dict) -> str:
+    """Long-term estimates by difference (mm/year, whole water years, storage left out) beside the chosen product or
+    gauge over the same years, and one line: the band's sources and what the standard error leaves out."""
+    from .balance.estimate import formula as formula_of
+    from .plots import estimate_band_label, estimate_label
+
+    rows, band = [], ""
+    for t, est in estimates.items():
+        if isinstance(est, str) or est is None:
+            rows.append([t, est or "not estimated", "", "", ""])
+            continue
+        lt = est.long_term
+        if not lt["water_years"]:
+            rows.append([est.formula, "no whole water year", "", "", ""])
+            continue
+        # over whole years the storage term is left out; flows (named in the method notes' residual line) are
+        # summed up as "+ flows" so that a basin with transfers keeps the table one line per term
+        formula = formula_of(t).replace(" - dS", "") if t != "dS" else formula_of(t)
+        if est.formula != formula_of(t):
+            formula += " (+ flows)"
+        shown = estimate_label(est)
+        beside = (f"{shown} {_fmt(lt['product'], '.0f')} (est. {_fmt(lt['estimate_product_years'], '.0f')}, "
+                  f"{lt['product_years']} yr)" if lt.get("product") is not None and shown else "")
+        rows.append([formula, f"{_fmt(lt['estimate'], '.0f')} ± {_fmt(lt['standard_error'], '.0f')}",
+                     str(lt["water_years"]),
+                     "" if t == "dS" or lt["storage_change"] is None else _fmt(lt["storage_change"], "+.0f"), beside])
+        if t == "ET":
+            band = estimate_band_label(est)
+    heads = ["Term", "mm/yr ± se", "yrs", "dS out", "product or gauge (est.), same yrs"]
+    titles = ["over whole water years the storage term is left out", "mean per water year ± 1 standard error",
+              "whole water years used", "mean storage change left out (mm/year)",
+              "the chosen product or gauged Q over the years where it has every month, and the estimate over those"]
+    return (_table(heads, rows, cls="estimates", titles=titles)
+            + f"<p class='small'>ET plot: {e(band)}. A product's bias is not in ± se.</p>")
+
+
 def _comparison(ranking, sel, comps, by):
     """The metrics the selection is compared with: the runner-up's when the selection is the best, else the best's."""
     scored = ranking[ranking["scored"]] if "scored" in ranking else ranking
@@ -410,7 +482,10 @@ def _comparison(ranking, sel, comps, by):
 
 
 def _page(parts, title: str) -> str:
-    """The page: the head text, the body with the figures in its ``{plots}`` place, bokeh's JavaScript inlined."""
+    """The page: the head text, the body with the figures in its ``{plots}`` place, bokeh's JavaScript inlined.
+
+    A figure given as ``(fig, "tall")`` spans two rows of the two-column grid (the basin map: its colour bar and
+    note leave a one-row map no room to draw the basins); a text is an HTML cell of the grid."""
     from bokeh.embed import components
     from bokeh.resources import Resources
 
@@ -418,8 +493,14 @@ def _page(parts, title: str) -> str:
     js = Resources(mode="inline", components=["bokeh"]).render_js()
 
     head, figs, body = parts
-    script, divs = components([_static(f) for f in figs])
-    grid = "<div class='plots'>" + "".join(f"<div>{d}</div>" for d in divs) + "</div>"
+    cells = [f if isinstance(f, (tuple, str)) else (f, "") for f in figs]
+    drawn = [c for c in cells if not isinstance(c, str)]
+    tall = 2 * PLOT_HEIGHT + 4  # two rows and the grid's gap
+    script, divs = components([_static(f, height=tall if kind == "tall" else PLOT_HEIGHT) for f, kind in drawn])
+    divs = iter(divs)
+    grid = "<div class='plots'>" + "".join(
+        f"<div class='table-cell'>{c}</div>" if isinstance(c, str) else
+        f"<div class='{c[1]}'>{next(divs)}</div>" if c[1] else f"<div>{next(divs)}</div>" for c in cells) + "</div>"
     out = (f"<!DOCTYPE html>\n<html lang='en'><head><meta charset='utf-8'><title>{e(title)}</title>"
            f"<style>{STYLE}</style>{js}</head>"
            f"<body>{head}{body.replace('{plots}', grid)}{script}</body></html>")

@@ -19,7 +19,7 @@ from .plots import (  # plots imports bokeh only inside its drawing code
     waterbody_messages,
 )
 
-__all__ = ["COVERAGE_MIN", "summary_html", "warnings_for", "warnings_markdown", "waterbody_summary_html", "waterbody_warnings_markdown"]
+__all__ = ["COVERAGE_MIN", "estimate_html", "estimate_lines", "summary_html", "warnings_for", "warnings_markdown", "waterbody_summary_html", "waterbody_warnings_markdown"]
 
 COVERAGE_MIN = 0.9  # a product covering less of the basin than this share on average is named in the warnings
 
@@ -95,3 +95,52 @@ def waterbody_summary_html(result, exchange) -> str:
     return (f"<div class='wbx-summary'><h4 style='margin:2px 0'>{e(result.basin_name)} ({e(sel.basin)}), water body</h4>"
             f"<div>P {e(sel.P)} / E {e(sel.ET)} / storage from levels</div><table>{cells}</table>"
             f"<div><i>{e(EXCHANGE_LABEL)}; ± 1 standard error</i></div></div>")
+
+
+def estimate_lines(est) -> list[str]:
+    """An estimate by difference (`balance.estimate.DifferenceEstimate`) for a reader, one line each: the formula
+    and the long-term value over whole water years with the storage change left out, the chosen product or gauge
+    over the same years, the band's error sources, and what the standard error leaves out (`estimate.NOTE`)."""
+    from .balance.estimate import NOTE
+    from .io.estimates import water_years_text
+    from .plots import estimate_label
+
+    lt, t = est.long_term, est.term
+    if not lt["water_years"]:
+        head = f"{est.formula}: no whole water year in the period, so no long-term value (monthly values only)."
+    else:
+        left = ""
+        if t != "dS":
+            left = (f"; storage change left out: {_fmt(lt['storage_change'], '+.0f')} mm/year over "
+                    f"{lt['storage_change_years']} of the years" if lt["storage_change"] is not None
+                    else "; storage change left out (not known over these years)")
+        # over whole water years the storage term is left out: "ET = P - Q" (the formula without its "- dS")
+        head = (f"Long-term {est.formula.replace(' - dS', '') if t != 'dS' else est.formula}: "
+                f"{_fmt(lt['estimate'], '.0f')} ± {_fmt(lt['standard_error'], '.0f')} mm/year (± 1 standard error) over "
+                f"{lt['water_years']} whole water years ({water_years_text(lt['years'])}){left}.")
+    lines = [head]
+    shown = estimate_label(est)
+    if shown and lt.get("product") is not None:
+        lines.append(f"{shown[:1].upper() + shown[1:]}: {_fmt(lt['product'], '.0f')} mm/year over {lt['product_years']} of those years, where "
+                     f"it has every month (the estimate over the same years: {_fmt(lt['estimate_product_years'], '.0f')}"
+                     " mm/year).")
+    elif shown:
+        lines.append(f"{shown[:1].upper() + shown[1:]}: no whole water year of its own in those years to compare.")
+    lines.append(band_text(est.uncertainty, q_relative_error=None if t == "Q" else est.q_relative_error) + ".")
+    m = est.monthly
+    unknown = m.index[m["estimate"].notna() & m["standard_error"].isna()]
+    if len(unknown):  # e.g. the spread of a component where only one of its products has the month
+        lines.append(f"No band in {len(unknown)} month{'s' if len(unknown) > 1 else ''} with an estimate "
+                     f"({unknown[0]:%Y-%m} to {unknown[-1]:%Y-%m}): the error of a term is unknown there.")
+    lines.append(NOTE)
+    return lines
+
+
+def estimate_html(est, *, note: str = "") -> str:
+    """`estimate_lines` as a small HTML block (every text from a file escaped); ``note`` where ``est`` is None."""
+    e = html_text
+    if est is None:
+        return f"<div class='wbx-estimate'><i>No estimate by difference: {e(note)}</i></div>"
+    lines = estimate_lines(est)
+    return (f"<div class='wbx-estimate'><b>{e(est.formula)}</b> (by difference, {e(est.basin_name)})"
+            + "".join(f"<div>{e(x)}</div>" for x in lines) + "</div>")

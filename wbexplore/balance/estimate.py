@@ -73,7 +73,10 @@ class DifferenceEstimate:
     long_term : dict: ``water_years`` (count), ``years`` (their names: years left out between ``first`` and ``last``
         are not in it, so name ``years``, not the span), ``first``, ``last``, ``estimate`` and ``standard_error``
         (mm/year, storage term left out), ``storage_change`` (mm/year, mean over the years where the TWSA
-        product gives it, None otherwise: the term that was left out), ``storage_change_years``
+        product gives it, None otherwise: the term that was left out), ``storage_change_years``, ``product``
+        (mm/year: the chosen product or gauged Q of the term, its own totals, mean over ``product_years`` of the
+        years: those where it has every month; None where it has none or none was chosen) and
+        ``estimate_product_years`` (the estimate over those same years, to compare with it)
     uncertainty : component -> `uncertainty.ProductError` of each product used
     q_relative_error : relative gauge error of Q and of the flows
     formula : e.g. "ET = P - Q - dS"
@@ -218,7 +221,8 @@ def estimate_by_difference(ds: xr.Dataset, sel: Selection, term: str = "ET", *,
         if sel_y.sum() == 12 and all(np.all(np.isfinite(pick(f"{t.name}_raw")[sel_y])) for t, _v in fluxes):
             years.append(int(y))
     lt = {"water_years": len(years), "years": years, "first": years[0] if years else None, "last": years[-1] if years else None,
-          "estimate": float("nan"), "standard_error": float("nan"), "storage_change": None, "storage_change_years": 0}
+          "estimate": float("nan"), "standard_error": float("nan"), "storage_change": None, "storage_change_years": 0,
+          "product": None, "product_years": 0, "estimate_product_years": None}
     if years:
         sel_all = np.isin(wy, years) & mask
         n = len(years)
@@ -230,6 +234,16 @@ def estimate_by_difference(ds: xr.Dataset, sel: Selection, term: str = "ET", *,
             if ds_years:
                 lt["storage_change"] = float(pick("dS")[np.isin(wy, ds_years) & mask].sum() / len(ds_years))
             lt["storage_change_years"] = len(ds_years)
+        # the chosen product (or gauge) of the term as it stands (its own totals, not window-matched) over those of
+        # the years where it has every month, and the estimate over the same years: the pair to compare
+        own = pick("dS" if term == "dS" else f"{term}_raw")
+        p_years = [y for y in years if np.all(np.isfinite(own[(wy == y) & mask]))]
+        lt["product_years"] = len(p_years)
+        if p_years:
+            sel_p = np.isin(wy, p_years) & mask
+            lt["product"] = float(own[sel_p].sum() / len(p_years))
+            lt["estimate_product_years"] = float(
+                sum(-t.sign * pick(f"{t.name}_raw")[sel_p].sum() for t, _v in fluxes) / sign[term] / len(p_years))
     msgs = [f"uncertainty of {c} ({e.source}): {e.note}" for c, e in errors.items()]
     if not years:
         msgs.append("no whole water year in the period: no long-term estimate")

@@ -362,6 +362,34 @@ class Explorer:
         show.on_click(on_show)
         return col
 
+    def _estimate_section(self):
+        """One term by difference from the others (`views.EstimateView`, `views.EstimateTextView`) and the chooser of
+        the term (`ClosureState.estimate_term`); hidden for a water body (its residual is the unmeasured exchange)."""
+        import panel as pn
+
+        from ..balance.estimate import formula
+
+        s = self.state
+        self.w_estimate = pn.widgets.RadioButtonGroup(
+            name=s.param.estimate_term.label, options={formula(t): t for t in s.param.estimate_term.objects},
+            value=s.estimate_term, css_classes=["wbx-estimate-term"],
+            description="the term estimated from the others: ET for a check on the ET products, Q for an ungauged "
+                        "outlet, dS for a check on the storage products")
+        self.w_estimate.param.watch(lambda e: setattr(s, "estimate_term", e.new), "value")
+        s.param.watch(lambda e: setattr(self.w_estimate, "value", e.new), "estimate_term")
+        col = pn.Column(pn.pane.Markdown("### One term by difference (long-term: over whole water years, storage left "
+                                         "out)"), self.w_estimate,
+                        pn.Row(self._view(views.EstimateView), self._view(views.EstimateTextView),
+                               sizing_mode="stretch_width"),
+                        sizing_mode="stretch_width", css_classes=["wbx-estimate-section"])
+
+        def show(*events):
+            col.visible = not s.is_waterbody
+
+        show()
+        s.param.watch(show, "basin")
+        return col
+
     def _waterbody_views(self, summary, warn, resid, scatter):
         """The water body's views (unmeasured exchange, level and volume) and which views show for which kind:
         a water body has no gauged outlet (no Q scatter) and its residual is the unmeasured exchange."""
@@ -410,6 +438,7 @@ class Explorer:
                    sizing_mode="stretch_width"),
             resid, exchange,
             pn.Row(scatter, levels, multi, sizing_mode="stretch_width"),
+            self._estimate_section(),
             self._disagreement_section(),
             pn.pane.Markdown("### Every combination for this basin and period (click a row to select it)"),
             self._table_box,

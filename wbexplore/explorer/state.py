@@ -14,6 +14,7 @@ import param
 from ..balance import (METHODS, METRICS, UNIT_SYSTEMS, ClosureOptions, Selection, best_scores, compute_selection,
                        long_term_all, rank)
 from ..balance.engine import is_merged
+from ..balance.estimate import TERMS as ESTIMATE_TERMS
 from ..balance.merge import DEFAULT_METHOD, MERGE_METHODS, merge_form, merge_products, merged_label, merged_name, with_merged
 from ..balance.terms import SOURCE_COMPONENTS
 from ..series import source_ids
@@ -52,6 +53,9 @@ class ClosureState(param.Parameterized):
     unit_system = param.Selector(objects=list(UNIT_SYSTEMS), default="mm", label="Units")
     metric = param.Selector(objects=[m for m in METRICS if m != "n_valid"], default="rmse", label="Rank by")
     min_valid = param.Integer(default=24, bounds=(1, None), precedence=-1)
+    estimate_term = param.Selector(objects=list(ESTIMATE_TERMS), default="ET", label="Estimate by difference",
+                                   doc="the balance term estimated from the others (`balance.estimate`): ET = P - Q - dS, "
+                                       "Q = P - ET - dS (an ungauged outlet), dS = P - ET - Q")
     merge_method = param.Selector(objects=list(MERGE_METHODS), default=DEFAULT_METHOD, precedence=-1,
                                   doc="variant of the merged sources offered beside the products "
                                       "(`balance.merge.MERGE_METHODS`)")
@@ -391,6 +395,34 @@ class ClosureState(param.Parameterized):
                 return pd.Series(np.nan, index=self.param.basin.objects)
 
         return self._cached(key, run)
+
+    def estimate(self, term: str | None = None):
+        """`balance.estimate.DifferenceEstimate` of ``term`` (default `estimate_term`) from the other terms of the
+        current selection, over the chosen balance unit (with its merged sources); None for a water body (its
+        residual is the unmeasured exchange, `exchange`) or where it cannot be estimated (`estimate_note` says
+        why). The uncertainty is the summary's: stated, else collocation, else the product spread (labelled)."""
+        return self._estimate(term)[0]
+
+    def estimate_note(self, term: str | None = None) -> str:
+        """Why there is no estimate of ``term`` for the current selection ("" where there is one)."""
+        return self._estimate(term)[1]
+
+    def _estimate(self, term: str | None) -> tuple:
+        from ..balance.estimate import estimate_by_difference
+
+        term = self.estimate_term if term is None else term
+        if self.is_waterbody:
+            return None, "a water body's residual is its unmeasured exchange: no estimate by difference"
+        sel = self.selection()
+        ds = self._computed_series()
+
+        def run():
+            try:
+                return estimate_by_difference(ds, sel, term), ""
+            except InputError as exc:
+                return None, str(exc)
+
+        return self._cached(("estimate", ds.attrs.get("unit", "whole"), sel, term, self.merge_method), run)
 
     def multi_basin(self) -> pd.DataFrame:
         """Long-term P - ET against Q of every basin (with a water body chosen: the basins' last sources)."""

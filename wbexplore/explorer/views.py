@@ -17,6 +17,7 @@ from ..balance.cautions import GRAVIMETRY_MIN_KM2
 from ..balance.terms import SOURCE_COMPONENTS
 from ..plots import COLORS, SEASON_COLORS, UNIT_LABEL
 from ..texts import (
+    estimate_html,
     summary_html,
     warnings_for,
     warnings_markdown,
@@ -25,7 +26,7 @@ from ..texts import (
 )
 
 __all__ = ["TextView", "SummaryView", "WarningsView", "WaterbodySummaryView", "WaterbodyWarningsView", "PlotView", "BarsView", "ResidualView", "ScatterView", "MultiBasinView", "MapView", "ExchangeView",
-           "LevelsView", "DEPS", "SEL_DEPS", "MAP_DEPS", "MULTI_DEPS", "COLORS", "GRAVIMETRY_MIN_KM2", "SEASON_COLORS", "UNIT_LABEL", "balance_scatter", "basin_map", "component_bars",
+           "LevelsView", "EstimateView", "EstimateTextView", "ESTIMATE_DEPS", "DEPS", "SEL_DEPS", "MAP_DEPS", "MULTI_DEPS", "COLORS", "GRAVIMETRY_MIN_KM2", "SEASON_COLORS", "UNIT_LABEL", "balance_scatter", "basin_map", "component_bars",
            "multi_basin", "residual_series", "summary_html", "warnings_for", "warnings_markdown",
            "waterbody_summary_html", "waterbody_warnings_markdown"]
 
@@ -67,6 +68,7 @@ DEPS = ("basin", "unit", *SOURCE_COMPONENTS, "period", "storage_change", "matche
 SEL_DEPS = tuple(d for d in DEPS if d != "metric")  # one selection's views
 MAP_DEPS = ("basin", "period", "storage_change", "matched", "metric")  # the basins' best scores
 MULTI_DEPS = (*SOURCE_COMPONENTS, "period", "storage_change", "matched")  # every basin, one combination
+ESTIMATE_DEPS = (*SEL_DEPS, "estimate_term")  # one selection's estimate by difference
 
 
 class PlotView:
@@ -191,6 +193,21 @@ class LevelsView(PlotView):
             self.plot.update(lv, start=s.start, end=s.end, name=s.names().get(s.basin, s.basin))
 
 
+class EstimateView(PlotView):
+    """The term chosen in ``estimate_term`` estimated by difference from the others, with its band, beside the
+    chosen product or the gauge (`plots.EstimatePlot`); for a basin (a water body's residual is its exchange)."""
+
+    deps, css = ESTIMATE_DEPS, "wbx-estimate-plot"
+
+    def make_plot(self):
+        return plots.EstimatePlot()
+
+    def draw(self):
+        s = self.state
+        if not s.is_waterbody:
+            self.plot.update(s.estimate(), s.unit_system, note=s.estimate_note())
+
+
 # --------------------------------------------------------------------------- the page's texts, one class each
 class TextView:
     """A text pane of the page: ``text()`` from the state, redrawn when one of ``deps`` changes (the pane is
@@ -255,3 +272,14 @@ class WaterbodyWarningsView(TextView):
     def text(self):
         s = self.state
         return waterbody_warnings_markdown(s.result()) if s.is_waterbody else ""
+
+
+class EstimateTextView(TextView):
+    """The estimate by difference in words: the long-term value (storage left out), the product or gauge beside
+    it over the same years, the error sources and what the standard error leaves out (`texts.estimate_lines`)."""
+
+    deps, css, width = ESTIMATE_DEPS, ("wbx-estimate-text",), 420
+
+    def text(self):
+        s = self.state
+        return "" if s.is_waterbody else estimate_html(s.estimate(), note=s.estimate_note())
