@@ -508,11 +508,12 @@ def test_period_arrow_key_steps_one_month(page, study):
 
 
 def test_ranking_highlights_the_combination_on_screen(page, artifacts):
-    def marked():
+    def marked():  # rows drawn bold on light orange (the selected row's look, `app._ON_SCREEN_CSS`)
         out = []
         for i, row in enumerate(page.locator(".wbx-ranking .tabulator-row").all()):
-            style = row.locator('.tabulator-cell[tabulator-field="P"]').get_attribute("style") or ""
-            if "font-weight: bold" in style:
+            look = row.locator('.tabulator-cell[tabulator-field="P"]').evaluate(
+                "c => [getComputedStyle(c).fontWeight, getComputedStyle(c.parentElement).backgroundColor]")
+            if int(look[0]) >= 700 and look[1] == "rgb(253, 227, 196)":
                 out.append(i)
         return out
 

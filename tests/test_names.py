@@ -66,16 +66,20 @@ def test_rank_by_shows_plain_names_and_headers_follow(explorer):
 
 
 def test_current_combination_is_highlighted(explorer):
+    """The ranking's selected row is the combination on screen (and only it), after a source change too; a click
+    on the marked row (which unselects it in the page) leaves it marked."""
     s = explorer.state
     view = explorer.table.value
-    marked = [i for i, (_, row) in enumerate(view.iterrows()) if any(explorer._highlight(row))]
+    marked = list(explorer.table.selection)
     assert len(marked) == 1
     assert tuple(view.iloc[marked[0]][["P", "ET", "TWSA"]]) == (s.P, s.ET, s.TWSA)
     other = view.iloc[(marked[0] + 3) % len(view)]
     s.param.update(P=other["P"], ET=other["ET"], TWSA=other["TWSA"])
-    marked = [i for i, (_, row) in enumerate(explorer.table.value.iterrows()) if any(explorer._highlight(row))]
+    marked = list(explorer.table.selection)
     assert [tuple(explorer.table.value.iloc[i][["P", "ET", "TWSA"]]) for i in marked] == [
         (other["P"], other["ET"], other["TWSA"])]
+    explorer.table.selection = []
+    assert list(explorer.table.selection) == marked
 
 
 def test_download_headers_carry_plain_names_and_units(explorer):

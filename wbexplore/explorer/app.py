@@ -216,25 +216,44 @@ class Explorer:
     def _tooltips(view) -> dict:
         return {c: METRIC_NAMES[c].help for c in view.columns if c in METRIC_NAMES}
 
-    def _highlight(self, row):
-        """The combination on screen stands out in the ranking (bold on a light orange)."""
+    def _on_screen_rows(self, view=None) -> list[int]:
+        """The row(s) of the ranking ``view`` (default the table's) with the combination on screen."""
+        v = self.table.value if view is None else view
         s = self.state
-        on = all(str(row.get(c)) == str(getattr(s, c)) for c in SOURCE_COMPONENTS)
-        return [_ON_SCREEN if on else "" for _ in row]
+        on = pd.Series(True, index=range(len(v)))
+        for c in SOURCE_COMPONENTS:
+            if c in v:
+                on &= (v[c].astype(str) == str(getattr(s, c))).to_numpy()
+        return [int(i) for i in on[on].index]
 
     def _new_table(self, view):
-        """The ranking table for ``view`` (a `_rank_view` frame), escaped, styled and clickable."""
+        """The ranking table for ``view`` (a `_rank_view` frame), escaped, clickable, the combination on screen
+        selected and shown bold on light orange (`_ON_SCREEN_CSS`).
+
+        The mark is the table's row selection, not cell styles: a change of the styles makes Tabulator redraw the
+        whole table, about 100 ms of the page's main thread per source change, where a selection change selects
+        one row (chromium profile of four ET changes, panel 1.9.4)."""
         import panel as pn
 
         # "plaintext" escapes the cell value (ids come from the catalog): no cell renders HTML
         table = pn.widgets.Tabulator(view, disabled=True, show_index=False, height=330,
-                                     sizing_mode="stretch_width", selectable=False,
+                                     sizing_mode="stretch_width", selectable=1, selection=self._on_screen_rows(view),
                                      formatters={c: {"type": "plaintext"} for c in view.columns},
                                      titles=self._titles(view), header_tooltips=self._tooltips(view),
-                                     css_classes=["wbx-ranking"])
-        table.style.apply(self._highlight, axis=1)
+                                     css_classes=["wbx-ranking"], stylesheets=[_ON_SCREEN_CSS])
         table.on_click(self._on_row)
+        table.param.watch(self._keep_selection, "selection")
         return table
+
+    def _mark_on_screen(self) -> None:
+        rows = self._on_screen_rows()
+        if list(self.table.selection) != rows:
+            self.table.selection = rows
+
+    def _keep_selection(self, event) -> None:
+        """A click on the marked row unselects it in the page: the combination is still on screen, so mark it again."""
+        if list(event.new) != self._on_screen_rows():
+            self._mark_on_screen()
 
     def _refresh_table(self, *events):
         if any(e.name in ("basin", "unit", "period", "storage_change", "matched", "metric") for e in events):
@@ -247,8 +266,9 @@ class Explorer:
                 self._table_box.objects = [self.table]
                 return
             self.table.param.update(value=view, titles=self._titles(view), header_tooltips=self._tooltips(view))
+            self._mark_on_screen()
         elif any(e.name in SOURCE_COMPONENTS for e in events):
-            self.table.param.trigger("value")  # the same rows, another one on screen: restyle
+            self._mark_on_screen()  # the same rows, another one on screen
 
     def _on_row(self, event):
         row = self.table.value.iloc[event.row]
@@ -478,7 +498,10 @@ class Explorer:
         return self.state.ranking().copy()
 
 
-_ON_SCREEN = "background-color: #fde3c4; font-weight: bold"
+# the selected row of the ranking is the combination on screen (`Explorer._new_table`)
+_ON_SCREEN_CSS = (".tabulator-row.tabulator-selected, .tabulator-row.tabulator-selected:hover "
+                  "{ background-color: #fde3c4 !important; } .tabulator-row.tabulator-selected .tabulator-cell "
+                  "{ font-weight: bold; }")
 
 
 def _month_number(month) -> int:
