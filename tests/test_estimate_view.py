@@ -132,7 +132,8 @@ def test_text_names_the_long_term_value_the_product_the_band_and_the_note(state)
     # months with an estimate whose error is unknown (the demo's TWSA spread needs both of its products) are named
     m = est.monthly
     unknown = m.index[m["estimate"].notna() & m["standard_error"].isna()]
-    assert len(unknown) and f"No band in {len(unknown)} months with an estimate ({unknown[0]:%Y-%m}" in lines[3]
+    assert len(unknown) and f"No band in {len(unknown)} months with an estimate (first {unknown[0]:%Y-%m}, last " \
+        f"{unknown[-1]:%Y-%m})" in lines[3]
     html = estimate_html(None, note="<b>x</b>")
     assert "&lt;b&gt;x&lt;/b&gt;" in html and "<b>x</b>" not in html  # a reason may carry a file's text: escaped
 
@@ -196,3 +197,58 @@ def test_report_has_the_long_term_estimates_and_the_et_plot(demo_series, demo_di
     et = estimate_by_difference(demo_series, sel, "ET")
     assert f"ET plot: {estimate_band_label(et)}" in html
     assert f"ET by difference: {et.long_term['estimate']:.0f}" in html  # the plot's title, in its JSON
+
+
+def test_flows_gauge_error_is_named_when_q_is_estimated(state):
+    """Sarnelle has an abstraction and a transfer (the demo's flows): Q = P - ET - dS - flows carries the flows'
+    gauge error, and the band's legend and text say so (found by review: both named the gridded products only)."""
+    from wbexplore import plots
+    from wbexplore.texts import estimate_lines
+
+    state.basin = "SAR"
+    est = state.estimate("Q")
+    assert "flow_" in est.formula
+    assert "flows ± 5% (gauge)" in plots.estimate_band_label(est)
+    assert any(line.startswith("Band ± 2 sigma") and "flows 5% of flow (gauges)" in line for line in estimate_lines(est))
+    state.basin = "VEL"  # no flows: no flow error named
+    assert "flows" not in plots.estimate_band_label(state.estimate("Q"))
+
+
+def test_a_merged_source_beside_the_estimate_is_said_to_close_by_construction(state):
+    """A merged ET is not a product to check the estimate against (the merge forces the balance to close): its label
+    says merged and the text says its agreement is not a check (found by review)."""
+    import dataclasses
+
+    from wbexplore import plots
+    from wbexplore.texts import estimate_lines
+
+    est = state.estimate("ET")
+    merged = dataclasses.replace(est, selection=est.selection.replace(ET="merged_ET"))
+    assert plots.estimate_label(merged) == "merged ET [merged_ET]" and plots.estimate_is_merged(merged)
+    assert any("closes the budget by construction" in line for line in estimate_lines(merged))
+    assert not any("by construction" in line for line in estimate_lines(est))
+
+
+def test_no_estimate_leaves_nothing_of_the_last_one_on_the_plot(state):
+    from wbexplore import plots
+
+    p = plots.EstimatePlot()
+    p.update(state.estimate("ET"), "mm")
+    p.update(None, "mm", note="a reason")
+    assert [i.label.value for i in p.items] == ["± 2 sigma", "estimate", "product"] and not p.prod.visible
+    assert p.fig.title.text == "No estimate by difference: a reason" and len(p.src.data["estimate"]) == 0
+
+
+def test_numbers_rounded_to_zero_carry_no_sign(demo_series, demo_dir):
+    """"-0" reads as a loss: a value that rounds to zero is written "0" (SAR's storage change rounds to it)."""
+    from wbexplore.balance import best_selection
+    from wbexplore.io.catalog import open_catalog
+    from wbexplore.report import report_html
+    from wbexplore.texts import unsigned_zero
+
+    assert [unsigned_zero(format(v, s)) for v, s in ((-0.3, ".0f"), (0.2, "+.0f"), (-0.04, ".1f"), (-0.6, ".0f"))] == \
+        ["0", "0", "0.0", "-1"]
+    html = report_html(open_catalog(demo_dir / "catalog.yaml"), demo_series, best_selection(demo_series, "SAR"))
+    table = html[html.index("<table class='estimates'>"):]
+    table = table[:table.index("</table>")]
+    assert "yr)" in table and ">-0<" not in table and ">-0 " not in table and " -0 " not in table

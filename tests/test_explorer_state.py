@@ -260,3 +260,48 @@ def test_a_new_view_is_one_class_and_follows_only_its_parameters(state):
     want = compute_selection(state.unit_series(), state.selection()).frame["residual"].to_numpy()
     assert len(made) == 1 and pane.object is made[0].fig  # one figure, refilled in place
     np.testing.assert_allclose(made[0].src.data["residual"], want)
+
+
+def test_controls_are_generated_from_the_state_parameters(state):
+    """Issue 17 item 2: every parameter of the state shown on the page (precedence >= 0) has a control generated from
+    it: its label as the widget's name, its objects as the options (shown under plain names), its value; a widget
+    change writes the state and a state change moves the widget (the period as month numbers)."""
+    import param
+
+    from wbexplore.explorer.app import CONTROLS, Explorer
+    from wbexplore.names import OPTIONS
+
+    shown = [n for n, p in state.param.objects("existing").items()
+             if n != "name" and (p.precedence is None or p.precedence >= 0)]
+    assert sorted(shown) == sorted(CONTROLS)
+    ex = Explorer(state)
+    for name in shown:
+        p, w = state.param[name], ex.controls[name]
+        assert w.name == p.label and f"wbx-{name.replace('_', '-')}" in w.css_classes, name
+        if isinstance(p, param.Selector):
+            assert list(w.options.values()) == list(p.objects) and w.value == getattr(state, name), name
+            if all(v in OPTIONS for v in p.objects):  # the plain names of `names.OPTIONS` ("Central", "mm/month")
+                assert list(w.options) == [OPTIONS[v].name for v in p.objects], name
+            else:  # ids with names or labels, metric names with units, formulas: never the bare key
+                assert all(k != v for k, v in w.options.items()), name
+    # both ways, for a selector, the checkbox and the period
+    ex.controls["storage_change"].value = "backward"
+    assert state.storage_change == "backward"
+    state.storage_change = "forward"
+    assert ex.controls["storage_change"].value == "forward"
+    ex.controls["matched"].value = False
+    assert state.matched is False
+    state.estimate_term = "dS"
+    assert ex.controls["estimate_term"].value == "dS" and "dS = P - ET - Q" in ex.controls["estimate_term"].options
+    state.period = ("2005-03", "2010-11")
+    assert ex.controls["period"].value == (2005 * 12 + 2, 2010 * 12 + 10)
+    with param.edit_constant(ex.controls["period"]):  # as the page sends it when a drag ends
+        ex.controls["period"].param.update(value=(2004 * 12, 2006 * 12 + 11),
+                                           value_throttled=(2004 * 12, 2006 * 12 + 11))
+    assert state.period == ("2004-01", "2006-12")
+    # the help: each option's plain help, the chosen metric's (it follows the metric)
+    assert "Central: dS = (M[i+1] - M[i-1]) / 2" in ex.controls["storage_change"].description
+    state.metric = "kge"
+    from wbexplore.names import METRIC_NAMES
+
+    assert ex.controls["metric"].description == METRIC_NAMES["kge"].help

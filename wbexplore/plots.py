@@ -51,6 +51,7 @@ __all__ = [
     "estimate_band_label",
     "difference_estimate",
     "estimate_label",
+    "estimate_is_merged",
     "exchange_series",
     "level_volume",
     "multi_basin",
@@ -640,24 +641,38 @@ class ExchangePlot(ResidualPlot):
             + ("" if np.isfinite(s).any() else "; no 2-sigma band: a term's error is unknown"))
 
 
+def estimate_is_merged(est) -> bool:
+    """Whether the source an estimate by difference is set beside (ET, or TWSA for dS) is a merged source
+    (`balance.merge`): it closes the budget by construction."""
+    from .balance.engine import is_merged
+
+    src = {"ET": est.selection.ET, "dS": est.selection.TWSA}.get(est.term)
+    return src is not None and is_merged(src)
+
+
 def estimate_label(est) -> str:
     """The chosen product or gauge a `DifferenceEstimate` is drawn beside ("ET product tansy", "gauged Q", "dS of
-    TWSA quarry"), or "" where none was chosen (its ``product`` column is empty)."""
+    TWSA quarry", "merged ET [merged_ET]"), or "" where none was chosen (its ``product`` column is empty)."""
     sel = est.selection
     if est.term == "Q":
         return "gauged Q"
     src = sel.ET if est.term == "ET" else sel.TWSA
     if src is None:
         return ""
+    if estimate_is_merged(est):  # not a product: the budget closes on it by construction
+        return f"merged {'ET' if est.term == 'ET' else 'dS'} [{src}]"
     return f"ET product {src}" if est.term == "ET" else f"dS of TWSA {src}"
 
 
 def estimate_band_label(est) -> str:
-    """The band's legend: which error each known term carries (`balance.uncertainty.legend_text`), and the gauge's."""
+    """The band's legend: which error each known term carries (`balance.uncertainty.legend_text`), and the gauges'
+    (Q, and every flow that enters the balance)."""
     from .balance.uncertainty import legend_text
+    from .series import FLOW_PREFIX
 
     text = legend_text(est.uncertainty) if est.uncertainty else "± 2 sigma"
-    return text + (f"; Q ± {est.q_relative_error:.0%} (gauge)" if est.term != "Q" else "")
+    gauged = (["Q"] if est.term != "Q" else []) + (["flows"] if FLOW_PREFIX in est.formula else [])
+    return text + (f"; {' and '.join(gauged)} ± {est.q_relative_error:.0%} (gauge)" if gauged else "")
 
 
 class EstimatePlot(_Plot):
@@ -696,10 +711,14 @@ class EstimatePlot(_Plot):
         ``unit_system`` (`UNIT_LABEL`); the title gives the long-term estimate in mm/year over whole water years."""
         from bokeh.core.properties import value
 
-        if est is None:
+        if est is None:  # nothing of the last estimate stays on the plot
             empty_t = np.array([], dtype="datetime64[ns]")
             self.src.data = {"month": empty_t, "estimate": [], "lo": [], "hi": [], "product": []}
             self.band.data = {"xs": [], "ys": []}
+            self.prod.visible = False
+            for item, text in zip(self.items, ("± 2 sigma", "estimate", "product")):
+                item.label = value(text)
+            self.fig.yaxis.axis_label = UNIT_LABEL[unit_system]
             self.fig.title.text = _short(f"No estimate by difference: {note}" if note else "No estimate by difference")
             return
         m = est.monthly

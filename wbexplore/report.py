@@ -29,6 +29,7 @@ from .balance.metrics import METRICS
 from .balance.terms import SOURCE_COMPONENTS, balance_text
 from .errors import InputError
 from .escape import html_text
+from .texts import unsigned_zero
 from .io.catalog import Catalog, CatalogError, open_catalog
 from .io.writers import CAUTION, atomic_path, check_output
 from .series import FLOW_PREFIX
@@ -73,7 +74,7 @@ table.annual { font-size: 8.5px; } ul.notes { columns: 2; column-gap: 14px; } ul
 
 def _fmt(v, spec=".3f"):
     try:
-        return "n/a" if v is None or not np.isfinite(float(v)) else format(float(v), spec)
+        return "n/a" if v is None or not np.isfinite(float(v)) else unsigned_zero(format(float(v), spec))
     except (TypeError, ValueError):
         return str(v)
 
@@ -433,7 +434,7 @@ def _estimates_table(estimates: dict) -> str:
     """Long-term estimates by difference (mm/year, whole water years, storage left out) beside the chosen product or
     gauge over the same years, and one line: the band's sources and what the standard error leaves out."""
     from .balance.estimate import formula as formula_of
-    from .plots import estimate_band_label, estimate_label
+    from .plots import estimate_band_label, estimate_is_merged, estimate_label
 
     rows, band = [], ""
     for t, est in estimates.items():
@@ -454,15 +455,19 @@ def _estimates_table(estimates: dict) -> str:
                   f"{lt['product_years']} yr)" if lt.get("product") is not None and shown else "")
         rows.append([formula, f"{_fmt(lt['estimate'], '.0f')} ± {_fmt(lt['standard_error'], '.0f')}",
                      str(lt["water_years"]),
-                     "" if t == "dS" or lt["storage_change"] is None else _fmt(lt["storage_change"], "+.0f"), beside])
+                     "" if t == "dS" or lt["storage_change"] is None
+                     else f"{_fmt(lt['storage_change'], '+.0f')} ({lt['storage_change_years']} yr)", beside])
         if t == "ET":
             band = estimate_band_label(est)
+    merged = (" A merged source closes the budget by construction: its agreement with an estimate is not a check."
+              if any(not isinstance(x, (str, type(None))) and estimate_is_merged(x) for x in estimates.values())
+              else "")
     heads = ["Term", "mm/yr ± se", "yrs", "dS out", "product or gauge (est.), same yrs"]
     titles = ["over whole water years the storage term is left out", "mean per water year ± 1 standard error",
-              "whole water years used", "mean storage change left out (mm/year)",
+              "whole water years used", "mean storage change left out (mm/year), over the years where the TWSA product has every month",
               "the chosen product or gauged Q over the years where it has every month, and the estimate over those"]
     return (_table(heads, rows, cls="estimates", titles=titles)
-            + f"<p class='small'>ET plot: {e(band)}. A product's bias is not in ± se.</p>")
+            + f"<p class='small'>ET plot: {e(band)}. A product's bias is not in ± se.{merged}</p>")
 
 
 def _comparison(ranking, sel, comps, by):

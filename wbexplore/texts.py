@@ -7,25 +7,34 @@ term. Names and units come from `wbexplore.names`; rules that decide a warning l
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 
 from .balance.cautions import storage_resolution_warning
 from .balance.terms import SOURCE_COMPONENTS
 from .balance.uncertainty import band_text
 from .escape import html_text, md_text
+from .series import FLOW_PREFIX
 from .names import METRIC_NAMES, metric_name, option_label
 from .plots import (  # plots imports bokeh only inside its drawing code
     EXCHANGE_LABEL,
     waterbody_messages,
 )
 
-__all__ = ["COVERAGE_MIN", "estimate_html", "estimate_lines", "summary_html", "warnings_for", "warnings_markdown", "waterbody_summary_html", "waterbody_warnings_markdown"]
+__all__ = ["COVERAGE_MIN", "estimate_html", "estimate_lines", "unsigned_zero", "summary_html", "warnings_for", "warnings_markdown", "waterbody_summary_html", "waterbody_warnings_markdown"]
 
 COVERAGE_MIN = 0.9  # a product covering less of the basin than this share on average is named in the warnings
 
 
 def _fmt(v, spec):
-    return "n/a" if v is None or not np.isfinite(v) else format(v, spec)
+    return "n/a" if v is None or not np.isfinite(v) else unsigned_zero(format(v, spec))
+
+
+def unsigned_zero(text: str) -> str:
+    """A number rounded to zero without its sign ("-0" -> "0", "+0.0" -> "0.0"): a reader takes "-0" for a
+    negative value."""
+    return text[1:] if re.fullmatch(r"[-+]0(\.0*)?", text) else text
 
 
 def markdown_list(lines, empty: str = "No warnings for this selection.") -> str:
@@ -103,7 +112,7 @@ def estimate_lines(est) -> list[str]:
     over the same years, the band's error sources, and what the standard error leaves out (`estimate.NOTE`)."""
     from .balance.estimate import NOTE
     from .io.estimates import water_years_text
-    from .plots import estimate_label
+    from .plots import estimate_is_merged, estimate_label
 
     lt, t = est.long_term, est.term
     if not lt["water_years"]:
@@ -120,20 +129,32 @@ def estimate_lines(est) -> list[str]:
                 f"{lt['water_years']} whole water years ({water_years_text(lt['years'])}){left}.")
     lines = [head]
     shown = estimate_label(est)
-    if shown and lt.get("product") is not None:
-        lines.append(f"{shown[:1].upper() + shown[1:]}: {_fmt(lt['product'], '.0f')} mm/year over {lt['product_years']} of those years, where "
-                     f"it has every month (the estimate over the same years: {_fmt(lt['estimate_product_years'], '.0f')}"
-                     " mm/year).")
-    elif shown:
+    if lt["water_years"] and shown and lt.get("product") is not None:
+        lines.append(f"{shown[:1].upper() + shown[1:]}: {_fmt(lt['product'], '.0f')} mm/year over {lt['product_years']} "
+                     f"of those years, where it has every month (the estimate over the same years: "
+                     f"{_fmt(lt['estimate_product_years'], '.0f')} mm/year).")
+    elif lt["water_years"] and shown:
         lines.append(f"{shown[:1].upper() + shown[1:]}: no whole water year of its own in those years to compare.")
-    lines.append(band_text(est.uncertainty, q_relative_error=None if t == "Q" else est.q_relative_error) + ".")
+    if estimate_is_merged(est):
+        lines.append("The merged source closes the budget by construction: its agreement with the estimate is not a "
+                     "check of either.")
+    lines.append(estimate_band_text(est))
     m = est.monthly
     unknown = m.index[m["estimate"].notna() & m["standard_error"].isna()]
     if len(unknown):  # e.g. the spread of a component where only one of its products has the month
-        lines.append(f"No band in {len(unknown)} month{'s' if len(unknown) > 1 else ''} with an estimate "
-                     f"({unknown[0]:%Y-%m} to {unknown[-1]:%Y-%m}): the error of a term is unknown there.")
+        lines.append(f"No band in {len(unknown)} month{'s' if len(unknown) > 1 else ''} with an estimate (first "
+                     f"{unknown[0]:%Y-%m}, last {unknown[-1]:%Y-%m}): the error of a term is unknown there.")
     lines.append(NOTE)
     return lines
+
+
+def estimate_band_text(est) -> str:
+    """One line: each known term's error in the estimate's band (`uncertainty.band_text`), the gauge's for Q and for
+    every flow that enters the balance."""
+    text = band_text(est.uncertainty, q_relative_error=None if est.term == "Q" else est.q_relative_error)
+    if FLOW_PREFIX in est.formula:  # a flow enters the balance (`estimate.formula` names every one)
+        text += f"; flows {est.q_relative_error:.0%} of flow (gauges)"
+    return text + "."
 
 
 def estimate_html(est, *, note: str = "") -> str:

@@ -86,42 +86,20 @@ class Explorer:
         self.study_dir = Path(s.catalog_path).resolve().parent if s.catalog_path else None
         self.export_dir = default_export_dir(s.catalog_path, export_dir)
         self.wb_outlines = plots.basin_outlines(state.waterbodies) if state.waterbodies is not None else None
-        self._basin_opts = {f"{b} - {n}": b for b, n in state.names().items()}  # basins, then water bodies
-        self.w_basin = pn.widgets.Select(name="Basin", options=self._basin_opts, value=s.basin, width=260)
+        self._basin_opts = self._choices("basin")  # basins, then water bodies
+        self.controls = {name: self._control(name) for name in CONTROLS}
+        c = self.controls
+        self.w_basin, self.w_period, self.w_unit, self.w_estimate = (c[k] for k in ("basin", "period", "unit",
+                                                                                      "estimate_term"))
+        self.w_src = {comp: c[comp] for comp in SOURCE_COMPONENTS}
+        self.w_method, self.w_matched, self.w_units, self.w_metric = (c[k] for k in ("storage_change", "matched",
+                                                                                      "unit_system", "metric"))
+        self.matched_help = pn.widgets.TooltipIcon(value=self._help("matched"), width=20)  # a checkbox shows no help
         self.w_search = pn.widgets.AutocompleteInput(name="Find basin", options=list(self._basin_opts),
                                                      case_sensitive=False, search_strategy="includes",
                                                      min_characters=1, placeholder="type an id or a name", width=260)
-        self.w_src = {}
-        for comp in SOURCE_COMPONENTS:
-            opts = {f"{s.labels.get(i, i)} [{i}]": i for i in getattr(s.param, comp).objects}
-            self.w_src[comp] = pn.widgets.Select(name=getattr(s.param, comp).label, options=opts,
-                                                 value=getattr(s, comp), width=260)
-        # the period in whole months: the slider counts months (year * 12 + month - 1), one step per arrow key
-        from bokeh.models import CustomJSTickFormatter
-
-        self.w_period = pn.widgets.IntRangeSlider(
-            name="Period", start=_month_number(s.months[0]), end=_month_number(s.months[-1]), step=1,
-            value=tuple(_month_number(v) for v in s.period), width=260, css_classes=["wbx-period"],
-            format=CustomJSTickFormatter(code="const y = Math.floor(tick / 12), m = tick - 12 * y + 1;"
-                                              " return y + '-' + (m < 10 ? '0' : '') + m;"))
-        methods = s.param.storage_change.objects
-        self.w_method = pn.widgets.RadioButtonGroup(
-            name="Storage change", options={OPTIONS[k].name: k for k in methods}, value=s.storage_change, width=260,
-            description="; ".join(f"{OPTIONS[k].name}: {OPTIONS[k].help}" for k in methods))
-        self.w_matched = pn.widgets.Checkbox(name=OPTIONS["matched"].name, value=s.matched, width=220)
-        self.matched_help = pn.widgets.TooltipIcon(value=OPTIONS["matched"].help, width=20)
-        self.w_units = pn.widgets.RadioButtonGroup(
-            name="Units", options={OPTIONS[k].name: k for k in s.param.unit_system.objects}, value=s.unit_system,
-            width=260, description="; ".join(f"{OPTIONS[k].name}: {OPTIONS[k].help}" for k in s.param.unit_system.objects))
-        self.w_metric = pn.widgets.Select(name="Rank by", options={metric_label(k): k for k in s.param.metric.objects},
-                                          value=s.metric, width=260, description=METRIC_NAMES[s.metric].help)
         self.w_best = pn.widgets.Button(name="Best combination", button_type="primary", width=260)
-        # whole basin or its incremental unit (minus its upstream basins): enabled only where there is one
-        self.w_unit = pn.widgets.RadioButtonGroup(name="Balance unit", options={OPTIONS[k].name: k for k in s.param.unit.objects},
-                                                  value=s.unit, disabled=not s.has_incremental, width=260,
-                                                  css_classes=["wbx-unit"],
-                                                  description="; ".join(f"{OPTIONS[k].name}: {OPTIONS[k].help}"
-                                                                        for k in s.param.unit.objects))
+        self.w_unit.disabled = not s.has_incremental  # whole basin or its incremental unit: only where there is one
         self._wire()
         self.table = self._new_table(self._rank_view())
         self._table_box = pn.Column(self.table, sizing_mode="stretch_width")
@@ -138,30 +116,88 @@ class Explorer:
         s.param.watch(lambda *e: setattr(self.w_download, "filename", self._csv_name()), ["basin", *SOURCE_COMPONENTS])
 
     # ----------------------------------------------------------------- wiring widgets <-> state
-    def _wire(self):
+    # ----------------------------------------------------------------- controls generated from the state's parameters
+    def _choices(self, name: str) -> dict:
+        """Display name -> value of every object of the state's parameter ``name`` (`wbexplore.names`; ids with the
+        catalog's names or labels)."""
         s = self.state
-        self.w_basin.param.watch(lambda e: setattr(s, "basin", e.new), "value")
-        s.param.watch(lambda e: setattr(self.w_basin, "value", e.new), "basin")
+        objects = s.param[name].objects
+        if name == "basin":
+            return {f"{b} - {n}": b for b, n in s.names().items()}
+        if name in SOURCE_COMPONENTS:
+            return {f"{s.labels.get(i, i)} [{i}]": i for i in objects}
+        if name == "metric":
+            return {metric_label(k): k for k in objects}
+        if name == "estimate_term":
+            from ..balance.estimate import formula
+
+            return {formula(k): k for k in objects}
+        return {OPTIONS[k].name: k for k in objects}
+
+    def _help(self, name: str) -> str:
+        """The help text of the state's parameter ``name``: each option's (`names.OPTIONS`), the chosen metric's, or
+        the parameter's own ``doc``."""
+        s = self.state
+        if name == "metric":
+            return METRIC_NAMES[s.metric].help
+        if name in OPTIONS:
+            return OPTIONS[name].help
+        objects = getattr(s.param[name], "objects", None) or []
+        if objects and all(k in OPTIONS for k in objects):
+            return "; ".join(f"{OPTIONS[k].name}: {OPTIONS[k].help}" for k in objects)
+        return s.param[name].doc or ""
+
+    def _control(self, name: str):
+        """The widget of the state's parameter ``name``, generated from it: the kind `CONTROLS` gives, the
+        parameter's label as its name, its objects as options (`_choices`), its value, its help (`_help`) and a CSS
+        class ``wbx-<name>``; linked both ways (the period as month numbers, written when a drag ends)."""
+        import panel as pn
+
+        s = self.state
+        p = s.param[name]
+        kind = CONTROLS[name]
+        css = [f"wbx-{name.replace('_', '-')}"]
+        if kind == "MonthRange":
+            # the period in whole months: the slider counts months (year * 12 + month - 1), one step per arrow key
+            from bokeh.models import CustomJSTickFormatter
+
+            w = pn.widgets.IntRangeSlider(
+                name=p.label, start=_month_number(s.months[0]), end=_month_number(s.months[-1]), step=1,
+                value=tuple(_month_number(v) for v in s.period), width=260, css_classes=css,
+                format=CustomJSTickFormatter(code="const y = Math.floor(tick / 12), m = tick - 12 * y + 1;"
+                                                  " return y + '-' + (m < 10 ? '0' : '') + m;"))
+
+            def to_state(e):
+                lo, hi = sorted(e.new)
+                s.period = (_month_text(lo), _month_text(hi))
+
+            w.param.watch(to_state, "value_throttled")
+            s.param.watch(lambda e: setattr(w, "value", tuple(_month_number(v) for v in e.new)), name)
+            return w
+        if kind == "Checkbox":
+            w = pn.widgets.Checkbox(name=p.label, value=getattr(s, name), width=220, css_classes=css)
+        else:
+            w = getattr(pn.widgets, kind)(name=p.label, options=self._choices(name), value=getattr(s, name),
+                                          width=260, css_classes=css, description=self._help(name) or None)
+        w.param.watch(lambda e: setattr(s, name, e.new), "value")
+        if name in SOURCE_COMPONENTS:  # the options follow the state's (merged sources, a water body's own)
+            s.param.watch(lambda e: self._follow_source(w, name, e.new), name)
+        elif name == "metric":  # the help names the chosen metric
+            s.param.watch(lambda e: w.param.update(value=e.new, description=self._help(name)), name)
+        else:
+            s.param.watch(lambda e: setattr(w, "value", e.new), name)
+        return w
+
+    def _wire(self):
+        """What the generated controls do not: finding a basin by name, the best-combination button, the pickers'
+        options where the kind of unit or the merged sources change, the balance-unit switch's availability."""
+        s = self.state
 
         def on_search(e):
             if e.new in self._basin_opts:
                 s.basin = self._basin_opts[e.new]
 
         self.w_search.param.watch(on_search, "value")
-        for comp, w in self.w_src.items():
-            w.param.watch(lambda e, c=comp: setattr(s, c, e.new), "value")
-            s.param.watch(lambda e, w=w, c=comp: self._follow_source(w, c, e.new), comp)
-
-        def on_period(e):
-            lo, hi = sorted(e.new)
-            s.period = (_month_text(lo), _month_text(hi))
-
-        self.w_period.param.watch(on_period, "value_throttled")
-        s.param.watch(lambda e: setattr(self.w_period, "value", tuple(_month_number(v) for v in e.new)), "period")
-        self.w_method.param.watch(lambda e: setattr(s, "storage_change", e.new), "value")
-        self.w_matched.param.watch(lambda e: setattr(s, "matched", e.new), "value")
-        self.w_units.param.watch(lambda e: setattr(s, "unit_system", e.new), "value")
-        s.param.watch(lambda e: setattr(self.w_units, "value", e.new), "unit_system")  # hm3 for a water body
 
         def on_kind(*e):  # a water body has its own sources (storage from levels): the pickers follow
             for comp, w in self.w_src.items():
@@ -169,11 +205,7 @@ class Explorer:
 
         # and merged sources come and go (another merge variant: their label too)
         s.param.watch(on_kind, ["basin", "unit", "storage_change", "matched", "merge_method"])
-
-        self.w_metric.param.watch(lambda e: setattr(s, "metric", e.new), "value")
-        s.param.watch(lambda e: self.w_metric.param.update(value=e.new, description=METRIC_NAMES[e.new].help), "metric")
         self.w_best.on_click(lambda e: s.select_best())
-        self.w_unit.param.watch(lambda e: setattr(s, "unit", e.new), "value")
 
         def on_unit(e):
             self.w_unit.disabled = not s.has_incremental
@@ -387,16 +419,7 @@ class Explorer:
         the term (`ClosureState.estimate_term`); hidden for a water body (its residual is the unmeasured exchange)."""
         import panel as pn
 
-        from ..balance.estimate import formula
-
         s = self.state
-        self.w_estimate = pn.widgets.RadioButtonGroup(
-            name=s.param.estimate_term.label, options={formula(t): t for t in s.param.estimate_term.objects},
-            value=s.estimate_term, css_classes=["wbx-estimate-term"],
-            description="the term estimated from the others: ET for a check on the ET products, Q for an ungauged "
-                        "outlet, dS for a check on the storage products")
-        self.w_estimate.param.watch(lambda e: setattr(s, "estimate_term", e.new), "value")
-        s.param.watch(lambda e: setattr(self.w_estimate, "value", e.new), "estimate_term")
         col = pn.Column(pn.pane.Markdown("### One term by difference (long-term: over whole water years, storage left "
                                          "out)"), self.w_estimate,
                         pn.Row(self._view(views.EstimateView), self._view(views.EstimateTextView),
@@ -499,6 +522,12 @@ class Explorer:
 
 
 # the selected row of the ranking is the combination on screen (`Explorer._new_table`)
+# the page's controls: the widget kind of each state parameter shown (`Explorer._control` generates the widget from the
+# parameter); a new parameter on the page is one line here and one in `Explorer._build_layout`
+CONTROLS = {"basin": "Select", "unit": "RadioButtonGroup", "P": "Select", "ET": "Select", "TWSA": "Select",
+            "period": "MonthRange", "storage_change": "RadioButtonGroup", "matched": "Checkbox",
+            "unit_system": "RadioButtonGroup", "metric": "Select", "estimate_term": "RadioButtonGroup"}
+
 _ON_SCREEN_CSS = (".tabulator-row.tabulator-selected, .tabulator-row.tabulator-selected:hover "
                   "{ background-color: #fde3c4 !important; } .tabulator-row.tabulator-selected .tabulator-cell "
                   "{ font-weight: bold; }")

@@ -40,7 +40,8 @@ class ClosureState(param.Parameterized):
     catalog_path = param.String(default="", precedence=-1)
     title = param.String(default="", precedence=-1, doc="catalog title (text from the catalog file)")
 
-    basin = param.Selector(objects=[], doc="basin id")
+    basin = param.Selector(objects=[], doc="the basin or water body whose balance is shown (a click on the map picks "
+                                           "one too)")
     unit = param.Selector(objects=["whole", "incremental"], default="whole", label="Balance unit",
                           doc="the whole basin, or its incremental unit (the basin minus its upstream basins; "
                               "only for a basin with upstream basins: otherwise it falls back to whole)")
@@ -54,8 +55,8 @@ class ClosureState(param.Parameterized):
     metric = param.Selector(objects=[m for m in METRICS if m != "n_valid"], default="rmse", label="Rank by")
     min_valid = param.Integer(default=24, bounds=(1, None), precedence=-1)
     estimate_term = param.Selector(objects=list(ESTIMATE_TERMS), default="ET", label="Estimate by difference",
-                                   doc="the balance term estimated from the others (`balance.estimate`): ET = P - Q - dS, "
-                                       "Q = P - ET - dS (an ungauged outlet), dS = P - ET - Q")
+                                   doc="the term estimated from the others: ET for a check on the ET products, Q for an "
+                                       "ungauged outlet, dS for a check on the storage products")
     merge_method = param.Selector(objects=list(MERGE_METHODS), default=DEFAULT_METHOD, precedence=-1,
                                   doc="variant of the merged sources offered beside the products "
                                       "(`balance.merge.MERGE_METHODS`)")
