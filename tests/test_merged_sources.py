@@ -235,3 +235,13 @@ def test_another_merge_variant_relabels_the_pickers_and_recomputes(merged_state)
     ref = compute_selection(with_merged(ds, m.reindex(basin=ds["basin"].values)),
                             Selection("B0", "merged_P", s.ET, s.TWSA))
     pd.testing.assert_frame_equal(s.result().frame, ref.frame)
+    # the page's views follow the variant too (found by review: merge_method was in no view's parameters)
+    resid = next(o for o in ex.panel().select(lambda o: "wbx-residual" in (getattr(o, "css_classes", None) or [])))
+    np.testing.assert_allclose(resid.object.renderers[1].data_source.data["residual"],
+                               ref.frame["residual"].to_numpy(), equal_nan=True)
+    s.merge_method = "ckf"
+    ck = merge_products(ds, method="ckf", basins=["B0"], options=ClosureOptions())
+    ref = compute_selection(with_merged(ds, ck.reindex(basin=ds["basin"].values)),
+                            Selection("B0", "merged_P", s.ET, s.TWSA))
+    np.testing.assert_allclose(resid.object.renderers[1].data_source.data["residual"],
+                               ref.frame["residual"].to_numpy(), equal_nan=True)

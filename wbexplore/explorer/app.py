@@ -288,7 +288,8 @@ class Explorer:
             self._mark_on_screen()
 
     def _refresh_table(self, *events):
-        if any(e.name in ("basin", "unit", "period", "storage_change", "matched", "metric") for e in events):
+        if any(e.name in ("basin", "unit", "period", "storage_change", "matched", "metric", "merge_method")
+               for e in events):
             view = self._rank_view()
             if list(view.columns) != list(self.table.value.columns):
                 # other columns (another "Rank by", basin <-> water body): a new table in the same place. Updating

@@ -64,10 +64,11 @@ def multi_basin(table, unit: str = "mm/year"):
 
 # --------------------------------------------------------------------------- the page's plots, one class each
 # what each kind of view follows (state parameters)
-DEPS = ("basin", "unit", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system", "metric")
+DEPS = ("basin", "unit", *SOURCE_COMPONENTS, "period", "storage_change", "matched", "unit_system", "metric",
+        "merge_method")  # the merge variant: a merged source's numbers (a notebook cell may set it)
 SEL_DEPS = tuple(d for d in DEPS if d != "metric")  # one selection's views
 MAP_DEPS = ("basin", "period", "storage_change", "matched", "metric")  # the basins' best scores
-MULTI_DEPS = (*SOURCE_COMPONENTS, "period", "storage_change", "matched")  # every basin, one combination
+MULTI_DEPS = (*SOURCE_COMPONENTS, "period", "storage_change", "matched", "merge_method")  # every basin, one combination
 ESTIMATE_DEPS = (*SEL_DEPS, "estimate_term")  # one selection's estimate by difference
 
 
