@@ -423,8 +423,7 @@ class Explorer:
         s = self.state
         col = pn.Column(pn.pane.Markdown("### One term by difference (long-term: over whole water years, storage left "
                                          "out)"), self.w_estimate,
-                        pn.Row(self._view(views.EstimateView), self._view(views.EstimateTextView),
-                               sizing_mode="stretch_width"),
+                        self._view(views.EstimateView), self._view(views.EstimateTextView),
                         sizing_mode="stretch_width", css_classes=["wbx-estimate-section"])
 
         def show(*events):

@@ -218,7 +218,7 @@ class TextView:
     deps: tuple = SEL_DEPS
     css: tuple = ("wbx-summary-pane",)
     markdown: bool = False
-    width: int = 260
+    width: int | None = 260  # px; None: the width of its container
 
     def __init__(self, explorer):
         self.explorer = explorer
@@ -232,7 +232,8 @@ class TextView:
 
         bound = pn.bind(lambda *a: self.text(), *[self.state.param[d] for d in self.deps])
         kind = pn.pane.Markdown if self.markdown else pn.pane.HTML
-        return kind(bound, css_classes=list(self.css), width=self.width)
+        size = {"sizing_mode": "stretch_width"} if self.width is None else {"width": self.width}
+        return kind(bound, css_classes=list(self.css), **size)
 
 
 class SummaryView(TextView):
@@ -279,7 +280,7 @@ class EstimateTextView(TextView):
     """The estimate by difference in words: the long-term value (storage left out), the product or gauge beside
     it over the same years, the error sources and what the standard error leaves out (`texts.estimate_lines`)."""
 
-    deps, css, width = ESTIMATE_DEPS, ("wbx-estimate-text",), 420
+    deps, css, width = ESTIMATE_DEPS, ("wbx-estimate-text",), None  # under the plot: it leaves the plot the width
 
     def text(self):
         s = self.state
