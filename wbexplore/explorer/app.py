@@ -471,7 +471,7 @@ class Explorer:
             pn.pane.Markdown("### Selection"), self.w_basin, self.w_search,
             pn.pane.Markdown("Balance unit (incremental: minus the upstream basins)"), self.w_unit, self.w_src["P"], self.w_src["ET"],
             self.w_src["TWSA"], self.w_period, pn.pane.Markdown("Storage change (TWSA differences)"), self.w_method,
-            pn.Row(self.w_matched, self.matched_help), pn.pane.Markdown("Units"), self.w_units, self.w_metric,
+            pn.Row(self.w_matched, self.matched_help), self.w_units, self.w_metric,
             self.w_best,
             pn.pane.Markdown("### Summary"), summary, warn, *self._wb_panes,
             pn.pane.Markdown("### Export"), self.export_where, self.w_export, self.w_report, self.export_msg, self.w_download,
@@ -523,10 +523,11 @@ class Explorer:
 
 # the selected row of the ranking is the combination on screen (`Explorer._new_table`)
 # the page's controls: the widget kind of each state parameter shown (`Explorer._control` generates the widget from the
-# parameter); a new parameter on the page is one line here and one in `Explorer._build_layout`
+# parameter); a new parameter on the page is one line here and one in `Explorer._build_layout`. The units are a Select:
+# four buttons do not fit the 260 px column ("hm3/month" was cut off)
 CONTROLS = {"basin": "Select", "unit": "RadioButtonGroup", "P": "Select", "ET": "Select", "TWSA": "Select",
             "period": "MonthRange", "storage_change": "RadioButtonGroup", "matched": "Checkbox",
-            "unit_system": "RadioButtonGroup", "metric": "Select", "estimate_term": "RadioButtonGroup"}
+            "unit_system": "Select", "metric": "Select", "estimate_term": "RadioButtonGroup"}
 
 _ON_SCREEN_CSS = (".tabulator-row.tabulator-selected, .tabulator-row.tabulator-selected:hover "
                   "{ background-color: #fde3c4 !important; } .tabulator-row.tabulator-selected .tabulator-cell "
