@@ -203,7 +203,7 @@ def in_process_change(catalog, cache, profile_top: int = 15):
 
     from wbexplore.balance.terms import SOURCE_COMPONENTS
 
-    base, st, ex, doc, events = _session(catalog, cache)
+    base, st, ex, _doc, events = _session(catalog, cache)
     first_page = dict(base._memo)  # what the server computed for the first page
 
     def reset(comp, orig):
@@ -246,7 +246,7 @@ def in_process_change(catalog, cache, profile_top: int = 15):
     t = time.perf_counter()
     prof.enable()
     ex.w_src[comp].value = val
-    Protocol().create("PATCH-DOC", [e for e in events if hasattr(e, "to_serializable")]).content_json
+    _ = Protocol().create("PATCH-DOC", [e for e in events if hasattr(e, "to_serializable")]).content_json  # serialised
     prof.disable()
     wall = time.perf_counter() - t
     s = io.StringIO()
@@ -457,7 +457,7 @@ def page_changes(browser, url, proc, ws_log, st, n_source: int, n_keys: int, n_d
             label = texts[(i0 + i) % len(texts)]
             first_visit.append(label not in seen)
             seen.add(label)
-            trials.append(tr.run(lambda: sel.select_option(label=label), ("input", "change")))
+            trials.append(tr.run(lambda sel=sel, label=label: sel.select_option(label=label), ("input", "change")))
         if sel.locator("option:checked").inner_text() != cur:  # back, so the next picker starts from the same page
             before = pg.locator(SUMMARY).first.inner_text()
             sel.select_option(label=cur)
@@ -473,7 +473,7 @@ def page_changes(browser, url, proc, ws_log, st, n_source: int, n_keys: int, n_d
         x, y = box["x"] + box["width"] / 2, box["y"] + box["height"] / 2
         dx = 30 if i % 2 == 0 else -22  # right, then back less far: each drag a new period
 
-        def drag():
+        def drag(x=x, y=y, dx=dx):
             pg.mouse.move(x, y)
             pg.mouse.down()
             pg.mouse.move(x + dx, y, steps=6)
@@ -497,7 +497,7 @@ def _print_changes(res):
         if not ok:
             print(f"  {name}: no trial completed")
             continue
-        def m(k, f=1e3):
+        def m(k, f=1e3, ok=ok):
             return _median([t.get(k) for t in ok]) * f
 
         med = m("total", 1)
