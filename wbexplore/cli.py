@@ -699,7 +699,7 @@ def _cmd_merge(args) -> int:
 
 def _cmd_estimate(args) -> int:
     from .balance import Selection, best_selection
-    from .balance.estimate import TERMS, estimate_by_difference
+    from .balance.estimate import OWN_COMPONENT, TERMS, estimate_by_difference
     from .balance.uncertainty import check_method
     from .io.catalog import open_catalog
     from .io.estimates import check_format, write_estimate
@@ -718,7 +718,7 @@ def _cmd_estimate(args) -> int:
     check_output(args.out, overwrite=args.force, protect=cat)
     if args.incremental:
         _check_incremental(cat, args.basin)
-    own = {"ET": "ET", "dS": "TWSA"}.get(args.term)
+    own = OWN_COMPONENT[args.term]
     needed = [c for c in ("P", "ET", "TWSA") if c != own]
     given = {c: getattr(args, c) for c in ("P", "ET", "TWSA")}
     ds = _series(args)

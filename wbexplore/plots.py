@@ -47,11 +47,11 @@ __all__ = [
     "basin_map",
     "basin_outlines",
     "component_bars",
+    "difference_estimate",
     "disagreement_map",
     "estimate_band_label",
-    "difference_estimate",
-    "estimate_label",
     "estimate_is_merged",
+    "estimate_label",
     "exchange_series",
     "level_volume",
     "multi_basin",
@@ -646,17 +646,24 @@ def estimate_is_merged(est) -> bool:
     (`balance.merge`): it closes the budget by construction."""
     from .balance.engine import is_merged
 
-    src = {"ET": est.selection.ET, "dS": est.selection.TWSA}.get(est.term)
+    src = _own_source(est)
     return src is not None and is_merged(src)
+
+
+def _own_source(est):
+    """The chosen source of the estimated term itself (ET's ET product, dS's TWSA product; None for Q or none chosen)."""
+    from .balance.estimate import OWN_COMPONENT
+
+    comp = OWN_COMPONENT[est.term]
+    return None if comp is None else getattr(est.selection, comp)
 
 
 def estimate_label(est) -> str:
     """The chosen product or gauge a `DifferenceEstimate` is drawn beside ("ET product tansy", "gauged Q", "dS of
     TWSA quarry", "merged ET [merged_ET]"), or "" where none was chosen (its ``product`` column is empty)."""
-    sel = est.selection
     if est.term == "Q":
         return "gauged Q"
-    src = sel.ET if est.term == "ET" else sel.TWSA
+    src = _own_source(est)
     if src is None:
         return ""
     if estimate_is_merged(est):  # not a product: the budget closes on it by construction
@@ -684,10 +691,16 @@ class EstimatePlot(_Plot):
     """
 
     def _build(self, width):
-        from bokeh.models import ColumnDataSource, HoverTool, Legend, LegendItem, Line, Patches
+        from bokeh.models import (
+            ColumnDataSource,
+            HoverTool,
+            Legend,
+            LegendItem,
+            Line,
+            Patches,
+        )
 
-        empty_t = np.array([], dtype="datetime64[ns]")
-        self.src = ColumnDataSource({"month": empty_t, "estimate": [], "lo": [], "hi": [], "product": []})
+        self.src = ColumnDataSource(self._empty())
         self.fig = fig = _figure(width=width, height=300, x_axis_type="datetime")
         # the band as one polygon per run of estimated months: an area over NaN would bridge a gap with a band
         self.band = ColumnDataSource({"xs": [], "ys": []})
@@ -706,14 +719,17 @@ class EstimatePlot(_Plot):
         fig.add_tools(self.hover)
         fig.xaxis.axis_label = "month"
 
+    @staticmethod
+    def _empty() -> dict:
+        return {"month": np.array([], dtype="datetime64[ns]"), "estimate": [], "lo": [], "hi": [], "product": []}
+
     def update(self, est, unit_system: str = "mm", *, note: str = "") -> None:
         """Draw ``est`` (a `DifferenceEstimate`; None: an empty plot titled with ``note``, why there is none) in
         ``unit_system`` (`UNIT_LABEL`); the title gives the long-term estimate in mm/year over whole water years."""
         from bokeh.core.properties import value
 
         if est is None:  # nothing of the last estimate stays on the plot
-            empty_t = np.array([], dtype="datetime64[ns]")
-            self.src.data = {"month": empty_t, "estimate": [], "lo": [], "hi": [], "product": []}
+            self.src.data = self._empty()
             self.band.data = {"xs": [], "ys": []}
             self.prod.visible = False
             for item, text in zip(self.items, ("± 2 sigma", "estimate", "product")):
@@ -853,7 +869,14 @@ def disagreement_map(cells: dict, outlines: Outlines | None = None, *, basin: st
         their own baseline: their long-term means do not compare).
     """
     from bokeh.layouts import gridplot
-    from bokeh.models import ColorBar, ColumnDataSource, Div, HoverTool, LinearColorMapper, Patches
+    from bokeh.models import (
+        ColorBar,
+        ColumnDataSource,
+        Div,
+        HoverTool,
+        LinearColorMapper,
+        Patches,
+    )
     from bokeh.palettes import RdBu11, Viridis256
 
     from .balance.terms import DS

@@ -375,7 +375,7 @@ def report_html(cat: Catalog, ds, sel, *, by: str = "rmse", merge_method: str | 
     figs = [(plots.basin_map(load_basins(cat), scores, sel.basin, shown, title=f"Basins by best {metric_name(shown)}",
                              rank_by=by), "tall"),
             f"<h2>Long-term estimates by difference</h2>{_estimates_table(estimates)}",
-            *([_one_line_legend(plots.difference_estimate(et))] if not isinstance(et, (str, type(None))) else []),
+            *([] if isinstance(et, str) else [_one_line_legend(plots.difference_estimate(et))]),
             plots.residual_series(res), plots.balance_scatter(res)]
     unit = ""
     if incremental:
@@ -438,8 +438,8 @@ def _estimates_table(estimates: dict) -> str:
 
     rows, band = [], ""
     for t, est in estimates.items():
-        if isinstance(est, str) or est is None:
-            rows.append([t, est or "not estimated", "", "", ""])
+        if isinstance(est, str):  # why it could not be estimated
+            rows.append([t, est, "", "", ""])
             continue
         lt = est.long_term
         if not lt["water_years"]:
@@ -460,7 +460,7 @@ def _estimates_table(estimates: dict) -> str:
         if t == "ET":
             band = estimate_band_label(est)
     merged = (" A merged source closes the budget by construction: its agreement with an estimate is not a check."
-              if any(not isinstance(x, (str, type(None))) and estimate_is_merged(x) for x in estimates.values())
+              if any(not isinstance(x, str) and estimate_is_merged(x) for x in estimates.values())
               else "")
     heads = ["Term", "mm/yr ± se", "yrs", "dS out", "product or gauge (est.), same yrs"]
     titles = ["over whole water years the storage term is left out", "mean per water year ± 1 standard error",

@@ -15,14 +15,14 @@ from .balance.cautions import storage_resolution_warning
 from .balance.terms import SOURCE_COMPONENTS
 from .balance.uncertainty import band_text
 from .escape import html_text, md_text
-from .series import FLOW_PREFIX
 from .names import METRIC_NAMES, metric_name, option_label
 from .plots import (  # plots imports bokeh only inside its drawing code
     EXCHANGE_LABEL,
     waterbody_messages,
 )
+from .series import FLOW_PREFIX
 
-__all__ = ["COVERAGE_MIN", "estimate_html", "estimate_lines", "unsigned_zero", "summary_html", "warnings_for", "warnings_markdown", "waterbody_summary_html", "waterbody_warnings_markdown"]
+__all__ = ["COVERAGE_MIN", "estimate_html", "estimate_lines", "summary_html", "unsigned_zero", "warnings_for", "warnings_markdown", "waterbody_summary_html", "waterbody_warnings_markdown"]
 
 COVERAGE_MIN = 0.9  # a product covering less of the basin than this share on average is named in the warnings
 

@@ -42,9 +42,11 @@ from .engine import closure_arrays, water_year
 from .storage import apply_kernel, kernel, sum_variance
 from .terms import BASE_TERMS, SOURCE_COMPONENTS, balance_text
 
-__all__ = ["TERMS", "SCALES", "DifferenceEstimate", "estimate_by_difference", "formula", "NOTE"]
+__all__ = ["TERMS", "OWN_COMPONENT", "SCALES", "DifferenceEstimate", "estimate_by_difference", "formula", "NOTE"]
 
 TERMS = tuple(t.name for t in BASE_TERMS if t.component != "P")  # ("ET", "Q", "dS"): what P is balanced against
+# the component whose chosen source gives the estimated term itself (not needed for the estimate; Q: the gauge)
+OWN_COMPONENT = {"ET": "ET", "Q": None, "dS": "TWSA"}
 SCALES = ("month", "water_year", "long_term")
 NOTE = ("Standard errors propagate random errors, independent between terms and months; systematic product "
         "errors (bias) are not in them and do not average out over years.")
@@ -112,7 +114,7 @@ def _with_placeholders(ds: xr.Dataset, sel: Selection, term: str) -> tuple[xr.Da
     """The series with an empty source for the unknown's component when none is chosen (its values are
     never used), and an empty discharge for Q when the series hold none; the sources for the pipeline."""
     sources = {c: getattr(sel, c) for c in SOURCE_COMPONENTS}
-    comp = {"ET": "ET", "dS": "TWSA", "Q": None}[term]
+    comp = OWN_COMPONENT[term]
     add = {}
     nan = np.full((ds.sizes["basin"], ds.sizes["time"]), np.nan)
     if comp is not None and sources[comp] is None:
@@ -165,7 +167,7 @@ def estimate_by_difference(ds: xr.Dataset, sel: Selection, term: str = "ET", *,
         v = a[name]
         return v[0, 0] if v.ndim == 3 else v[0]
 
-    own = {"ET": "ET", "dS": "TWSA"}.get(term)
+    own = OWN_COMPONENT[term]
     errors = {}
     kw = {"period": mask, "min_valid_fraction": opts.min_valid_fraction, "method": method, "strict": strict}
     for c in SOURCE_COMPONENTS:
@@ -224,26 +226,32 @@ def estimate_by_difference(ds: xr.Dataset, sel: Selection, term: str = "ET", *,
           "estimate": float("nan"), "standard_error": float("nan"), "storage_change": None, "storage_change_years": 0,
           "product": None, "product_years": 0, "estimate_product_years": None}
     if years:
+        def complete(x) -> list:  # those of the years where ``x`` has every month
+            return [y for y in years if np.all(np.isfinite(x[(wy == y) & mask]))]
+
+        def yearly_mean(x, ys) -> float:  # mean yearly total of ``x`` over the years ``ys``
+            return float(x[np.isin(wy, ys) & mask].sum() / len(ys))
+
+        def estimate_mean(ys) -> float:  # the estimate with the storage term left out, mean over the years ``ys``
+            sel_ys = np.isin(wy, ys) & mask
+            return float(sum(-t.sign * pick(f"{t.name}_raw")[sel_ys].sum() for t, _v in fluxes) / sign[term] / len(ys))
+
         sel_all = np.isin(wy, years) & mask
-        n = len(years)
-        total = sum(-t.sign * pick(f"{t.name}_raw")[sel_all].sum() for t, _v in fluxes) / sign[term]
-        lt["estimate"] = float(total / n)
-        lt["standard_error"] = float(np.sqrt(sum(v[sel_all].sum() for _t, v in fluxes)) / n)
+        lt["estimate"] = estimate_mean(years)
+        lt["standard_error"] = float(np.sqrt(sum(v[sel_all].sum() for _t, v in fluxes)) / len(years))
         if term != "dS":
-            ds_years = [y for y in years if np.all(np.isfinite(pick("dS")[(wy == y) & mask]))]
+            ds_years = complete(pick("dS"))
             if ds_years:
-                lt["storage_change"] = float(pick("dS")[np.isin(wy, ds_years) & mask].sum() / len(ds_years))
+                lt["storage_change"] = yearly_mean(pick("dS"), ds_years)
             lt["storage_change_years"] = len(ds_years)
         # the chosen product (or gauge) of the term as it stands (its own totals, not window-matched) over those of
         # the years where it has every month, and the estimate over the same years: the pair to compare
-        own = pick("dS" if term == "dS" else f"{term}_raw")
-        p_years = [y for y in years if np.all(np.isfinite(own[(wy == y) & mask]))]
+        product = pick("dS" if term == "dS" else f"{term}_raw")
+        p_years = complete(product)
         lt["product_years"] = len(p_years)
         if p_years:
-            sel_p = np.isin(wy, p_years) & mask
-            lt["product"] = float(own[sel_p].sum() / len(p_years))
-            lt["estimate_product_years"] = float(
-                sum(-t.sign * pick(f"{t.name}_raw")[sel_p].sum() for t, _v in fluxes) / sign[term] / len(p_years))
+            lt["product"] = yearly_mean(product, p_years)
+            lt["estimate_product_years"] = estimate_mean(p_years)
     msgs = [f"uncertainty of {c} ({e.source}): {e.note}" for c, e in errors.items()]
     if not years:
         msgs.append("no whole water year in the period: no long-term estimate")

@@ -17,6 +17,7 @@ import os
 import warnings
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from .. import plots
@@ -115,7 +116,6 @@ class Explorer:
         s.param.watch(self._refresh_table, list(_DEPS))
         s.param.watch(lambda *e: setattr(self.w_download, "filename", self._csv_name()), ["basin", *SOURCE_COMPONENTS])
 
-    # ----------------------------------------------------------------- wiring widgets <-> state
     # ----------------------------------------------------------------- controls generated from the state's parameters
     def _choices(self, name: str) -> dict:
         """Display name -> value of every object of the state's parameter ``name`` (`wbexplore.names`; ids with the
@@ -188,6 +188,7 @@ class Explorer:
             s.param.watch(lambda e: setattr(w, "value", e.new), name)
         return w
 
+    # ----------------------------------------------------------------- wiring widgets <-> state
     def _wire(self):
         """What the generated controls do not: finding a basin by name, the best-combination button, the pickers'
         options where the kind of unit or the merged sources change, the balance-unit switch's availability."""
@@ -251,12 +252,11 @@ class Explorer:
     def _on_screen_rows(self, view=None) -> list[int]:
         """The row(s) of the ranking ``view`` (default the table's) with the combination on screen."""
         v = self.table.value if view is None else view
-        s = self.state
-        on = pd.Series(True, index=range(len(v)))
+        on = np.ones(len(v), dtype=bool)
         for c in SOURCE_COMPONENTS:
-            if c in v:
-                on &= (v[c].astype(str) == str(getattr(s, c))).to_numpy()
-        return [int(i) for i in on[on].index]
+            if c in v:  # a water body's ranking has no TWSA column
+                on &= v[c].astype(str).to_numpy() == str(getattr(self.state, c))
+        return np.flatnonzero(on).tolist()
 
     def _new_table(self, view):
         """The ranking table for ``view`` (a `_rank_view` frame), escaped, clickable, the combination on screen
@@ -284,8 +284,7 @@ class Explorer:
 
     def _keep_selection(self, event) -> None:
         """A click on the marked row unselects it in the page: the combination is still on screen, so mark it again."""
-        if list(event.new) != self._on_screen_rows():
-            self._mark_on_screen()
+        self._mark_on_screen()
 
     def _refresh_table(self, *events):
         if any(e.name in ("basin", "unit", "period", "storage_change", "matched", "metric", "merge_method")
@@ -521,7 +520,6 @@ class Explorer:
         return self.state.ranking().copy()
 
 
-# the selected row of the ranking is the combination on screen (`Explorer._new_table`)
 # the page's controls: the widget kind of each state parameter shown (`Explorer._control` generates the widget from the
 # parameter); a new parameter on the page is one line here and one in `Explorer._build_layout`. The units are a Select:
 # four buttons do not fit the 260 px column ("hm3/month" was cut off)
@@ -529,6 +527,7 @@ CONTROLS = {"basin": "Select", "unit": "RadioButtonGroup", "P": "Select", "ET": 
             "period": "MonthRange", "storage_change": "RadioButtonGroup", "matched": "Checkbox",
             "unit_system": "Select", "metric": "Select", "estimate_term": "RadioButtonGroup"}
 
+# the selected row of the ranking is the combination on screen (`Explorer._new_table`)
 _ON_SCREEN_CSS = (".tabulator-row.tabulator-selected, .tabulator-row.tabulator-selected:hover "
                   "{ background-color: #fde3c4 !important; } .tabulator-row.tabulator-selected .tabulator-cell "
                   "{ font-weight: bold; }")
