@@ -75,7 +75,7 @@ def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None 
     from .spatial.zonal import build_weights
 
     try:
-        grid = describe_grid(src.data["x"].values, src.data["y"].values, src.crs)
+        grid = describe_grid(src.x, src.y, src.crs)
     except GridError as exc:
         raise InputError(f"{src.spec.paths[0]}: source {src.spec.id!r}: {exc}") from None
     geoms = basins.to_crs(src.crs).geometry.values if not src.crs.equals("EPSG:4326") else basins.geometry.values
@@ -86,22 +86,26 @@ def weights_for(src: SourceGrid, basins, *, cache_dir: str | os.PathLike | None 
                                  cache_dir=cache_dir, use_cache=use_cache)
 
 
-def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True, cells: bool = False) -> xr.Dataset:
+def source_means(src: SourceGrid, weights: Weights, *, keep_open: bool = True, cells: bool = False,
+                 plan: bool = False):
     """Lazy basin means of one source: streamed from its stored blocks where a direct reader
     decodes it exactly (`SourceGrid.blocks`), else through its xarray/dask array.
+
+    ``plan=True``: a streamed source comes back as its `wbexplore.spatial.zonal.BlockPlan` (run by
+    `_compute` in local threads, without dask) instead of a dask-backed Dataset.
 
     ``keep_open=False`` opens the file in every task (for workers of a distributed cluster, which
     would otherwise hold product files open after the run); locally the handles are kept until
     `wbexplore.io.blocks.release_handles`. ``cells=True`` adds, from the same reads, each used cell's
     long-term mean in the canonical unit (``cell_mean``, ``cell_months``; see `zonal_mean_blocks`).
     """
-    from .spatial.zonal import zonal_mean, zonal_mean_blocks
+    from .spatial.zonal import plan_zonal_blocks, zonal_mean
 
     factor = src.factor if cells else None
     if src.blocks is not None:
         blocks = src.blocks if keep_open else dataclasses.replace(src.blocks, keep_open=False)
-        return zonal_mean_blocks(blocks, weights, src.data["time"].values, month_weights=src.step_weights,
-                                 cell_factor=factor)
+        p = plan_zonal_blocks(blocks, weights, src.months.values, month_weights=src.step_weights, cell_factor=factor)
+        return p if plan else p.to_dataset()
     return zonal_mean(src.data, weights, cell_factor=factor)
 
 
@@ -110,7 +114,7 @@ def _cell_means(src: SourceGrid, w: Weights, zm: xr.Dataset) -> dict:
     from .spatial.cells import basin_cell_means
     from .spatial.grid import describe_grid
 
-    grid = describe_grid(src.data["x"].values, src.data["y"].values, src.crs)
+    grid = describe_grid(src.x, src.y, src.crs)
     m = src.months
     period = (f"{m[0]:%Y-%m}", f"{m[-1]:%Y-%m}") if len(m) else ("", "")
     return basin_cell_means(grid, w, zm["cell_mean"].values, zm["cell_months"].values, source=src.spec.id,
@@ -318,7 +322,7 @@ def _extract(cat, gdf, specs, *, client, progress, cache_dir, use_cache, engine,
         for i in np.flatnonzero(cover < LOW_COVERAGE):
             warnings.warn(f"source {spec.id!r} covers only {cover[i]:.0%} of {noun} {str(w.basin[i])!r}",
                           CoverageWarning, stacklevel=2)
-        zm = source_means(src, w, keep_open=not remote, cells=cells and waterbodies is None)
+        zm = source_means(src, w, keep_open=not remote, cells=cells and waterbodies is None, plan=not remote)
         lazy[spec.id] = zm
         meta[spec.id] = (src, w)
     try:
@@ -372,6 +376,31 @@ def warn_level_outside(ds: xr.Dataset) -> None:
 
 
 def _compute(lazy: dict, *, client, progress):
+    """Computed Datasets of the lazy ones: `BlockPlan`s in local threads, without importing dask (one plan
+    after the other, each on every core), and dask-backed Datasets through dask (on ``client`` if given)."""
+    from .spatial.zonal import BlockPlan
+
+    plans = {k: v for k, v in lazy.items() if isinstance(v, BlockPlan)}
+    out = {}
+    if plans:
+        bar = None
+        if progress:
+            from tqdm.auto import tqdm
+
+            bar = tqdm(total=sum(p.n_tasks for p in plans.values()), desc="extract", unit="task", leave=False)
+        try:
+            for k, p in plans.items():
+                out[k] = p.compute(progress=None if bar is None else (lambda _key: bar.update()))
+        finally:
+            if bar is not None:
+                bar.close()
+    rest = {k: v for k, v in lazy.items() if k not in plans}
+    if rest:
+        out.update(_compute_dask(rest, client=client, progress=progress))
+    return {k: out[k] for k in lazy}
+
+
+def _compute_dask(lazy: dict, *, client, progress):
     import dask
     from dask.threaded import get as threads  # named by the function: the name "threads" makes dask
     # import distributed (about 0.6 s) to look for a client that a local run never has

@@ -155,7 +155,7 @@ def _resolutions(cat: Catalog, ids) -> dict:
         if sid not in known:  # a pseudo-source (levels) or an ensemble: no grid of its own
             continue
         g = open_source(cat.source(sid))
-        d = describe_grid(g.data["x"].values, g.data["y"].values, g.crs)
+        d = describe_grid(g.x, g.y, g.crs)
         if d.is_geographic:
             out[sid] = (f"{d.dx:.4g} deg" if np.isclose(d.dx, d.dy, rtol=1e-6)
                         else f"{d.dx:.4g} x {d.dy:.4g} deg")

@@ -17,7 +17,8 @@ from __future__ import annotations
 
 import re
 import warnings
-from dataclasses import dataclass
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
 
@@ -42,30 +43,41 @@ _Y_NAMES = ("y", "lat", "latitude", "rlat", "northing", "nav_lat")
 
 @dataclass
 class SourceGrid:
-    """A product opened lazily, in the shape the spatial layer wants."""
+    """A product opened lazily, in the shape the spatial layer wants.
+
+    ``data`` is built on first use: where a block reader streams the file (``blocks``), an extraction
+    never asks for it, and a command does not import dask.array (about 0.7 s of its start-up) to build
+    a graph it would not run. ``months``, ``x`` and ``y`` are known without it."""
 
     spec: SourceSpec
-    data: xr.DataArray  # (time, y, x), native units, one value per calendar month
     crs: CRS
     factor: np.ndarray  # per month: native value -> canonical unit
     native_units: str
     native_step: str  # one of wbexplore.temporal.STEPS
+    months: pd.DatetimeIndex  # month-start stamps of ``data``'s time axis
+    x: np.ndarray  # cell-centre coordinates of ``data`` (its ``x`` and ``y``), in the CRS's units
+    y: np.ndarray
+    make_data: Callable[[], xr.DataArray] = field(repr=False, compare=False)  # builds ``data``
     incomplete_months: int = 0  # months not covered on every day (sub-monthly steps): empty, never scaled
     blocks: BlockReader | None = None  # direct reader of the stored values, when it decodes exactly like `data`
     # sub-monthly steps read by `blocks`: (months x stored steps) day-weighted map of
     # `wbexplore.temporal.month_weights` (NaN rows: incomplete months), applied inside the single pass
     step_weights: np.ndarray | None = None
+    _data: xr.DataArray | None = field(default=None, repr=False, compare=False)
 
     @property
-    def months(self) -> pd.DatetimeIndex:
-        return pd.DatetimeIndex(self.data["time"].values)
+    def data(self) -> xr.DataArray:
+        """(time, y, x) lazy (dask) array in native units, one value per calendar month of ``months``."""
+        if self._data is None:
+            self._data = self.make_data()
+        return self._data
 
     @property
     def canonical_units(self) -> str:
         return "mm" if self.spec.component == "TWSA" else "mm/month"
 
     def summary(self) -> dict:
-        ny, nx = self.data.sizes["y"], self.data.sizes["x"]
+        ny, nx = len(self.y), len(self.x)
         m = self.months
         return {
             "id": self.spec.id,
@@ -247,10 +259,7 @@ def _open_netcdf_or_zarr(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.Dateti
     blocks = _netcdf_blocks(spec, da, (tdim, yd, xd)) if fmt != "zarr" and len(spec.paths) == 1 else None
     da = da.transpose(tdim, yd, xd).rename({tdim: "time", yd: "y", xd: "x"})
     da = da.drop_vars([c for c in da.coords if c not in ("time", "y", "x")])
-    ny, nx = da.sizes["y"], da.sizes["x"]
-    tc = _time_chunk(ny, nx, da.dtype.itemsize)
-    da = _chunk(da, {"time": tc, "y": -1, "x": -1})
-    return da, crs, bounds_month, blocks
+    return da, crs, bounds_month, blocks  # chunked in time by `open_source`, when the data are asked for
 
 
 def _packing(enc: dict) -> tuple[float, float, float] | None:
@@ -511,9 +520,7 @@ def _open_geotiff(spec: SourceSpec) -> tuple[xr.DataArray, CRS, pd.DatetimeIndex
     da = da.drop_vars([c for c in da.coords if c not in ("time", "y", "x")])
     if units and "units" not in da.attrs:
         da.attrs["units"] = units
-    ny, nx = da.sizes["y"], da.sizes["x"]
-    da = _chunk(da, {"time": _time_chunk(ny, nx, da.dtype.itemsize), "y": -1, "x": -1})
-    return da, crs, None, blocks
+    return da, crs, None, blocks  # chunked in time by `open_source`, when the data are asked for
 
 
 def _read_band(path: str, decoded_dtype: str | None, sidecar_free: bool = False) -> np.ndarray:
@@ -736,13 +743,33 @@ def open_source(spec: SourceSpec) -> SourceGrid:
     from .. import temporal
 
     if spec.format == "geotiff":
-        da, crs, bounds_mid, blocks = _open_geotiff(spec)
+        raw, crs, bounds_mid, blocks = _open_geotiff(spec)
     else:
-        da, crs, bounds_mid, blocks = _open_netcdf_or_zarr(spec)
+        raw, crs, bounds_mid, blocks = _open_netcdf_or_zarr(spec)
+    # Where a block reader streams the file, the (dask) array is built only when `SourceGrid.data` is
+    # asked for: the steps below that change values are kept in `pending` and replayed then, in this
+    # order, on the time-chunked array, so that `data` is what it would have been built here.
+    da, pending = raw, []
+    if blocks is None:
+        da = _time_chunked(raw)
+
+    def then(fn):
+        nonlocal da
+        if blocks is None:
+            da = fn(da)
+        else:
+            pending.append(fn)
+
+    def now():  # the array is needed here (the xarray path takes over from the block reader)
+        nonlocal da, pending
+        if pending or da is raw:
+            da = _replay(raw, pending)
+            pending = []
+
     if spec.declares_packing:
-        da = _decode_declared(spec, da)
+        then(lambda a: _decode_declared(spec, a))
         blocks = _declare_blocks(spec, blocks)
-    units = spec.units or da.attrs.get("units")
+    units = spec.units or raw.attrs.get("units")
     if not units:
         _fail(spec, "field 'units' is required: the file's variable has no units attribute")
     try:
@@ -753,7 +780,7 @@ def open_source(spec: SourceSpec) -> SourceGrid:
             flux = parse_flux_unit(units, source=spec.id, component=spec.component)
     except UnitError as exc:
         _fail(spec, str(exc))
-    times = _to_datetime_index(spec, da["time"].values)
+    times = _to_datetime_index(spec, raw["time"].values)
     step = _source_step(spec, times if bounds_mid is None or spec.time_step else bounds_mid)
     incomplete = 0
     step_weights = None
@@ -761,15 +788,17 @@ def open_source(spec: SourceSpec) -> SourceGrid:
         stamp = bounds_mid if bounds_mid is not None else times
         months = month_index(stamp)
         if months.has_duplicates:
+            blocks = None  # steps are combined: the xarray path does that
+            now()
             da = _combine_duplicates(spec, da, months)
             months = pd.DatetimeIndex(da["time"].values)
-            blocks = None  # steps are combined: the xarray path does that
         else:
-            da = da.assign_coords(time=months)
+            then(lambda a, m=months: a.assign_coords(time=m))
         if not months.is_monotonic_increasing:
+            blocks = None  # stored order is not month order: the xarray path reorders
+            now()
             da = da.sortby("time")
             months = pd.DatetimeIndex(da["time"].values)
-            blocks = None  # stored order is not month order: the xarray path reorders
         if spec.component == "TWSA":
             factor = np.full(len(months), twsa_factor)
         else:
@@ -787,20 +816,44 @@ def open_source(spec: SourceSpec) -> SourceGrid:
         starts = times.normalize()
         if blocks is not None and not starts.is_monotonic_increasing:
             blocks = None  # stored order is not time order: the xarray path reorders
+            now()
         try:
             if blocks is not None:
                 # the block reader maps stored steps onto months inside its single pass; `data` (read only
                 # where a caller asks for grids) applies the same weights, without building xarray's
                 # resample graph (0.2 s for two years of days) that the extraction would never run
                 months, step_weights, inc = temporal.month_weights(starts, step, kind)
-                da = _apply_weights_xarray(da.assign_coords(time=starts), step_weights, months)
+                then(lambda a, w=step_weights, m=months: _apply_weights_xarray(a.assign_coords(time=starts), w, m))
             else:
                 da, months, inc = temporal.periods_to_months(starts, step, da.assign_coords(time=starts), kind)
         except temporal.TemporalError as exc:
             _fail(spec, f"field 'time_step' {step!r}: {exc}")
         incomplete = len(inc)
         factor = np.full(len(months), factor_const)
-    da.name = spec.id
-    da.attrs = {"units": units}
-    return SourceGrid(spec=spec, data=da, crs=crs, factor=np.asarray(factor, float), native_units=units,
-                      native_step=step, incomplete_months=incomplete, blocks=blocks, step_weights=step_weights)
+
+    def named(a):
+        a.name = spec.id
+        a.attrs = {"units": units}
+        return a
+
+    then(named)
+    if blocks is None:
+        made, make = da, None
+    else:
+        made, make = None, (lambda: _replay(raw, pending))
+    return SourceGrid(spec=spec, crs=crs, factor=np.asarray(factor, float), native_units=units, native_step=step,
+                      months=pd.DatetimeIndex(months), x=np.asarray(raw["x"].values), y=np.asarray(raw["y"].values),
+                      make_data=make, incomplete_months=incomplete, blocks=blocks, step_weights=step_weights,
+                      _data=made)
+
+
+def _time_chunked(da: xr.DataArray) -> xr.DataArray:
+    """``da`` (time, y, x) in time chunks of about `TARGET_CHUNK_BYTES`, whole grids."""
+    return _chunk(da, {"time": _time_chunk(da.sizes["y"], da.sizes["x"], da.dtype.itemsize), "y": -1, "x": -1})
+
+
+def _replay(raw: xr.DataArray, steps) -> xr.DataArray:
+    da = _time_chunked(raw)
+    for fn in steps:
+        da = fn(da)
+    return da

@@ -13,111 +13,43 @@ The time axis is tiled (32 steps): each weight is read once per tile while the t
 a cell sit in one cache line, so the index arrays (larger than L2 for a continent) are not
 streamed again for every time step. Measured side by side on this kind of 2-core machine
 (240 x 600 x 600 float32, 6% NaN, 100 basins, 147,000 weights, medians of 5): scipy path 0.27 s,
-untiled kernel 0.073 s, tiled kernel 0.044 s, numpy ``arr.sum()`` 0.017 s. Falls back to the
-scipy path when numba is not importable.
+untiled kernel 0.073 s, tiled kernel 0.044 s, numpy ``arr.sum()`` 0.017 s.
+
+Two forms of each accumulation give the same sums bit for bit: the numba kernels (`_jit`) and numpy /
+scipy forms here. Importing numba and loading its kernels costs a command about 0.65 s, more than
+the numpy forms lose below a few hundred million values, so a reduction uses the kernels only above
+`JIT_MIN_VALUES` values read, or once this process has loaded them (`use_jit`); without numba the
+numpy forms serve every call.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-try:  # pragma: no cover - exercised whenever numba is installed (it is a dependency)
-    import numba
+_TB = 32  # time steps per tile, as in `_jit` (the numpy forms keep its tiles so that the sums are the same)
 
-    _TB = 32  # time steps per tile (16: 0.052 s, 32: 0.044 s, 64: 0.048 s on the benchmark stack)
 
-    @numba.njit(inline="always")
-    def _is_data(v, nodata, vmin, vmax, codes, ncode, clo, chi):
-        """``v`` is a value (not NaN, not the fill, inside the valid range, not one of the further no-data
-        ``codes``); the codes (sorted) are looked up only between the lowest and the highest, so data rarely pay
-        for them."""
-        if not (v == v and v != nodata and v >= vmin and v <= vmax):
-            return False
-        if ncode and v >= clo and v <= chi:
-            for q in range(ncode):
-                if v == codes[q]:
-                    return False
-        return True
+def have_numba() -> bool:
+    """numba can be imported (it is a dependency; without it the numpy forms serve every call)."""
+    import importlib.util
 
-    @numba.njit(cache=True, nogil=True, parallel=True)
-    def _accumulate(X, cells, indptr, indices, data, nb, nodata, vmin, vmax, codes, f, cell):  # noqa: D401
-        t = X.shape[0]
-        out = np.zeros((t, nb, 2))
-        ncode = codes.size
-        clo = codes[0] if ncode else 0.0
-        chi = codes[ncode - 1] if ncode else 0.0
-        ntile = (t + _TB - 1) // _TB
-        per_cell = cell.shape[1] == cells.size  # the per-cell sums are wanted (else ``cell`` is empty)
-        for tile in numba.prange(ntile):
-            t0 = tile * _TB
-            t1 = min(t, t0 + _TB)
-            for j in range(cells.size):
-                c = cells[j]
-                if per_cell:  # the tile's values of this cell, read here once more from L1 for the basins
-                    s = 0.0
-                    sf = 0.0
-                    n = 0.0
-                    for i in range(t0, t1):
-                        v = X[i, c]
-                        if _is_data(v, nodata, vmin, vmax, codes, ncode, clo, chi):
-                            s += f[i] * np.float64(v)
-                            sf += f[i]
-                            n += 1.0
-                    cell[tile, j, 0] += s
-                    cell[tile, j, 1] += sf
-                    cell[tile, j, 2] += n
-                for k in range(indptr[j], indptr[j + 1]):
-                    w = data[k]
-                    b = indices[k]
-                    for i in range(t0, t1):
-                        v = X[i, c]
-                        if _is_data(v, nodata, vmin, vmax, codes, ncode, clo, chi):
-                            out[i, b, 0] += w * np.float64(v)
-                            out[i, b, 1] += w
-        return out
+    return importlib.util.find_spec("numba") is not None
 
-    # not parallel: a streaming task hands it one or a few months, and dask already runs a task per core
-    @numba.njit(cache=True, nogil=True)
-    def _accumulate_months(X, cells, indptr, indices, data, nb, nodata, vmin, vmax, codes, w, s0, s1,
-                           fm, ow, cell):  # noqa: D401
-        nm = w.shape[0]
-        out = np.zeros((nm, nb, 2))
-        per_cell = cell.shape[0] == cells.size  # the per-cell sums are wanted (else ``cell`` is empty)
-        ncode = codes.size
-        clo = codes[0] if ncode else 0.0
-        chi = codes[ncode - 1] if ncode else 0.0
-        nc = cells.size
-        for m in range(nm):
-            a = s0[m]
-            b = s1[m]
-            if b <= a:
-                continue  # an incomplete month: empty
-            acc = np.zeros(nc)
-            good = np.ones(nc, np.bool_)
-            for i in range(a, b):  # one period after the other: rows read in memory order
-                wi = w[m, i]
-                for j in range(nc):
-                    v = X[i, cells[j]]
-                    if _is_data(v, nodata, vmin, vmax, codes, ncode, clo, chi):
-                        acc[j] += wi * np.float64(v)
-                    else:  # the month of this cell is incomplete: its sum is not used
-                        good[j] = False
-            for j in range(nc):
-                if good[j]:  # the cell has a valid value for every period of the month
-                    for k in range(indptr[j], indptr[j + 1]):
-                        out[m, indices[k], 0] += data[k] * acc[j]
-                        out[m, indices[k], 1] += data[k]
-                    if per_cell:  # one more reduction of the same monthly value (basin sums untouched)
-                        cell[j, 0] += fm[m] * acc[j]
-                        cell[j, 1] += fm[m] * ow[m]
-                        cell[j, 2] += 1.0
-        return out
 
-    HAVE_NUMBA = True
-except ImportError:  # pragma: no cover
-    HAVE_NUMBA = False
-    _TB = 32
-    _accumulate = _accumulate_months = None
+# Below this many stored values read, a command runs the numpy forms: numba's start-up (0.65 s) is more
+# than they lose. Measured side by side (whole `wbexplore extract` processes, numba or not, medians, this
+# 2-core machine): 240 x 600 x 600 monthly (86 M values) 2.35 to 2.64 s with numpy against 2.89 to 2.97 s;
+# 10 years of daily 240 x 300 (263 M values) 3.45 to 4.16 s against 3.58 to 4.60 s (even); the numpy forms
+# cost about 3 ns more a value (0.27 s against 0.044 s on the monthly stack, see above).
+JIT_MIN_VALUES = 300_000_000
+
+
+def use_jit(values: int) -> bool:
+    """Whether a reduction reading ``values`` stored values should run the numba forms: above
+    `JIT_MIN_VALUES`, or whenever this process has loaded them already (its start-up is paid)."""
+    import sys
+
+    return (values >= JIT_MIN_VALUES or "wbexplore.spatial._jit" in sys.modules) and have_numba()
 
 
 def kernel_args(used: np.ndarray, wu_t) -> tuple:
@@ -130,22 +62,32 @@ def kernel_args(used: np.ndarray, wu_t) -> tuple:
 _NO_CODES = np.zeros(0, np.float64)
 
 
+def _jit(jit: bool | None) -> bool:
+    return have_numba() if jit is None else bool(jit)
+
+
 def accumulate(X2: np.ndarray, used: np.ndarray, wu_t, nodata: float = np.nan, *, args: tuple | None = None,
-               valid_min: float = -np.inf, valid_max: float = np.inf, codes=()) -> np.ndarray:
+               valid_min: float = -np.inf, valid_max: float = np.inf, codes=(), jit: bool | None = None) -> np.ndarray:
     """(t, cells) block -> (t, basins, 2) of [sum W x, sum W valid] over the used cells.
 
     Values equal to ``nodata`` (stored fill values of packed or integer data), outside the inclusive
     stored range [``valid_min``, ``valid_max``] or equal to one of ``codes`` count as missing, as NaN
     always does (CF meanings, compared with stored values). ``args`` are precomputed `kernel_args`.
+    ``jit``: the numba form (default: where numba is installed) or the numpy form; the sums are the same.
     """
     c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
-    return _accumulate(X2, *(args or kernel_args(used, wu_t)), np.float64(nodata),
-                       np.float64(valid_min), np.float64(valid_max), c, _NO_CODES, _NO_TILES)
+    args = args or kernel_args(used, wu_t)
+    if _jit(jit):
+        from ._jit import _accumulate
+
+        return _accumulate(X2, *args, np.float64(nodata), np.float64(valid_min), np.float64(valid_max), c,
+                           _NO_CODES, _NO_TILES)
+    return _basin_sums_numpy(X2, args, *_masked(X2, args[0], nodata, valid_min, valid_max, c))
 
 
 def accumulate_with_cells(X2: np.ndarray, args: tuple, factor: np.ndarray, nodata: float = np.nan, *,
                           valid_min: float = -np.inf, valid_max: float = np.inf, codes=(),
-                          cell: np.ndarray | None = None) -> tuple:
+                          cell: np.ndarray | None = None, jit: bool | None = None) -> tuple:
     """`accumulate` plus, in the same pass, each used cell's sums [sum f x, sum f, valid steps]
     (``factor`` (t,): decoded monthly value -> canonical unit; see `cell_sums`). The basin sums are those of
     `accumulate`, bit for bit: the cell sums are separate accumulators.
@@ -159,20 +101,26 @@ def accumulate_with_cells(X2: np.ndarray, args: tuple, factor: np.ndarray, nodat
     ntile = (X2.shape[0] + _TB - 1) // _TB
     if cell is None:
         cell = np.zeros((max(1, ntile), cells.size, 3))
-    if ntile == 0 or not HAVE_NUMBA:  # pragma: no cover - no steps, or no numba: two passes
-        cell[0] += cell_sums(X2, cells, factor, nodata, valid_min=valid_min, valid_max=valid_max, codes=codes)
-        return (accumulate(X2, None, None, nodata, args=args, valid_min=valid_min, valid_max=valid_max,
-                           codes=codes), cell)
+    if ntile == 0:  # no steps: nothing to add
+        return accumulate(X2, None, None, nodata, args=args, valid_min=valid_min, valid_max=valid_max,
+                          codes=codes, jit=False), cell
     if cell.shape[0] < ntile or cell.shape[1:] != (cells.size, 3):
         raise ValueError(f"cell sums of shape {cell.shape} for {ntile} tiles of {cells.size} cells")
-    out = _accumulate(X2, *args, np.float64(nodata), np.float64(valid_min), np.float64(valid_max), c,
-                      np.ascontiguousarray(factor, np.float64), cell)
-    return out, cell
+    f = np.ascontiguousarray(factor, np.float64)
+    if _jit(jit):
+        from ._jit import _accumulate
+
+        out = _accumulate(X2, *args, np.float64(nodata), np.float64(valid_min), np.float64(valid_max), c, f, cell)
+        return out, cell
+    Xf, good = _masked(X2, cells, nodata, valid_min, valid_max, c)
+    _tile_cell_sums(Xf, good, f, cell)
+    return _basin_sums_numpy(X2, args, Xf, good), cell
 
 
 def accumulate_months(X2: np.ndarray, args: tuple, w: np.ndarray, s0: np.ndarray, s1: np.ndarray,
                       nodata: float = np.nan, *, valid_min: float = -np.inf, valid_max: float = np.inf,
-                      codes=(), cell: np.ndarray | None = None, factor: np.ndarray | None = None) -> np.ndarray:
+                      codes=(), cell: np.ndarray | None = None, factor: np.ndarray | None = None,
+                      jit: bool | None = None) -> np.ndarray:
     """(t, cells) block of periods -> (months, basins, 2) of [sum W m, sum W valid] over the used cells.
 
     ``m`` is each cell's monthly value ``sum_i w[month, i] x[i, cell]`` over the periods
@@ -190,11 +138,12 @@ def accumulate_months(X2: np.ndarray, args: tuple, w: np.ndarray, s0: np.ndarray
     else:
         fm = np.ascontiguousarray(factor, np.float64)
         ow = w.sum(axis=1)
-    if HAVE_NUMBA:
+    if _jit(jit):
+        from ._jit import _accumulate_months
+
         return _accumulate_months(X2, *args, np.float64(nodata), np.float64(valid_min), np.float64(valid_max), c,
                                   w, np.asarray(s0, np.int64), np.asarray(s1, np.int64), fm, ow, cell)
-    return _accumulate_months_numpy(X2, args, w, s0, s1, nodata, valid_min, valid_max, c, cell, fm,
-                                    ow)  # pragma: no cover
+    return _accumulate_months_numpy(X2, args, w, s0, s1, nodata, valid_min, valid_max, c, cell, fm, ow)
 
 
 _NO_CELLS = np.zeros((0, 3), np.float64)
@@ -207,8 +156,8 @@ def cell_sums(X2: np.ndarray, cells: np.ndarray, factor: np.ndarray, nodata: flo
 
     ``factor`` (t,) turns a decoded monthly value into the canonical unit (mm/month; mm for TWSA); the second
     column is what the packing offset adds (``decoded = scale * x + offset``), so that the cell's long-term
-    mean is ``(scale * s[0] + offset * s[1]) / s[2]``. Same mask as `accumulate`. numpy, several passes: the
-    fallback of `accumulate_with_cells`, which forms the same sums inside the basin kernel's pass.
+    mean is ``(scale * s[0] + offset * s[1]) / s[2]``. Same mask as `accumulate`. Plain numpy masked sums over
+    all steps at once (not tiled, so equal to `accumulate_with_cells`'s to rounding): the tests' reference.
     """
     c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
     f = np.asarray(factor, np.float64)
@@ -220,26 +169,77 @@ def cell_sums(X2: np.ndarray, cells: np.ndarray, factor: np.ndarray, nodata: flo
                      (good * f[:, None]).sum(axis=0), good.sum(axis=0).astype(np.float64)], axis=1)
 
 
-def _accumulate_months_numpy(X2, args, w, s0, s1, nodata, vmin, vmax, codes, cell, fm, ow):  # pragma: no cover
+# ---- numpy forms, bit for bit the numba ones: the same products, added in the same order.
+# Basin sums: scipy's sparse product adds each basin's cells in cell order (its CSC loop runs over cells, as the
+# kernel does); a missing value enters as +0.0, which leaves any sum that is not -0.0 unchanged, and no sum that
+# starts at +0.0 becomes -0.0. Cell and monthly sums: one step added after the other, in a loop, as the kernel
+# adds them (``sum(axis=0)`` sums pairwise wherever that axis is the contiguous one, as it is after a column
+# gather; a matrix product lets BLAS regroup the additions: both were tried and differed in the last bit).
+# Checked against the kernels, bit for bit, in tests/test_kernel.py.
+
+def _masked(X2: np.ndarray, cells: np.ndarray, nodata, vmin, vmax, codes) -> tuple[np.ndarray, np.ndarray]:
+    """The used cells' values as float64 with 0 where missing, and the valid mask (the kernel's `_is_data`)."""
+    Xu = X2[:, np.asarray(cells, np.int64)]
+    good = ~np.isnan(Xu) if Xu.dtype.kind == "f" else np.ones(Xu.shape, bool)
+    if not np.isnan(nodata):
+        good &= Xu != nodata
+    if vmin > -np.inf:
+        good &= Xu >= vmin
+    if vmax < np.inf:
+        good &= Xu <= vmax
+    if len(codes):
+        good &= ~np.isin(Xu, codes)
+    Xf = np.ascontiguousarray(Xu, dtype=np.float64)  # rows of steps contiguous (the gather leaves columns so)
+    Xf[~good] = 0.0
+    return Xf, np.ascontiguousarray(good)
+
+
+def _basin_sums_numpy(X2, args, Xf: np.ndarray, good: np.ndarray) -> np.ndarray:
     import scipy.sparse as sp
 
     cells, indptr, indices, data, nb = args
     wu_t = sp.csr_array((data, indices, indptr), shape=(cells.size, nb))
-    Xu = X2[:, cells]
-    bad = np.isnan(Xu) if Xu.dtype.kind == "f" else np.zeros(Xu.shape, bool)
-    bad |= (Xu == nodata) | (Xu < vmin) | (Xu > vmax) | np.isin(Xu, codes)
-    Xf = np.where(bad, 0.0, Xu.astype(np.float64))
+    out = np.empty((X2.shape[0], nb, 2))
+    out[:, :, 0] = Xf @ wu_t
+    out[:, :, 1] = good.astype(np.float64) @ wu_t
+    return out
+
+
+def _tile_cell_sums(Xf: np.ndarray, good: np.ndarray, f: np.ndarray, cell: np.ndarray) -> None:
+    """Add each tile's per-cell [sum f x, sum f, valid steps] into ``cell[tile]`` (as `_jit._accumulate`)."""
+    t, n = Xf.shape
+    for tile in range(-(-t // _TB)):
+        s, sf, k = np.zeros(n), np.zeros(n), np.zeros(n)
+        for i in range(tile * _TB, min(t, (tile + 1) * _TB)):
+            s += f[i] * Xf[i]
+            sf += f[i] * good[i]
+            k += good[i]
+        cell[tile, :, 0] += s
+        cell[tile, :, 1] += sf
+        cell[tile, :, 2] += k
+
+
+def _accumulate_months_numpy(X2, args, w, s0, s1, nodata, vmin, vmax, codes, cell, fm, ow):
+    import scipy.sparse as sp
+
+    cells, indptr, indices, data, nb = args
+    wu_t = sp.csr_array((data, indices, indptr), shape=(cells.size, nb))
+    Xf, good_steps = _masked(X2, cells, nodata, vmin, vmax, codes)
     out = np.zeros((w.shape[0], nb, 2))
+    per_cell = cell.shape[0] == cells.size
     for m in range(w.shape[0]):
         a, b = int(s0[m]), int(s1[m])
         if b <= a:
-            continue
-        good = ~bad[a:b].any(axis=0)
-        v = np.where(good, w[m, a:b] @ Xf[a:b], 0.0)
+            continue  # an incomplete month: empty
+        acc = np.zeros(cells.size)
+        for i in range(a, b):  # one period after the other, as the kernel adds them
+            acc += w[m, i] * Xf[i]
+        good = good_steps[a:b].all(axis=0)  # the cell has a valid value for every period of the month
+        v = np.where(good, acc, 0.0)
         out[m, :, 0] = v @ wu_t
         out[m, :, 1] = good.astype(np.float64) @ wu_t
-        if cell.shape[0] == cells.size:
-            cell[:, 0] += np.where(good, fm[m] * v, 0.0)
+        if per_cell:
+            cell[:, 0] += np.where(good, fm[m] * acc, 0.0)
             cell[:, 1] += np.where(good, fm[m] * ow[m], 0.0)
             cell[:, 2] += good
     return out

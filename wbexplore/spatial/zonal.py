@@ -30,7 +30,8 @@ from .areas import cell_areas_m2
 from .coverage import coverage_matrix
 from .grid import GridSpec
 
-__all__ = ["Weights", "build_weights", "zonal_mean", "zonal_mean_blocks", "apply_weights_numpy", "TASK_BYTES"]
+__all__ = ["TASK_BYTES", "BlockPlan", "Weights", "apply_weights_numpy", "build_weights", "plan_zonal_blocks",
+           "zonal_mean", "zonal_mean_blocks"]
 
 # Streaming task sizes, chosen on the benchmark stack (240 x 600 x 600 float32 netCDF, medians of 15
 # interleaved runs against a 0.127 s bare read): tasks of 16 MiB read in pieces of 8 MiB 0.152 s,
@@ -162,13 +163,13 @@ def _aligned(sl: slice, block: int, n: int) -> tuple[int, int]:
     return sl.start // block * block, min(n, -(-sl.stop // block) * block)
 
 
-def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub, factor=None):
+def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub, factor=None, jit=None):
     """One streaming task: read raw blocks of ``sub`` time steps and accumulate each while it is
     still in cache; only the (t, basins, 2) sums leave the task.
 
     ``factor`` (per stored month, canonical unit): also the (cells, 3) per-cell sums of `_kernel.cell_sums`
     of the strip's cells, from the same reads; the task then returns ``(sums, cell sums)``."""
-    from ._kernel import _TB, accumulate_with_cells
+    from ._kernel import _TB, accumulate, accumulate_with_cells
 
     out = np.empty((t1 - t0, args[-1], 2))
     # one (tiles, cells, 3) array for every read of the task: the kernel adds into it in place
@@ -179,29 +180,11 @@ def _read_accumulate(reader, t0, t1, r0, r1, c0, c1, args, sub, factor=None):
         X = reader.read(s0, s1, r0, r1, c0, c1)
         X2 = X.reshape(X.shape[0], -1)
         if cell is None:
-            out[s0 - t0:s1 - t0] = _accumulate_raw(X2, args, reader.fill, mask)
+            out[s0 - t0:s1 - t0] = accumulate(X2, None, None, reader.fill, args=args, **mask, jit=jit)
         else:  # the cell sums in the same kernel pass (each value read once)
             out[s0 - t0:s1 - t0] = accumulate_with_cells(X2, args, factor[s0:s1], reader.fill, **mask,
-                                                         cell=cell)[0]
+                                                         cell=cell, jit=jit)[0]
     return out if cell is None else (out, cell.sum(axis=0) if cell.shape[0] > 1 else cell[0])
-
-
-def _accumulate_raw(X2, args, nodata, mask: dict | None = None) -> np.ndarray:
-    """Accumulate stored values; ``mask`` holds ``valid_min``, ``valid_max`` and ``codes`` (stored)."""
-    from ._kernel import HAVE_NUMBA, accumulate
-
-    mask = mask or {}
-    if HAVE_NUMBA:
-        return accumulate(X2, None, None, nodata, args=args, **mask)
-    cells, indptr, indices, data, nb = args  # pragma: no cover - without numba
-    wu_t = sp.csr_array((data, indices, indptr), shape=(cells.size, nb))
-    Xf = X2.astype(np.float64)
-    if not np.isnan(nodata):
-        Xf[X2 == nodata] = np.nan
-    for code in mask.get("codes", ()):
-        Xf[X2 == code] = np.nan
-    Xf[(X2 < mask.get("valid_min", -np.inf)) | (X2 > mask.get("valid_max", np.inf))] = np.nan
-    return _block_scipy(Xf, wu_t, cells)
 
 
 def _sum_strips(*parts) -> np.ndarray:
@@ -270,7 +253,7 @@ def _plan_months(plan) -> int:
     return plan[-1][1] - plan[0][0]
 
 
-def _read_accumulate_months(reader, t0, t1, r0, r1, c0, c1, args, plan, factor=None):
+def _read_accumulate_months(reader, t0, t1, r0, r1, c0, c1, args, plan, factor=None, jit=None):
     """One streaming task of sub-monthly steps: read the periods of whole months and form each cell's
     monthly values while they are in cache; only the (months, basins, 2) sums leave the task.
 
@@ -287,7 +270,7 @@ def _read_accumulate_months(reader, t0, t1, r0, r1, c0, c1, args, plan, factor=N
             X = reader.read(q0, q1, r0, r1, c0, c1)
             out[a - m_first:b - m_first] = accumulate_months(
                 X.reshape(X.shape[0], -1), args, w, s0, s1, reader.fill, **mask, cell=cell,
-                factor=None if factor is None else factor[a:b])
+                factor=None if factor is None else factor[a:b], jit=jit)
         else:
             out[a - m_first:b - m_first] = 0.0  # incomplete months only
     return out if cell is None else (out, cell)
@@ -305,10 +288,173 @@ def _finish_cells(parts, los, n_used, scale, offset) -> np.ndarray:
     return np.stack([mean, acc[:, 2]])
 
 
+@dataclass
+class BlockPlan:
+    """A streamed reduction of one product, planned as a plain task graph (dask's graph form: a key maps
+    to a value or to a task ``(function, *arguments)``, arguments naming other keys).
+
+    ``to_dataset()`` wraps it in dask arrays (for a cluster, or to combine it lazily with other dask
+    work); ``compute()`` runs it in a pool of threads without importing dask (about 0.7 s of a
+    command's start-up). Both run the same tasks in the same order of sums, so their numbers are
+    identical to the last bit.
+    """
+
+    graph: dict
+    key: tuple  # -> (2, basins, months): [mean, valid fraction]
+    basin: np.ndarray
+    time: np.ndarray
+    cells_key: tuple | None = None  # -> (2, used cells): [cell mean, valid months] (``cell_factor`` given)
+
+    def _dataset(self, stacked, cstack=None) -> xr.Dataset:
+        out = xr.Dataset({"mean": (("basin", "time"), stacked[0]), "valid_fraction": (("basin", "time"), stacked[1])},
+                         {"basin": self.basin, "time": np.asarray(self.time)})
+        if cstack is not None:
+            out["cell_mean"] = ("cell", cstack[0])
+            out["cell_months"] = ("cell", cstack[1])
+        return out
+
+    def to_dataset(self) -> xr.Dataset:
+        """The lazy (dask) Dataset of `zonal_mean`: ``mean``, ``valid_fraction`` (basin, time) and, with
+        cell sums, ``cell_mean``, ``cell_months`` (cell)."""
+        import dask.array as dsa
+
+        nb, nt = len(self.basin), len(self.time)
+        stacked = dsa.Array(self.graph, self.key[0], chunks=((2,), (nb,), (nt,)), dtype=np.float64)
+        cstack = None
+        if self.cells_key is not None:
+            n = self.graph[self.cells_key][3]
+            cstack = dsa.Array(self.graph, self.cells_key[0], chunks=((2,), (n,)), dtype=np.float64)
+        return self._dataset(stacked, cstack)
+
+    def compute(self, *, workers: int | None = None, progress=None) -> xr.Dataset:
+        """The computed Dataset of `to_dataset`, from a pool of ``workers`` threads (default: one per
+        core, as dask's threaded scheduler). ``progress``: a callable told of each finished task."""
+        want = [self.key] + ([self.cells_key] if self.cells_key is not None else [])
+        res = run_graph(self.graph, want, workers=workers, progress=progress)
+        return self._dataset(res[self.key], res[self.cells_key] if self.cells_key is not None else None)
+
+    @property
+    def n_tasks(self) -> int:
+        return sum(1 for v in self.graph.values() if _is_task(v))
+
+
+def _is_task(v) -> bool:
+    return isinstance(v, tuple) and bool(v) and callable(v[0])
+
+
+def _refs(v, graph: dict) -> set:
+    """Keys of ``graph`` that the value or task ``v`` names: itself, a task's arguments, items of lists (as
+    `_resolve` replaces them; any other tuple is a literal)."""
+    if isinstance(v, tuple):
+        try:
+            if v in graph:
+                return {v}
+        except TypeError:  # an unhashable tuple is no key
+            pass
+        return set().union(*(_refs(a, graph) for a in v[1:])) if _is_task(v) else set()
+    if isinstance(v, list):
+        return set().union(*(_refs(a, graph) for a in v)) if v else set()
+    return set()
+
+
+def _resolve(v, graph: dict, done: dict):
+    if isinstance(v, tuple):
+        try:
+            if v in graph:
+                return done[v]
+        except TypeError:
+            pass
+        if _is_task(v):
+            return v[0](*(_resolve(a, graph, done) for a in v[1:]))
+        return v
+    if isinstance(v, list):
+        return [_resolve(a, graph, done) for a in v]
+    return v
+
+
+def run_graph(graph: dict, keys, *, workers: int | None = None, progress=None) -> dict:
+    """Run the tasks of a plain task graph that ``keys`` need, in a pool of threads; key -> result.
+
+    Ready tasks start in the order the graph lists them (the streaming tasks in time order), at most
+    ``workers`` at a time; a result is dropped once every task that needs it has run. An exception in
+    a task is raised here, after the running tasks finish, and no further task starts.
+    """
+    import os
+    from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
+
+    need, stack = set(), list(keys)
+    while stack:  # the tasks the keys depend on
+        k = stack.pop()
+        if k not in need:
+            need.add(k)
+            stack.extend(_refs(graph[k], graph))
+    order = [k for k in graph if k in need]
+    deps = {k: _refs(graph[k], graph) for k in order}
+    users: dict = {k: 0 for k in order}
+    for k in order:
+        for d in deps[k]:
+            users[d] += 1
+    done: dict = {}
+    waiting = {k: len(deps[k]) for k in order}
+    dependents: dict = {k: [] for k in order}
+    for k in order:
+        for d in deps[k]:
+            dependents[d].append(k)
+    keep = set(keys)
+    ready = [k for k in order if waiting[k] == 0]
+    workers = max(1, workers or os.cpu_count() or 1)
+
+    def finish(k, value):
+        done[k] = value
+        for d in deps[k]:
+            users[d] -= 1
+            if users[d] == 0 and d not in keep:
+                done.pop(d, None)
+        for u in dependents[k]:
+            waiting[u] -= 1
+            if waiting[u] == 0:
+                ready.append(u)
+
+    with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="wbx") as pool:
+        running: dict = {}
+        while ready or running:
+            while ready and len(running) < workers:
+                k = ready.pop(0)
+                v = graph[k]
+                if not _is_task(v):
+                    finish(k, _resolve(v, graph, done))
+                    continue
+                running[pool.submit(_resolve, v, graph, done)] = k
+            if not running:
+                continue
+            fin, _ = wait(running, return_when=FIRST_COMPLETED)
+            for f in fin:
+                k = running.pop(f)
+                exc = f.exception()
+                if exc is not None:
+                    for g in running:
+                        g.cancel()
+                    wait(running)
+                    raise exc
+                finish(k, f.result())
+                if progress is not None:
+                    progress(k)
+    return {k: done[k] for k in keys}
+
+
 def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarray | None = None,
                       task_bytes: int = TASK_BYTES, read_bytes: int = READ_BYTES,
                       cell_factor: np.ndarray | None = None) -> xr.Dataset:
-    """`zonal_mean` straight from a `wbexplore.io.blocks.BlockReader` (lazy, like the dask path).
+    """`zonal_mean` straight from a `wbexplore.io.blocks.BlockReader`: the lazy (dask) Dataset of
+    `plan_zonal_blocks` (see there)."""
+    return plan_zonal_blocks(reader, weights, time, month_weights=month_weights, task_bytes=task_bytes,
+                             read_bytes=read_bytes, cell_factor=cell_factor).to_dataset()
+
+
+def plan_zonal_blocks(reader, weights: Weights, time, *, month_weights: np.ndarray | None = None,
+                      task_bytes: int = TASK_BYTES, read_bytes: int = READ_BYTES,
+                      cell_factor: np.ndarray | None = None) -> BlockPlan:
+    """`zonal_mean` straight from a `wbexplore.io.blocks.BlockReader`, as a `BlockPlan` (lazy).
 
     Each dask task reads one block of stored values (a run of time steps, whole rows of the
     basins' window) and accumulates it, so no grid-sized array ever passes between tasks and
@@ -332,7 +478,7 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarr
     """
     import operator
 
-    import dask.array as dsa
+    from ._kernel import use_jit
 
     nt, ny, nx = reader.shape
     if (ny, nx) != weights.shape:
@@ -365,6 +511,8 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarr
     # reads within a task: whole stored chunks when they are compressed, else cache-sized pieces
     sub = steps if reader.time_align > 1 else max(1, min(steps, round(read_bytes / step_bytes)))
     nb = len(weights.basin)
+    # the numba kernels only where their start-up pays off (`_kernel.use_jit`); both forms give the same sums
+    jit = use_jit(nt * (rows[1] - rows[0]) * (cols[1] - cols[0]))
     # a plain task graph: the reader and each strip's weights enter it once, nothing is hashed
     # or copied into every task (dask.delayed spent 15 ms building the 20 tasks of the benchmark stack)
     name = f"wbx-zonal-{uuid.uuid4().hex}"
@@ -391,7 +539,7 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarr
             k = (name + "-part", j, i)
             fn = _read_accumulate if month_weights is None else _read_accumulate_months
             dsk[k] = (fn, (name + "-reader",), t0, t1, r0, r1, c0, c1, (name + "-weights", i), plan,
-                      *((cell_factor,) if cells else ()))
+                      cell_factor if cells else None, jit)
             if cells:  # the task returns (basin sums, cell sums)
                 dsk[(name + "-cells", j, i)] = (operator.getitem, k, 1)
                 task_cells.append((name + "-cells", j, i))
@@ -411,29 +559,21 @@ def zonal_mean_blocks(reader, weights: Weights, time, *, month_weights: np.ndarr
     offset = float(reader.offset) if month_weights is None else float(reader.offset) * month_weights.sum(axis=1)
     dsk[(name, 0, 0, 0)] = (_finish_packed, parts, weights.covered_area_m2, weights.grid_coverage,
                             float(reader.scale), offset)
-    stacked = dsa.Array(dsk, name, chunks=((2,), (nb,), (n_out,)), dtype=np.float64)
-    coords = {"basin": weights.basin, "time": np.asarray(time)}
-    out = xr.Dataset({"mean": (("basin", "time"), stacked[0]), "valid_fraction": (("basin", "time"), stacked[1])},
-                     coords)
+    ckey = None
     if cells:
         r_used, _ = weights.used_rows_cols()
         los = [int(np.searchsorted(r_used, st[0])) for st in strips]
-        cname = name + "-cellmeans"
-        cdsk = dict(dsk)
-        cdsk[(cname, 0, 0)] = (_finish_cells, cell_parts, los, int(r_used.size), float(reader.scale),
-                               float(reader.offset))
-        cstack = dsa.Array(cdsk, cname, chunks=((2,), (int(r_used.size),)), dtype=np.float64)
-        out["cell_mean"] = ("cell", cstack[0])
-        out["cell_months"] = ("cell", cstack[1])
-    return out
+        ckey = (name + "-cellmeans", 0, 0)
+        dsk[ckey] = (_finish_cells, cell_parts, los, int(r_used.size), float(reader.scale), float(reader.offset))
+    return BlockPlan(graph=dsk, key=(name, 0, 0, 0), basin=weights.basin, time=np.asarray(time), cells_key=ckey)
 
 
 def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray, args: tuple | None = None) -> np.ndarray:
     """(t, wy, wx) block -> (t, basins, 2) array of [sum W x, sum W valid]; ``args``: cached `kernel_args`."""
-    from ._kernel import HAVE_NUMBA, accumulate
+    from ._kernel import accumulate, have_numba
 
     t = X.shape[0]
-    if HAVE_NUMBA and X.dtype.kind == "f":
+    if have_numba() and X.dtype.kind == "f":
         return accumulate(np.ascontiguousarray(X).reshape(t, -1), used, wu_t, args=args)
     return _block_scipy(X, wu_t, used)
 
