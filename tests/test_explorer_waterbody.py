@@ -149,3 +149,24 @@ def test_ranking_table_of_the_water_body(explorer):
     ex._on_row(type("Click", (), {"row": 1})())  # a click on the second row selects its P and E
     assert (s.P, s.ET, s.TWSA) == (view["P"].iloc[1], view["ET"].iloc[1], "levels")
     s.basin = "VEL"
+
+
+def test_outlet_views_show_again_after_a_water_body(demo_dir):
+    """Basin -> water body -> basin with nothing else changed: the residual and Q scatter show again. panel's
+    Bokeh pane, set back to visible (its default), read the figure's own visibility, which it had set to False
+    itself, and stayed hidden (found while building the water body's views lazily)."""
+    from wbexplore.explorer.app import Explorer, load_state
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        st = load_state(demo_dir / "catalog.yaml")
+        ex = Explorer(st)
+        page = ex.panel()
+    st.basin = "VEL"
+    st.basin = WID
+    assert not _pane(page, "wbx-scatter").visible and _pane(page, "wbx-exchange").visible
+    st.basin = "VEL"
+    for css in ("wbx-scatter", "wbx-residual"):
+        pane = _pane(page, css)
+        assert pane.visible and pane.object.visible, css
+    assert not _pane(page, "wbx-exchange").visible and not _pane(page, "wbx-levels").visible

@@ -434,19 +434,26 @@ class Explorer:
 
     def _waterbody_views(self, summary, warn, resid, scatter):
         """The water body's views (unmeasured exchange, level and volume) and which views show for which kind:
-        a water body has no gauged outlet (no Q scatter) and its residual is the unmeasured exchange."""
+        a water body has no gauged outlet (no Q scatter) and its residual is the unmeasured exchange.
+
+        The water body's two plots are built when a water body is first shown: on a page that opens on a basin
+        they would be two of its eight figures, built, sent and laid out by the browser unseen."""
+        import panel as pn
 
         s = self.state
-        exchange, levels = self._view(views.ExchangeView), self._view(views.LevelsView)
+        exchange, levels = (pn.Column(sizing_mode="stretch_width", margin=0) for _ in range(2))
         wb_summary, wb_warn = self._view(views.WaterbodySummaryView), self._view(views.WaterbodyWarningsView)
         self._wb_panes = (wb_summary, wb_warn)
 
         def show(*events):
             wb = s.is_waterbody
-            for pane in (exchange, levels, wb_summary, wb_warn):
-                pane.visible = wb
+            if wb and not exchange.objects:
+                exchange.objects = [self._view(views.ExchangeView)]
+                levels.objects = [self._view(views.LevelsView)]
+            for pane in (exchange, levels, *exchange.objects, *levels.objects, wb_summary, wb_warn):
+                _set_visible(pane, wb)
             for pane in (resid, scatter, summary, warn):
-                pane.visible = not wb
+                _set_visible(pane, not wb)
 
         show()
         s.param.watch(show, "basin")
@@ -531,6 +538,16 @@ CONTROLS = {"basin": "Select", "unit": "RadioButtonGroup", "P": "Select", "ET": 
 _ON_SCREEN_CSS = (".tabulator-row.tabulator-selected, .tabulator-row.tabulator-selected:hover "
                   "{ background-color: #fde3c4 !important; } .tabulator-row.tabulator-selected .tabulator-cell "
                   "{ font-weight: bold; }")
+
+
+def _set_visible(pane, on: bool) -> None:
+    """Show or hide a pane, and the bokeh figure it shows with it: panel's Bokeh pane, set back to visible (its
+    default), forgets the override and reads the figure's own ``visible``, which the pane had set to False when
+    it was hidden, so a plot hidden once stayed hidden (tests/test_explorer_waterbody.py)."""
+    fig = getattr(pane, "object", None)
+    if fig is not None and not isinstance(fig, str) and hasattr(fig, "visible"):
+        fig.visible = on
+    pane.visible = on
 
 
 def _month_number(month) -> int:
