@@ -34,7 +34,32 @@ def _case(seed: int, integer: bool):
     return rng, X, nodata, cells, W
 
 
-MASKS = [{}, {"valid_min": -50.0, "valid_max": 400.0, "codes": (7.0, 65.0)}]
+MASKS = [{}, {"valid_min": -50.0, "valid_max": 400.0, "codes": (7.0, 65.0)},
+         # bounds float32 cannot hold (0.3, 0.7) and a NaN among the codes: compared as float64 in both forms
+         {"valid_min": -0.7, "valid_max": 0.3, "codes": (np.nan, 3.0)}]
+
+
+def test_fill_and_bounds_are_compared_as_float64_in_both_forms():
+    """A float32 file whose fill value float32 cannot hold (a GeoTIFF tag of -3.4e+38, or 0.1): the value stored is
+    float32(fill), which is not the fill as float64, so it counts as data in both forms (numba compares in float64;
+    numpy had compared in float32, found by review). Same for a valid range bound of 0.3."""
+    X = np.array([[np.float32(0.1), np.float32(0.3), np.float32(-3.4e38), 1.0]], np.float32)
+    cells = np.arange(4)
+    W = sp.csr_matrix(np.ones((4, 1)))
+    args = K.kernel_args(cells, W)
+    for nodata, mask in ((0.1, {}), (-3.4e38, {}), (np.nan, {"valid_max": 0.3})):
+        out = [K.accumulate(X, None, None, nodata, args=args, jit=j, **mask) for j in (True, False)]
+        assert out[0].tobytes() == out[1].tobytes(), (nodata, mask)
+        kept = out[1][0, 0, 1]
+        # as float64 (numpy's float64 comparison, common practice): which of the four values are data
+        x = X[0].astype(np.float64)
+        ok = (x != nodata) & (x <= mask.get("valid_max", np.inf))
+        assert kept == ok.sum()
+    # a NaN among the codes (NaN is missing anyway) leaves the other codes in force in both forms
+    Y = np.array([[3.0, 4.0, 5.0]], np.float32)
+    args3 = K.kernel_args(np.arange(3), sp.csr_matrix(np.ones((3, 1))))
+    out = [K.accumulate(Y, None, None, np.nan, args=args3, codes=(np.nan, 4.0), jit=j) for j in (True, False)]
+    assert out[0].tobytes() == out[1].tobytes() and out[1][0, 0, 1] == 2.0
 
 
 @pytest.mark.parametrize("seed", range(4))
@@ -61,16 +86,17 @@ def test_numpy_and_numba_forms_are_bitwise_equal(seed, integer, mask):
     assert ma.tobytes() == mb.tobytes() and cells_a.tobytes() == cells_b.tobytes()
 
 
+@pytest.mark.parametrize("integer", [False, True])
 @pytest.mark.parametrize("mask", MASKS)
-def test_numpy_form_equals_a_masked_weighted_sum(mask):
+def test_numpy_form_equals_a_masked_weighted_sum(mask, integer):
     """Outside reference: numpy's own masked sums (common practice) give the same basin sums to 1e-12."""
-    _, X, nodata, cells, W = _case(1, True)
+    _, X, nodata, cells, W = _case(1, integer)
     out = K.accumulate(X, None, None, nodata, args=K.kernel_args(cells, W), jit=False, **mask)
     Xu = X[:, cells].astype(float)
-    bad = (Xu == nodata) | (Xu < mask.get("valid_min", -np.inf)) | (Xu > mask.get("valid_max", np.inf))
+    bad = np.isnan(Xu) | (Xu == nodata) | (Xu < mask.get("valid_min", -np.inf)) | (Xu > mask.get("valid_max", np.inf))
     bad |= np.isin(Xu, mask.get("codes", ()))
     dense = W.toarray()
-    np.testing.assert_allclose(out[:, :, 0], np.where(bad, 0, Xu) @ dense, rtol=1e-12)
+    np.testing.assert_allclose(out[:, :, 0], np.where(bad, 0, Xu) @ dense, rtol=1e-9, atol=1e-6)
     np.testing.assert_allclose(out[:, :, 1], (~bad).astype(float) @ dense, rtol=1e-12)
 
 
@@ -188,8 +214,25 @@ def test_a_streamed_source_builds_no_dask_array_until_asked(catalog):
 
 
 def test_the_numba_forms_run_above_the_threshold_or_once_loaded():
-    assert K.use_jit(K.JIT_MIN_VALUES) is K.have_numba()
-    assert K.use_jit(1) is ("wbexplore.spatial._jit" in sys.modules and K.have_numba())
+    """In a fresh process: small work runs numpy, large work numba; once numba is loaded, small work runs it too."""
+    import subprocess
+
+    code = ("import sys; from wbexplore.spatial import _kernel as K; a = K.use_jit(1); b = K.use_jit(K.JIT_MIN_VALUES); "
+            "import wbexplore.spatial._jit; print(a, b, K.use_jit(1))")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300, check=False)
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.split() == ["False", "True", "True"]
+
+
+def test_empty_blocks_and_spare_tiles():
+    """No steps, and a task's cell array with more tiles than the read: the same (empty) sums in both forms."""
+    _, X, nodata, cells, W = _case(2, False)
+    args = K.kernel_args(cells, W)
+    for Xb in (X[:0], X[:5]):
+        f = np.full(Xb.shape[0], 30.0)
+        res = [K.accumulate_with_cells(Xb, args, f, nodata, cell=np.zeros((3, cells.size, 3)), jit=j) for j in (1, 0)]
+        assert res[0][0].tobytes() == res[1][0].tobytes() and res[0][1].tobytes() == res[1][1].tobytes()
+        assert res[1][1][1:].sum() == 0  # one tile of steps at most: the spare tiles are untouched
 
 
 def test_small_sources_do_not_import_numba(catalog, tmp_path):
@@ -201,3 +244,29 @@ def test_small_sources_do_not_import_numba(catalog, tmp_path):
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300, check=False)
     assert r.returncode == 0, r.stderr
     assert r.stdout.strip().splitlines()[-1] == "False"
+
+
+def test_declared_bounds_and_codes_mean_the_stored_type(tmp_path):
+    """CF: valid_range and no-data values are in the variable's own type. A float32 file and a catalog that says
+    ``valid_range: [0, 0.3]`` and ``nodata: [0.1]``: the stored float32(0.3) is valid and float32(0.1) missing, on the
+    streamed path as on the xarray path (which compares in the stored type). As float64 the streamed path had
+    dropped 0.3 and kept 0.1: another basin mean, with no warning."""
+    from wbexplore.io.catalog import open_catalog
+    from wbexplore.io.grids import open_source
+    from wbexplore.pipeline import extract
+
+    lon, lat = lonlat_grid(0, 3, 0, 2, 1.0)
+    v = np.empty((2, lat.size, lon.size))
+    v[:, :, 0], v[:, :, 1], v[:, :, 2] = np.float32(0.3), np.float32(0.1), 0.2
+    write_nc(tmp_path / "p.nc", v, lon, lat, pd.date_range("2020-01-01", periods=2, freq="MS"), units="mm/month")
+    box_basins(tmp_path / "basins.geojson", [(0, 0, 3, 2)])
+    cat = write_catalog(tmp_path, [{"id": "p", "component": "P", "path": "p.nc", "valid_range": [0, 0.3],
+                                    "nodata": [0.1]}])
+    src = open_source(open_catalog(cat).sources[0])
+    assert src.blocks is not None
+    grid = src.data.values  # the xarray path's decoding
+    assert np.isnan(grid[:, :, 1]).all() and not np.isnan(grid[:, :, [0, 2]]).any()
+    ds = extract(cat, cache_dir=tmp_path / "cache")
+    ref = np.nanmean(grid.reshape(2, -1) * 1.0, axis=1)  # equal cells: the plain mean of the valid ones
+    np.testing.assert_allclose(ds["p"].values[0], ref, rtol=1e-6)
+    np.testing.assert_allclose(ds["valid_fraction_p"].values[0], 2 / 3, rtol=1e-6)

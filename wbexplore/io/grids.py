@@ -332,9 +332,16 @@ def _declare_blocks(spec: SourceSpec, blocks: BlockReader | None) -> BlockReader
         blocks.scale = spec.scale_factor
     if spec.add_offset is not None:
         blocks.offset = spec.add_offset
+    stored = np.dtype(blocks.dtype)
+
+    def as_stored(v):  # CF: the range and the codes are in the variable's own type, as `_decode_declared` compares
+        if stored.kind == "f" and np.isfinite(v):  # (0.3 as float32 is 0.30000001: its stored value is in range)
+            return float(np.asarray(v, np.float64).astype(stored))
+        return float(v)
+
     if spec.valid_range is not None:
-        blocks.valid_min, blocks.valid_max = spec.valid_range
-    blocks.nodata_codes = tuple(spec.nodata)
+        blocks.valid_min, blocks.valid_max = (as_stored(v) for v in spec.valid_range)
+    blocks.nodata_codes = tuple(as_stored(v) for v in spec.nodata)
     return blocks
 
 

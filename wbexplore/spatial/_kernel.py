@@ -62,6 +62,15 @@ def kernel_args(used: np.ndarray, wu_t) -> tuple:
 _NO_CODES = np.zeros(0, np.float64)
 
 
+def _mask_args(codes, vmin, vmax) -> tuple[np.ndarray, float, float]:
+    """The codes sorted as float64 without NaN (NaN is always missing; sorted last it hid every code from the
+    kernel's range test), and a NaN bound as no bound, so that both forms read one mask."""
+    c = np.asarray(codes, np.float64) if len(codes) else _NO_CODES
+    c = np.sort(c[~np.isnan(c)]) if c.size else _NO_CODES
+    vmin, vmax = float(vmin), float(vmax)
+    return c, (-np.inf if np.isnan(vmin) else vmin), (np.inf if np.isnan(vmax) else vmax)
+
+
 def _jit(jit: bool | None) -> bool:
     return have_numba() if jit is None else bool(jit)
 
@@ -75,7 +84,7 @@ def accumulate(X2: np.ndarray, used: np.ndarray, wu_t, nodata: float = np.nan, *
     always does (CF meanings, compared with stored values). ``args`` are precomputed `kernel_args`.
     ``jit``: the numba form (default: where numba is installed) or the numpy form; the sums are the same.
     """
-    c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
+    c, valid_min, valid_max = _mask_args(codes, valid_min, valid_max)
     args = args or kernel_args(used, wu_t)
     if _jit(jit):
         from ._jit import _accumulate
@@ -96,7 +105,7 @@ def accumulate_with_cells(X2: np.ndarray, args: tuple, factor: np.ndarray, nodat
     many as the block has), so that a streaming task adds every read into one array instead of allocating
     one per read; default a new one. Returns ``(basin sums, cell)``; sum ``cell`` over its first axis.
     """
-    c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
+    c, valid_min, valid_max = _mask_args(codes, valid_min, valid_max)
     cells = args[0]
     ntile = (X2.shape[0] + _TB - 1) // _TB
     if cell is None:
@@ -129,7 +138,7 @@ def accumulate_months(X2: np.ndarray, args: tuple, w: np.ndarray, s0: np.ndarray
     ``cell`` (cells, 3), optional, is added to in place, per cell and valid month: ``factor[month] * m``,
     ``factor[month] * sum_i w[month, i]`` (what the packing offset adds to that sum) and 1 (see `cell_sums`).
     """
-    c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
+    c, valid_min, valid_max = _mask_args(codes, valid_min, valid_max)
     w = np.ascontiguousarray(w, np.float64)
     if cell is None:
         cell, fm, ow = _NO_CELLS, _NO_CODES, _NO_CODES
@@ -157,11 +166,10 @@ def cell_sums(X2: np.ndarray, cells: np.ndarray, factor: np.ndarray, nodata: flo
     mean is ``(scale * s[0] + offset * s[1]) / s[2]``. Same mask as `accumulate`. Plain numpy masked sums over
     all steps at once (not tiled, so equal to `accumulate_with_cells`'s to rounding): the tests' reference.
     """
-    c = np.sort(np.asarray(codes, np.float64)) if len(codes) else _NO_CODES
+    c, valid_min, valid_max = _mask_args(codes, valid_min, valid_max)
     f = np.asarray(factor, np.float64)
-    Xu = X2[:, np.asarray(cells, np.int64)]
-    bad = np.isnan(Xu) if Xu.dtype.kind == "f" else np.zeros(Xu.shape, bool)
-    bad |= (Xu == nodata) | (Xu < valid_min) | (Xu > valid_max) | np.isin(Xu, c)
+    Xu = X2[:, np.asarray(cells, np.int64)].astype(np.float64)  # compared as float64, as the kernels compare
+    bad = np.isnan(Xu) | (Xu == float(nodata)) | (Xu < valid_min) | (Xu > valid_max) | np.isin(Xu, c)
     good = ~bad
     return np.stack([(np.where(good, Xu.astype(np.float64), 0.0) * f[:, None]).sum(axis=0),
                      (good * f[:, None]).sum(axis=0), good.sum(axis=0).astype(np.float64)], axis=1)
@@ -176,20 +184,24 @@ def cell_sums(X2: np.ndarray, cells: np.ndarray, factor: np.ndarray, nodata: flo
 # Checked against the kernels, bit for bit, in tests/test_kernel.py.
 
 def _masked(X2: np.ndarray, cells: np.ndarray, nodata, vmin, vmax, codes) -> tuple[np.ndarray, np.ndarray]:
-    """The used cells' values as float64 with 0 where missing, and the valid mask (the kernel's `_is_data`)."""
-    Xu = X2[:, np.asarray(cells, np.int64)]
-    good = ~np.isnan(Xu) if Xu.dtype.kind == "f" else np.ones(Xu.shape, bool)
+    """The used cells' values as float64 with 0 where missing, and the valid mask (the kernel's `_is_data`).
+
+    Compared as float64, as the kernel compares: a float32 file's fill of -3.4e+38 (not a float32) must not match
+    the stored float32 value here when it does not there (found by review)."""
+    # rows of steps contiguous (the gather leaves columns so)
+    Xf = np.ascontiguousarray(X2[:, np.asarray(cells, np.int64)], dtype=np.float64)
+    good = ~np.isnan(Xf)
+    nodata = float(nodata)
     if not np.isnan(nodata):
-        good &= Xu != nodata
+        good &= Xf != nodata
     if vmin > -np.inf:
-        good &= Xu >= vmin
+        good &= Xf >= vmin
     if vmax < np.inf:
-        good &= Xu <= vmax
+        good &= Xf <= vmax
     if len(codes):
-        good &= ~np.isin(Xu, codes)
-    Xf = np.ascontiguousarray(Xu, dtype=np.float64)  # rows of steps contiguous (the gather leaves columns so)
+        good &= ~np.isin(Xf, codes)
     Xf[~good] = 0.0
-    return Xf, np.ascontiguousarray(good)
+    return Xf, good
 
 
 def _weights_csr(args):
@@ -213,9 +225,9 @@ def _accumulate_numpy(X2, args, mask: tuple, f: np.ndarray | None = None, cell: 
         if cell is not None:  # each used cell's [sum f x, sum f, valid steps] over the tile, as the kernel's
             n = Xf.shape[1]
             s, sf, k = np.zeros(n), np.zeros(n), np.zeros(n)
-            for i in range(Xf.shape[0]):
-                s += f[sl.start + i] * Xf[i]
-                sf += f[sl.start + i] * good[i]
+            for i in range(Xf.shape[0]):  # a missing step adds +0.0 (a non-finite factor times 0 would be NaN)
+                s += np.where(good[i], f[sl.start + i] * Xf[i], 0.0)
+                sf += np.where(good[i], f[sl.start + i], 0.0)
                 k += good[i]
             cell[tile, :, 0] += s
             cell[tile, :, 1] += sf

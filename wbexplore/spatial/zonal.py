@@ -375,6 +375,9 @@ def _resolve(v, graph: dict, done: dict):
 def run_graph(graph: dict, keys, *, workers: int | None = None, progress=None) -> dict:
     """Run the tasks of a plain task graph that ``keys`` need, in a pool of threads; key -> result.
 
+    The graph's keys are tuples (as `plan_zonal_blocks` names them; a string argument is a literal here, not a
+    key as it would be for dask), and it has no cycles.
+
     Ready tasks start in the order the graph lists them (the streaming tasks in time order), at most
     ``workers`` at a time; a result is dropped once every task that needs it has run. An exception in
     a task is raised here, after the running tasks finish, and no further task starts.
@@ -570,11 +573,11 @@ def plan_zonal_blocks(reader, weights: Weights, time, *, month_weights: np.ndarr
 
 def _block(X: np.ndarray, wu_t: sp.csr_matrix, used: np.ndarray, args: tuple | None = None) -> np.ndarray:
     """(t, wy, wx) block -> (t, basins, 2) array of [sum W x, sum W valid]; ``args``: cached `kernel_args`."""
-    from ._kernel import accumulate, have_numba
+    from ._kernel import accumulate, use_jit
 
     t = X.shape[0]
-    if have_numba() and X.dtype.kind == "f":
-        return accumulate(np.ascontiguousarray(X).reshape(t, -1), used, wu_t, args=args)
+    if X.dtype.kind == "f":  # the numba form only where it pays (`_kernel.use_jit`): the same sums either way
+        return accumulate(np.ascontiguousarray(X).reshape(t, -1), used, wu_t, args=args, jit=use_jit(X.size))
     return _block_scipy(X, wu_t, used)
 
 
