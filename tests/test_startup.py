@@ -31,7 +31,8 @@ except SystemExit as exc:  # --help
     rc = exc.code
 units = sys.modules.get("wbexplore.units")
 print(json.dumps({"rc": rc, "modules": sorted(m.split(".")[0] for m in sys.modules if sys.modules[m] is not None),
-                  "unit_registry_built": bool(units and units._ureg.cache_info().currsize)}))
+                  "unit_registry_built": bool(units and units._ureg.cache_info().currsize),
+                  "dask_array": "dask.array" in sys.modules}))
 """
 
 
@@ -73,6 +74,18 @@ def test_local_extract_imports_no_display_distributed_or_geotiff_stack(tiny):
     # pint in tests/test_units.py: pint's registry (0.35 to 1.3 s) is not built on this path (xarray still
     # imports the pint module, 0.13 to 0.26 s, to ask whether the time values are pint arrays)
     assert out["unit_registry_built"] is False
+
+
+def test_local_extract_and_check_never_import_dask_array(tiny):
+    """Nothing on the local streamed path builds a dask array, so ``dask.array`` (0.3 to 0.6 s with the
+    scipy and numpy modules it brings) is not imported: xarray's "is this a dask array?" is answered by
+    `wbexplore._lazydask` without the import (tests/test_lazydask.py checks that answer). Failed before."""
+    for argv in (["extract", tiny, "--out", tiny.parent / "o2.nc", "--quiet", "--force",
+                  "--cache-dir", tiny.parent / "cache2"], ["check", tiny]):
+        out, r = _run(argv, tiny.parent)
+        assert out["rc"] == 0, r.stderr
+        assert "xarray" in out["modules"] and "dask" in out["modules"]  # xarray ran and asked about dask
+        assert out["dask_array"] is False, argv[0]
 
 
 def test_help_imports_neither_pandas_nor_pint(tiny):

@@ -21,6 +21,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from . import __version__
 from . import cache as _cache
 from .balance.plausibility import ImplausibleValueWarning, screen_implausible

@@ -23,6 +23,8 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from .errors import InputError
 
 __all__ = ["ROLE_SOURCE", "ROLE_FLOW", "ROLE_DISCHARGE", "DISCHARGE", "FLOW_PREFIX", "DIRECTIONS",

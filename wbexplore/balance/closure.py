@@ -14,6 +14,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError
 from ..series import STORAGE_STATE, is_waterbody, source_ids, valid_fraction_name
 from ..units import mm_per_month_to_flow_m3s, mm_to_m3

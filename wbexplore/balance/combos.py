@@ -6,6 +6,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError
 from .closure import Selection, _span
 from .engine import closure_arrays, combination_arrays, metrics_arrays, water_year

@@ -18,6 +18,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError
 from ..series import DISCHARGE, STORAGE_STATE, SURFACE_AREA, is_waterbody, source_ids, valid_fraction_name
 from .metrics import METRICS, metrics_from_residual

@@ -34,6 +34,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError
 from ..series import DISCHARGE, ROLE_DISCHARGE, ROLE_SOURCE
 from . import uncertainty as unc

@@ -10,6 +10,8 @@ from __future__ import annotations
 import pandas as pd
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from .closure import Selection, compute_selection
 from .metrics import check_metric, sort_key
 

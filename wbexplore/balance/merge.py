@@ -46,6 +46,8 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError
 from . import uncertainty as unc
 from .correction import constrained_projection

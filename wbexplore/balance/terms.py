@@ -25,6 +25,8 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..series import DIRECTIONS, DISCHARGE, FLOW_UNITS, LEVELS, flow_variables, is_waterbody
 
 __all__ = ["Term", "KINDS", "P", "ET", "Q", "DS", "BASE_TERMS", "DS_LEVELS", "WATERBODY_TERMS",

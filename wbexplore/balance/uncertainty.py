@@ -53,6 +53,8 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError
 from ..series import source_ids
 from .collocation import multiple_collocation

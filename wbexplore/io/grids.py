@@ -27,6 +27,8 @@ import pandas as pd
 import xarray as xr
 from pyproj import CRS
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError, UnitError
 from ..temporal import _apply_weights_xarray
 from ..units import parse_flux_unit, parse_storage_unit

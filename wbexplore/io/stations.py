@@ -28,6 +28,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError, UnitError
 from ..temporal import (station_daily_means, station_days_in_month, station_month_range,
                         station_monthly_means)

@@ -22,6 +22,8 @@ import pandas as pd
 import xarray as xr
 from scipy.interpolate import PchipInterpolator
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from ..errors import InputError
 from ..temporal import station_month_end_states
 from ..units import parse_area_unit, parse_level_unit, parse_volume_unit

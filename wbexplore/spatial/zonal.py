@@ -26,6 +26,8 @@ import numpy as np
 import scipy.sparse as sp
 import xarray as xr
 
+import wbexplore._lazydask  # noqa: F401  (before xarray wraps an array)
+
 from .areas import cell_areas_m2
 from .coverage import coverage_matrix
 from .grid import GridSpec
